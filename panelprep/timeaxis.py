@@ -1,0 +1,315 @@
+"""Place time values on a period grid.
+
+A time column may hold integer periods (``1995``, ``3``), dates or datetimes,
+or period strings (``2021Q3``, ``2021-03``, ``2021-W07``).  We parse only the
+distinct values (a panel has few periods however many rows it has), give each
+an integer *ordinal* on the grid of its frequency, and broadcast back to rows
+through the factorised codes.
+
+Frequencies: ``year``, ``quarter``, ``month``, ``week``, ``day`` and ``int``
+(integer periods with a fixed step, e.g. survey waves every two years).
+A value is *off the grid* when it does not sit where the grid's other values
+sit: a mid-month date in a panel of month-end dates, or an odd year in a
+panel observed every other year.  Off-grid values are kept and placed in the
+period that contains them; the audit reports them.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from panelprep.errors import TimeParseError
+
+FREQUENCIES = ("year", "quarter", "month", "week", "day", "int")
+
+_PATTERNS: dict[str, re.Pattern[str]] = {
+    "int": re.compile(r"^\s*-?\d{1,9}\s*$"),
+    "quarter": re.compile(r"^\s*(\d{4})\s*[-_ ]?[Qq]([1-4])\s*$"),
+    "month": re.compile(r"^\s*(\d{4})(?:-|/|M|m)(\d{1,2})\s*$"),
+    "week": re.compile(r"^\s*(\d{4})-?W(\d{2})\s*$"),
+}
+
+_EPOCH_WEEKDAY = 3  # 1970-01-01 was a Thursday (Monday = 0)
+
+
+@dataclass(frozen=True)
+class TimeAxis:
+    """Where each row sits on the period grid.
+
+    Attributes
+    ----------
+    freq : str
+        One of ``FREQUENCIES``.
+    step : int
+        Grid step for ``int`` periods (1 otherwise).
+    base : int
+        For ``int`` periods, the value at ordinal 0 (the smallest value seen).
+    ordinal : ndarray of int64, shape (n,)
+        Period number on the grid for every row; meaningless where ``missing``.
+    missing : ndarray of bool, shape (n,)
+        Rows whose time value is absent.
+    off_grid : ndarray of bool, shape (n,)
+        Rows whose value is not on the grid (placed in the containing period).
+    inferred : bool
+        Whether ``freq`` was inferred rather than given.
+    """
+
+    freq: str
+    step: int
+    base: int
+    ordinal: np.ndarray
+    missing: np.ndarray
+    off_grid: np.ndarray
+    inferred: bool
+
+    @property
+    def name(self) -> str:
+        """Frequency as reported: ``int:2`` for integer periods every two units."""
+        return f"int:{self.step}" if self.freq == "int" else self.freq
+
+    def label(self, ordinals: np.ndarray | list[int]) -> list[str]:
+        """Human-readable period labels for grid ordinals."""
+        ords = np.asarray(ordinals, dtype=np.int64)
+        if self.freq == "int":
+            return [str(int(v)) for v in self.base + ords * self.step]
+        if self.freq == "year":
+            return [str(int(v)) for v in ords]
+        if self.freq == "quarter":
+            return [f"{int(v) // 4}Q{int(v) % 4 + 1}" for v in ords]
+        if self.freq == "month":
+            return [f"{int(v) // 12}-{int(v) % 12 + 1:02d}" for v in ords]
+        days = ords * 7 - _EPOCH_WEEKDAY if self.freq == "week" else ords
+        return [str(d) for d in (np.datetime64("1970-01-01") + days.astype("timedelta64[D]"))]
+
+
+def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "time") -> TimeAxis:
+    """Parse a time column onto a period grid; see the module docstring.
+
+    Raises ``TimeParseError`` naming the column, the first bad row (counting
+    data rows from 1) and its value when a value cannot be placed.
+    """
+    if freq is not None and freq not in FREQUENCIES:
+        raise TimeParseError(
+            f"--freq {freq!r} is not one of {', '.join(FREQUENCIES)}"
+        )
+    codes, uniques = pd.factorize(values, use_na_sentinel=True)
+    codes = codes.astype(np.int64, copy=False)
+    missing = codes < 0
+    if isinstance(uniques, pd.Index) and uniques.dtype == object or pd.api.types.is_string_dtype(
+        uniques.dtype
+    ):
+        stripped = pd.Series(np.asarray(uniques, dtype=object)).astype(str).str.strip()
+        blank = (stripped == "").to_numpy()
+        if blank.any():
+            # blank strings are missing keys, not parse failures
+            missing = missing | np.isin(codes, np.flatnonzero(blank))
+    else:
+        blank = np.zeros(len(uniques), dtype=bool)
+
+    kind, uniq_ord, uniq_off, step, base, found_freq = _parse_uniques(
+        uniques, blank, freq, codes, column
+    )
+    safe = np.where(codes < 0, 0, codes)
+    if len(uniq_ord) == 0:
+        ordinal = np.zeros(len(codes), dtype=np.int64)
+        off = np.zeros(len(codes), dtype=bool)
+    else:
+        ordinal = uniq_ord[safe]
+        off = uniq_off[safe] & ~missing
+    return TimeAxis(
+        freq=found_freq,
+        step=step,
+        base=base,
+        ordinal=ordinal,
+        missing=missing,
+        off_grid=off,
+        inferred=freq is None,
+    )
+
+
+def _first_row(codes: np.ndarray, unique_position: int) -> int:
+    return int(np.flatnonzero(codes == unique_position)[0]) + 1
+
+
+def _parse_uniques(uniques, blank, freq, codes, column):
+    """Return (kind, ordinals, off_grid, step, base, freq) for distinct values."""
+    n = len(uniques)
+    if n == 0 or blank.all():
+        return "empty", np.zeros(n, np.int64), np.zeros(n, bool), 1, 0, freq or "int"
+    if pd.api.types.is_bool_dtype(uniques.dtype):
+        raise TimeParseError(f"time column {column!r} holds true/false values, not periods")
+    if pd.api.types.is_numeric_dtype(uniques.dtype):
+        nums = np.asarray(uniques, dtype=np.float64)
+        bad = ~np.isfinite(nums) | (nums != np.round(nums))
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            raise TimeParseError(
+                f"time column {column!r}: value {uniques[k]!r} at row {_first_row(codes, k)} "
+                "is not a whole-number period"
+            )
+        return ("int", *_integer_grid(nums.astype(np.int64), freq, column))
+    if pd.api.types.is_datetime64_any_dtype(uniques.dtype):
+        stamps = pd.DatetimeIndex(uniques)
+        if stamps.tz is not None:
+            stamps = stamps.tz_convert("UTC").tz_localize(None)
+        return ("date", *_date_grid(stamps, freq, column))
+    return _parse_strings(uniques, blank, freq, codes, column)
+
+
+def _integer_grid(values: np.ndarray, freq: str | None, column: str):
+    if freq not in (None, "int", "year"):
+        raise TimeParseError(
+            f"time column {column!r} holds whole numbers, which cannot be read as --freq {freq}"
+        )
+    base = int(values.min())
+    if freq == "year":
+        step = 1
+    else:
+        spacing = np.diff(np.unique(values))
+        step = int(np.gcd.reduce(spacing)) if len(spacing) else 1
+        step = max(step, 1)
+    offset = values - base
+    ordinal = offset // step
+    off = offset % step != 0
+    if freq == "year" or (freq is None and step == 1 and base >= 1000 and values.max() <= 2999):
+        return ordinal + base, off, 1, base, "year"
+    return ordinal, off, step, base, "int"
+
+
+def _parse_strings(uniques, blank, freq, codes, column):
+    text = pd.Series(np.asarray(uniques, dtype=object)).astype(str)
+    for kind in ("int", "quarter", "month", "week"):
+        matched = text.str.fullmatch(_PATTERNS[kind].pattern).to_numpy() | blank
+        if matched.all():
+            return _string_grid(kind, text, blank, freq, codes, column)
+        if matched[~blank].any() and kind != "int":
+            k = int(np.flatnonzero(~matched)[0])
+            raise TimeParseError(
+                f"time column {column!r} mixes kinds of period: {text[k]!r} at row "
+                f"{_first_row(codes, k)} is not a {kind} label like the others"
+            )
+    return _date_strings(text, blank, freq, codes, column)
+
+
+def _string_grid(kind, text, blank, freq, codes, column):
+    n = len(text)
+    if kind == "int":
+        nums = np.zeros(n, dtype=np.int64)
+        nums[~blank] = text[~blank].str.strip().astype(np.int64).to_numpy()
+        ordinal, off, step, base, found = _integer_grid(nums[~blank], freq, column)
+        full_ord = np.zeros(n, np.int64)
+        full_off = np.zeros(n, bool)
+        full_ord[~blank], full_off[~blank] = ordinal, off
+        return "int", full_ord, full_off, step, base, found
+    if freq is not None and freq != kind:
+        k = int(np.flatnonzero(~blank)[0])
+        raise TimeParseError(
+            f"time column {column!r}: value {text[k]!r} at row {_first_row(codes, k)} "
+            f"is a {kind} label, but --freq {freq} was given"
+        )
+    parts = text.str.extract(_PATTERNS[kind].pattern)
+    year = pd.to_numeric(parts[0], errors="coerce").fillna(0).astype(np.int64).to_numpy()
+    sub = pd.to_numeric(parts[1], errors="coerce").fillna(1).astype(np.int64).to_numpy()
+    if kind == "month":
+        bad = ((sub < 1) | (sub > 12)) & ~blank
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            raise TimeParseError(
+                f"time column {column!r}: value {text[k]!r} at row {_first_row(codes, k)} "
+                "has no such month"
+            )
+        ordinal = year * 12 + sub - 1
+    elif kind == "quarter":
+        ordinal = year * 4 + sub - 1
+    else:
+        bad = ((sub < 1) | (sub > 53)) & ~blank
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            raise TimeParseError(
+                f"time column {column!r}: value {text[k]!r} at row {_first_row(codes, k)} "
+                "has no such week"
+            )
+        monday = pd.to_datetime(
+            [f"{y}-W{w:02d}-1" for y, w in zip(np.where(blank, 2000, year), np.where(blank, 1, sub))],
+            format="%G-W%V-%u",
+        )
+        days = (monday.values.astype("datetime64[D]").astype(np.int64))
+        ordinal = (days + _EPOCH_WEEKDAY) // 7
+    return kind, ordinal.astype(np.int64), np.zeros(n, bool), 1, 0, kind
+
+
+def _date_strings(text, blank, freq, codes, column):
+    parsed = pd.to_datetime(text.where(~pd.Series(blank), None), errors="coerce", format="ISO8601")
+    bad = parsed.isna().to_numpy() & ~blank
+    if bad.any():
+        k = int(np.flatnonzero(bad)[0])
+        raise TimeParseError(
+            f"time column {column!r}: cannot read {text[k]!r} at row {_first_row(codes, k)} "
+            "as a period (expected a whole number, a date, or a label like 2021Q3, 2021-03, 2021-W07)"
+        )
+    stamps = pd.DatetimeIndex(parsed)
+    if stamps.tz is not None:
+        stamps = stamps.tz_convert("UTC").tz_localize(None)
+    stamps = stamps.where(~blank, stamps[~blank][0])
+    ordinal, off, step, base, found = _date_grid(stamps, freq, column)
+    return "date", ordinal, off, step, base, found
+
+
+def _date_grid(stamps: pd.DatetimeIndex, freq: str | None, column: str):
+    if freq == "int":
+        raise TimeParseError(f"time column {column!r} holds dates, which cannot be read as --freq int")
+    days = stamps.values.astype("datetime64[D]").astype(np.int64)
+    if freq is None:
+        freq = _infer_date_freq(days)
+    year = stamps.year.to_numpy().astype(np.int64)
+    month = stamps.month.to_numpy().astype(np.int64)
+    dom = stamps.day.to_numpy().astype(np.int64)
+    month_end = stamps.is_month_end
+    day_phase = np.where(month_end, 0, dom)  # 0 marks "last day of the month"
+    time_of_day = (stamps.values.astype("datetime64[ns]").astype(np.int64)
+                   - stamps.normalize().values.astype("datetime64[ns]").astype(np.int64))
+    if freq == "year":
+        ordinal = year
+        phase = month * 100 + day_phase
+    elif freq == "quarter":
+        ordinal = year * 4 + (month - 1) // 3
+        phase = ((month - 1) % 3) * 100 + day_phase
+    elif freq == "month":
+        ordinal = year * 12 + month - 1
+        phase = day_phase
+    elif freq == "week":
+        weekday = (days + _EPOCH_WEEKDAY) % 7
+        anchor = _mode(weekday)
+        ordinal = (days + _EPOCH_WEEKDAY - anchor) // 7
+        phase = weekday
+    else:
+        ordinal = days
+        phase = np.zeros(len(days), np.int64)
+    off = (phase != _mode(phase)) | (time_of_day != _mode(time_of_day))
+    return ordinal.astype(np.int64), off, 1, 0, freq
+
+
+def _infer_date_freq(days: np.ndarray) -> str:
+    spacing = np.diff(np.unique(days))
+    if len(spacing) == 0:
+        return "day"
+    typical = float(np.median(spacing))
+    if typical >= 300:
+        return "year"
+    if typical >= 80:
+        return "quarter"
+    if typical >= 25:
+        return "month"
+    if typical >= 6:
+        return "week"
+    return "day"
+
+
+def _mode(values: np.ndarray) -> int:
+    uniq, counts = np.unique(values, return_counts=True)
+    return int(uniq[np.argmax(counts)])
+
