@@ -1,0 +1,239 @@
+"""Least squares with explicit rank detection, and an entity-clustered covariance.
+
+Everything here works on small dense blocks: ``X`` is (n, k) with k the number
+of regressors (a handful), so the cost is one pivoted QR of an (n, k) block
+and a few k x k operations.  Rank deficiency is a normal outcome (a regressor
+with no within variation, two collinear regressors, fewer rows than columns):
+it is detected, reported in the result and never turns into NaN or an
+exception.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+
+EPS = float(np.finfo(np.float64).eps)
+
+# Multiplier on max(n, k) * eps for the default relative rank tolerance.  The
+# backward error of Householder QR grows roughly like sqrt(n) * eps in
+# practice; max(n, k) * eps * 10 leaves a safety margin above that while still
+# keeping any column whose independent part is more than ~1e-9 of the largest
+# column for n up to ~10 million rows.
+RTOL_FACTOR = 10.0
+
+
+def default_rtol(n: int, k: int) -> float:
+    """Default relative rank tolerance: ``max(n, k) * eps * 10``."""
+    return max(n, k, 1) * EPS * RTOL_FACTOR
+
+
+@dataclass(frozen=True, eq=False)
+class OlsFit:
+    """Result of :func:`ols`.
+
+    Attributes
+    ----------
+    coef : float64 (k,)
+        Coefficients in the order of the columns of ``X``; 0.0 for dropped
+        columns (never NaN).
+    resid : float64 (n,)
+        ``y - X @ coef``.
+    kept : bool (k,)
+        Columns that entered the fit.
+    dropped : list
+        Names (or integer positions when no names were given) of the columns
+        left out for rank deficiency, in column order.
+    rank : int
+        Number of kept columns.
+    ssr : float
+        Sum of squared residuals ``resid @ resid``.
+    xtx_inv : float64 (rank, rank)
+        ``(X_k' X_k)^{-1}`` over the kept columns ``X_k = X[:, kept]``, in
+        column order, for covariance computations.
+    n_obs : int
+        Number of rows n.
+    df_resid : int
+        ``max(n - rank, 0)``; zero means the fit is exact and carries no
+        information about the error variance.
+    rtol : float
+        The relative rank tolerance that was applied.
+    """
+
+    coef: np.ndarray
+    resid: np.ndarray
+    kept: np.ndarray
+    dropped: list
+    rank: int
+    ssr: float
+    xtx_inv: np.ndarray
+    n_obs: int
+    df_resid: int
+    rtol: float
+
+    @property
+    def n_dropped(self) -> int:
+        return len(self.dropped)
+
+
+def ols(
+    y: np.ndarray,
+    X: np.ndarray,
+    names: Sequence[str] | None = None,
+    rtol: float | None = None,
+    scale: np.ndarray | None = None,
+) -> OlsFit:
+    """Ordinary least squares of ``y`` on the columns of ``X`` with rank detection.
+
+    Parameters
+    ----------
+    y : array (n,)
+        Response, finite float64.
+    X : array (n, k)
+        Regressors, finite float64, any memory order.  Add a constant column
+        yourself if the regression has one.
+    names : sequence of str, optional
+        Column names used in ``OlsFit.dropped``; integer positions otherwise.
+    rtol : float, optional
+        Relative rank tolerance.  Default ``max(n, k) * eps * 10``.
+    scale : array (k,), optional
+        Reference magnitude of each column.  Columns are divided by it before
+        the QR, so the tolerance is relative to these magnitudes instead of
+        the raw column norms.  Pass the norms of the *untransformed* columns
+        when ``X`` is a transform (e.g. within deviations): a regressor whose
+        transform is pure rounding noise (a time-invariant variable after the
+        within transform, of size ~1e-16 of the original) is then dropped,
+        while a small-but-real column is kept.  A zero or non-finite entry
+        means "no reference": that column is scaled by 1.
+
+    Returns
+    -------
+    OlsFit
+
+    Notes
+    -----
+    Rank detection: pivoted QR ``X_s P = Q R`` (``scipy.linalg.qr`` with
+    ``pivoting=True, mode='economic'``) of the scaled block ``X_s = X / scale``.
+    The leading ``r`` pivoted columns are kept, where ``r`` counts the diagonal
+    entries with ``|R_jj| > rtol * |R_00|``.  ``|R_00|`` is the largest
+    column norm of ``X_s``, so an exactly zero column (``R_jj = 0``) is always
+    dropped, and so is a column whose part orthogonal to the kept ones is below
+    ``rtol`` of the largest column.  With ``n < k`` at most ``n`` columns can be
+    kept.  Coefficients of kept columns solve ``R_11 b = Q_1' y``; dropped
+    columns get 0, which is the minimum-information answer "not estimable", not
+    an estimate.
+    """
+    y = np.asarray(y, dtype=np.float64)
+    X = np.asarray(X, dtype=np.float64)
+    if X.ndim == 1:
+        X = X[:, None]
+    n, k = X.shape
+    if y.shape != (n,):
+        raise ValueError(f"y has shape {y.shape}, expected ({n},) to match X {X.shape}")
+    if not (np.isfinite(y).all() and np.isfinite(X).all()):
+        raise ValueError("ols needs finite y and X; found NaN or infinite values")
+    labels = list(names) if names is not None else list(range(k))
+    if len(labels) != k:
+        raise ValueError(f"{len(labels)} names for {k} columns")
+    rtol = default_rtol(n, k) if rtol is None else float(rtol)
+
+    col_scale = np.ones(k)
+    if scale is not None:
+        s = np.asarray(scale, dtype=np.float64).reshape(k)
+        good = np.isfinite(s) & (s > 0)
+        col_scale[good] = s[good]
+
+    kept = np.zeros(k, dtype=bool)
+    coef = np.zeros(k)
+    xtx_inv = np.zeros((0, 0))
+    rank = 0
+    if n > 0 and k > 0:
+        Xs = X / col_scale
+        Q, R, piv = scipy.linalg.qr(Xs, mode="economic", pivoting=True)
+        diag = np.abs(np.diag(R))
+        if diag.size and diag[0] > 0:
+            rank = int(np.count_nonzero(diag > rtol * diag[0]))
+        if rank:
+            R11 = R[:rank, :rank]
+            b_piv = scipy.linalg.solve_triangular(R11, Q[:, :rank].T @ y)
+            R11_inv = scipy.linalg.solve_triangular(R11, np.eye(rank))
+            inv_piv = R11_inv @ R11_inv.T
+            sel = piv[:rank]
+            order = np.argsort(sel)
+            kept[sel] = True
+            coef[sel] = b_piv / col_scale[sel]
+            sel_sorted = sel[order]
+            d = 1.0 / col_scale[sel_sorted]
+            xtx_inv = inv_piv[np.ix_(order, order)] * d[:, None] * d[None, :]
+    resid = y - X[:, kept] @ coef[kept] if rank else y.copy()
+    return OlsFit(
+        coef=coef,
+        resid=resid,
+        kept=kept,
+        dropped=[labels[j] for j in np.flatnonzero(~kept)],
+        rank=rank,
+        ssr=float(resid @ resid),
+        xtx_inv=xtx_inv,
+        n_obs=n,
+        df_resid=max(n - rank, 0),
+        rtol=rtol,
+    )
+
+
+def cluster_cov(
+    X_kept: np.ndarray,
+    resid: np.ndarray,
+    cluster_codes: np.ndarray,
+    xtx_inv: np.ndarray,
+    n_clusters: int,
+    correction: bool = True,
+) -> np.ndarray:
+    """Cluster-robust (sandwich) covariance of OLS coefficients.
+
+    ``V = c * A (sum_g s_g s_g') A`` with ``A = xtx_inv`` and ``s_g`` the sum
+    over the rows of cluster g of the scores ``x_it * e_it``; the cluster sums
+    are one ``np.bincount`` per column.
+
+    Parameters
+    ----------
+    X_kept : array (n, r)
+        Regressors that entered the fit (``X[:, fit.kept]``).
+    resid : array (n,)
+        OLS residuals.
+    cluster_codes : int array (n,)
+        Dense cluster codes 0..n_clusters-1 (entity codes for entity
+        clustering).
+    xtx_inv : array (r, r)
+        ``(X_kept' X_kept)^{-1}``.
+    n_clusters : int
+        Number of clusters G.
+    correction : bool
+        Apply the small-sample factor ``c = G/(G-1) * (n-1)/(n-r)``.  Each
+        ratio is replaced by 1 when its denominator is not positive (G = 1 or
+        n <= r) so the result stays finite; with ``correction=False``, c = 1.
+
+    Returns
+    -------
+    ndarray (r, r)
+    """
+    X_kept = np.asarray(X_kept, dtype=np.float64)
+    if X_kept.ndim == 1:
+        X_kept = X_kept[:, None]
+    n, r = X_kept.shape
+    if r == 0:
+        return np.zeros((0, 0))
+    scores = np.empty((n_clusters, r), dtype=np.float64, order="F")
+    for j in range(r):
+        scores[:, j] = np.bincount(
+            cluster_codes, weights=X_kept[:, j] * resid, minlength=n_clusters
+        )
+    meat = scores.T @ scores
+    cov = xtx_inv @ meat @ xtx_inv
+    if correction:
+        g_factor = n_clusters / (n_clusters - 1) if n_clusters > 1 else 1.0
+        n_factor = (n - 1) / (n - r) if n > r else 1.0
+        cov = cov * (g_factor * n_factor)
+    return (cov + cov.T) / 2.0
