@@ -84,14 +84,18 @@ class PanelIndex:
             return [str(v) for v in labels.iloc[:, 0]]
         return ["/".join(str(v) for v in row) for row in labels.itertuples(index=False)]
 
-    def subset(self, rows: np.ndarray) -> "PanelIndex":
+    def subset(self, rows: np.ndarray) -> PanelIndex:
         """Index of a subset of rows (boolean mask or positions), codes re-densified.
 
-        Entity codes are re-numbered so entities with no remaining rows vanish;
-        the period grid keeps its origin so labels stay comparable.
+        Entity codes are re-numbered so entities with no remaining rows vanish,
+        and the period grid is cut to the span the subset covers.
         """
         ent = self.entity_codes[rows]
         per = self.period_codes[rows]
+        timed = per >= 0
+        low = int(per[timed].min()) if timed.any() else 0
+        high = int(per[timed].max()) if timed.any() else -1
+        per = np.where(timed, per - low, -1)
         present = np.flatnonzero(group_counts(ent[ent >= 0], self.n_entities) > 0)
         remap = np.full(self.n_entities, -1, dtype=np.int64)
         remap[present] = np.arange(len(present))
@@ -110,8 +114,8 @@ class PanelIndex:
                 off_grid=self.axis.off_grid[rows],
                 inferred=self.axis.inferred,
             ),
-            first_period=self.first_period,
-            n_periods=self.n_periods,
+            first_period=self.first_period + low,
+            n_periods=high - low + 1,
             period_codes=per,
         )
 

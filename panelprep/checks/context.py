@@ -1,0 +1,240 @@
+"""What every check reads: the frame, its index, numeric values and the samples.
+
+Built once per audit; the expensive pieces are cached properties so a check
+that needs them pays once and the rest reuse them.
+
+Samples (all boolean row masks over the frame):
+
+* ``keyed``: entity and time present;
+* ``repeat``: a keyed row that repeats an earlier row exactly on every
+  column read (a pair counts one repeat);
+* ``base``: keyed and not a repeat;
+* ``sample``: the estimation sample, ``base`` rows whose selected
+  variables are all present (and numeric).
+
+Counts after the key checks are taken on ``sample``.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+from functools import cached_property
+
+import numpy as np
+import pandas as pd
+
+from panelprep._groups import group_counts, segment_bounds
+from panelprep.index import PanelIndex
+from panelprep.variation import variation_table
+
+_NUMBER = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
+
+
+@dataclass(frozen=True)
+class Thresholds:
+    """Tunable limits of the checks.
+
+    low_within_ratio : a variable is reported as thin within entities when
+        within SD / overall SD is below this (default 0.05).
+    constant_rtol : a group counts as constant in a variable when the root
+        mean square deviation from its mean is at most this times the
+        variable's largest absolute value (default 1e-9).
+    max_pattern_periods : presence patterns are summarised only for grids of
+        at most this many periods.
+    """
+
+    low_within_ratio: float = 0.05
+    constant_rtol: float = 1e-9
+    max_pattern_periods: int = 512
+
+
+@dataclass(frozen=True)
+class NonNumeric:
+    """Text found in a variable that should be numeric."""
+
+    column: str
+    rows: np.ndarray
+    values: list[str]
+    read_as_missing: int
+
+
+@dataclass(eq=False)
+class AuditContext:
+    """The shared inputs of all checks (see the module docstring)."""
+
+    frame: pd.DataFrame
+    index: PanelIndex
+    variables: list[str]
+    thresholds: Thresholds = field(default_factory=Thresholds)
+    decimal_comma: bool = False
+    missing_tokens: tuple[str, ...] = ()
+
+    @cached_property
+    def _numeric(self) -> tuple[np.ndarray, dict[str, NonNumeric]]:
+        n, k = len(self.frame), len(self.variables)
+        values = np.empty((n, k), dtype=np.float64, order="F")
+        bad: dict[str, NonNumeric] = {}
+        for j, name in enumerate(self.variables):
+            values[:, j], problem = _to_float(
+                self.frame[name], name, self.decimal_comma, self.missing_tokens
+            )
+            if problem is not None:
+                bad[name] = problem
+        return values, bad
+
+    @property
+    def values(self) -> np.ndarray:
+        """Selected variables as float64 (n, k), column-major; NaN where absent."""
+        return self._numeric[0]
+
+    @property
+    def non_numeric(self) -> dict[str, NonNumeric]:
+        return self._numeric[1]
+
+    @property
+    def keyed(self) -> np.ndarray:
+        return self.index.keyed
+
+    @cached_property
+    def _duplicates(self) -> tuple[np.ndarray, np.ndarray]:
+        """(repeat mask, cells that are conflicting duplicate keys)."""
+        n = len(self.frame)
+        order = self.index.order
+        cells = self.index.cell[order]
+        shared = np.zeros(len(order), dtype=bool)
+        if len(order) > 1:
+            same = cells[1:] == cells[:-1]
+            shared[1:] |= same
+            shared[:-1] |= same
+        candidates = np.sort(order[shared])
+        repeat = np.zeros(n, dtype=bool)
+        if len(candidates):
+            subset = self.frame.iloc[candidates]
+            repeat[candidates] = subset.duplicated(keep="first").to_numpy()
+        remaining = candidates[~repeat[candidates]]
+        cell_left = self.index.cell[remaining]
+        uniq, counts = np.unique(cell_left, return_counts=True)
+        return repeat, uniq[counts > 1]
+
+    @property
+    def repeat(self) -> np.ndarray:
+        return self._duplicates[0]
+
+    @property
+    def conflicting_cells(self) -> np.ndarray:
+        return self._duplicates[1]
+
+    @cached_property
+    def base(self) -> np.ndarray:
+        return self.keyed & ~self.repeat
+
+    @cached_property
+    def complete(self) -> np.ndarray:
+        """Rows whose selected variables are all present."""
+        if not self.variables:
+            return np.ones(len(self.frame), dtype=bool)
+        return ~np.isnan(self.values).any(axis=1)
+
+    @cached_property
+    def sample(self) -> np.ndarray:
+        return self.base & self.complete
+
+    @cached_property
+    def sample_index(self) -> PanelIndex:
+        return self.index.subset(self.sample)
+
+    @cached_property
+    def sample_values(self) -> np.ndarray:
+        return np.asfortranarray(self.values[self.sample])
+
+    @cached_property
+    def sample_counts(self) -> np.ndarray:
+        """Rows per entity in the estimation sample."""
+        return group_counts(self.sample_index.entity_codes, self.sample_index.n_entities)
+
+    @cached_property
+    def sample_cells(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Distinct (entity, period) pairs of the sample, sorted: (entity, period, starts)."""
+        ix = self.sample_index
+        cells = np.unique(ix.cell)
+        entity = cells // max(ix.n_periods, 1)
+        period = cells - entity * max(ix.n_periods, 1)
+        return entity, period, segment_bounds(entity)
+
+    @cached_property
+    def periods_per_entity(self) -> np.ndarray:
+        """Distinct periods observed per entity in the sample."""
+        entity, _, _ = self.sample_cells
+        return group_counts(entity, self.sample_index.n_entities)
+
+    @cached_property
+    def variation(self) -> dict[str, dict]:
+        """The variation table of the estimation sample (see ``variation_table``)."""
+        return variation_table(
+            self.sample_index, self.sample_values, self.variables, self.thresholds.constant_rtol
+        )
+
+    def row_key(self, rows: np.ndarray) -> list[dict[str, object]]:
+        """Example dicts (row counted from 1, entity, time) for frame positions."""
+        rows = np.asarray(rows, dtype=np.int64)
+        out = []
+        for row in rows:
+            example: dict[str, object] = {"row": int(row) + 1}
+            for column in [*self.index.entity, self.index.time]:
+                value = self.frame[column].iloc[int(row)]
+                example[column] = None if pd.isna(value) else _plain(value)
+            out.append(example)
+        return out
+
+
+def _plain(value: object) -> object:
+    if isinstance(value, (np.integer,)):
+        return int(value)
+    if isinstance(value, (np.floating,)):
+        return float(value)
+    if isinstance(value, (str, int, float, bool)):
+        return value
+    return str(value)
+
+
+def _to_float(
+    values: pd.Series, name: str, decimal_comma: bool, missing_tokens: tuple[str, ...]
+) -> tuple[np.ndarray, NonNumeric | None]:
+    """Numeric view of a column; text that is not a number becomes NaN and is reported."""
+    if pd.api.types.is_bool_dtype(values.dtype):
+        return values.astype(np.float64).to_numpy(), None
+    if pd.api.types.is_numeric_dtype(values.dtype):
+        return values.to_numpy(dtype=np.float64, na_value=np.nan), None
+    text = values.astype("str")
+    present = values.notna().to_numpy()
+    stripped = text.str.strip()
+    if decimal_comma:
+        stripped = stripped.str.replace(",", ".", regex=False)
+    is_number = stripped.str.fullmatch(_NUMBER.pattern).fillna(False).to_numpy(dtype=bool)
+    token_missing = stripped.isin(list(missing_tokens)).to_numpy() & present
+    blank = (stripped == "").to_numpy() & present
+    out = np.full(len(values), np.nan)
+    out[is_number] = stripped[is_number].astype(np.float64).to_numpy()
+    bad_rows = np.flatnonzero(present & ~is_number & ~token_missing & ~blank)
+    if len(bad_rows) == 0 and not token_missing.any():
+        return out, None
+    shown = list(dict.fromkeys(text.iloc[bad_rows[:200]].tolist()))[:10]
+    return out, NonNumeric(
+        column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum())
+    )
+
+
+def looks_numeric(values: pd.Series, decimal_comma: bool = False) -> bool:
+    """Whether a text column is mostly numbers (so a few stray texts are defects)."""
+    if pd.api.types.is_numeric_dtype(values.dtype) and not pd.api.types.is_bool_dtype(values.dtype):
+        return True
+    if not (pd.api.types.is_string_dtype(values.dtype) or values.dtype == object):
+        return False
+    sample = values.dropna().astype(str).str.strip()
+    sample = sample[sample != ""].head(10_000)
+    if decimal_comma:
+        sample = sample.str.replace(",", ".", regex=False)
+    if len(sample) == 0:
+        return False
+    return float(sample.str.fullmatch(_NUMBER.pattern).mean()) >= 0.5

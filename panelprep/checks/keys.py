@@ -1,0 +1,85 @@
+"""Checks on the (entity, time) key: missing parts, duplicates, look-alike ids."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from panelprep.checks.base import Check, check
+from panelprep.checks.context import AuditContext
+from panelprep.findings import MAX_EXAMPLES
+
+
+@check("key-missing", "error", "rows whose entity or time key is missing")
+def missing_key(ctx: AuditContext, self: Check):
+    rows = np.flatnonzero(~ctx.keyed)
+    if len(rows) == 0:
+        return None
+    no_entity = int((ctx.index.entity_codes < 0).sum())
+    no_time = int((ctx.index.period_codes < 0).sum())
+    return self.finding(
+        len(rows),
+        f"{len(rows)} row(s) lack a key: {no_entity} without entity, {no_time} without time",
+        ctx.row_key(rows[:MAX_EXAMPLES]),
+        {"rows_without_entity": no_entity, "rows_without_time": no_time},
+    )
+
+
+@check("key-conflict", "error", "the same (entity, time) key on rows whose values differ")
+def conflicting_keys(ctx: AuditContext, self: Check):
+    cells = ctx.conflicting_cells
+    if len(cells) == 0:
+        return None
+    rows_in_conflict = np.flatnonzero(np.isin(ctx.index.cell, cells) & ctx.base)
+    first_rows = rows_in_conflict[np.unique(ctx.index.cell[rows_in_conflict], return_index=True)[1]]
+    examples = ctx.row_key(np.sort(first_rows)[:MAX_EXAMPLES])
+    return self.finding(
+        len(cells),
+        f"{len(cells)} key(s) appear on rows with differing values ({len(rows_in_conflict)} rows)",
+        examples,
+        {"rows_involved": len(rows_in_conflict)},
+    )
+
+
+@check("row-repeated", "warning", "rows that repeat an earlier row exactly")
+def exact_repeats(ctx: AuditContext, self: Check):
+    rows = np.flatnonzero(ctx.repeat)
+    if len(rows) == 0:
+        return None
+    return self.finding(
+        len(rows),
+        f"{len(rows)} row(s) repeat an earlier row exactly; they are collapsed for all counts",
+        ctx.row_key(rows[:MAX_EXAMPLES]),
+    )
+
+
+@check("entity-id-lookalike", "warning", "entity ids that differ only by case or outer spaces")
+def lookalike_ids(ctx: AuditContext, self: Check):
+    labels = ctx.index.entity_labels
+    text_columns = [c for c in labels.columns if not pd.api.types.is_numeric_dtype(labels[c].dtype)]
+    if not text_columns or len(labels) < 2:
+        return None
+    folded = labels.astype(str)
+    for column in text_columns:
+        folded[column] = folded[column].str.strip().str.casefold()
+    group = folded.groupby(list(labels.columns), sort=True).ngroup().to_numpy()
+    sizes = np.bincount(group)
+    involved = np.flatnonzero(sizes[group] > 1)
+    if len(involved) == 0:
+        return None
+    n_groups = int((sizes > 1).sum())
+    shown_groups = np.unique(group[involved])[:MAX_EXAMPLES]
+    keys = ctx.index.entity_key(involved)
+    examples = [
+        {"ids": [keys[i] for i in np.flatnonzero(group[involved] == g)]} for g in shown_groups
+    ]
+    return self.finding(
+        n_groups,
+        f"{n_groups} group(s) of entity ids differ only by case or surrounding spaces "
+        f"({len(involved)} ids); they are treated as different entities",
+        examples,
+        {"ids_involved": len(involved)},
+    )
+
+
+CHECKS = [missing_key, conflicting_keys, exact_repeats, lookalike_ids]

@@ -1,0 +1,144 @@
+"""Checks on the panel's shape over time: holes, off-grid periods, balance, singletons.
+
+All counts are taken on the estimation sample's distinct (entity, period)
+pairs, sorted by entity then period, so every rule is a diff or a segment
+reduction over that one sorted array.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from panelprep._groups import group_counts
+from panelprep.checks.base import Check, check
+from panelprep.checks.context import AuditContext
+from panelprep.findings import MAX_EXAMPLES
+
+PRESENT, ABSENT = "■", "·"
+
+
+def gap_table(ctx: AuditContext) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per sample entity: number of holes, longest hole, periods missing inside its span."""
+    entity, period, _ = ctx.sample_cells
+    n_entities = ctx.sample_index.n_entities
+    holes = np.zeros(n_entities, dtype=np.int64)
+    longest = np.zeros(n_entities, dtype=np.int64)
+    missing = np.zeros(n_entities, dtype=np.int64)
+    if len(entity) > 1:
+        same = entity[1:] == entity[:-1]
+        width = np.diff(period) - 1
+        jump = same & (width > 0)
+        owner = entity[1:][jump]
+        holes = group_counts(owner, n_entities)
+        missing = np.bincount(owner, weights=width[jump], minlength=n_entities).astype(np.int64)
+        np.maximum.at(longest, owner, width[jump])
+    return holes, longest, missing
+
+
+@check("period-holes", "warning", "periods missing between an entity's first and last observation")
+def time_gaps(ctx: AuditContext, self: Check):
+    holes, longest, missing = gap_table(ctx)
+    with_gaps = np.flatnonzero(holes > 0)
+    if len(with_gaps) == 0:
+        return None
+    worst = with_gaps[np.lexsort((with_gaps, -longest[with_gaps]))][:MAX_EXAMPLES]
+    keys = ctx.sample_index.entity_key(worst)
+    examples = [
+        {"entity": key, "gaps": int(holes[e]), "longest_gap": int(longest[e]),
+         "periods_missing": int(missing[e])}
+        for key, e in zip(keys, worst)
+    ]
+    return self.finding(
+        len(with_gaps),
+        f"{len(with_gaps)} entit(ies) have holes in their time series "
+        f"({int(missing.sum())} periods missing inside spans, longest {int(longest.max())})",
+        examples,
+        {"periods_missing": int(missing.sum()), "longest_gap": int(longest.max()),
+         "gap_episodes": int(holes.sum())},
+    )
+
+
+@check("period-off-grid", "warning", "time values not on the inferred period grid")
+def off_grid(ctx: AuditContext, self: Check):
+    rows = np.flatnonzero(ctx.index.axis.off_grid & ctx.keyed)
+    if len(rows) == 0:
+        return None
+    return self.finding(
+        len(rows),
+        f"{len(rows)} row(s) have time values off the {ctx.index.axis.name} grid; "
+        "each is counted in the period that contains it",
+        ctx.row_key(rows[:MAX_EXAMPLES]),
+    )
+
+
+def presence_patterns(ctx: AuditContext, top: int = 5) -> list[dict] | None:
+    """Most common presence patterns over the grid (None when the grid is too long)."""
+    n_periods = ctx.sample_index.n_periods
+    if n_periods <= 0 or n_periods > ctx.thresholds.max_pattern_periods:
+        return None
+    entity, period, starts = ctx.sample_cells
+    if len(entity) == 0:
+        return []
+    words = (n_periods + 63) // 64
+    masks = np.empty((len(starts), words), dtype=np.uint64)
+    bit = np.left_shift(np.uint64(1), (period % 64).astype(np.uint64))
+    for w in range(words):
+        in_word = np.where(period // 64 == w, bit, np.uint64(0))
+        masks[:, w] = np.bitwise_or.reduceat(in_word, starts)
+    uniq, inverse, counts = np.unique(masks, axis=0, return_inverse=True, return_counts=True)
+    inverse = inverse.reshape(-1)
+    ranking = np.lexsort((np.arange(len(counts)), -counts))[:top]
+    out = []
+    for rank in ranking:
+        bits = np.unpackbits(uniq[rank].view(np.uint8), bitorder="little")[:n_periods]
+        out.append({
+            "pattern": "".join(PRESENT if b else ABSENT for b in bits),
+            "entities": int(counts[rank]),
+            "share": float(counts[rank] / len(starts)),
+        })
+    return out
+
+
+@check("panel-shape", "info", "balance, observations per entity and presence patterns")
+def balance(ctx: AuditContext, self: Check):
+    ix = ctx.sample_index
+    per_entity = ctx.periods_per_entity
+    if ix.n_entities == 0:
+        return self.finding(0, "the estimation sample is empty: no entity to describe")
+    is_balanced = bool((per_entity == ix.n_periods).all())
+    values, counts = np.unique(per_entity, return_counts=True)
+    first, last = ix.period_labels([0, ix.n_periods - 1])
+    details = {
+        "balanced": is_balanced,
+        "entities": int(ix.n_entities),
+        "periods": int(ix.n_periods),
+        "first_period": first,
+        "last_period": last,
+        "obs_per_entity": {"min": int(per_entity.min()), "median": float(np.median(per_entity)),
+                           "max": int(per_entity.max())},
+        "obs_per_entity_counts": {str(int(v)): int(c) for v, c in zip(values, counts)},
+        "patterns": presence_patterns(ctx),
+    }
+    shape = "balanced" if is_balanced else "unbalanced"
+    return self.finding(
+        int((per_entity < ix.n_periods).sum()),
+        f"{shape}: {ix.n_entities} entities over {ix.n_periods} periods ({first} to {last}); "
+        f"{int((per_entity < ix.n_periods).sum())} entit(ies) miss at least one period",
+        details=details,
+    )
+
+
+@check("entity-single-obs", "warning", "entities observed once")
+def singletons(ctx: AuditContext, self: Check):
+    counts = ctx.sample_counts
+    single = np.flatnonzero(counts == 1)
+    if len(single) == 0:
+        return None
+    return self.finding(
+        len(single),
+        f"{len(single)} entit(ies) have a single observation; a within transform removes them",
+        [{"entity": key} for key in ctx.sample_index.entity_key(single[:MAX_EXAMPLES])],
+    )
+
+
+CHECKS = [time_gaps, off_grid, balance, singletons]

@@ -1,0 +1,153 @@
+"""Checks on the variables: text in numbers, missing values, variation within and across."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from panelprep._groups import group_counts
+from panelprep.checks.base import Check, check
+from panelprep.checks.context import AuditContext
+from panelprep.findings import MAX_EXAMPLES
+
+
+@check("values-not-numeric", "error", "text in a variable that should be numeric")
+def not_numeric(ctx: AuditContext, self: Check):
+    bad = {name: p for name, p in ctx.non_numeric.items() if len(p.rows)}
+    if not bad:
+        return None
+    total = sum(len(p.rows) for p in bad.values())
+    examples = []
+    for name, problem in bad.items():
+        for row in problem.rows[:MAX_EXAMPLES]:
+            examples.append({"column": name, "row": int(row) + 1,
+                             "value": str(ctx.frame[name].iloc[int(row)])})
+    details = {name: {"rows": len(p.rows), "values": p.values} for name, p in bad.items()}
+    names = ", ".join(f"{n} ({len(p.rows)})" for n, p in bad.items())
+    return self.finding(
+        total,
+        f"{total} value(s) that are not numbers in {names}; e.g. "
+        + ", ".join(repr(v) for p in bad.values() for v in p.values[:3])
+        + " (declare tokens that mean missing with --missing-token)",
+        examples,
+        details,
+    )
+
+
+@check("values-declared-missing", "info", "texts read as missing because they were declared so")
+def declared_missing(ctx: AuditContext, self: Check):
+    hits = {name: p.read_as_missing for name, p in ctx.non_numeric.items() if p.read_as_missing}
+    if not hits:
+        return None
+    total = sum(hits.values())
+    return self.finding(
+        total,
+        f"{total} value(s) matching declared missing tokens {list(ctx.missing_tokens)} "
+        "were read as missing",
+        [{"column": name, "rows": count} for name, count in hits.items()],
+        {"per_variable": hits},
+    )
+
+
+@check("values-missing", "info", "missing values per variable and what listwise deletion removes")
+def missing_values(ctx: AuditContext, self: Check):
+    if not ctx.variables:
+        return None
+    base = ctx.base
+    absent = np.isnan(ctx.values[base])
+    per_variable = {name: int(absent[:, j].sum()) for j, name in enumerate(ctx.variables)}
+    rows_lost = int((absent.any(axis=1)).sum())
+    if rows_lost == 0:
+        return None
+    lost = _listwise(ctx)
+    return self.finding(
+        rows_lost,
+        f"{rows_lost} row(s) miss at least one selected variable; listwise deletion removes "
+        f"them, {lost['entities_lost']} entit(ies) entirely and makes "
+        f"{lost['new_singletons']} new singleton(s)",
+        [{"column": name, "missing": count} for name, count in per_variable.items() if count],
+        {"per_variable": per_variable, **lost},
+    )
+
+
+@check("sample-new-singletons", "warning", "entities that listwise deletion leaves with one row")
+def new_singletons(ctx: AuditContext, self: Check):
+    lost = _listwise(ctx)
+    if lost["new_singletons"] == 0:
+        return None
+    return self.finding(
+        lost["new_singletons"],
+        f"listwise deletion leaves {lost['new_singletons']} entit(ies) with a single row "
+        "that had two or more before",
+        [{"entity": key} for key in lost["new_singleton_keys"]],
+    )
+
+
+def _listwise(ctx: AuditContext) -> dict:
+    codes = ctx.index.entity_codes
+    n = ctx.index.n_entities
+    before = group_counts(codes[ctx.base], n)
+    after = group_counts(codes[ctx.sample], n)
+    new_single = np.flatnonzero((before >= 2) & (after == 1))
+    return {
+        "rows_removed": int(ctx.base.sum() - ctx.sample.sum()),
+        "entities_lost": int(((before > 0) & (after == 0)).sum()),
+        "new_singletons": len(new_single),
+        "new_singleton_keys": ctx.index.entity_key(new_single[:MAX_EXAMPLES]),
+    }
+
+
+@check("var-fixed-within", "warning", "variables with no variation within any entity")
+def time_invariant(ctx: AuditContext, self: Check):
+    names = [n for n, row in ctx.variation.items() if row["time_invariant"]]
+    if not names:
+        return None
+    return self.finding(
+        len(names),
+        f"{len(names)} variable(s) never change within an entity; a within transform wipes "
+        f"them out: {', '.join(names)}",
+        [{"variable": n} for n in names],
+    )
+
+
+@check("var-thin-within", "info", "variables whose within SD is small next to their overall SD")
+def low_within(ctx: AuditContext, self: Check):
+    limit = ctx.thresholds.low_within_ratio
+    thin = []
+    for name, row in ctx.variation.items():
+        if row["time_invariant"] or not row["sd_overall"] or row["sd_within"] is None:
+            continue
+        ratio = row["sd_within"] / row["sd_overall"]
+        if ratio < limit:
+            thin.append({"variable": name, "within_to_overall": ratio})
+    if not thin:
+        return None
+    return self.finding(
+        len(thin),
+        f"{len(thin)} variable(s) vary little within entities (within SD / overall SD "
+        f"< {limit:g}); within estimates of their slopes will be imprecise",
+        thin,
+    )
+
+
+@check("var-fixed-per-period", "info", "variables constant within every period")
+def period_invariant(ctx: AuditContext, self: Check):
+    names = [n for n, row in ctx.variation.items() if row["period_invariant"]]
+    if not names:
+        return None
+    return self.finding(
+        len(names),
+        f"{len(names)} variable(s) are the same for every entity in each period; time effects "
+        f"wipe them out: {', '.join(names)}",
+        [{"variable": n} for n in names],
+    )
+
+
+CHECKS = [
+    not_numeric,
+    declared_missing,
+    missing_values,
+    new_singletons,
+    time_invariant,
+    low_within,
+    period_invariant,
+]

@@ -1,0 +1,122 @@
+"""Command line: parse options, call the pipeline, map failures to exit codes.
+
+Exit codes are the contract for ETL gates: 0 the data passed, 1 the data
+failed the gate, 2 the command could not run (one line on stderr, never a
+traceback).
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from panelprep import pipeline
+from panelprep.errors import InputError
+from panelprep.io import ReadOptions
+from panelprep.report.text import audit_lines
+
+EXIT_PASS, EXIT_FAIL, EXIT_UNUSABLE = 0, 1, 2
+
+app = typer.Typer(
+    add_completion=False,
+    no_args_is_help=True,
+    pretty_exceptions_enable=False,
+    help="Audit, clean and transform entity-by-period panels before any model is fitted.",
+)
+
+EntityOpt = Annotated[str, typer.Option("--entity", "-e", help="Entity key column(s), comma-separated.")]
+TimeOpt = Annotated[str, typer.Option("--time", "-t", help="Time column.")]
+FreqOpt = Annotated[str | None, typer.Option(
+    "--freq", help="Period frequency: year, quarter, month, week, day or int (inferred if omitted).")]
+FormatOpt = Annotated[str | None, typer.Option(
+    "--input-format", help="csv, parquet or arrow (default: by extension).")]
+DelimOpt = Annotated[str | None, typer.Option(
+    "--delimiter", help="CSV delimiter (default: sniffed from the header).")]
+DecimalOpt = Annotated[bool, typer.Option("--decimal-comma", help="CSV numbers use ',' as decimal mark.")]
+TokenOpt = Annotated[str | None, typer.Option(
+    "--missing-token", help="Comma-separated texts to read as missing in numeric variables, e.g. 'n/a,-'.")]
+QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress lines on stderr.")]
+FailOpt = Annotated[str, typer.Option("--fail-on", help="Lowest severity that fails the gate: error or warning.")]
+
+
+@app.callback()
+def root() -> None:
+    """Audit, clean and transform entity-by-period panels before any model is fitted."""
+
+
+def _read_options(input_format, delimiter, decimal_comma, missing_token) -> ReadOptions:
+    if delimiter == "\\t":
+        delimiter = "\t"
+    return ReadOptions(
+        input_format=input_format,
+        delimiter=delimiter,
+        decimal_comma=decimal_comma,
+        missing_tokens=tuple(pipeline.split_names(missing_token) or ()),
+    )
+
+
+def _unusable(message: str) -> None:
+    typer.echo(f"panelprep: error: {message}", err=True)
+    raise typer.Exit(EXIT_UNUSABLE)
+
+
+@app.command("audit")
+def audit_command(
+    data: Annotated[Path, typer.Argument(help="CSV, Parquet or Arrow/Feather file.")],
+    entity: EntityOpt,
+    time: TimeOpt,
+    vars: Annotated[str | None, typer.Option("--vars", help="Variables to check, comma-separated (default: all numeric non-key columns).")] = None,
+    freq: FreqOpt = None,
+    report: Annotated[Path | None, typer.Option("--report", help="Write the JSON report here.")] = None,
+    fail_on: FailOpt = "error",
+    input_format: FormatOpt = None,
+    delimiter: DelimOpt = None,
+    decimal_comma: DecimalOpt = False,
+    missing_token: TokenOpt = None,
+    quiet: QuietOpt = False,
+) -> None:
+    """Check a panel's structure and gate on what is found."""
+    try:
+        if fail_on not in ("error", "warning"):
+            raise InputError(f"--fail-on {fail_on!r} must be error or warning")
+        result = pipeline.audit_file(
+            data, entity, time, vars,
+            options=_read_options(input_format, delimiter, decimal_comma, missing_token),
+            progress=pipeline.stderr_progress(quiet),
+            freq=freq, fail_on=fail_on,
+        )
+        document = result.to_dict()
+        if report is not None:
+            _write_json(report, document, data)
+    except InputError as err:
+        _unusable(str(err))
+    typer.echo("\n".join(audit_lines(document)))
+    raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
+
+
+def _write_json(path: Path, document: dict, source: Path) -> None:
+    if path.resolve() == Path(source).resolve():
+        raise InputError(f"{path}: the report would overwrite the input file")
+    text = json.dumps(document, indent=2, ensure_ascii=False, allow_nan=False)
+    tmp = path.with_name(path.name + ".partial")
+    try:
+        tmp.write_text(text + "\n", encoding="utf-8")
+        tmp.replace(path)
+    except OSError as err:
+        tmp.unlink(missing_ok=True)
+        raise InputError(f"{path}: cannot write the report: {err.strerror}") from None
+
+
+def main() -> None:
+    """Entry point that also turns unexpected failures into one line and exit 2."""
+    try:
+        app(standalone_mode=True)
+    except SystemExit:
+        raise
+    except Exception as err:  # last line of defence: never a traceback for a user
+        typer.echo(f"panelprep: error: internal failure: {type(err).__name__}: {err}", err=True)
+        sys.exit(EXIT_UNUSABLE)

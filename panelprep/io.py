@@ -1,0 +1,230 @@
+"""Read CSV, Parquet and Arrow IPC/Feather files; hash them; write outputs atomically.
+
+Nothing here knows about panels beyond which columns hold entity ids: those
+are read as text from CSV so that ``00123`` stays ``00123``.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io as _io
+import os
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+from pyarrow import feather
+
+from panelprep.errors import ColumnError, InputError
+
+FORMATS = ("csv", "parquet", "arrow")
+_SUFFIXES = {
+    ".csv": "csv",
+    ".tsv": "csv",
+    ".txt": "csv",
+    ".parquet": "parquet",
+    ".pq": "parquet",
+    ".feather": "arrow",
+    ".arrow": "arrow",
+    ".ipc": "arrow",
+}
+_DELIMITERS = (",", ";", "\t", "|")
+_INTEGER_TEXT = re.compile(r"^\s*-?\d{1,18}\s*$")
+
+
+@dataclass(frozen=True)
+class ReadOptions:
+    """How to read an input file.
+
+    Parameters
+    ----------
+    input_format : ``csv``, ``parquet`` or ``arrow``; None picks by extension.
+    delimiter : CSV field separator; None sniffs it from the header line.
+    decimal_comma : CSV numbers use ``,`` as the decimal mark (``3,14``).
+    missing_tokens : extra CSV texts to read as missing in numeric
+        variables (for example ``n/a`` or ``-``).  Only the empty field is
+        missing by default: any other text in a numeric variable is reported,
+        never silently coerced.
+    entity_as_text : read entity columns of a CSV as text (default) rather
+        than letting numbers be inferred, which would drop leading zeros.
+    """
+
+    input_format: str | None = None
+    delimiter: str | None = None
+    decimal_comma: bool = False
+    missing_tokens: tuple[str, ...] = field(default_factory=tuple)
+    entity_as_text: bool = True
+
+
+def detect_format(path: Path, given: str | None = None) -> str:
+    """The input format: ``given`` if set, else by the file's extension."""
+    if given is not None:
+        if given not in FORMATS:
+            raise InputError(f"--input-format {given!r} is not one of {', '.join(FORMATS)}")
+        return given
+    suffixes = [s.lower() for s in path.suffixes]
+    for suffix in reversed(suffixes):
+        if suffix in _SUFFIXES:
+            return _SUFFIXES[suffix]
+    raise InputError(
+        f"{path}: cannot tell the format from the extension {path.suffix or '(none)'!r}; "
+        f"use .csv, .parquet or .feather, or pass --input-format"
+    )
+
+
+def check_readable(path: Path) -> None:
+    """Fail with one line when ``path`` is not a readable, non-empty file."""
+    if not path.exists():
+        raise InputError(f"{path}: no such file")
+    if path.is_dir():
+        raise InputError(f"{path}: is a directory, expected a data file")
+    if not os.access(path, os.R_OK):
+        raise InputError(f"{path}: not readable (permission denied)")
+    if path.stat().st_size == 0:
+        raise InputError(f"{path}: the file is empty")
+
+
+def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
+    """Hex SHA-256 of a file's bytes, read in chunks."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        while block := handle.read(chunk):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def sniff_delimiter(header_line: str) -> str:
+    """The most frequent of ``, ; TAB |`` in the header line (comma on ties)."""
+    counts = {d: header_line.count(d) for d in _DELIMITERS}
+    best = max(_DELIMITERS, key=lambda d: counts[d])
+    return best if counts[best] > 0 else ","
+
+
+def _csv_header(path: Path, delimiter: str | None) -> tuple[list[str], str]:
+    with open(path, "rb") as handle:
+        raw = handle.readline()
+    try:
+        line = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as err:
+        raise InputError(f"{path}: header line is not UTF-8 text (byte {err.start})") from None
+    if not line.strip():
+        raise InputError(f"{path}: the first line is blank, expected a header")
+    delimiter = delimiter or sniff_delimiter(line)
+    names = next(csv.reader(_io.StringIO(line), delimiter=delimiter))
+    return [n.strip() for n in names], delimiter
+
+
+def column_names(path: Path, options: ReadOptions = ReadOptions()) -> list[str]:
+    """Column names of a file without reading its data."""
+    check_readable(path)
+    fmt = detect_format(path, options.input_format)
+    try:
+        if fmt == "csv":
+            names, _ = _csv_header(path, options.delimiter)
+        elif fmt == "parquet":
+            names = pq.read_schema(path).names
+        else:
+            names = feather.read_table(path, memory_map=True).schema.names
+    except InputError:
+        raise
+    except (pa.ArrowException, OSError, ValueError) as err:
+        raise InputError(f"{path}: cannot read as {fmt}: {_short(err)}") from None
+    duplicated = sorted({n for n in names if names.count(n) > 1})
+    if duplicated:
+        raise ColumnError(f"{path}: duplicate column names {duplicated}")
+    return names
+
+
+def read_frame(
+    path: Path,
+    columns: list[str] | None,
+    entity: list[str],
+    time: str | None = None,
+    options: ReadOptions = ReadOptions(),
+) -> pd.DataFrame:
+    """Read ``columns`` (all when None) of a data file into a DataFrame.
+
+    CSV entity columns are read as text; a CSV time column is read as text
+    and turned into integers only when every value is a whole number, so
+    dates and period labels round-trip to the same strings.  Parquet and
+    Arrow keep their stored types.
+    """
+    names = column_names(path, options)
+    wanted = names if columns is None else columns
+    absent = [c for c in wanted if c not in names]
+    if absent:
+        raise ColumnError(f"{path}: column(s) {absent} not found; columns are {names}")
+    fmt = detect_format(path, options.input_format)
+    try:
+        if fmt == "csv":
+            table = _read_csv(path, wanted, entity, time, options)
+        elif fmt == "parquet":
+            table = pq.read_table(path, columns=wanted)
+        else:
+            table = feather.read_table(path, columns=wanted, memory_map=True)
+    except InputError:
+        raise
+    except (pa.ArrowException, OSError, ValueError) as err:
+        raise InputError(f"{path}: cannot read as {fmt}: {_short(err)}") from None
+    frame = table.to_pandas()
+    if fmt == "csv" and time in frame.columns:
+        frame[time] = integer_text_to_int(frame[time])
+    return frame[wanted]
+
+
+def _read_csv(
+    path: Path, wanted: list[str], entity: list[str], time: str | None, options: ReadOptions
+) -> pa.Table:
+    header, delimiter = _csv_header(path, options.delimiter)
+    if options.decimal_comma and delimiter == ",":
+        raise InputError(f"{path}: decimal commas need a delimiter other than ',' (found ',')")
+    raw_names = {n.strip(): n for n in _raw_header(path, delimiter)}
+    include = [raw_names[c] for c in wanted]
+    as_text = [*(entity if options.entity_as_text else []), *([time] if time else [])]
+    text_columns = {raw_names[c]: pa.string() for c in as_text if c in raw_names}
+    convert = pacsv.ConvertOptions(
+        include_columns=include,
+        column_types=text_columns,
+        null_values=[""],
+        strings_can_be_null=True,
+        quoted_strings_can_be_null=False,
+        decimal_point="," if options.decimal_comma else ".",
+        timestamp_parsers=[],
+    )
+    parse = pacsv.ParseOptions(delimiter=delimiter, newlines_in_values=False)
+    read = pacsv.ReadOptions(block_size=1 << 24)
+    try:
+        table = pacsv.read_csv(path, read_options=read, parse_options=parse, convert_options=convert)
+    except pa.ArrowInvalid as err:
+        raise InputError(f"{path}: cannot parse as CSV: {_short(err)}") from None
+    return table.rename_columns([n.strip() for n in table.column_names])
+
+
+def _raw_header(path: Path, delimiter: str) -> list[str]:
+    with open(path, "rb") as handle:
+        line = handle.readline().decode("utf-8-sig")
+    return next(csv.reader(_io.StringIO(line), delimiter=delimiter))
+
+
+def integer_text_to_int(values: pd.Series) -> pd.Series:
+    """Text that is all whole numbers becomes int64 (Int64 with gaps); else unchanged."""
+    if not (pd.api.types.is_string_dtype(values.dtype) or values.dtype == object):
+        return values
+    present = values.dropna()
+    uniques = pd.Series(present.unique())
+    if len(uniques) == 0 or not uniques.astype(str).str.fullmatch(_INTEGER_TEXT.pattern).all():
+        return values
+    if len(present) == len(values):
+        return values.astype(np.int64)
+    return values.astype("Int64")
+
+
+def _short(err: BaseException) -> str:
+    text = " ".join(str(err).split())
+    return text if len(text) <= 200 else text[:197] + "..."

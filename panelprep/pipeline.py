@@ -1,0 +1,248 @@
+"""The flow every command runs: load -> index -> checks -> gate (-> transforms -> write).
+
+The CLI only parses options and calls these functions; the functions return
+report objects that the renderers in ``panelprep.report`` turn into JSON,
+text and HTML.
+"""
+
+from __future__ import annotations
+
+import sys
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from panelprep import __version__
+from panelprep.checks import CHECKS, AuditContext, Thresholds
+from panelprep.checks.context import looks_numeric
+from panelprep.checks.shape import gap_table
+from panelprep.errors import ColumnError, InputError
+from panelprep.findings import Finding, apply_severities, gate
+from panelprep.index import PanelIndex, build_index
+from panelprep.io import ReadOptions, column_names, read_frame, sha256_file
+
+Progress = Callable[[str], None]
+
+
+def _silent(_: str) -> None:
+    return None
+
+
+@dataclass(eq=False)
+class AuditReport:
+    """What an audit found, with the verdict of the gate.
+
+    ``to_dict()`` is the JSON report; ``context`` keeps the shared arrays so
+    that a following preparation step reuses the index instead of
+    rebuilding it.
+    """
+
+    verdict: str
+    fail_on: str
+    findings: list[Finding]
+    keys: dict[str, Any]
+    input: dict[str, Any]
+    panel: dict[str, Any]
+    variables: dict[str, dict]
+    context: AuditContext = field(repr=False)
+
+    def finding(self, finding_id: str) -> Finding | None:
+        return next((f for f in self.findings if f.id == finding_id), None)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "tool": {"name": "panelprep", "version": __version__},
+            "verdict": self.verdict,
+            "fail_on": self.fail_on,
+            "keys": self.keys,
+            "input": self.input,
+            "panel": self.panel,
+            "findings": [f.to_dict() for f in self.findings],
+            "variables": self.variables,
+        }
+
+
+def split_names(value: str | Sequence[str] | None) -> list[str] | None:
+    """``"a,b"`` or ``["a", "b"]`` -> ``["a", "b"]``; None stays None."""
+    if value is None:
+        return None
+    items = value.split(",") if isinstance(value, str) else list(value)
+    return [item.strip() for item in items if item.strip()]
+
+
+def choose_variables(
+    frame: pd.DataFrame, entity: list[str], time: str, variables: list[str] | None,
+    decimal_comma: bool = False,
+) -> list[str]:
+    """The variables to check: as given, or every numeric-looking non-key column."""
+    keys = {*entity, time}
+    if variables is not None:
+        absent = [v for v in variables if v not in frame.columns]
+        if absent:
+            raise ColumnError(f"variable(s) {absent} not found; columns are {list(frame.columns)}")
+        clash = [v for v in variables if v in keys]
+        if clash:
+            raise ColumnError(f"key column(s) {clash} cannot also be variables")
+        return list(dict.fromkeys(variables))
+    return [c for c in frame.columns if c not in keys and looks_numeric(frame[c], decimal_comma)]
+
+
+def audit(
+    frame: pd.DataFrame,
+    entity: str | Sequence[str],
+    time: str,
+    vars: str | Sequence[str] | None = None,
+    freq: str | None = None,
+    fail_on: str = "error",
+    thresholds: Thresholds | None = None,
+    severities: dict[str, str] | None = None,
+    decimal_comma: bool = False,
+    missing_tokens: Sequence[str] = (),
+    input_info: dict[str, Any] | None = None,
+    index: PanelIndex | None = None,
+    progress: Progress = _silent,
+) -> AuditReport:
+    """Run every structural check on a panel held in a DataFrame.
+
+    Parameters
+    ----------
+    frame : the raw panel, one row per observation.
+    entity : entity key column(s).
+    time : time column (integer periods, dates or period labels).
+    vars : variables to check; default every numeric non-key column.
+    freq : period frequency; inferred when None.
+    fail_on : lowest severity that fails the gate (``error`` or ``warning``).
+    thresholds : limits of the checks (see ``Thresholds``).
+    severities : severity per finding id, overriding the defaults.
+
+    Returns
+    -------
+    AuditReport with ``verdict``, ``findings`` and ``to_dict()``.
+
+    Examples
+    --------
+    >>> import pandas as pd, panelprep
+    >>> frame = pd.DataFrame({"firm": ["a", "a", "b", "b"], "year": [1, 2, 1, 2],
+    ...                       "sales": [1.0, 2.0, 3.0, 5.0]})
+    >>> panelprep.audit(frame, entity="firm", time="year").verdict
+    'pass'
+    """
+    if fail_on not in ("error", "warning", "info"):
+        raise InputError(f"--fail-on {fail_on!r} must be error or warning")
+    entity = split_names(entity) or []
+    if not entity:
+        raise InputError("no entity column given")
+    names = choose_variables(frame, entity, time, split_names(vars), decimal_comma)
+    progress(f"indexing {len(frame):,} rows on ({', '.join(entity)}) x {time}")
+    index = index or build_index(frame, entity, time, freq)
+    context = AuditContext(
+        frame=frame,
+        index=index,
+        variables=names,
+        thresholds=thresholds or Thresholds(),
+        decimal_comma=decimal_comma,
+        missing_tokens=tuple(missing_tokens),
+    )
+    findings: list[Finding] = []
+    for check in CHECKS:
+        progress(f"check {check.id}")
+        found = check.run(context)
+        if found is not None:
+            findings.append(found)
+    findings = apply_severities(findings, severities or {})
+    verdict = gate(findings, fail_on)
+    return AuditReport(
+        verdict=verdict,
+        fail_on=fail_on,
+        findings=findings,
+        keys={"entity": entity, "time": time, "freq": index.axis.name,
+              "freq_inferred": index.axis.inferred},
+        input=input_info or {"path": None, "sha256": None, "rows": len(frame)},
+        panel=_panel_summary(context),
+        variables=context.variation,
+        context=context,
+    )
+
+
+def _panel_summary(ctx: AuditContext) -> dict[str, Any]:
+    ix = ctx.sample_index
+    per_entity = ctx.periods_per_entity
+    holes, _, _ = gap_table(ctx)
+    has_rows = ix.n_entities > 0
+    return {
+        "rows": int(ctx.sample.sum()),
+        "rows_read": len(ctx.frame),
+        "entities": int(ix.n_entities),
+        "periods": int(max(ix.n_periods, 0)),
+        "balanced": bool(has_rows and (per_entity == ix.n_periods).all()),
+        "obs_per_entity": {
+            "min": int(ctx.sample_counts.min()) if has_rows else 0,
+            "median": float(np.median(ctx.sample_counts)) if has_rows else 0.0,
+            "max": int(ctx.sample_counts.max()) if has_rows else 0,
+        },
+        "singleton_entities": int((ctx.sample_counts == 1).sum()),
+        "entities_with_gaps": int((holes > 0).sum()),
+        "exact_duplicate_rows": int(ctx.repeat.sum()),
+        "conflicting_duplicate_keys": len(ctx.conflicting_cells),
+        "rows_without_key": int((~ctx.keyed).sum()),
+    }
+
+
+def load(
+    path: str | Path,
+    entity: Sequence[str],
+    time: str,
+    vars: Sequence[str] | None,
+    options: ReadOptions = ReadOptions(),
+    extra: Sequence[str] = (),
+) -> tuple[pd.DataFrame, dict[str, Any]]:
+    """Read the columns a run needs and describe the input for provenance."""
+    path = Path(path)
+    names = column_names(path, options)
+    for column in [*entity, time]:
+        if column not in names:
+            raise ColumnError(f"{path}: key column {column!r} not found; columns are {names}")
+    columns = None if vars is None else list(dict.fromkeys([*entity, time, *vars, *extra]))
+    frame = read_frame(path, columns, list(entity), time, options)
+    info = {"path": str(path), "sha256": sha256_file(path), "rows": len(frame),
+            "format": path.suffix.lstrip(".").lower() or options.input_format}
+    return frame, info
+
+
+def audit_file(
+    path: str | Path,
+    entity: str | Sequence[str],
+    time: str,
+    vars: str | Sequence[str] | None = None,
+    options: ReadOptions = ReadOptions(),
+    progress: Progress = _silent,
+    **audit_options: Any,
+) -> AuditReport:
+    """Read a data file and audit it (see ``audit``)."""
+    entity = split_names(entity) or []
+    variables = split_names(vars)
+    progress(f"reading {path}")
+    frame, info = load(path, entity, time, variables, options)
+    return audit(
+        frame, entity, time, variables,
+        decimal_comma=options.decimal_comma,
+        missing_tokens=options.missing_tokens,
+        input_info=info,
+        progress=progress,
+        **audit_options,
+    )
+
+
+def stderr_progress(quiet: bool) -> Progress:
+    """Per-step lines on stderr when it is a terminal and not ``quiet``."""
+    if quiet or not sys.stderr.isatty():
+        return _silent
+
+    def say(message: str) -> None:
+        print(f"panelprep: {message}", file=sys.stderr, flush=True)
+
+    return say

@@ -1,0 +1,1 @@
+"""Renderers: JSON, the plain-text log and the HTML page. Formatting only, no computation."""

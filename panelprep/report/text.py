@@ -1,0 +1,94 @@
+"""Plain-text renderings of reports: the stdout summary and diagnostics.txt.
+
+A layout of our own: a verdict line, a short description of the panel, the
+most common presence patterns, findings from worst to mildest, and the
+variation table with each variable's spread split into between and within.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from panelprep.checks.shape import ABSENT, PRESENT
+from panelprep.findings import severity_rank
+
+
+def _num(value: Any, digits: int = 4) -> str:
+    if value is None:
+        return "-"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, int):
+        return f"{value:,}"
+    if abs(value) >= 1e7 or (value != 0 and abs(value) < 1e-3):
+        return f"{value:.{digits}g}"
+    return f"{value:,.{digits}f}".rstrip("0").rstrip(".")
+
+
+def _table(rows: list[list[str]], right: set[int] = frozenset()) -> list[str]:
+    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+    lines = []
+    for row in rows:
+        cells = [c.rjust(w) if i in right else c.ljust(w) for i, (c, w) in enumerate(zip(row, widths))]
+        lines.append("  " + "  ".join(cells).rstrip())
+    return lines
+
+
+def audit_lines(report: dict[str, Any]) -> list[str]:
+    """The audit part of a report (``AuditReport.to_dict()``) as lines of text."""
+    keys, panel, source = report["keys"], report["panel"], report["input"]
+    shape = next((f for f in report["findings"] if f["id"] == "panel-shape"), None)
+    details = shape.get("details", {}) if shape else {}
+    freq = keys["freq"] + (", inferred" if keys.get("freq_inferred") else ", given")
+    lines = [
+        f"verdict: {report['verdict'].upper()}  (the gate fails on {report['fail_on']} and above)",
+        f"input:   {source.get('path') or '(data frame)'}  rows {source['rows']:,}"
+        + (f"  sha256 {source['sha256'][:16]}…" if source.get("sha256") else ""),
+        f"key:     {' + '.join(keys['entity'])} over {keys['time']} ({freq})",
+        "",
+        "Panel (estimation sample: keyed rows, exact repeats collapsed, all variables present)",
+    ]
+    span = (f"{details.get('first_period')} to {details.get('last_period')}"
+            if details.get("first_period") else "-")
+    obs = panel["obs_per_entity"]
+    lines += _table([
+        ["rows", f"{panel['rows']:,} of {panel['rows_read']:,} read"],
+        ["entities", f"{panel['entities']:,}"],
+        ["periods", f"{panel['periods']:,} ({span})"],
+        ["shape", ("balanced" if panel["balanced"] else "unbalanced")
+         + f"; rows per entity {obs['min']} / {_num(obs['median'])} / {obs['max']} (min / median / max)"],
+        ["singletons", f"{panel['singleton_entities']:,}"],
+        ["with holes", f"{panel['entities_with_gaps']:,} entities"],
+        ["repeats", f"{panel['exact_duplicate_rows']:,} exact repeated rows, "
+                    f"{panel['conflicting_duplicate_keys']:,} conflicting keys"],
+    ])
+    patterns = details.get("patterns")
+    if patterns:
+        lines += ["", f"Presence over time ({PRESENT} observed, {ABSENT} absent), most common first"]
+        lines += _table([[p["pattern"], f"{p['entities']:,} entities", f"{100 * p['share']:.1f}%"]
+                         for p in patterns], right={1, 2})
+    lines += ["", "Findings (worst first)"]
+    found = sorted(report["findings"], key=lambda f: -severity_rank(f["severity"]))
+    if found:
+        lines += _table([[f["severity"].upper(), f["id"], f"{f['count']:,}", f["message"]]
+                         for f in found], right={2})
+    else:
+        lines.append("  none")
+    lines += ["", "Variation (estimation sample; SDs: overall ddof 1, between over entity means "
+              "ddof 1, within with n - N)"]
+    header = ["variable", "n", "mean", "min", "max", "sd overall", "sd between", "sd within",
+              "within share", "entities varying"]
+    rows = [header]
+    for name, v in report["variables"].items():
+        share = (v["sd_within"] / v["sd_overall"]) if v.get("sd_within") is not None and v.get("sd_overall") else None
+        rows.append([
+            name, _num(v["n"]), _num(v["mean"]), _num(v["min"]), _num(v["max"]), _num(v["sd_overall"]),
+            _num(v["sd_between"]), _num(v["sd_within"]),
+            "-" if share is None else f"{share:.3f}",
+            "-" if v["varying_share"] is None else f"{100 * v['varying_share']:.0f}%",
+        ])
+    if len(rows) > 1:
+        lines += _table(rows, right=set(range(1, len(header))))
+    else:
+        lines.append("  no numeric variables selected")
+    return lines

@@ -1,0 +1,72 @@
+"""The variation table: spread of each variable overall, between and within entities."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from panelprep._groups import group_counts, group_means, group_sums
+from panelprep.index import PanelIndex
+
+
+def variation_table(
+    index: PanelIndex, values: np.ndarray, names: list[str], constant_rtol: float = 1e-9
+) -> dict[str, dict]:
+    """Spread of each variable on a sample whose ``index`` has dense codes.
+
+    With x_it the value, xbar_i the entity mean, xbar the overall mean, n
+    rows and N entities:
+
+    * ``sd_overall`` = sqrt(sum (x_it - xbar)^2 / (n - 1));
+    * ``sd_between`` = SD of the N entity means, unweighted, ddof 1:
+      sqrt(sum_i (xbar_i - mean_i xbar_i)^2 / (N - 1));
+    * ``sd_within`` = sqrt(sum (x_it - xbar_i)^2 / (n - N)), the
+      degrees-of-freedom corrected spread of deviations from entity means;
+    * ``varying_share``: share of entities with at least two rows whose
+      values are not constant;
+    * ``time_invariant``: no entity with two or more rows varies;
+      ``period_invariant``: no period with two or more rows varies.
+
+    A group is constant when the root mean square deviation from its mean
+    is at most ``constant_rtol`` times the variable's largest absolute
+    value.  A statistic whose denominator is zero is None.
+    """
+    codes = index.entity_codes
+    n, n_entities = values.shape[0], index.n_entities
+    if n == 0:
+        return {name: _empty_row() for name in names}
+    counts = group_counts(codes, n_entities)
+    means = group_means(codes, values, counts)
+    deviation = values - means[codes]
+    within_ss = (deviation**2).sum(axis=0)
+    entity_ss = group_sums(codes, deviation**2, n_entities)
+    period = index.period_codes
+    period_counts = group_counts(period, index.n_periods)
+    period_ss = group_sums(period, (values - group_means(period, values, period_counts)[period]) ** 2,
+                           index.n_periods)
+    multi = counts >= 2
+    multi_period = period_counts >= 2
+    out: dict[str, dict] = {}
+    for j, name in enumerate(names):
+        col = values[:, j]
+        scale = max(float(np.abs(col).max()), np.finfo(float).tiny)
+        tol = (constant_rtol * scale) ** 2
+        varying = entity_ss[:, j] > tol * counts
+        period_varying = period_ss[:, j] > tol * period_counts
+        out[name] = {
+            "n": int(n),
+            "mean": float(col.mean()),
+            "sd_overall": float(col.std(ddof=1)) if n > 1 else None,
+            "sd_between": float(means[:, j].std(ddof=1)) if n_entities > 1 else None,
+            "sd_within": float(np.sqrt(within_ss[j] / (n - n_entities))) if n > n_entities else None,
+            "min": float(col.min()),
+            "max": float(col.max()),
+            "varying_share": float(varying[multi].mean()) if multi.any() else None,
+            "time_invariant": bool(multi.any() and not varying[multi].any()),
+            "period_invariant": bool(multi_period.any() and not period_varying[multi_period].any()),
+        }
+    return out
+
+
+def _empty_row() -> dict:
+    keys = ("mean", "sd_overall", "sd_between", "sd_within", "min", "max", "varying_share")
+    return {"n": 0, **dict.fromkeys(keys), "time_invariant": False, "period_invariant": False}
