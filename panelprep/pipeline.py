@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from panelprep import __version__
+from panelprep._version import __version__
 from panelprep.checks import CHECKS, AuditContext, Thresholds
 from panelprep.checks.context import looks_numeric
 from panelprep.checks.shape import gap_table
