@@ -1,0 +1,661 @@
+"""Tests that inform the choice between pooled OLS, random effects and fixed effects.
+
+Every function works on the estimation sample: ``y`` (n,), ``X`` (n, k) float64
+*without* a constant column, ``entity_codes`` dense 0..G-1, ``counts`` (G,)
+the number of rows T_i of each entity, and ``names`` the k regressor names.
+All per-entity work is a group sum (``np.bincount``) or a broadcast back to
+rows by the codes; the only Python loops run over columns.
+
+Three pieces of evidence are computed:
+
+* an entity-effect Lagrange multiplier test on pooled OLS residuals
+  (Breusch-Pagan and its one-sided Honda form, unbalanced versions of
+  Baltagi and Li, 1990): are there entity effects at all?
+* the Mundlak test: in the random-effects (quasi-demeaned) regression, do the
+  entity means of the time-varying regressors matter?  With the default
+  entity-clustered covariance it stays valid under serial correlation and
+  heteroskedasticity.
+* the classical Hausman contrast between the within and random-effects
+  slopes.
+
+:func:`read_evidence` turns them into plain sentences and
+:func:`collect_evidence` runs the lot and returns a JSON-serialisable dict
+(Python floats, ``None`` with a note wherever a number is undefined, never NaN
+or infinity).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+import scipy.stats
+
+from panelprep._groups import group_sums
+from panelprep._linalg import cluster_cov, default_rtol, ols
+from panelprep.transforms import between, quasi, within
+
+#: Significance level used by :func:`read_evidence`.
+LEVEL = 0.05
+
+#: The closing caution of every reading.
+CAUTION = (
+    "These tests are evidence, not a verdict: they do not replace knowing how the "
+    "data were generated, and a large sample rejects tiny departures while a small one "
+    "misses large ones. After the within transform, standard errors must be clustered "
+    "by entity whenever the errors may be serially correlated; the conventional ones "
+    "are then too small."
+)
+
+# Relative eigenvalue tolerance of the generalised inverses, on matrices scaled
+# to unit diagonal (see _quad_form).  sqrt(eps) ~ 1.5e-8: a difference of two
+# covariance matrices that is below this fraction of their own size cannot be
+# told apart from rounding in the subtraction.
+_GINV_RTOL = math.sqrt(float(np.finfo(np.float64).eps))
+
+_HAUSMAN_VARIANCE_CHOICE = (
+    "Both covariances use the same idiosyncratic variance s2_e "
+    "(V_within = s2_e (X'QX)^-1, V_re = s2_e (X*'X*)^-1), so their difference is "
+    "positive semi-definite in theory."
+)
+
+
+def _p_chi2(statistic: float, df: int) -> float:
+    return float(scipy.stats.chi2.sf(statistic, df))
+
+
+def _entity_theta(theta: float | np.ndarray, n_groups: int) -> np.ndarray:
+    """Per-entity theta (G,) from a scalar or a (G,) array, checked to lie in [0, 1]."""
+    arr = np.asarray(theta, dtype=np.float64)
+    if arr.ndim == 0:
+        arr = np.full(n_groups, float(arr))
+    if arr.shape != (n_groups,):
+        raise ValueError(f"theta has shape {arr.shape}; expected a scalar or ({n_groups},)")
+    if not np.isfinite(arr).all() or (arr < 0).any() or (arr > 1).any():
+        raise ValueError("theta must be finite and within [0, 1]")
+    return arr
+
+
+def _within_varying(X: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """Boolean (k,): columns whose within deviations exceed rounding.
+
+    A column counts as time-varying when the norm of its within deviations is
+    above ``default_rtol(n, k)`` (the rank tolerance of ``_linalg.ols``) times
+    the norm of the column itself; demeaning an entity-constant column leaves
+    only rounding of order eps times its size.
+    """
+    n, k = X.shape
+    if n == 0 or k == 0:
+        return np.zeros(k, dtype=bool)
+    dev = np.linalg.norm(within(X, codes, counts), axis=0)
+    size = np.linalg.norm(X, axis=0)
+    return dev > default_rtol(n, k) * size
+
+
+def _independent_after(base: np.ndarray, extra: np.ndarray) -> np.ndarray:
+    """Boolean mask of ``extra`` columns that add a direction to ``base``, greedily in order.
+
+    Each extra column is projected off the span of ``base`` and of the extra
+    columns already accepted (classical Gram-Schmidt, applied twice for
+    stability); it is accepted when what is left has norm above
+    ``default_rtol(n, p)`` times its own norm.  ``base`` must have full column
+    rank (the kept columns of an :func:`~panelprep._linalg.ols` fit).
+    """
+    n, p = extra.shape[0], base.shape[1] + extra.shape[1]
+    rtol = default_rtol(n, p)
+    basis = np.linalg.qr(base, mode="reduced")[0] if base.shape[1] else np.zeros((n, 0))
+    ok = np.zeros(extra.shape[1], dtype=bool)
+    for j in range(extra.shape[1]):
+        v = extra[:, j].copy()
+        for _ in range(2):
+            v -= basis @ (basis.T @ v)
+        left = float(np.linalg.norm(v))
+        if left > rtol * float(np.linalg.norm(extra[:, j])):
+            ok[j] = True
+            basis = np.column_stack([basis, v / left])
+    return ok
+
+
+def _quad_form(
+    d: np.ndarray, V: np.ndarray, reference: np.ndarray
+) -> tuple[float | None, int, bool]:
+    """``d' V^- d`` with a generalised inverse from an eigen-decomposition.
+
+    ``V`` and ``d`` are first scaled by ``s = sqrt(diag(reference))`` (unit
+    scale where that diagonal is not positive), so the tolerance does not depend
+    on the units of the regressors.  Eigenvalues of the scaled matrix above
+    ``sqrt(eps) * max(1, largest |eigenvalue|)`` are kept; the others (zero,
+    negative or rounding) are left out.  ``S V_s^+ S`` is a generalised inverse
+    of ``V`` (``V G V = V``), which is what the Wald and Hausman forms need.
+
+    Returns
+    -------
+    (statistic, rank, full_rank)
+        ``statistic`` is None when no eigenvalue is kept.
+    """
+    q = len(d)
+    if q == 0:
+        return None, 0, False
+    ref = np.diag(reference)
+    s = np.where(ref > 0, np.sqrt(np.where(ref > 0, ref, 1.0)), 1.0)
+    Vs = V / s[:, None] / s[None, :]
+    Vs = (Vs + Vs.T) / 2.0
+    ds = d / s
+    w, U = np.linalg.eigh(Vs)
+    tol = _GINV_RTOL * max(1.0, float(np.max(np.abs(w))))
+    keep = w > tol
+    rank = int(np.count_nonzero(keep))
+    if rank == 0:
+        return None, 0, False
+    z = U[:, keep].T @ ds
+    stat = float(np.sum(z * z / w[keep]))
+    return max(stat, 0.0), rank, rank == q
+
+
+def entity_effect_lm(
+    pooled_resid: np.ndarray, entity_codes: np.ndarray, counts: np.ndarray
+) -> dict[str, dict[str, Any]]:
+    """Lagrange multiplier tests for entity effects on pooled OLS residuals.
+
+    With pooled OLS residuals ``e`` (regression with a constant), ``n`` rows
+    and entity sizes ``T_i``, the unbalanced forms of Baltagi and Li (1990)
+    are::
+
+        A      = sum_i (sum_t e_it)^2 / sum_it e_it^2 - 1
+        LM     = n^2 / (2 * sum_i T_i (T_i - 1)) * A^2        ~ chi2(1)
+        Honda  = sqrt(n^2 / (2 * sum_i T_i (T_i - 1))) * A    ~ N(0, 1)
+
+    On a balanced panel ``n^2 / (2 sum T_i(T_i-1)) = NT / (2 (T-1))``, the
+    Breusch-Pagan (1980) form.  Honda's test is one-sided (entity variance is
+    non-negative), so its p-value is the upper normal tail.
+
+    Parameters
+    ----------
+    pooled_resid : array (n,)
+        Pooled OLS residuals.
+    entity_codes : int array (n,)
+        Dense entity codes 0..G-1.
+    counts : int array (G,)
+        Rows per entity T_i.
+
+    Returns
+    -------
+    dict
+        ``{"breusch_pagan": {statistic, df, p_value, note},
+        "honda": {statistic, p_value, note}}``.  Values are None, with a note,
+        when every entity has one row (``sum T_i(T_i-1) = 0``) or the residuals
+        are all zero.
+    """
+    e = np.asarray(pooled_resid, dtype=np.float64)
+    counts = np.asarray(counts, dtype=np.int64)
+    n = e.shape[0]
+    pairs = float(np.sum(counts * (counts - 1)))
+    ssr = float(e @ e)
+    note = None
+    if pairs <= 0:
+        note = (
+            "every entity has a single row, so there are no within-entity residual "
+            "pairs and the entity-effect test is undefined"
+        )
+    elif ssr <= (default_rtol(n, 1) * max(float(np.max(np.abs(e))), 1.0)) ** 2 * n:
+        note = "pooled residuals are zero (exact fit); the entity-effect test is undefined"
+    if note is not None:
+        return {
+            "breusch_pagan": {"statistic": None, "df": 1, "p_value": None, "note": note},
+            "honda": {"statistic": None, "p_value": None, "note": note},
+        }
+    sums = group_sums(entity_codes, e, len(counts))
+    a = float(sums @ sums) / ssr - 1.0
+    factor = float(n) ** 2 / (2.0 * pairs)
+    lm = factor * a * a
+    honda = math.sqrt(factor) * a
+    return {
+        "breusch_pagan": {"statistic": lm, "df": 1, "p_value": _p_chi2(lm, 1), "note": None},
+        "honda": {
+            "statistic": honda,
+            "p_value": float(scipy.stats.norm.sf(honda)),
+            "note": None,
+        },
+    }
+
+
+def mundlak_test(
+    y: np.ndarray,
+    X: np.ndarray,
+    entity_codes: np.ndarray,
+    counts: np.ndarray,
+    theta: float | np.ndarray,
+    names: Sequence[str],
+    cluster: bool = True,
+) -> dict[str, Any]:
+    """Mundlak test: do the entity means of the regressors enter the random-effects regression?
+
+    The regression is, on quasi-demeaned data (``v* = v - theta_i vbar_i``)::
+
+        y*_it = c (1 - theta_i) + x*_it' b + (1 - theta_i) xbar_i' g + error
+
+    where ``xbar_i`` runs over the time-varying regressors only (the quasi
+    transform of an entity mean is ``(1 - theta_i) xbar_i``).  A regressor with
+    no within variation equals its own mean, so its mean is not added; such
+    regressors are listed in ``time_invariant``.  The statistic is the Wald
+    form ``g' V_g^- g`` ~ chi2(df).
+
+    Parameters
+    ----------
+    y, X, entity_codes, counts
+        Estimation sample (see the module docstring).
+    theta : float or array (G,)
+        Quasi-demeaning weight of each entity, in [0, 1].
+    names : sequence of str
+        The k regressor names.
+    cluster : bool
+        True (default): entity-clustered sandwich covariance with the factor
+        ``G/(G-1) * (n-1)/(n-p)`` (``_linalg.cluster_cov``), p the number of
+        fitted columns.  False: conventional ``s2 (Z'Z)^-1`` with
+        ``s2 = SSR / (n - p)``.
+
+    Returns
+    -------
+    dict
+        ``statistic, df, p_value, covariance ("entity-clustered" or
+        "conventional"), tested`` (names whose means were tested),
+        ``time_invariant`` (names left out), ``note``.  ``df`` is the rank of
+        the covariance block actually inverted; with clustering it is at most
+        G - 1.
+    """
+    y = np.asarray(y, dtype=np.float64)
+    X = np.asarray(X, dtype=np.float64)
+    if X.ndim == 1:
+        X = X[:, None]
+    counts = np.asarray(counts, dtype=np.int64)
+    names = list(names)
+    if len(names) != X.shape[1]:
+        raise ValueError(f"{len(names)} names for {X.shape[1]} regressors")
+    n_groups = len(counts)
+    theta_g = _entity_theta(theta, n_groups)
+    covariance = "entity-clustered" if cluster else "conventional"
+    varying = _within_varying(X, entity_codes, counts)
+    invariant = [names[j] for j in np.flatnonzero(~varying)]
+    result: dict[str, Any] = {
+        "statistic": None,
+        "df": 0,
+        "p_value": None,
+        "covariance": covariance,
+        "tested": [],
+        "time_invariant": invariant,
+        "note": None,
+    }
+    if not varying.any():
+        result["note"] = "no regressor varies within entities, so there are no means to test"
+        return result
+
+    one_minus = (1.0 - theta_g)[entity_codes]
+    y_q = quasi(y, entity_codes, counts, theta_g)
+    base = np.column_stack([one_minus, quasi(X, entity_codes, counts, theta_g)])
+    base_kept = ols(y_q, base).kept
+    var_idx = np.flatnonzero(varying)
+    means = one_minus[:, None] * between(X[:, var_idx], entity_codes, counts)[entity_codes]
+    # A pivoted QR of the whole design could drop the constant or a
+    # time-invariant regressor instead of a redundant mean (a mean that is
+    # constant across entities is proportional to the constant column), which
+    # would change what is tested; so the means are screened against the
+    # kept base columns first.
+    mean_ok = _independent_after(base[:, base_kept], means)
+    notes = []
+    if not mean_ok.all():
+        notes.append(
+            "means left out because they are collinear with the other regressors: "
+            + ", ".join(names[j] for j, ok in zip(var_idx, mean_ok) if not ok)
+        )
+    Z = np.asfortranarray(np.column_stack([base[:, base_kept], means[:, mean_ok]]))
+    fit = ols(y_q, Z)
+    mean_pos = np.arange(int(np.count_nonzero(base_kept)), Z.shape[1])
+    tested_mask = fit.kept[mean_pos]
+    tested = [names[j] for j, t in zip(var_idx[mean_ok], tested_mask) if t]
+    result["tested"] = tested
+    if not tested:
+        notes.append("no entity mean is left to test")
+        result["note"] = "; ".join(notes)
+        return result
+    if fit.df_resid <= 0:
+        notes.append("no residual degrees of freedom; the covariance is undefined")
+        result["note"] = "; ".join(notes)
+        return result
+
+    # Positions of the tested means among the kept columns (xtx_inv is in kept order).
+    kept_idx = np.flatnonzero(fit.kept)
+    sel = np.searchsorted(kept_idx, mean_pos[tested_mask])
+    if cluster:
+        V = cluster_cov(Z[:, fit.kept], fit.resid, entity_codes, fit.xtx_inv, n_groups)
+    else:
+        V = fit.ssr / fit.df_resid * fit.xtx_inv
+    Vg = V[np.ix_(sel, sel)]
+    g = fit.coef[mean_pos[tested_mask]]
+    stat, rank, full = _quad_form(g, Vg, Vg)
+    if stat is None:
+        notes.append("the covariance of the mean coefficients is zero; no test is possible")
+        result["note"] = "; ".join(notes)
+        return result
+    if not full:
+        notes.append(
+            f"the covariance of the {len(tested)} mean coefficients has rank {rank}"
+            + (f" (at most G - 1 = {n_groups - 1} with clustering)" if cluster else "")
+            + "; a generalised inverse was used and df set to that rank"
+        )
+    result.update(statistic=stat, df=rank, p_value=_p_chi2(stat, rank))
+    result["note"] = "; ".join(notes) if notes else None
+    return result
+
+
+def hausman_test(
+    y: np.ndarray,
+    X: np.ndarray,
+    entity_codes: np.ndarray,
+    counts: np.ndarray,
+    sigma2_entity: float,
+    sigma2_idiosyncratic: float,
+    theta: float | np.ndarray,
+    names: Sequence[str] | None = None,
+) -> dict[str, Any]:
+    """Classical Hausman contrast between within and random-effects slopes.
+
+    ``H = (b_w - b_re)' [V_w - V_re]^- (b_w - b_re)`` over the time-varying
+    regressors, with
+
+    * ``b_w`` the within slopes, ``V_w = s2_e (X'QX)^-1``;
+    * ``b_re`` the slopes of the quasi-demeaned regression (constant column
+      ``1 - theta_i`` and all regressors), ``V_re = s2_e (X*'X*)^-1`` (its slope
+      block);
+
+    and the *same* ``s2_e = sigma2_idiosyncratic`` in both, so ``V_w - V_re`` is
+    positive semi-definite in theory.  When it is not positive definite in
+    practice (a direction in which random effects adds no between information,
+    or rounding), a generalised inverse from its eigen-decomposition is used
+    (positive eigenvalues above a tolerance, see ``_quad_form``),
+    ``positive_definite`` is False and ``df`` is the rank used.
+
+    Parameters
+    ----------
+    y, X, entity_codes, counts
+        Estimation sample (see the module docstring).
+    sigma2_entity : float
+        Entity variance s2_u (reported in the note when it is zero: random
+        effects then equals pooled OLS).
+    sigma2_idiosyncratic : float
+        Idiosyncratic variance s2_e, positive.
+    theta : float or array (G,)
+        Quasi-demeaning weight of each entity, in [0, 1].
+    names : sequence of str, optional
+        Regressor names for ``tested``; column positions otherwise.
+
+    Returns
+    -------
+    dict
+        ``statistic, df, p_value, positive_definite, tested`` (regressors
+        contrasted), ``note`` (always states the variance choice).
+    """
+    y = np.asarray(y, dtype=np.float64)
+    X = np.asarray(X, dtype=np.float64)
+    if X.ndim == 1:
+        X = X[:, None]
+    counts = np.asarray(counts, dtype=np.int64)
+    k = X.shape[1]
+    n_groups = len(counts)
+    theta_g = _entity_theta(theta, n_groups)
+    s2_e = float(sigma2_idiosyncratic)
+    notes = [_HAUSMAN_VARIANCE_CHOICE]
+    result: dict[str, Any] = {
+        "statistic": None,
+        "df": 0,
+        "p_value": None,
+        "positive_definite": False,
+        "tested": [],
+        "note": None,
+    }
+    if not (math.isfinite(s2_e) and s2_e > 0):
+        notes.append("the idiosyncratic variance is not positive; the contrast is undefined")
+        result["note"] = " ".join(notes)
+        return result
+    if float(sigma2_entity) <= 0:
+        notes.append("the entity variance is zero, so random effects equals pooled OLS here.")
+    varying = _within_varying(X, entity_codes, counts)
+    if not varying.any():
+        notes.append("No regressor varies within entities; there is nothing to contrast.")
+        result["note"] = " ".join(notes)
+        return result
+
+    cols = np.flatnonzero(varying)
+    Xv = X[:, cols]
+    fit_w = ols(
+        within(y, entity_codes, counts),
+        within(Xv, entity_codes, counts),
+        scale=np.linalg.norm(Xv, axis=0),
+    )
+    one_minus = (1.0 - theta_g)[entity_codes]
+    fit_q = ols(
+        quasi(y, entity_codes, counts, theta_g),
+        np.column_stack([one_minus, quasi(X, entity_codes, counts, theta_g)]),
+    )
+    # Contrast over columns estimable in both fits.
+    use = fit_w.kept & fit_q.kept[1 + cols]
+    if not use.all():
+        notes.append(f"{int(np.count_nonzero(~use))} collinear regressor(s) left out.")
+    if not use.any():
+        notes.append("No estimable slope to contrast.")
+        result["note"] = " ".join(notes)
+        return result
+    w_pos = np.searchsorted(np.flatnonzero(fit_w.kept), np.flatnonzero(use))
+    q_pos = np.searchsorted(np.flatnonzero(fit_q.kept), 1 + cols[use])
+    d = fit_w.coef[use] - fit_q.coef[1 + cols[use]]
+    V_w = s2_e * fit_w.xtx_inv[np.ix_(w_pos, w_pos)]
+    V_re = s2_e * fit_q.xtx_inv[np.ix_(q_pos, q_pos)]
+    labels = list(names) if names is not None else list(range(k))
+    result["tested"] = [labels[c] for c in cols[use]]
+    stat, rank, full = _quad_form(d, V_w - V_re, V_w)
+    if stat is None:
+        notes.append(
+            "V_within - V_re has no positive eigenvalue above the tolerance: random "
+            "effects adds no information beyond the within estimator, so no test is possible."
+        )
+        result["note"] = " ".join(notes)
+        return result
+    if not full:
+        notes.append(
+            f"V_within - V_re is not positive definite (rank {rank} of {len(d)}); a "
+            "generalised inverse over its positive eigenvalues was used and df set to that rank."
+        )
+    result.update(
+        statistic=stat, df=rank, p_value=_p_chi2(stat, rank), positive_definite=bool(full)
+    )
+    result["note"] = " ".join(notes)
+    return result
+
+
+def _verdict(block: dict[str, Any] | None) -> bool | None:
+    """True if the block's p-value is below LEVEL, False if not, None if unavailable."""
+    if not block or block.get("p_value") is None:
+        return None
+    return bool(block["p_value"] < LEVEL)
+
+
+def _fmt(value: float) -> str:
+    return f"{value:.4g}"
+
+
+def read_evidence(evidence: dict[str, Any]) -> list[str]:
+    """Plain-language reading of the evidence, at the 5% level (``LEVEL``).
+
+    Parameters
+    ----------
+    evidence : dict
+        With any of the keys ``breusch_pagan``, ``honda`` (as returned by
+        :func:`entity_effect_lm`), ``mundlak`` (:func:`mundlak_test`) and
+        ``hausman`` (:func:`hausman_test`).  Missing or undefined blocks are
+        read as "no evidence either way".
+
+    Returns
+    -------
+    list of str
+        One sentence per piece of evidence, one sentence naming the estimator
+        the evidence points to, and last the caution :data:`CAUTION`.
+
+    Notes
+    -----
+    The entity-effect test is read first: a rejection by Breusch-Pagan or
+    (one-sided) Honda points away from pooled OLS towards a panel estimator.
+    Fixed versus random effects is then read from the Mundlak test when it was
+    computed, otherwise from the Hausman test: a rejection means the entity
+    effects look correlated with the regressors, so random effects would be
+    inconsistent and fixed effects is indicated.
+    """
+    lines: list[str] = []
+    pct = f"{LEVEL:.0%}"
+    bp = evidence.get("breusch_pagan")
+    honda = evidence.get("honda")
+    bp_v, honda_v = _verdict(bp), _verdict(honda)
+    if bp_v is None and honda_v is None:
+        effects = None
+        why = (bp or {}).get("note") or (honda or {}).get("note") or "not computed"
+        lines.append(
+            f"The entity-effect test is unavailable ({why}), so it says nothing about "
+            "pooled OLS versus a panel estimator."
+        )
+    else:
+        effects = bool(bp_v or honda_v)
+        parts = []
+        if bp_v is not None:
+            parts.append(f"Breusch-Pagan LM = {_fmt(bp['statistic'])} (p = {_fmt(bp['p_value'])})")
+        if honda_v is not None:
+            parts.append(
+                f"Honda = {_fmt(honda['statistic'])} (one-sided p = {_fmt(honda['p_value'])})"
+            )
+        if effects:
+            tail = (
+                f"at the {pct} level there is evidence of entity effects, which points away "
+                "from pooled OLS towards a panel estimator (random or fixed effects)."
+            )
+        else:
+            tail = (
+                f"at the {pct} level there is no evidence of entity effects, so pooled OLS "
+                "is not contradicted."
+            )
+        lines.append(" and ".join(parts) + ": " + tail)
+
+    mundlak = evidence.get("mundlak")
+    hausman = evidence.get("hausman")
+    m_v, h_v = _verdict(mundlak), _verdict(hausman)
+    for label, block, verdict in (("Mundlak", mundlak, m_v), ("Hausman", hausman, h_v)):
+        if block is None:
+            continue
+        if verdict is None:
+            why = block.get("note") or "not computed"
+            lines.append(f"The {label} test is unavailable ({why}).")
+            continue
+        head = (
+            f"{label} statistic = {_fmt(block['statistic'])} on {block['df']} df "
+            f"(p = {_fmt(block['p_value'])}"
+            + (f", {block['covariance']} covariance" if "covariance" in block else "")
+            + ")"
+        )
+        if verdict:
+            lines.append(
+                head + f": at the {pct} level the entity effects look correlated with the "
+                "regressors, so random effects would be inconsistent; this points to fixed "
+                "effects."
+            )
+        else:
+            lines.append(
+                head + f": at the {pct} level there is no evidence that the entity effects "
+                "are correlated with the regressors; random effects is then consistent and "
+                "more efficient than fixed effects."
+            )
+        if label == "Hausman" and block.get("positive_definite") is False:
+            lines.append(
+                "The Hausman covariance difference was not positive definite, so that "
+                "statistic rests on a generalised inverse and is less reliable."
+            )
+    if m_v is not None and h_v is not None and m_v != h_v:
+        lines.append(
+            "The Mundlak and Hausman tests disagree. The Mundlak test with entity-clustered "
+            "covariance stays valid under heteroskedasticity and serial correlation, the "
+            "classical Hausman test does not, so the Mundlak result carries more weight."
+        )
+    correlated = m_v if m_v is not None else h_v
+
+    if correlated:
+        choice = "fixed effects"
+        if effects is False:
+            choice += (
+                " (the entity-effect test did not reject, but effects correlated with the "
+                "regressors would bias pooled OLS as well)"
+            )
+    elif effects is False:
+        choice = "pooled OLS (with entity-clustered standard errors)"
+    elif effects and correlated is False:
+        choice = "random effects"
+    elif effects:
+        choice = "a panel estimator, with fixed versus random effects left open"
+    elif correlated is False:
+        choice = (
+            "random effects or pooled OLS (no evidence of correlated effects; the "
+            "entity-effect test is unavailable)"
+        )
+    else:
+        choice = "no estimator in particular: the tests could not be computed"
+    lines.append(f"Overall, the evidence points to {choice}.")
+    lines.append(CAUTION)
+    return lines
+
+
+def collect_evidence(
+    y: np.ndarray,
+    X: np.ndarray,
+    entity_codes: np.ndarray,
+    counts: np.ndarray,
+    components: Any,
+    names: Sequence[str],
+) -> dict[str, Any]:
+    """Run all tests and return a JSON-serialisable summary.
+
+    Parameters
+    ----------
+    y, X, entity_codes, counts, names
+        Estimation sample (see the module docstring); ``X`` without constant.
+    components : object
+        Fitted variance components with attributes ``sigma2_entity_``,
+        ``sigma2_idiosyncratic_`` and ``theta_`` (scalar or per entity (G,)).
+
+    Returns
+    -------
+    dict
+        ``breusch_pagan, honda`` (:func:`entity_effect_lm` on the residuals of
+        pooled OLS with a constant), ``mundlak`` (entity-clustered covariance),
+        ``hausman``, ``reading`` (:func:`read_evidence`) and ``caution``.  Numbers
+        are Python floats or ints; undefined ones are None with a note.
+    """
+    y = np.asarray(y, dtype=np.float64)
+    X = np.asarray(X, dtype=np.float64)
+    if X.ndim == 1:
+        X = X[:, None]
+    counts = np.asarray(counts, dtype=np.int64)
+    names = list(names)
+    pooled = ols(y, np.column_stack([np.ones(len(y)), X]), names=["const", *names])
+    out: dict[str, Any] = dict(entity_effect_lm(pooled.resid, entity_codes, counts))
+    out["mundlak"] = mundlak_test(
+        y, X, entity_codes, counts, components.theta_, names, cluster=True
+    )
+    out["hausman"] = hausman_test(
+        y,
+        X,
+        entity_codes,
+        counts,
+        float(components.sigma2_entity_),
+        float(components.sigma2_idiosyncratic_),
+        components.theta_,
+        names=names,
+    )
+    out["reading"] = read_evidence(out)
+    out["caution"] = CAUTION
+    return out
