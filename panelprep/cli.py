@@ -17,7 +17,7 @@ import typer
 from panelprep import pipeline
 from panelprep.errors import InputError
 from panelprep.io import ReadOptions
-from panelprep.report.text import audit_lines
+from panelprep.report.text import audit_lines, components_lines
 
 EXIT_PASS, EXIT_FAIL, EXIT_UNUSABLE = 0, 1, 2
 
@@ -96,6 +96,83 @@ def audit_command(
         _unusable(str(err))
     typer.echo("\n".join(audit_lines(document)))
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
+
+
+@app.command("prepare")
+def prepare_command(
+    data: Annotated[Path, typer.Argument(help="CSV, Parquet or Arrow/Feather file.")],
+    entity: EntityOpt,
+    time: TimeOpt,
+    y: Annotated[str, typer.Option("--y", help="Dependent variable.")],
+    x: Annotated[str, typer.Option("--x", help="Regressors, comma-separated.")],
+    out: Annotated[Path, typer.Option("--out", "-o", help="Output folder.")],
+    transform: Annotated[str, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway.")] = "within,between,quasi",
+    method: Annotated[str, typer.Option("--method", help="Variance components: swamy-arora, wallace-hussain, amemiya or nerlove.")] = "swamy-arora",
+    output_format: Annotated[str, typer.Option("--format", help="Data files as parquet or csv.")] = "parquet",
+    force: Annotated[bool, typer.Option("--force", help="Replace a non-empty output folder.")] = False,
+    freq: FreqOpt = None,
+    fail_on: FailOpt = "error",
+    input_format: FormatOpt = None,
+    delimiter: DelimOpt = None,
+    decimal_comma: DecimalOpt = False,
+    missing_token: TokenOpt = None,
+    quiet: QuietOpt = False,
+) -> None:
+    """Audit, then write estimation-ready files with provenance into --out."""
+    from panelprep.prepare import prepare
+
+    try:
+        if fail_on not in ("error", "warning"):
+            raise InputError(f"--fail-on {fail_on!r} must be error or warning")
+        result = prepare(
+            data, out, entity, time, y, x, transforms=transform, method=method,
+            output_format=output_format, force=force, freq=freq, fail_on=fail_on,
+            read_options=_read_options(input_format, delimiter, decimal_comma, missing_token),
+            progress=pipeline.stderr_progress(quiet),
+        )
+    except InputError as err:
+        _unusable(str(err))
+    summary = result.summary
+    typer.echo("\n".join(audit_lines(summary)))
+    if summary.get("components"):
+        typer.echo("")
+        typer.echo("\n".join(components_lines(summary["components"])))
+    typer.echo("")
+    typer.echo(f"written to {out}: " + ", ".join(f["name"] for f in summary["files"]))
+    raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
+
+
+@app.command("components")
+def components_command(
+    data: Annotated[Path, typer.Argument(help="CSV, Parquet or Arrow/Feather file.")],
+    entity: EntityOpt,
+    time: TimeOpt,
+    y: Annotated[str, typer.Option("--y", help="Dependent variable.")],
+    x: Annotated[str, typer.Option("--x", help="Regressors, comma-separated.")],
+    method: Annotated[str, typer.Option("--method", help="swamy-arora, wallace-hussain, amemiya or nerlove.")] = "swamy-arora",
+    as_json: Annotated[bool, typer.Option("--json", help="Print the components as JSON.")] = False,
+    freq: FreqOpt = None,
+    input_format: FormatOpt = None,
+    delimiter: DelimOpt = None,
+    decimal_comma: DecimalOpt = False,
+    missing_token: TokenOpt = None,
+    quiet: QuietOpt = False,
+) -> None:
+    """Print only the variance components of the estimation sample."""
+    from panelprep.prepare import estimate_file_components
+
+    try:
+        found = estimate_file_components(
+            data, entity, time, y, x, method=method, freq=freq,
+            read_options=_read_options(input_format, delimiter, decimal_comma, missing_token),
+            progress=pipeline.stderr_progress(quiet),
+        )
+    except InputError as err:
+        _unusable(str(err))
+    if as_json:
+        typer.echo(json.dumps(found, indent=2, allow_nan=False))
+    else:
+        typer.echo("\n".join(components_lines(found)))
 
 
 def _write_json(path: Path, document: dict, source: Path) -> None:

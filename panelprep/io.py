@@ -228,3 +228,81 @@ def integer_text_to_int(values: pd.Series) -> pd.Series:
 def _short(err: BaseException) -> str:
     text = " ".join(str(err).split())
     return text if len(text) <= 200 else text[:197] + "..."
+
+
+def write_table(frame: pd.DataFrame, path: Path, fmt: str, metadata: dict[str, str]) -> None:
+    """Write a data file; Parquet carries ``metadata`` as key-value pairs.
+
+    Written without the pandas index and without timestamps, so the same
+    frame and metadata give the same bytes on every run.
+    """
+    table = pa.Table.from_pandas(frame, preserve_index=False)
+    if fmt == "parquet":
+        schema_meta = {k.encode(): v.encode() for k, v in metadata.items()}
+        table = table.replace_schema_metadata(schema_meta)
+        pq.write_table(table, path, compression="zstd", write_statistics=True)
+    elif fmt == "csv":
+        pacsv.write_csv(table, path)
+    else:
+        raise InputError(f"--format {fmt!r} must be parquet or csv")
+
+
+class OutputFolder:
+    """A folder that appears complete or not at all.
+
+    Files are written into a hidden temporary folder beside ``target``; on
+    ``commit`` it is renamed into place (an existing ``target`` is moved
+    aside first and removed only after the rename succeeded).  If anything
+    fails before ``commit``, the temporary folder is removed and ``target``
+    is left as it was.
+    """
+
+    def __init__(self, target: Path, inputs: list[Path], force: bool = False) -> None:
+        self.target = Path(target)
+        target_abs = self.target.resolve()
+        for source in inputs:
+            source_abs = Path(source).resolve()
+            if source_abs == target_abs or target_abs in source_abs.parents:
+                raise InputError(f"{self.target}: output folder equals or contains the input {source}")
+        if self.target.exists():
+            if not self.target.is_dir():
+                raise InputError(f"{self.target}: exists and is not a folder")
+            if any(self.target.iterdir()) and not force:
+                raise InputError(f"{self.target}: folder exists and is not empty (use --force to replace it)")
+        parent = target_abs.parent
+        if not parent.exists():
+            raise InputError(f"{self.target}: parent folder {parent} does not exist")
+        self.temp = parent / f".{self.target.name}.partial-{os.getpid()}"
+        if self.temp.exists():
+            _remove_tree(self.temp)
+        try:
+            self.temp.mkdir()
+        except OSError as err:
+            raise InputError(f"{self.target}: cannot create output: {err.strerror}") from None
+
+    def path(self, name: str) -> Path:
+        return self.temp / name
+
+    def commit(self) -> None:
+        old = None
+        if self.target.exists():
+            old = self.target.with_name(f".{self.target.name}.old-{os.getpid()}")
+            self.target.rename(old)
+        try:
+            self.temp.rename(self.target)
+        except OSError:
+            if old is not None:
+                old.rename(self.target)
+            raise
+        if old is not None:
+            _remove_tree(old)
+
+    def abandon(self) -> None:
+        if self.temp.exists():
+            _remove_tree(self.temp)
+
+
+def _remove_tree(folder: Path) -> None:
+    import shutil
+
+    shutil.rmtree(folder, ignore_errors=True)

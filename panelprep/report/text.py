@@ -92,3 +92,59 @@ def audit_lines(report: dict[str, Any]) -> list[str]:
     else:
         lines.append("  no numeric variables selected")
     return lines
+
+
+def components_lines(components: dict[str, Any]) -> list[str]:
+    """The variance components section."""
+    theta = components.get("theta") or {}
+    lines = [f"Variance components ({components['method']})"]
+    lines += _table([
+        ["entity effect variance (s2_u)", _num(components["sigma2_entity"], 6)],
+        ["idiosyncratic variance (s2_e)", _num(components["sigma2_idiosyncratic"], 6)],
+        ["entity share s2_u / (s2_u + s2_e)", _num(components["entity_share"], 4)],
+        ["theta_i = 1 - sqrt(s2_e / (T_i s2_u + s2_e))",
+         f"{_num(theta.get('min'))} / {_num(theta.get('median'))} / {_num(theta.get('max'))}"
+         " (min / median / max)"],
+    ])
+    if components.get("truncated_negative"):
+        lines.append(f"  the estimate of s2_u was negative ({_num(components.get('raw_sigma2_entity'), 6)})"
+                     " and was set to 0")
+    for key, label in (("dropped_within", "left out of the within regression"),
+                       ("dropped_between", "left out of the between regression")):
+        if components.get(key):
+            lines.append(f"  {label}: {', '.join(components[key])}")
+    return lines
+
+
+def preparation_lines(summary: dict[str, Any]) -> list[str]:
+    """diagnostics.txt: the whole preparation, top to bottom."""
+    lines = ["panelprep preparation log", "=" * 25, ""]
+    lines += audit_lines(summary)
+    if summary.get("steps"):
+        lines += ["", "Steps (in order)"]
+        lines += _table([["step", "rows before", "rows after", "entities before", "entities after"]]
+                        + [[s["step"], f"{s['rows_before']:,}", f"{s['rows_after']:,}",
+                            f"{s['entities_before']:,}", f"{s['entities_after']:,}"]
+                           for s in summary["steps"]], right={1, 2, 3, 4})
+        dropped = summary.get("dropped", {})
+        lines.append(f"  rows dropped in all: {dropped.get('rows', 0):,} "
+                     f"({', '.join(f'{k}: {v:,}' for k, v in dropped.get('by_reason', {}).items()) or 'none'});"
+                     " each is listed in dropped.parquet")
+    if summary.get("components"):
+        lines += [""] + components_lines(summary["components"])
+    if summary.get("transforms"):
+        lines += ["", "Files built"]
+        for name, info in summary["transforms"].items():
+            extra = ", ".join(f"{k} {v}" for k, v in info.items() if k != "rows")
+            lines.append(f"  {name}: {info['rows']:,} rows" + (f" ({extra})" if extra else ""))
+    if summary.get("evidence"):
+        lines += ["", "Evidence on the choice of estimator (not a verdict)"]
+        lines += [f"  {line}" for line in summary["evidence"].get("reading", [])]
+    if summary.get("files"):
+        lines += ["", "Files written"]
+        lines += _table([[f["name"], f"{f['rows']:,} rows", f["sha256"][:16] + "…"]
+                         for f in summary["files"]], right={1})
+    if summary.get("cautions"):
+        lines += ["", "Before you fit a model"]
+        lines += [f"  - {c}" for c in summary["cautions"]]
+    return lines
