@@ -35,7 +35,7 @@ import scipy.stats
 
 from panelprep._groups import group_sums
 from panelprep._linalg import cluster_cov, default_rtol, ols
-from panelprep.transforms import between, quasi, within
+from panelprep.transforms import between, quasi, theta_per_entity, within
 
 #: Significance level used by :func:`read_evidence`.
 LEVEL = 0.05
@@ -54,6 +54,11 @@ CAUTION = (
 # covariance matrices that is below this fraction of their own size cannot be
 # told apart from rounding in the subtraction.
 _GINV_RTOL = math.sqrt(float(np.finfo(np.float64).eps))
+
+# Absolute tolerance when checking a given theta against the one implied by the
+# variance components: theta is a weight in [0, 1], and components rounded
+# for display would already move it by more than 1e-12.
+_THETA_ATOL = 1e-8
 
 _HAUSMAN_VARIANCE_CHOICE = (
     "Both covariances use the same idiosyncratic variance s2_e "
@@ -381,8 +386,10 @@ def hausman_test(
     y, X, entity_codes, counts
         Estimation sample (see the module docstring).
     sigma2_entity : float
-        Entity variance s2_u (reported in the note when it is zero: random
-        effects then equals pooled OLS).
+        Entity variance s2_u.  Used to check that ``theta`` is the weight the
+        components imply (``transforms.theta_per_entity``); a mismatch above
+        1e-8 is reported in the note, and a zero s2_u (random effects equals
+        pooled OLS) too.
     sigma2_idiosyncratic : float
         Idiosyncratic variance s2_e, positive.
     theta : float or array (G,)
@@ -415,11 +422,18 @@ def hausman_test(
         "note": None,
     }
     if not (math.isfinite(s2_e) and s2_e > 0):
-        notes.append("the idiosyncratic variance is not positive; the contrast is undefined")
+        notes.append("The idiosyncratic variance is not positive; the contrast is undefined.")
         result["note"] = " ".join(notes)
         return result
     if float(sigma2_entity) <= 0:
-        notes.append("the entity variance is zero, so random effects equals pooled OLS here.")
+        notes.append("The entity variance is zero, so random effects equals pooled OLS here.")
+    implied = theta_per_entity(float(sigma2_entity), s2_e, counts)
+    if np.max(np.abs(implied - theta_g), initial=0.0) > _THETA_ATOL:
+        notes.append(
+            "theta does not match the variance components (theta_i = 1 - sqrt(s2_e / "
+            "(T_i s2_u + s2_e))), so s2_e (X*'X*)^-1 is not the random-effects covariance "
+            "and the contrast is not the classical one."
+        )
     varying = _within_varying(X, entity_codes, counts)
     if not varying.any():
         notes.append("No regressor varies within entities; there is nothing to contrast.")

@@ -176,6 +176,7 @@ def test_mundlak_conventional_equals_hausman_balanced(case):
     mund = mundlak_test(y, X, codes, counts, theta, names, cluster=False)
     haus = hausman_test(y, X, codes, counts, s2_u, s2_e, theta, names=names)
     assert mund["covariance"] == "conventional"
+    assert "does not match" not in haus["note"]
     assert mund["statistic"] == pytest.approx(expected, rel=1e-6)
     assert haus["statistic"] == pytest.approx(expected, rel=1e-6)
     if case == "two varying":
@@ -316,12 +317,27 @@ def test_hausman_not_positive_definite_has_note_and_no_nan():
     n_groups, T = 20, 4
     y, X, codes, counts = _balanced_sim(rng, n_groups, T, 2)
     X[:, 1] = np.tile(np.arange(T, dtype=np.float64), n_groups)
-    out = hausman_test(y, X, codes, counts, 1.0, 1.0, np.full(n_groups, 0.5), names=["x", "t"])
+    theta = np.full(n_groups, 1.0 - np.sqrt(1.0 / (T * 1.0 + 1.0)))
+    out = hausman_test(y, X, codes, counts, 1.0, 1.0, theta, names=["x", "t"])
     _no_nan(out)
     assert out["positive_definite"] is False
     assert out["df"] == 1
     assert "generalised inverse" in out["note"]
     assert "same idiosyncratic variance" in out["note"]
+    assert "does not match" not in out["note"]
+
+
+def test_hausman_flags_theta_inconsistent_with_components():
+    rng = np.random.default_rng(10)
+    n_groups, T = 20, 4
+    y, X, codes, counts = _balanced_sim(rng, n_groups, T, 1)
+    # theta_i = 1 - sqrt(s2_e / (T s2_u + s2_e)) = 1 - sqrt(1/5) for s2_u = s2_e = 1, T = 4
+    # (the random-effects weight, common practice); 0.5 is not it.
+    good = hausman_test(y, X, codes, counts, 1.0, 1.0, 1.0 - np.sqrt(0.2))
+    bad = hausman_test(y, X, codes, counts, 1.0, 1.0, 0.5)
+    assert "does not match" not in good["note"]
+    assert "does not match" in bad["note"]
+    _no_nan(bad)
 
 
 def test_collect_evidence_grunfeld_json_and_reading(grunfeld_panel):
