@@ -160,7 +160,10 @@ def _quad_form(
 
 
 def entity_effect_lm(
-    pooled_resid: np.ndarray, entity_codes: np.ndarray, counts: np.ndarray
+    pooled_resid: np.ndarray,
+    entity_codes: np.ndarray,
+    counts: np.ndarray,
+    y_scale: float | None = None,
 ) -> dict[str, dict[str, Any]]:
     """Lagrange multiplier tests for entity effects on pooled OLS residuals.
 
@@ -184,14 +187,20 @@ def entity_effect_lm(
         Dense entity codes 0..G-1.
     counts : int array (G,)
         Rows per entity T_i.
+    y_scale : float, optional
+        Norm of the centred response, ``||y - ybar||``.  When given, residuals
+        with norm at most ``default_rtol(n, 1) * y_scale`` count as an exact
+        fit (rounding only), for which the test is undefined.  The statistic
+        itself is scale-free, so without ``y_scale`` only all-zero residuals
+        can be recognised.
 
     Returns
     -------
     dict
         ``{"breusch_pagan": {statistic, df, p_value, note},
         "honda": {statistic, p_value, note}}``.  Values are None, with a note,
-        when every entity has one row (``sum T_i(T_i-1) = 0``) or the residuals
-        are all zero.
+        when every entity has one row (``sum T_i(T_i-1) = 0``) or the pooled
+        fit is exact.
     """
     e = np.asarray(pooled_resid, dtype=np.float64)
     counts = np.asarray(counts, dtype=np.int64)
@@ -204,8 +213,13 @@ def entity_effect_lm(
             "every entity has a single row, so there are no within-entity residual "
             "pairs and the entity-effect test is undefined"
         )
-    elif ssr <= (default_rtol(n, 1) * max(float(np.max(np.abs(e))), 1.0)) ** 2 * n:
-        note = "pooled residuals are zero (exact fit); the entity-effect test is undefined"
+    elif not ssr > 0 or (
+        y_scale is not None and math.sqrt(ssr) <= default_rtol(n, 1) * float(y_scale)
+    ):
+        note = (
+            "pooled OLS fits exactly (the residuals are rounding), so the "
+            "entity-effect test is undefined"
+        )
     if note is not None:
         return {
             "breusch_pagan": {"statistic": None, "df": 1, "p_value": None, "note": note},
@@ -328,6 +342,10 @@ def mundlak_test(
         notes.append("no residual degrees of freedom; the covariance is undefined")
         result["note"] = "; ".join(notes)
         return result
+    if math.sqrt(fit.ssr) <= default_rtol(len(y_q), Z.shape[1]) * float(np.linalg.norm(y_q)):
+        notes.append("the regression fits exactly (residuals are rounding); no test is possible")
+        result["note"] = "; ".join(notes)
+        return result
 
     # Positions of the tested means among the kept columns (xtx_inv is in kept order).
     kept_idx = np.flatnonzero(fit.kept)
@@ -448,10 +466,15 @@ def hausman_test(
         scale=np.linalg.norm(Xv, axis=0),
     )
     one_minus = (1.0 - theta_g)[entity_codes]
+    y_q = quasi(y, entity_codes, counts, theta_g)
     fit_q = ols(
-        quasi(y, entity_codes, counts, theta_g),
+        y_q,
         np.column_stack([one_minus, quasi(X, entity_codes, counts, theta_g)]),
     )
+    if math.sqrt(fit_q.ssr) <= default_rtol(len(y_q), fit_q.rank) * float(np.linalg.norm(y_q)):
+        notes.append("The regression fits exactly (residuals are rounding); no test is possible.")
+        result["note"] = " ".join(notes)
+        return result
     # Contrast over columns estimable in both fits.
     use = fit_w.kept & fit_q.kept[1 + cols]
     if not use.all():
@@ -656,7 +679,8 @@ def collect_evidence(
     counts = np.asarray(counts, dtype=np.int64)
     names = list(names)
     pooled = ols(y, np.column_stack([np.ones(len(y)), X]), names=["const", *names])
-    out: dict[str, Any] = dict(entity_effect_lm(pooled.resid, entity_codes, counts))
+    y_scale = float(np.linalg.norm(y - y.mean())) if len(y) else 0.0
+    out: dict[str, Any] = dict(entity_effect_lm(pooled.resid, entity_codes, counts, y_scale))
     out["mundlak"] = mundlak_test(
         y, X, entity_codes, counts, components.theta_, names, cluster=True
     )

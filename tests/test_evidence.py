@@ -297,6 +297,22 @@ def test_all_singletons_give_notes_not_nan():
     assert "no estimator in particular" in out["reading"][-2]
 
 
+def test_exact_pooled_fit_gives_note_not_nan():
+    rng = np.random.default_rng(12)
+    codes = np.repeat(np.arange(10), 4)
+    counts = np.full(10, 4, dtype=np.int64)
+    X = rng.normal(size=(40, 2)) * 1e3
+    y = 3.0 + X @ [2.0, -1.0]
+    theta = np.full(10, 0.3)
+    comps = SimpleNamespace(sigma2_entity_=1.0, sigma2_idiosyncratic_=1.0, theta_=theta)
+    out = collect_evidence(y, X, codes, counts, comps, ["a", "b"])
+    _no_nan(out)
+    assert out["breusch_pagan"]["statistic"] is None
+    assert "fits exactly" in out["honda"]["note"]
+    assert out["mundlak"]["statistic"] is None and "fits exactly" in out["mundlak"]["note"]
+    assert out["hausman"]["statistic"] is None and "fits exactly" in out["hausman"]["note"]
+
+
 def test_singleton_entities_mixed_in_are_fine():
     rng = np.random.default_rng(4)
     sizes = np.array([1, 1, 1] + [5] * 20)
