@@ -1,0 +1,318 @@
+"""An invented panel of manufacturing firms with known, planted defects.
+
+Demo data: invented, no real firms.  The scenario is a few hundred fictional
+manufacturers observed yearly, some entering late and some leaving early, with
+a firm effect that drives both capital and sales (so pooled, random- and
+fixed-effects estimates of the capital elasticity disagree).  On top of the
+clean panel a handful of defects are planted, each on its own set of firms so
+that their counts do not interact and can be recovered exactly.
+
+Everything that grows with the number of firms or rows is a numpy array
+operation; the only Python loops are over the few defect kinds.
+"""
+
+from __future__ import annotations
+
+from os import PathLike
+
+import numpy as np
+import pandas as pd
+
+DEFAULT_SEED = 20261202
+
+# Invented four-digit industry codes for the scenario, not any official classification.
+_INDUSTRIES = np.array([1104, 1322, 2016, 2231, 2418, 2593, 2714, 2826, 2917], dtype=np.int64)
+
+# Share of firms that carry each planted defect (at least one firm each).
+_SHARES = {
+    "gap": 0.04,
+    "lookalike": 0.02,
+    "missing": 0.05,
+    "duplicate": 0.03,
+    "conflict": 0.02,
+    "singleton": 0.02,
+    "short_missing": 0.01,
+}
+
+# Generating model, on logs: elasticities of sales and how strongly the firm
+# effect loads on capital (the source of the random- vs fixed-effects gap).
+_ELASTICITY_CAPITAL = 0.30
+_ELASTICITY_STAFF = 0.60
+_EFFECT_ON_CAPITAL = 0.9
+
+_VARIABLES = ("sales", "capital", "staff")
+_MIN_YEARS = 8
+_MIN_FIRMS = 50
+
+
+def make_demo_panel(
+    seed: int = DEFAULT_SEED, n_firms: int = 300, years: tuple = (2005, 2024)
+) -> tuple[pd.DataFrame, dict]:
+    """Build the invented firm panel and report the defects planted in it.
+
+    Demo data: invented, no real firms.
+
+    Parameters
+    ----------
+    seed : int
+        Seed for ``numpy.random.default_rng``; the same seed gives the same panel.
+    n_firms : int
+        Number of fictional firms (at least 50, so every defect kind gets its own firms).
+    years : tuple of int
+        First and last calendar year, inclusive (at least 8 years).
+
+    Returns
+    -------
+    frame : pandas.DataFrame
+        Columns ``firm_id`` (text such as ``'F00042'``; a few rows carry a
+        look-alike spelling), ``year`` (int), ``industry`` (int code, fixed per
+        firm), ``founded`` (int year, fixed per firm), ``sales`` and
+        ``capital`` (float, millions, three decimals) and ``staff`` (float,
+        full-time equivalents, one decimal).  Rows are sorted by firm and year;
+        a planted copy follows the row it copies.
+    planted : dict
+        Exact counts of what was planted, JSON-serialisable.  Counts on the
+        *estimation sample* follow the audit convention: complete key, exact
+        duplicate rows collapsed, all of sales/capital/staff present, ids taken
+        as written.
+
+        ``rows``, ``firms``, ``entities_as_written`` (firms plus one per
+        look-alike spelling), ``years``, ``balanced`` (always False),
+        ``entered_late`` / ``exited_early`` (firms whose first / last year is
+        inside the range), ``exact_duplicate_rows`` (extra copies; a row
+        written three times counts two), ``conflicting_duplicate_keys``
+        (firm-years on two rows whose sales differ), ``lookalike_groups``
+        (firms also written with surrounding spaces or in lower case, always
+        for their last two years), ``lookalike_rows``, ``gap_firms`` and
+        ``gap_periods`` (interior years removed, one run of 1-3 years per
+        firm, counted on all rows), ``singleton_firms`` (firms with a single
+        year), ``missing_cells`` ({variable: count}; one empty cell per row),
+        ``listwise_rows_removed``, ``listwise_new_singletons`` (two-year firms
+        that lose one year), ``entities_with_gaps`` and ``singleton_entities``
+        (on the estimation sample), ``firms_by_defect`` ({kind: sorted
+        canonical ids}) and ``model`` (the generating elasticities).
+
+    Raises
+    ------
+    ValueError
+        If ``n_firms`` or the year range is too small to plant every defect.
+    """
+    first, last = int(years[0]), int(years[1])
+    n_years = last - first + 1
+    if n_years < _MIN_YEARS:
+        raise ValueError(f"years {years} span {n_years} years; the demo needs at least {_MIN_YEARS}")
+    if n_firms < _MIN_FIRMS:
+        raise ValueError(f"n_firms={n_firms}; the demo needs at least {_MIN_FIRMS} firms")
+    rng = np.random.default_rng(seed)
+    n = int(n_firms)
+
+    # Entry and exit: late entrants still have six or more years of room.
+    late = rng.random(n) < 0.35
+    entry = np.where(late, rng.integers(1, n_years - 5, n), 0)
+    room = n_years - entry
+    leaves = rng.random(n) < 0.30
+    life = np.where(leaves, rng.integers(3, room + 1), room)
+
+    roles = _assign_roles(rng, life, n)
+    life[roles["singleton"]] = 1
+    life[roles["short_missing"]] = 2
+
+    industry = rng.choice(_INDUSTRIES, n)
+    age_at_entry = np.where(late, rng.integers(0, 4, n), rng.integers(2, 60, n))
+    founded = first + entry - age_at_entry
+    effect = rng.normal(0.0, 0.5, n)
+    industry_shift = rng.normal(0.0, 0.3, len(_INDUSTRIES))[np.searchsorted(_INDUSTRIES, industry)]
+
+    # Expand firms to rows without a per-firm loop.
+    firm = np.repeat(np.arange(n), life)
+    start = np.cumsum(life) - life
+    pos = np.arange(len(firm)) - start[firm]
+    year = first + entry[firm] + pos
+    sales, capital, staff = _firm_values(rng, firm, start, year - first, effect, industry_shift)
+    values = {"sales": sales, "capital": capital, "staff": staff}
+
+    canonical = np.char.add("F", np.char.zfill(np.arange(1, n + 1).astype(str), 5))
+    firm_id = canonical[firm].astype(object)
+
+    # Interior gaps: drop one run of 1-3 years strictly inside the firm's span.
+    gap_len = np.zeros(n, dtype=np.int64)
+    gap_start = np.zeros(n, dtype=np.int64)
+    g = roles["gap"]
+    gap_len[g] = rng.integers(1, 4, len(g))
+    gap_start[g] = rng.integers(1, life[g] - gap_len[g])
+    keep = ~((pos >= gap_start[firm]) & (pos < gap_start[firm] + gap_len[firm]))
+
+    # Look-alike ids on each chosen firm's last two years.
+    lk = roles["lookalike"]
+    kind = rng.integers(0, 4, len(lk))
+    base = canonical[lk]
+    spelled = np.where(
+        kind == 0,
+        np.char.add(" ", base),
+        np.where(
+            kind == 1,
+            np.char.add(base, " "),
+            np.where(kind == 2, np.char.add(np.char.add(" ", base), " "), np.char.lower(base)),
+        ),
+    )
+    variant = np.full(n, -1, dtype=np.int64)
+    variant[lk] = np.arange(len(lk))
+    relabel = (variant[firm] >= 0) & (pos >= life[firm] - 2)
+    firm_id[relabel] = spelled[variant[firm[relabel]]]
+
+    # Missing cells: one cell on one row of each chosen firm.
+    interior_missing = 0
+    missing_cells = dict.fromkeys(_VARIABLES, 0)
+    for group in ("missing", "short_missing"):
+        m = roles[group]
+        where = rng.integers(0, life[m])
+        column = rng.integers(0, len(_VARIABLES), len(m))
+        rows = start[m] + where
+        for j, name in enumerate(_VARIABLES):
+            values[name][rows[column == j]] = np.nan
+            missing_cells[name] += int((column == j).sum())
+        interior_missing += int(((where > 0) & (where < life[m] - 1)).sum())
+
+    # Exact copies (one or two) and conflicting copies (sales off by 3-20 %).
+    d = roles["duplicate"]
+    copies = rng.integers(1, 3, len(d))
+    dup_rows = np.repeat(start[d] + rng.integers(0, life[d]), copies)
+    c = roles["conflict"]
+    conf_rows = start[c] + rng.integers(0, life[c])
+    factor = 1.0 + rng.choice([-1.0, 1.0], len(c)) * rng.uniform(0.03, 0.20, len(c))
+
+    take = np.concatenate([np.flatnonzero(keep), dup_rows, conf_rows])
+    out_sales = values["sales"][take]
+    out_sales[len(take) - len(c):] = np.round(out_sales[len(take) - len(c):] * factor, 3)
+    tag = np.concatenate([np.zeros(int(keep.sum()), np.int64), np.ones(len(dup_rows), np.int64),
+                          np.full(len(conf_rows), 2, np.int64)])
+    order = np.lexsort((tag, year[take], firm[take]))
+    take, out_sales = take[order], out_sales[order]
+
+    frame = pd.DataFrame(
+        {
+            "firm_id": firm_id[take],
+            "year": year[take].astype(np.int64),
+            "industry": industry[firm[take]].astype(np.int64),
+            "founded": founded[firm[take]].astype(np.int64),
+            "sales": out_sales,
+            "capital": values["capital"][take],
+            "staff": values["staff"][take],
+        }
+    )
+
+    n_short = len(roles["short_missing"])
+    planted = {
+        "seed": int(seed),
+        "years": [first, last],
+        "rows": len(frame),
+        "firms": n,
+        "entities_as_written": n + len(lk),
+        "balanced": False,
+        "entered_late": int((entry > 0).sum()),
+        "exited_early": int((entry + life < n_years).sum()),
+        "exact_duplicate_rows": int(copies.sum()),
+        "conflicting_duplicate_keys": len(c),
+        "lookalike_groups": len(lk),
+        "lookalike_rows": int(relabel.sum()),
+        "gap_firms": len(g),
+        "gap_periods": int(gap_len.sum()),
+        "singleton_firms": len(roles["singleton"]),
+        "missing_cells": missing_cells,
+        "listwise_rows_removed": len(roles["missing"]) + n_short,
+        "listwise_new_singletons": n_short,
+        "entities_with_gaps": len(g) + interior_missing,
+        "singleton_entities": len(roles["singleton"]) + n_short,
+        "firms_by_defect": {k: sorted(canonical[v].tolist()) for k, v in roles.items()},
+        "model": {
+            "elasticity_capital": _ELASTICITY_CAPITAL,
+            "elasticity_staff": _ELASTICITY_STAFF,
+            "firm_effect_on_log_capital": _EFFECT_ON_CAPITAL,
+        },
+    }
+    return frame, planted
+
+
+def write_demo_csv(
+    path: str | PathLike[str],
+    seed: int = DEFAULT_SEED,
+    n_firms: int = 300,
+    years: tuple = (2005, 2024),
+) -> dict:
+    """Write the invented demo panel to ``path`` as CSV and return what was planted.
+
+    Demo data: invented, no real firms.  Floats are written with ``repr``
+    precision (shortest text that reads back to the same float), missing
+    cells as empty fields, lines ending in ``\\n``; ids are text, so their
+    zero padding and any surrounding spaces are written as they are.  The
+    same arguments give byte-identical files.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Destination file; overwritten.
+    seed, n_firms, years
+        As for ``make_demo_panel``.
+
+    Returns
+    -------
+    dict
+        The ``planted`` dictionary of ``make_demo_panel``.
+    """
+    frame, planted = make_demo_panel(seed=seed, n_firms=n_firms, years=years)
+    frame.to_csv(path, index=False, lineterminator="\n", float_format=lambda x: repr(float(x)))
+    return planted
+
+
+def _assign_roles(rng: np.random.Generator, life: np.ndarray, n: int) -> dict[str, np.ndarray]:
+    """Disjoint sets of firms for each defect kind.
+
+    Gaps and look-alikes need six or more years of life (a run of up to three
+    interior years, or two relabelled years with more left over), so the
+    multi-year kinds are drawn from long-lived firms; singletons and the
+    two-year firms are drawn from the rest and have their lives cut.
+    """
+    counts = {k: max(1, round(share * n)) for k, share in _SHARES.items()}
+    long_kinds = ("gap", "lookalike", "missing", "duplicate", "conflict")
+    short_kinds = ("singleton", "short_missing")
+    long_firms = rng.permutation(np.flatnonzero(life >= 6))
+    need = sum(counts[k] for k in long_kinds)
+    if len(long_firms) < need or n - need < sum(counts[k] for k in short_kinds):
+        raise ValueError(f"{n} firms are too few to plant every defect on separate firms")
+    roles: dict[str, np.ndarray] = {}
+    cut = np.cumsum([0] + [counts[k] for k in long_kinds])
+    for k, lo, hi in zip(long_kinds, cut[:-1], cut[1:]):
+        roles[k] = np.sort(long_firms[lo:hi])
+    rest = rng.permutation(np.setdiff1d(np.arange(n), long_firms[:need]))
+    cut = np.cumsum([0] + [counts[k] for k in short_kinds])
+    for k, lo, hi in zip(short_kinds, cut[:-1], cut[1:]):
+        roles[k] = np.sort(rest[lo:hi])
+    return roles
+
+
+def _firm_values(
+    rng: np.random.Generator,
+    firm: np.ndarray,
+    start: np.ndarray,
+    t: np.ndarray,
+    effect: np.ndarray,
+    industry_shift: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Sales, capital and staff per row from a log-linear model with a firm effect.
+
+    Capital follows a per-firm random walk (a cumulative sum restarted at each
+    firm's first row), so it has real within variation; the firm effect loads
+    on capital, staff and sales alike, which is what makes the firm effect
+    correlated with the regressors.
+    """
+    n_rows = len(firm)
+    shock = rng.normal(0.0, 0.08, n_rows)
+    walk = np.cumsum(shock)
+    walk -= (walk[start] - shock[start])[firm]
+    cycle = rng.normal(0.0, 0.04, int(t.max()) + 1)
+    log_k = (2.0 + _EFFECT_ON_CAPITAL * effect[firm] + industry_shift[firm] + 0.02 * t + walk
+             + rng.normal(0.0, 0.10, n_rows))
+    log_l = 4.2 + 0.5 * effect[firm] + 0.4 * (log_k - 2.0) + rng.normal(0.0, 0.10, n_rows)
+    log_y = (-0.9 + _ELASTICITY_CAPITAL * log_k + _ELASTICITY_STAFF * log_l + effect[firm]
+             + cycle[t] + rng.normal(0.0, 0.12, n_rows))
+    return np.round(np.exp(log_y), 3), np.round(np.exp(log_k), 3), np.round(np.exp(log_l), 1)
