@@ -35,7 +35,8 @@ _SUFFIXES = {
     ".ipc": "arrow",
 }
 _DELIMITERS = (",", ";", "\t", "|")
-_INTEGER_TEXT = re.compile(r"^\s*-?\d{1,18}\s*$")
+# whole numbers, also as written by tools that store years as floats ("1935.0")
+_INTEGER_TEXT = re.compile(r"^\s*-?\d{1,18}(?:\.0*)?\s*$")
 
 
 @dataclass(frozen=True)
@@ -220,9 +221,10 @@ def integer_text_to_int(values: pd.Series) -> pd.Series:
     uniques = pd.Series(present.unique())
     if len(uniques) == 0 or not uniques.astype(str).str.fullmatch(_INTEGER_TEXT.pattern).all():
         return values
+    digits = values.astype("string").str.strip().str.replace(r"\.0*$", "", regex=True)
     if len(present) == len(values):
-        return values.astype(np.int64)
-    return values.astype("Int64")
+        return digits.astype(np.int64)
+    return digits.astype("Int64")
 
 
 def _short(err: BaseException) -> str:
