@@ -1,0 +1,531 @@
+"""Estimation-ready transforms of panel value blocks.
+
+All functions take the estimation sample only: dense integer codes 0..G-1
+(no -1) and finite float64 values, 1-D ``(n,)`` or 2-D ``(n, k)`` in any
+memory order.  2-D results are allocated column-major (Fortran order).  Work
+that grows with the data is one ``np.bincount`` per column and per grouping
+plus broadcasts back to rows by fancy indexing; the only loops are over
+columns.
+
+* :func:`within` - deviations from entity means (``M_e x``).
+* :func:`between` - entity means, one row per entity.
+* :func:`quasi` - quasi-demeaning ``x - theta_i * xbar_i`` (random-effects GLS).
+* :func:`theta_per_entity` - ``theta_i`` from the two variance components.
+* :func:`twoway` - deviations from entity and period effects together, exact
+  on unbalanced panels with gaps.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+import scipy.sparse
+import scipy.sparse.csgraph
+import scipy.sparse.linalg
+
+from panelprep._groups import group_counts, group_sums
+
+# Above this many levels in the smaller of the two groupings the (levels x
+# levels) normal equations are solved by preconditioned conjugate gradients
+# instead of a dense Cholesky factorisation.
+DIRECT_MAX_LEVELS = 5000
+
+# Largest (levels_a * levels_b) for which the incidence matrix is formed
+# dense (float64, so at most 128 MiB); beyond it a sparse matrix is used.
+DENSE_INCIDENCE_MAX = 1 << 24
+
+# Refinement rounds after the direct solve, each one more solve against the
+# normal-equation residual; rounding rarely needs more than one.
+DIRECT_REFINE_ROUNDS = 3
+
+
+def _as_block(values: np.ndarray) -> tuple[np.ndarray, bool]:
+    """View ``values`` as (n, k) float64; report whether the input was 1-D."""
+    arr = np.asarray(values, dtype=np.float64)
+    if arr.ndim == 1:
+        return arr[:, None], True
+    if arr.ndim != 2:
+        raise ValueError(f"values must be 1-D or 2-D, got {arr.ndim}-D")
+    return arr, False
+
+
+def _safe_inverse_counts(counts: np.ndarray) -> np.ndarray:
+    """1 / counts as float64, with 0 for empty groups (their sums are 0 too)."""
+    counts = np.asarray(counts, dtype=np.float64)
+    out = np.zeros_like(counts)
+    np.divide(1.0, counts, out=out, where=counts > 0)
+    return out
+
+
+def _check_codes(codes: np.ndarray, n_rows: int, n_groups: int, what: str) -> np.ndarray:
+    codes = np.asarray(codes)
+    if codes.shape != (n_rows,):
+        raise ValueError(f"{what} has shape {codes.shape}, expected ({n_rows},)")
+    if n_rows and (codes.min() < 0 or codes.max() >= n_groups):
+        raise ValueError(f"{what} must be dense codes 0..{n_groups - 1} (estimation sample only)")
+    return codes
+
+
+def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """Deviations from entity means, ``x_it - xbar_i``.
+
+    Parameters
+    ----------
+    values : array (n,) or (n, k)
+        Finite float64 values of the estimation sample.
+    codes : int array (n,)
+        Entity codes 0..G-1.
+    counts : int array (G,)
+        Rows per entity ``T_i`` (``group_counts(codes, G)``).
+
+    Returns
+    -------
+    ndarray
+        Same shape as ``values``; 2-D output is Fortran-ordered.  The mean is
+        ``sum / T_i`` (no ddof; this is a projection, not a variance).
+    """
+    block, flat = _as_block(values)
+    n, k = block.shape
+    codes = _check_codes(codes, n, len(counts), "codes")
+    inv = _safe_inverse_counts(counts)
+    out = np.empty((n, k), dtype=np.float64, order="F")
+    buf = np.empty(n, dtype=np.float64)
+    for j in range(k):
+        col = block[:, j]
+        means = group_sums(codes, col, len(counts)) * inv
+        np.take(means, codes, out=buf, mode="clip")
+        np.subtract(col, buf, out=out[:, j])
+    return out[:, 0] if flat else out
+
+
+def between(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """Entity means ``xbar_i = sum_t x_it / T_i``.
+
+    Returns
+    -------
+    ndarray (G,) or (G, k)
+        One row per entity, Fortran-ordered when 2-D; entities with no rows
+        get 0.
+    """
+    block, flat = _as_block(values)
+    n, k = block.shape
+    codes = _check_codes(codes, n, len(counts), "codes")
+    inv = _safe_inverse_counts(counts)
+    out = np.empty((len(counts), k), dtype=np.float64, order="F")
+    for j in range(k):
+        out[:, j] = group_sums(codes, block[:, j], len(counts)) * inv
+    return out[:, 0] if flat else out
+
+
+def quasi(
+    values: np.ndarray, codes: np.ndarray, counts: np.ndarray, theta: np.ndarray
+) -> np.ndarray:
+    """Quasi-demeaned values ``x_it - theta_i * xbar_i``.
+
+    With ``theta_i`` from :func:`theta_per_entity`, OLS on the quasi-demeaned
+    response and regressors, plus the column ``1 - theta_i`` for the
+    intercept, is GLS under the one-way error-component covariance
+    ``s2_e * I + s2_u * (entity block of ones)``.
+
+    Parameters
+    ----------
+    values : array (n,) or (n, k)
+    codes : int array (n,)
+        Entity codes 0..G-1.
+    counts : int array (G,)
+        Rows per entity.
+    theta : array (G,)
+        Per-entity weight in [0, 1]: 0 leaves the data unchanged, 1 is the
+        within transform.
+
+    Returns
+    -------
+    ndarray
+        Same shape as ``values``; 2-D output is Fortran-ordered.
+    """
+    block, flat = _as_block(values)
+    n, k = block.shape
+    codes = _check_codes(codes, n, len(counts), "codes")
+    theta = np.asarray(theta, dtype=np.float64)
+    if theta.shape != (len(counts),):
+        raise ValueError(f"theta has shape {theta.shape}, expected ({len(counts)},)")
+    weight = theta * _safe_inverse_counts(counts)
+    out = np.empty((n, k), dtype=np.float64, order="F")
+    buf = np.empty(n, dtype=np.float64)
+    for j in range(k):
+        col = block[:, j]
+        shift = group_sums(codes, col, len(counts)) * weight
+        np.take(shift, codes, out=buf, mode="clip")
+        np.subtract(col, buf, out=out[:, j])
+    return out[:, 0] if flat else out
+
+
+def theta_per_entity(
+    sigma2_entity: float, sigma2_idiosyncratic: float, counts: np.ndarray
+) -> np.ndarray:
+    """Per-entity quasi-demeaning weight.
+
+    ``theta_i = 1 - sqrt(s2_e / (T_i * s2_u + s2_e))``, evaluated as
+    ``(T_i s2_u / d_i) / (1 + sqrt(s2_e / d_i))`` with ``d_i = T_i s2_u + s2_e``
+    to avoid cancellation when ``theta_i`` is small, then clipped into [0, 1].
+
+    Parameters
+    ----------
+    sigma2_entity : float
+        Entity-effect variance ``s2_u``; a negative value is treated as 0
+        (estimators report their own truncation).
+    sigma2_idiosyncratic : float
+        Idiosyncratic variance ``s2_e``; a negative value is treated as 0.
+    counts : int array (G,)
+        Rows per entity ``T_i``.
+
+    Returns
+    -------
+    ndarray (G,)
+        ``s2_u = 0`` gives 0 (pooled OLS); ``s2_e = 0`` with ``s2_u > 0``
+        gives 1 (within); both 0 gives 0, and so does an entity with
+        ``T_i = 0``: with no evidence of an entity effect the data are left
+        as they are.
+    """
+    s2u = float(sigma2_entity)
+    s2e = float(sigma2_idiosyncratic)
+    if not (np.isfinite(s2u) and np.isfinite(s2e)):
+        raise ValueError("variance components must be finite")
+    s2u = max(s2u, 0.0)
+    s2e = max(s2e, 0.0)
+    t = np.asarray(counts, dtype=np.float64)
+    signal = t * s2u
+    denom = signal + s2e
+    theta = np.zeros_like(t)
+    pos = denom > 0
+    ratio = s2e / denom[pos]
+    theta[pos] = (signal[pos] / denom[pos]) / (1.0 + np.sqrt(ratio))
+    return np.clip(theta, 0.0, 1.0)
+
+
+@dataclass(frozen=True)
+class TwowayResult:
+    """How :func:`twoway` removed the two sets of effects.
+
+    Attributes
+    ----------
+    method : str
+        ``"direct-period"`` / ``"direct-entity"``: entity (or period) means
+        removed, then the period (or entity) effects solved exactly from
+        their normal equations by dense Cholesky; ``"cg-period"`` /
+        ``"cg-entity"``: same equations solved by Jacobi-preconditioned
+        conjugate gradients.
+    iterations : int
+        Direct: number of solves (1, plus refinement rounds).  CG: largest
+        number of CG iterations any column needed, refinement included.
+        0 when there was nothing to solve.
+    precision : float
+        Achieved: max over columns of ``max(max_i |mean_i(r)|,
+        max_t |mean_t(r)|) / scale_j``, where r is the transformed column,
+        means are over the rows of each entity and of each period, and
+        ``scale_j = sqrt(sum_it x_it^2 / n)``, the root mean square of the
+        input column (1 if that is 0).
+    converged : bool
+        ``precision <= tol``.
+    n_components : int
+        Connected components of the bipartite entity-period graph of the
+        rows (entities and periods linked by an observed row).  Effects are
+        identified only up to one constant per component.
+    """
+
+    method: str
+    iterations: int
+    precision: float
+    converged: bool
+    n_components: int
+
+
+@dataclass(frozen=True, eq=False)
+class _Incidence:
+    """Row counts per (a, b) cell of the two groupings, dense or sparse (CSR)."""
+
+    dense: np.ndarray | None
+    sparse: scipy.sparse.csr_matrix | None
+
+    def matvec(self, v: np.ndarray) -> np.ndarray:
+        return self.dense @ v if self.dense is not None else self.sparse @ v
+
+    def rmatvec(self, v: np.ndarray) -> np.ndarray:
+        return self.dense.T @ v if self.dense is not None else self.sparse.T @ v
+
+
+def _incidence(a: np.ndarray, b: np.ndarray, na: int, nb: int) -> _Incidence:
+    """Cell counts of the (a, b) pairs without a loop over groups.
+
+    Cells are the int64 codes ``a * nb + b``; they are counted by one
+    ``bincount`` when the grid is small enough, otherwise by a sort
+    (``np.unique``).  The sort gives cells in row-major order, so the CSR
+    arrays are filled directly.
+    """
+    cells = a * np.int64(nb)
+    cells += b
+    size = na * nb
+    if size <= DENSE_INCIDENCE_MAX:
+        cnt = np.bincount(cells, minlength=size)
+        return _Incidence(dense=cnt.reshape(na, nb).astype(np.float64), sparse=None)
+    uniq, cnt = np.unique(cells, return_counts=True)
+    indptr = np.zeros(na + 1, dtype=np.int64)
+    np.cumsum(np.bincount(uniq // nb, minlength=na), out=indptr[1:])
+    sparse = scipy.sparse.csr_matrix(
+        (cnt.astype(np.float64), uniq % nb, indptr), shape=(na, nb)
+    )
+    return _Incidence(dense=None, sparse=sparse)
+
+
+def _pin_levels(labels_b: np.ndarray, count_b: np.ndarray) -> tuple[np.ndarray, int]:
+    """One b-level per connected component whose effect is fixed at 0.
+
+    The normal matrix ``D_b' M_a D_b`` has the indicator of each component's
+    b-levels in its null space; pinning the best-populated level of each
+    component leaves a positive definite system.  Returns the mask of free
+    levels and the number of components that contain rows.
+    """
+    nb = len(labels_b)
+    order = np.lexsort((-count_b, labels_b))
+    sorted_labels = labels_b[order]
+    first = np.ones(nb, dtype=bool)
+    first[1:] = sorted_labels[1:] != sorted_labels[:-1]
+    free = np.ones(nb, dtype=bool)
+    free[order[first]] = False
+    return free, len(np.unique(labels_b[count_b > 0]))
+
+
+def _labels_from_normal(full: np.ndarray) -> np.ndarray:
+    """Components of the b-levels: two levels are linked when they share an a-level.
+
+    Off-diagonal entries of ``C' diag(1/n_a) C`` are sums of positive terms,
+    so they are exactly nonzero precisely for linked pairs.
+    """
+    _, labels = scipy.sparse.csgraph.connected_components(
+        scipy.sparse.csr_matrix(full != 0), directed=False
+    )
+    return labels
+
+
+def _labels_from_incidence(sparse: scipy.sparse.csr_matrix) -> np.ndarray:
+    """Components of the b-levels from the bipartite a-b graph (sparse path)."""
+    na = sparse.shape[0]
+    graph = scipy.sparse.bmat([[None, sparse], [sparse.T, None]], format="csr")
+    _, labels = scipy.sparse.csgraph.connected_components(graph, directed=False)
+    return labels[na:]
+
+
+def twoway(
+    values: np.ndarray,
+    entity_codes: np.ndarray,
+    period_codes: np.ndarray,
+    n_entities: int,
+    n_periods: int,
+    tol: float = 1e-12,
+    max_iter: int = 1000,
+) -> tuple[np.ndarray, TwowayResult]:
+    """Remove entity and period effects together (two-way within transform).
+
+    The result is the residual of projecting each column on a full set of
+    entity and period dummies, exactly (up to rounding) on unbalanced panels
+    with gaps and on panels whose entity-period graph falls into several
+    connected components.
+
+    Parameters
+    ----------
+    values : array (n,) or (n, k)
+        Finite float64 values of the estimation sample.
+    entity_codes, period_codes : int arrays (n,)
+        Dense codes 0..n_entities-1 and 0..n_periods-1.  Periods of the grid
+        with no rows are allowed.
+    n_entities, n_periods : int
+        Number of levels of each grouping.
+    tol : float
+        Target relative precision (see ``TwowayResult.precision``).
+    max_iter : int
+        Conjugate-gradient iteration budget per column (iterative method only).
+
+    Returns
+    -------
+    (ndarray, TwowayResult)
+        Transformed values, same shape as ``values`` (Fortran-ordered when
+        2-D), and a record of the method and the achieved precision.
+
+    Notes
+    -----
+    Method (partialling out, Frisch-Waugh-Lovell).  Let ``a`` be the grouping
+    with more levels and ``b`` the one with fewer (entities and periods
+    respectively in the usual long panel).  With ``M_a`` the within-``a``
+    projector, ``D_b`` the b-dummies and ``C`` the a-by-b cell-count matrix,
+
+    ``(D_b' M_a D_b) g = D_b' M_a x = D_b' x - C' xbar_a``,
+    ``D_b' M_a D_b = diag(n_b) - C' diag(1/n_a) C``,
+
+    and the result is ``M_a x - M_a D_b g = x - (xbar_a - C g / n_a)[a] - g[b]``.
+    The matrix is singular, one null direction per connected component of the
+    bipartite a-b graph (``scipy.sparse.csgraph.connected_components``); one
+    level per component (the one with the most rows) is pinned at ``g = 0``,
+    which leaves a positive definite system and does not change the result.
+
+    * ``min(levels) <= 5000``: dense Cholesky of the reduced system, then up
+      to 3 rounds of iterative refinement (re-solving against the b-sums of
+      the result) while the precision exceeds ``tol``.
+    * more levels: conjugate gradients on the same reduced system with a
+      sparse operator (cost per iteration: number of distinct cells) and a
+      Jacobi preconditioner, restarted against the b-sums of the result
+      until the precision reaches ``tol`` or ``max_iter`` iterations are used.
+
+    Cost per column: two group sums and two broadcasts over the rows for the
+    transform, two more group sums for the precision check.
+    """
+    block, flat = _as_block(values)
+    n, k = block.shape
+    entity_codes = _check_codes(entity_codes, n, n_entities, "entity_codes")
+    period_codes = _check_codes(period_codes, n, n_periods, "period_codes")
+    if n_periods <= n_entities:
+        a, b, na, nb, solved = entity_codes, period_codes, n_entities, n_periods, "period"
+    else:
+        a, b, na, nb, solved = period_codes, entity_codes, n_periods, n_entities, "entity"
+    count_a = group_counts(a, na)
+    count_b = group_counts(b, nb)
+    inv_a = _safe_inverse_counts(count_a)
+    inv_b = _safe_inverse_counts(count_b)
+    inc = _incidence(a, b, na, nb)
+    iterative = nb > DIRECT_MAX_LEVELS
+    method = ("cg-" if iterative else "direct-") + solved
+    if iterative:
+        sparse = inc.sparse if inc.sparse is not None else scipy.sparse.csr_matrix(inc.dense)
+        inc = _Incidence(dense=None, sparse=sparse)
+        free, n_components = _pin_levels(_labels_from_incidence(sparse), count_b)
+        solve = _cg_solver(sparse, count_b, inv_a, np.flatnonzero(free), nb, tol, max_iter)
+        max_solves = max_iter
+    else:
+        full = _normal_matrix(inc, count_b, inv_a)
+        free, n_components = _pin_levels(_labels_from_normal(full), count_b)
+        solve = _direct_solver(full, np.flatnonzero(free), nb)
+        max_solves = 1 + DIRECT_REFINE_ROUNDS
+    any_free = bool(free.any())
+
+    out = np.empty((n, k), dtype=np.float64, order="F")
+    buf = np.empty(n, dtype=np.float64)
+    precision = 0.0
+    iterations = 0
+    for j in range(k):
+        col = block[:, j]
+        r = out[:, j]
+        scale = float(np.sqrt(np.dot(col, col) / n)) if n else 0.0
+        scale = scale if scale > 0 else 1.0
+        xbar = group_sums(a, col, na) * inv_a
+        col_iter = 0
+        if any_free:
+            g, used = solve(group_sums(b, col, nb) - inc.rmatvec(xbar))
+            col_iter += used
+            np.take(xbar - inc.matvec(g) * inv_a, a, out=buf, mode="clip")
+            np.subtract(col, buf, out=r)
+            np.take(g, b, out=buf, mode="clip")
+            np.subtract(r, buf, out=r)
+        else:
+            np.take(xbar, a, out=buf, mode="clip")
+            np.subtract(col, buf, out=r)
+        sums_b = group_sums(b, r, nb)
+        col_prec = _precision(r, a, na, inv_a, sums_b, inv_b, scale)
+        solves = 1
+        while any_free and col_prec > tol and solves < max_solves and col_iter < max_iter:
+            delta, used = solve(sums_b)
+            col_iter += used
+            solves += 1
+            np.take(delta, b, out=buf, mode="clip")
+            np.subtract(r, buf, out=r)
+            np.take(inc.matvec(delta) * inv_a, a, out=buf, mode="clip")
+            np.add(r, buf, out=r)
+            sums_b = group_sums(b, r, nb)
+            col_prec = _precision(r, a, na, inv_a, sums_b, inv_b, scale)
+        precision = max(precision, col_prec)
+        iterations = max(iterations, col_iter)
+    result = TwowayResult(
+        method=method,
+        iterations=int(iterations),
+        precision=float(precision),
+        converged=bool(precision <= tol),
+        n_components=int(n_components),
+    )
+    return (out[:, 0] if flat else out), result
+
+
+def _precision(r, a, na, inv_a, sums_b, inv_b, scale) -> float:
+    """Largest |group mean| of the result over both groupings, relative to scale."""
+    ea = np.max(np.abs(group_sums(a, r, na) * inv_a)) if na else 0.0
+    eb = np.max(np.abs(sums_b * inv_b)) if len(sums_b) else 0.0
+    return float(max(ea, eb) / scale)
+
+
+def _normal_matrix(inc: _Incidence, count_b: np.ndarray, inv_a: np.ndarray) -> np.ndarray:
+    """Dense ``diag(n_b) - C' diag(1/n_a) C`` (b-levels x b-levels)."""
+    if inc.dense is not None:
+        cross = inc.dense.T @ (inc.dense * inv_a[:, None])
+    else:
+        weighted = scipy.sparse.diags(inv_a) @ inc.sparse
+        cross = (inc.sparse.T @ weighted).toarray()
+    mat = -cross
+    mat[np.diag_indices_from(mat)] += count_b
+    return mat
+
+
+def _direct_solver(full: np.ndarray, free_idx: np.ndarray, nb: int):
+    """Cholesky of the reduced normal matrix; pseudo-inverse if it is numerically singular."""
+    reduced = full[np.ix_(free_idx, free_idx)]
+    reduced = (reduced + reduced.T) / 2.0
+    try:
+        factor = scipy.linalg.cho_factor(reduced, lower=True, check_finite=False)
+
+        def apply(rhs):
+            return scipy.linalg.cho_solve(factor, rhs, check_finite=False)
+    except np.linalg.LinAlgError:
+        pinv = scipy.linalg.pinvh(reduced)
+
+        def apply(rhs):
+            return pinv @ rhs
+
+    def solve(rhs: np.ndarray) -> tuple[np.ndarray, int]:
+        g = np.zeros(nb)
+        g[free_idx] = apply(rhs[free_idx])
+        return g, 1
+
+    return solve
+
+
+def _cg_solver(sparse, count_b, inv_a, free_idx, nb, tol, max_iter):
+    """Jacobi-preconditioned CG on the reduced normal equations (sparse operator)."""
+    squared = sparse.multiply(sparse)
+    diag = (count_b - squared.T @ inv_a)[free_idx]
+    diag = np.where(diag > 0, diag, 1.0)
+    m = len(free_idx)
+
+    def matvec(v: np.ndarray) -> np.ndarray:
+        full = np.zeros(nb)
+        full[free_idx] = np.ravel(v)
+        out = count_b * full - sparse.T @ (inv_a * (sparse @ full))
+        return out[free_idx]
+
+    op = scipy.sparse.linalg.LinearOperator((m, m), matvec=matvec, dtype=np.float64)
+    precond = scipy.sparse.linalg.LinearOperator(
+        (m, m), matvec=lambda v: np.ravel(v) / diag, dtype=np.float64
+    )
+
+    def solve(rhs: np.ndarray) -> tuple[np.ndarray, int]:
+        count = [0]
+
+        def callback(_xk):
+            count[0] += 1
+
+        sol, _info = scipy.sparse.linalg.cg(
+            op, rhs[free_idx], rtol=tol, atol=0.0, maxiter=max_iter, M=precond,
+            callback=callback,
+        )
+        g = np.zeros(nb)
+        g[free_idx] = sol
+        return g, max(count[0], 1)
+
+    return solve
