@@ -107,7 +107,11 @@ def ols(
         transform is pure rounding noise (a time-invariant variable after the
         within transform, of size ~1e-16 of the original) is then dropped,
         while a small-but-real column is kept.  A zero or non-finite entry
-        means "no reference": that column is scaled by 1.
+        means "no reference": that column is scaled by 1.  With ``scale``
+        given, the reference magnitude in the rank test is
+        ``max(|R_00|, 1)``: a scaled column has unit reference size, so a
+        column reduced to rounding noise is dropped even when every column
+        is small after the transform.
 
     Returns
     -------
@@ -155,7 +159,8 @@ def ols(
         Q, R, piv = scipy.linalg.qr(Xs, mode="economic", pivoting=True)
         diag = np.abs(np.diag(R))
         if diag.size and diag[0] > 0:
-            rank = int(np.count_nonzero(diag > rtol * diag[0]))
+            reference = max(diag[0], 1.0) if scale is not None else diag[0]
+            rank = int(np.count_nonzero(diag > rtol * reference))
         if rank:
             R11 = R[:rank, :rank]
             b_piv = scipy.linalg.solve_triangular(R11, Q[:, :rank].T @ y)
