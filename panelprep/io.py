@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 from pyarrow import feather
@@ -182,16 +183,30 @@ def read_frame(
 def _read_csv(
     path: Path, wanted: list[str], entity: list[str], time: str | None, options: ReadOptions
 ) -> pa.Table:
-    header, delimiter = _csv_header(path, options.delimiter)
+    _, delimiter = _csv_header(path, options.delimiter)
     if options.decimal_comma and delimiter == ",":
         raise InputError(f"{path}: decimal commas need a delimiter other than ',' (found ',')")
     raw_names = {n.strip(): n for n in _raw_header(path, delimiter)}
     include = [raw_names[c] for c in wanted]
     as_text = [*(entity if options.entity_as_text else []), *([time] if time else [])]
     text_columns = {raw_names[c]: pa.string() for c in as_text if c in raw_names}
+    table = _arrow_csv(path, include, text_columns, delimiter, options)
+    # Arrow reads the texts "nan" and "inf" as floats; read such columns again as text
+    # so they are reported like any other text instead of becoming missing or infinite.
+    spelled = {name: pa.string() for name, column in zip(table.column_names, table.columns)
+               if pa.types.is_floating(column.type) and _has_non_finite(column)}
+    if spelled:
+        table = _arrow_csv(path, include, {**text_columns, **spelled}, delimiter, options)
+    return table.rename_columns([n.strip() for n in table.column_names])
+
+
+def _arrow_csv(
+    path: Path, include: list[str], column_types: dict[str, pa.DataType], delimiter: str,
+    options: ReadOptions,
+) -> pa.Table:
     convert = pacsv.ConvertOptions(
         include_columns=include,
-        column_types=text_columns,
+        column_types=column_types,
         null_values=[""],
         strings_can_be_null=True,
         quoted_strings_can_be_null=False,
@@ -201,10 +216,14 @@ def _read_csv(
     parse = pacsv.ParseOptions(delimiter=delimiter, newlines_in_values=False)
     read = pacsv.ReadOptions(block_size=1 << 24)
     try:
-        table = pacsv.read_csv(path, read_options=read, parse_options=parse, convert_options=convert)
+        return pacsv.read_csv(path, read_options=read, parse_options=parse, convert_options=convert)
     except pa.ArrowInvalid as err:
         raise InputError(f"{path}: cannot parse as CSV: {_short(err)}") from None
-    return table.rename_columns([n.strip() for n in table.column_names])
+
+
+def _has_non_finite(column: pa.ChunkedArray) -> bool:
+    """Whether a float column holds NaN or infinity (nulls, i.e. empty fields, do not count)."""
+    return bool(pc.any(pc.invert(pc.is_finite(column))).as_py())
 
 
 def _raw_header(path: Path, delimiter: str) -> list[str]:
