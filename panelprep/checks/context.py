@@ -201,21 +201,35 @@ def _plain(value: object) -> object:
 def _to_float(
     values: pd.Series, name: str, decimal_comma: bool, missing_tokens: tuple[str, ...]
 ) -> tuple[np.ndarray, NonNumeric | None]:
-    """Numeric view of a column; text that is not a number becomes NaN and is reported."""
+    """Numeric view of a column; text that is not a number becomes NaN and is reported.
+
+    Infinite values count as not numbers.  Declared missing tokens that are
+    numbers (``-999``) also apply to a column already stored as numbers.
+    """
     if pd.api.types.is_bool_dtype(values.dtype):
         return values.astype(np.float64).to_numpy(), None
     if pd.api.types.is_numeric_dtype(values.dtype):
-        return values.to_numpy(dtype=np.float64, na_value=np.nan), None
+        out = values.to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
+        token_missing = np.isin(out, _numeric_tokens(missing_tokens, decimal_comma))
+        bad_rows = np.flatnonzero(np.isinf(out))
+        if len(bad_rows) == 0 and not token_missing.any():
+            return out, None
+        out[token_missing | np.isinf(out)] = np.nan
+        shown = list(dict.fromkeys(str(v) for v in values.iloc[bad_rows[:200]]))[:10]
+        return out, NonNumeric(
+            column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum())
+        )
     text = values.astype("str")
     present = values.notna().to_numpy()
     stripped = text.str.strip()
     if decimal_comma:
         stripped = stripped.str.replace(",", ".", regex=False)
     is_number = stripped.str.fullmatch(_NUMBER.pattern).fillna(False).to_numpy(dtype=bool)
-    token_missing = stripped.isin(list(missing_tokens)).to_numpy() & present
+    token_missing = text.str.strip().isin(list(missing_tokens)).to_numpy() & present
     blank = (stripped == "").to_numpy() & present
     out = np.full(len(values), np.nan)
     out[is_number] = stripped[is_number].astype(np.float64).to_numpy()
+    out[token_missing] = np.nan
     bad_rows = np.flatnonzero(present & ~is_number & ~token_missing & ~blank)
     if len(bad_rows) == 0 and not token_missing.any():
         return out, None
@@ -223,6 +237,12 @@ def _to_float(
     return out, NonNumeric(
         column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum())
     )
+
+
+def _numeric_tokens(tokens: tuple[str, ...], decimal_comma: bool) -> list[float]:
+    """The declared missing tokens that are numbers, as floats."""
+    marks = [t.strip().replace(",", ".") if decimal_comma else t.strip() for t in tokens]
+    return [float(t) for t in marks if _NUMBER.fullmatch(t)]
 
 
 def looks_numeric(values: pd.Series, decimal_comma: bool = False) -> bool:
