@@ -20,12 +20,23 @@ import pandas as pd
 from panelprep import transforms
 from panelprep._groups import group_counts
 from panelprep._version import __version__
-from panelprep.checks import Thresholds
+from panelprep.checks import AuditContext, Thresholds
+from panelprep.clean import (
+    Policies,
+    Removal,
+    balance_removal,
+    duplicate_removal,
+    merge_means,
+    normalise_ids,
+    singleton_removal,
+    window_removal,
+)
 from panelprep.components import METHODS, VarianceComponents
 from panelprep.errors import InputError
 from panelprep.findings import Finding, gate
-from panelprep.index import PanelIndex
+from panelprep.index import PanelIndex, build_index
 from panelprep.io import OutputFolder, ReadOptions, sha256_file, write_table
+from panelprep.lags import Shift, add_shifts
 from panelprep.ledger import Ledger, StepRecord, require_rows
 from panelprep.pipeline import AuditReport, Progress, _silent, audit, load, split_names
 
@@ -50,8 +61,11 @@ class PrepareOptions:
     severities: dict[str, str] = field(default_factory=dict)
     thresholds: Thresholds = field(default_factory=Thresholds)
     twoway_tol: float = 1e-12
+    policies: Policies = field(default_factory=Policies)
+    shifts: list[Shift] = field(default_factory=list)
 
     def validate(self) -> None:
+        self.policies.validate()
         unknown = [t for t in self.transforms if t not in TRANSFORMS]
         if unknown:
             raise InputError(f"--transform {unknown} not among {', '.join(TRANSFORMS)}")
@@ -94,135 +108,222 @@ def prepare_frame(
     read_options: ReadOptions = ReadOptions(),
     progress: Progress = _silent,
 ) -> Preparation:
-    """Audit and transform a panel held in memory; nothing is written.
+    """Clean, audit and transform a panel held in memory; nothing is written.
 
     Returns a ``Preparation`` whose ``tables`` hold ``clean``, each requested
     transform and ``dropped`` (the ledger), and whose ``summary`` is the
     diagnostics document.  When the gate fails, ``tables`` is empty.
     """
     options.validate()
-    ledger = Ledger(rows_read=len(frame))
+    policies = options.policies
+    flow = _Flow(frame, Ledger(rows_read=len(frame)))
+
+    if policies.normalise_ids != "none":
+        flow.frame, changed = normalise_ids(flow.frame, options.entity, policies.normalise_ids)
+        flow.note(f"normalise entity ids ({policies.normalise_ids})", f"{changed:,} ids changed")
+    progress(f"indexing {len(flow.frame):,} rows")
+    flow.index = build_index(flow.frame, options.entity, options.time, options.freq)
+    flow.apply(window_removal(flow.index, policies.window))
+    if policies.duplicates != "fail":
+        ctx = _context(flow, options, read_options)
+        flow.apply(duplicate_removal(flow.frame, flow.index, ctx.repeat, policies.duplicates))
+        if policies.duplicates == "mean":
+            ctx = _context(flow, options, read_options)
+            flow.frame, removal = merge_means(flow.frame, flow.index, ctx.values, options.variables)
+            flow.apply(removal)
+    if options.shifts:
+        flow.frame = add_shifts(flow.frame, flow.index, options.shifts)
+
+    severities = dict(options.severities)
+    if policies.duplicates == "fail":
+        # a preparation never drops repeated rows unless a policy says so
+        severities.setdefault("row-repeated", "error")
     report = audit(
-        frame, options.entity, options.time, options.variables,
+        flow.frame, options.entity, options.time, options.variables,
         freq=options.freq, fail_on=options.fail_on, thresholds=options.thresholds,
-        severities=options.severities, decimal_comma=read_options.decimal_comma,
-        missing_tokens=read_options.missing_tokens, input_info=input_info, progress=progress,
+        severities=severities, decimal_comma=read_options.decimal_comma,
+        missing_tokens=read_options.missing_tokens, input_info=input_info,
+        index=flow.index, progress=progress,
     )
     ctx = report.context
-    index = ctx.index
     summary = report.to_dict()
     if report.verdict == "fail":
+        summary["steps"] = [s.to_dict() for s in flow.ledger.story]
         summary["files"] = []
         summary["cautions"] = [_gate_caution(report)]
-        return Preparation(report, ledger, None, {}, summary)
+        return Preparation(report, flow.ledger, None, {}, summary)
 
     progress("building the estimation sample")
-    _record(ledger, index, ~ctx.keyed, "key-missing", "drop rows without a full key",
-            np.ones(len(frame), bool))
-    _record(ledger, index, ctx.repeat, "exact-repeat", "collapse exact repeated rows", ctx.keyed)
-    _record(ledger, index, ~ctx.complete & ctx.base, "listwise-missing",
-            f"listwise deletion over {', '.join(options.variables)}", ctx.base)
-    sample = ctx.sample
-    require_rows(int(sample.sum()), "listwise deletion")
+    flow.drop(~ctx.keyed, "key-missing", "drop rows without a full key")
+    flow.drop(ctx.repeat, "exact-repeat", "collapse exact repeated rows")
+    flow.drop(~ctx.complete, "listwise-missing",
+              f"listwise deletion over {', '.join(options.variables)}")
+    flow.narrow(balance_removal(flow.index, flow.alive, policies.balance, policies.window))
+    if policies.singletons == "drop":
+        flow.narrow(singleton_removal(flow.index, flow.alive, "twoway" in options.transforms))
     if len(ctx.conflicting_cells):
         raise InputError(
             "conflicting duplicate keys remain but the gate let them through; "
             "choose a duplicates policy or keep key-conflict an error"
         )
-    ledger.verify(int(sample.sum()))
+    sample = flow.alive
+    require_rows(int(sample.sum()), "cleaning")
+    flow.ledger.verify(int(sample.sum()))
 
-    sample_ix = ctx.sample_index
+    sample_ix = flow.index.subset(sample)
     codes = sample_ix.entity_codes
     counts = group_counts(codes, sample_ix.n_entities)
-    values = ctx.sample_values
+    values = np.asfortranarray(ctx.values[sample])
     y, X = values[:, 0], values[:, 1:]
 
     progress(f"variance components ({options.method})")
     components = VarianceComponents(method=options.method).fit(y, X, codes, counts, names=options.x)
-    theta = components.theta_
-
-    keys = frame[[*options.entity, options.time]].iloc[np.flatnonzero(sample)].reset_index(drop=True)
-    tables: dict[str, pd.DataFrame] = {"clean": _with_keys(keys, options.variables, values)}
-    info: dict[str, Any] = {}
-    singleton_rows = counts[codes] == 1
-    n_singletons = int((counts == 1).sum())
-    for name in options.transforms:
-        progress(f"transform {name}")
-        if name == "within":
-            keep = ~singleton_rows
-            block = transforms.within(values, codes, counts)[keep]
-            tables[name] = _with_keys(keys[keep].reset_index(drop=True), options.variables, block)
-            info[name] = {
-                "rows": int(keep.sum()),
-                "entities_absorbed": int(sample_ix.n_entities - n_singletons),
-                "singletons_dropped": n_singletons,
-            }
-        elif name == "between":
-            means = transforms.between(values, codes, counts)
-            table = sample_ix.entity_labels.copy()
-            for j, column in enumerate(options.variables):
-                table[column] = means[:, j]
-            table["n_obs"] = counts
-            tables[name] = table
-            info[name] = {"rows": int(len(table))}
-        elif name == "quasi":
-            block = transforms.quasi(values, codes, counts, theta)
-            table = _with_keys(keys, options.variables, block)
-            table["const"] = 1.0 - theta[codes]
-            table["theta"] = theta[codes]
-            tables[name] = table
-            info[name] = {"rows": int(len(table))}
-        else:
-            keep = ~singleton_rows
-            sub = sample_ix.subset(keep)
-            block, result = transforms.twoway(
-                values[keep], sub.entity_codes, sub.period_codes, sub.n_entities, sub.n_periods,
-                tol=options.twoway_tol,
-            )
-            tables[name] = _with_keys(keys[keep].reset_index(drop=True), options.variables, block)
-            info[name] = {"rows": int(keep.sum()), "singletons_dropped": n_singletons,
-                          **asdict(result)}
+    keys = flow.frame[[*options.entity, options.time]].iloc[np.flatnonzero(sample)]
+    tables, info = _build_tables(keys.reset_index(drop=True), sample_ix, values, counts,
+                                 components.theta_, options, progress)
 
     findings = report.findings + [Finding(**f) for f in components.findings_]
     summary["findings"] = [f.to_dict() for f in findings]
     summary["verdict"] = gate(findings, options.fail_on)
-    summary["sample"] = {
-        "rows": int(sample.sum()),
-        "entities": int(sample_ix.n_entities),
-        "listwise_rows_removed": int((~ctx.complete & ctx.base).sum()),
-        "listwise_entities_removed": int(
-            ((group_counts(index.entity_codes[ctx.base], index.n_entities) > 0)
-             & (group_counts(index.entity_codes[sample], index.n_entities) == 0)).sum()
-        ),
-        "y": options.y,
-        "x": options.x,
-    }
-    summary["steps"] = [s.to_dict() for s in ledger.story]
-    summary["dropped"] = {"rows": ledger.n_dropped, "by_reason": ledger.by_reason()}
+    summary["sample"] = _sample_summary(ctx, sample_ix, options)
+    summary["steps"] = [s.to_dict() for s in flow.ledger.story]
+    summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
     summary["components"] = components.to_dict()
     summary["transforms"] = info
     summary["cautions"] = _cautions(info, components, sample_ix)
-    tables["dropped"] = ledger.to_frame(frame, [*options.entity, options.time])
-    prep = Preparation(report, ledger, components, tables, summary)
+    tables["dropped"] = flow.ledger.to_frame(frame, [*options.entity, options.time])
+    prep = Preparation(report, flow.ledger, components, tables, summary)
     if summary["verdict"] == "fail":
         prep.tables = {}
     return prep
 
 
-def _record(ledger: Ledger, index: PanelIndex, removed: np.ndarray, reason: str, step: str,
-            before: np.ndarray) -> None:
-    """Record a step that removes ``removed`` out of the rows in ``before``."""
-    after = before & ~removed
-    n_entities = index.n_entities
-    codes = index.entity_codes
-    ledger.drop(np.flatnonzero(removed & before), reason, step)
-    ledger.story.append(StepRecord(
-        step=step,
-        rows_before=int(before.sum()),
-        rows_after=int(after.sum()),
-        entities_before=int((group_counts(codes[before & (codes >= 0)], n_entities) > 0).sum()),
-        entities_after=int((group_counts(codes[after & (codes >= 0)], n_entities) > 0).sum()),
-    ))
+def _context(flow: _Flow, options: PrepareOptions, read_options: ReadOptions) -> AuditContext:
+    return AuditContext(flow.frame, flow.index, options.variables,
+                        decimal_comma=read_options.decimal_comma,
+                        missing_tokens=read_options.missing_tokens)
+
+
+def _build_tables(
+    keys: pd.DataFrame, sample_ix: PanelIndex, values: np.ndarray, counts: np.ndarray,
+    theta: np.ndarray, options: PrepareOptions, progress: Progress,
+) -> tuple[dict[str, pd.DataFrame], dict[str, Any]]:
+    """The clean table and each requested transform, with what to report about each."""
+    codes = sample_ix.entity_codes
+    names = options.variables
+    tables: dict[str, pd.DataFrame] = {"clean": _with_keys(keys, names, values)}
+    info: dict[str, Any] = {}
+    multi = counts[codes] > 1
+    n_singletons = int((counts == 1).sum())
+    for name in options.transforms:
+        progress(f"transform {name}")
+        if name == "within":
+            block = transforms.within(values, codes, counts)[multi]
+            tables[name] = _with_keys(keys[multi].reset_index(drop=True), names, block)
+            info[name] = {"rows": int(multi.sum()),
+                          "entities_absorbed": int(sample_ix.n_entities - n_singletons),
+                          "singletons_dropped": n_singletons}
+        elif name == "between":
+            table = sample_ix.entity_labels.copy()
+            means = transforms.between(values, codes, counts)
+            for j, column in enumerate(names):
+                table[column] = means[:, j]
+            table["n_obs"] = counts
+            tables[name] = table
+            info[name] = {"rows": len(table)}
+        elif name == "quasi":
+            table = _with_keys(keys, names, transforms.quasi(values, codes, counts, theta))
+            table["const"] = 1.0 - theta[codes]
+            table["theta"] = theta[codes]
+            tables[name] = table
+            info[name] = {"rows": len(table)}
+        else:
+            sub = sample_ix.subset(multi)
+            block, result = transforms.twoway(
+                values[multi], sub.entity_codes, sub.period_codes, sub.n_entities, sub.n_periods,
+                tol=options.twoway_tol,
+            )
+            tables[name] = _with_keys(keys[multi].reset_index(drop=True), names, block)
+            info[name] = {"rows": int(multi.sum()), "singletons_dropped": n_singletons,
+                          **asdict(result)}
+    return tables, info
+
+
+def _sample_summary(ctx: AuditContext, sample_ix: PanelIndex, options: PrepareOptions) -> dict:
+    codes, n = ctx.index.entity_codes, ctx.index.n_entities
+    before = group_counts(codes[ctx.base], n) > 0
+    after = group_counts(codes[ctx.sample], n) > 0
+    return {
+        "rows": len(sample_ix.entity_codes),
+        "entities": int(sample_ix.n_entities),
+        "listwise_rows_removed": int((~ctx.complete & ctx.base).sum()),
+        "listwise_entities_removed": int((before & ~after).sum()),
+        "y": options.y,
+        "x": options.x,
+    }
+
+
+@dataclass(eq=False)
+class _Flow:
+    """The rows still alive, their input row numbers, and the ledger that records the rest.
+
+    Steps before the audit shrink the frame itself (``apply``); steps after
+    it only narrow ``alive`` over the audited frame (``drop``, ``narrow``),
+    so the audit's arrays stay valid.
+    """
+
+    frame: pd.DataFrame
+    ledger: Ledger
+    index: PanelIndex | None = None
+    origin: np.ndarray = field(init=False)
+    alive: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        self.origin = np.arange(len(self.frame))
+
+    def note(self, step: str, note: str) -> None:
+        """A step that changes values but removes no row."""
+        rows = len(self.frame)
+        self.ledger.story.append(StepRecord(step, rows, rows, 0, 0, note))
+
+    def apply(self, removal: Removal | None) -> None:
+        """Before the audit: remove rows from the frame and the index."""
+        if removal is None:
+            return
+        keep = ~removal.mask
+        self._story(removal.step, np.ones(len(self.frame), dtype=bool), keep)
+        self.ledger.drop(self.origin[removal.mask], removal.reason, removal.step)
+        self.frame = self.frame.iloc[np.flatnonzero(keep)].reset_index(drop=True)
+        self.origin = self.origin[keep]
+        self.index = self.index.subset(keep)
+
+    def narrow(self, removal: Removal | None) -> None:
+        """After the audit: a policy's removal narrows ``alive``."""
+        if removal is not None:
+            self.drop(removal.mask, removal.reason, removal.step)
+
+    def drop(self, removed: np.ndarray, reason: str, step: str) -> None:
+        """Narrow ``alive`` (all rows at first) by ``removed``, recording the rows."""
+        if self.alive is None:
+            self.alive = np.ones(len(self.frame), dtype=bool)
+        gone = removed & self.alive
+        after = self.alive & ~gone
+        self._story(step, self.alive, after)
+        self.ledger.drop(self.origin[gone], reason, step)
+        self.alive = after
+
+    def _entities(self, mask: np.ndarray) -> int:
+        codes = self.index.entity_codes[mask]
+        return int((group_counts(codes[codes >= 0], self.index.n_entities) > 0).sum())
+
+    def _story(self, step: str, before: np.ndarray, after: np.ndarray) -> None:
+        self.ledger.story.append(StepRecord(
+            step=step,
+            rows_before=int(before.sum()),
+            rows_after=int(after.sum()),
+            entities_before=self._entities(before),
+            entities_after=self._entities(after),
+        ))
 
 
 def _with_keys(keys: pd.DataFrame, names: list[str], block: np.ndarray) -> pd.DataFrame:
@@ -336,7 +437,7 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
                                          "theta": (prep.summary.get("components") or {}).get("theta")},
                                         sort_keys=True, allow_nan=False)}
         write_table(table, path, fmt, meta)
-        files.append({"name": path.name, "rows": int(len(table)), "sha256": sha256_file(path)})
+        files.append({"name": path.name, "rows": len(table), "sha256": sha256_file(path)})
     prep.summary["files"] = files
     text = json.dumps(prep.summary, indent=2, ensure_ascii=False, allow_nan=False)
     folder.path("diagnostics.json").write_text(text + "\n", encoding="utf-8")
