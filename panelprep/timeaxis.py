@@ -110,7 +110,7 @@ def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "t
     else:
         blank = np.zeros(len(uniques), dtype=bool)
 
-    kind, uniq_ord, uniq_off, step, base, found_freq = _parse_uniques(
+    _, uniq_ord, uniq_off, step, base, found_freq = _parse_uniques(
         uniques, blank, freq, codes, column
     )
     safe = np.where(codes < 0, 0, codes)
@@ -263,8 +263,6 @@ def _date_grid(stamps: pd.DatetimeIndex, freq: str | None, column: str):
     if freq == "int":
         raise TimeParseError(f"time column {column!r} holds dates, which cannot be read as --freq int")
     days = stamps.values.astype("datetime64[D]").astype(np.int64)
-    if freq is None:
-        freq = _infer_date_freq(days)
     year = stamps.year.to_numpy().astype(np.int64)
     month = stamps.month.to_numpy().astype(np.int64)
     dom = stamps.day.to_numpy().astype(np.int64)
@@ -272,40 +270,48 @@ def _date_grid(stamps: pd.DatetimeIndex, freq: str | None, column: str):
     day_phase = np.where(month_end, 0, dom)  # 0 marks "last day of the month"
     time_of_day = (stamps.values.astype("datetime64[ns]").astype(np.int64)
                    - stamps.normalize().values.astype("datetime64[ns]").astype(np.int64))
+    weekday = (days + _EPOCH_WEEKDAY) % 7
+    # where inside its period each date sits, per frequency: on-grid dates share one phase
+    phases = {
+        "year": month * 100 + day_phase,
+        "quarter": ((month - 1) % 3) * 100 + day_phase,
+        "month": day_phase,
+        "week": weekday,
+        "day": np.zeros(len(days), np.int64),
+    }
+    if freq is None:
+        freq = _infer_date_freq(phases)
     if freq == "year":
         ordinal = year
-        phase = month * 100 + day_phase
     elif freq == "quarter":
         ordinal = year * 4 + (month - 1) // 3
-        phase = ((month - 1) % 3) * 100 + day_phase
     elif freq == "month":
         ordinal = year * 12 + month - 1
-        phase = day_phase
     elif freq == "week":
-        weekday = (days + _EPOCH_WEEKDAY) % 7
-        anchor = _mode(weekday)
-        ordinal = (days + _EPOCH_WEEKDAY - anchor) // 7
-        phase = weekday
+        ordinal = (days + _EPOCH_WEEKDAY - _mode(weekday)) // 7
     else:
         ordinal = days
-        phase = np.zeros(len(days), np.int64)
+    phase = phases[freq]
     off = (phase != _mode(phase)) | (time_of_day != _mode(time_of_day))
     return ordinal.astype(np.int64), off, 1, 0, freq
 
 
-def _infer_date_freq(days: np.ndarray) -> str:
-    spacing = np.diff(np.unique(days))
-    if len(spacing) == 0:
+def _infer_date_freq(phases: dict[str, np.ndarray]) -> str:
+    """The coarsest frequency at which most distinct dates sit at the same phase.
+
+    Month-end dates share phase "last day" at month frequency but spread over
+    three phases at quarter frequency, so they read as monthly; a few
+    mid-month dates among them stay a minority and are reported off the grid
+    instead of turning the grid weekly (as a rule on the spacing between
+    dates would).  More than half of the distinct dates must agree; a single
+    distinct date reads as daily.
+    """
+    if len(phases["day"]) < 2:
         return "day"
-    typical = float(np.median(spacing))
-    if typical >= 300:
-        return "year"
-    if typical >= 80:
-        return "quarter"
-    if typical >= 25:
-        return "month"
-    if typical >= 6:
-        return "week"
+    for freq in ("year", "quarter", "month", "week"):
+        _, counts = np.unique(phases[freq], return_counts=True)
+        if 2 * int(counts.max()) > len(phases[freq]):
+            return freq
     return "day"
 
 
