@@ -288,7 +288,9 @@ def _date_grid(stamps: pd.DatetimeIndex, freq: str | None, column: str):
     elif freq == "month":
         ordinal = year * 12 + month - 1
     elif freq == "week":
-        ordinal = (days + _EPOCH_WEEKDAY - _mode(weekday)) // 7
+        # Monday-based weeks, as for 2021-W07 labels, so a period's label (its Monday)
+        # is a day inside it whatever weekday the panel's dates fall on
+        ordinal = (days + _EPOCH_WEEKDAY) // 7
     else:
         ordinal = days
     phase = phases[freq]
