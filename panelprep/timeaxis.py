@@ -34,6 +34,7 @@ _PATTERNS: dict[str, re.Pattern[str]] = {
 }
 
 _EPOCH_WEEKDAY = 3  # 1970-01-01 was a Thursday (Monday = 0)
+INT_GRID_SHARE = 0.9  # share of rows that must sit on an integer grid of step > 1
 
 
 @dataclass(frozen=True)
@@ -47,7 +48,8 @@ class TimeAxis:
     step : int
         Grid step for ``int`` periods (1 otherwise).
     base : int
-        For ``int`` periods, the value at ordinal 0 (the smallest value seen).
+        For ``int`` periods, the value at ordinal 0 (the smallest value on the
+        grid; an off-grid value below it gets a negative ordinal).
     ordinal : ndarray of int64, shape (n,)
         Period number on the grid for every row; meaningless where ``missing``.
     missing : ndarray of bool, shape (n,)
@@ -151,7 +153,8 @@ def _parse_uniques(uniques, blank, freq, codes, column):
                 f"time column {column!r}: value {uniques[k]!r} at row {_first_row(codes, k)} "
                 "is not a whole-number period"
             )
-        return ("int", *_integer_grid(nums.astype(np.int64), freq, column))
+        rows = np.bincount(codes[codes >= 0], minlength=n)
+        return ("int", *_integer_grid(nums.astype(np.int64), freq, column, rows))
     if pd.api.types.is_datetime64_any_dtype(uniques.dtype):
         stamps = pd.DatetimeIndex(uniques)
         if stamps.tz is not None:
@@ -160,24 +163,44 @@ def _parse_uniques(uniques, blank, freq, codes, column):
     return _parse_strings(uniques, blank, freq, codes, column)
 
 
-def _integer_grid(values: np.ndarray, freq: str | None, column: str):
+def _integer_grid(values: np.ndarray, freq: str | None, column: str, rows: np.ndarray):
+    """Grid of distinct whole numbers ``values`` seen on ``rows`` rows each."""
     if freq not in (None, "int", "year"):
         raise TimeParseError(
             f"time column {column!r} holds whole numbers, which cannot be read as --freq {freq}"
         )
-    base = int(values.min())
-    if freq == "year":
-        step = 1
-    else:
-        spacing = np.diff(np.unique(values))
-        step = int(np.gcd.reduce(spacing)) if len(spacing) else 1
-        step = max(step, 1)
+    step = 1 if freq == "year" else _integer_step(values, rows)
+    residue = values % step
+    on_grid = residue == _mode(residue, rows)
+    base = int(values[on_grid].min())
     offset = values - base
     ordinal = offset // step
     off = offset % step != 0
     if freq == "year" or (freq is None and step == 1 and base >= 1000 and values.max() <= 2999):
         return ordinal + base, off, 1, base, "year"
     return ordinal, off, step, base, "int"
+
+
+def _integer_step(values: np.ndarray, rows: np.ndarray) -> int:
+    """Grid step of integer periods.
+
+    The largest spacing between neighbouring distinct values on whose grid
+    at least ``INT_GRID_SHARE`` of the rows sit, so an odd year in a panel
+    observed every other year is off a grid of step 2 rather than making
+    the step 1; the greatest common divisor of the spacings when no larger
+    step qualifies (every value sits on that grid).
+    """
+    spacing = np.diff(np.unique(values))
+    if len(spacing) == 0:
+        return 1
+    gcd = max(int(np.gcd.reduce(spacing)), 1)
+    sizes, counts = np.unique(spacing[spacing > gcd], return_counts=True)
+    # a few most common spacings are candidates enough; keeps this cheap on odd data
+    for size in np.sort(sizes[np.argsort(-counts, kind="stable")][:8])[::-1]:
+        residue = values % size
+        if rows[residue == _mode(residue, rows)].sum() >= INT_GRID_SHARE * rows.sum():
+            return int(size)
+    return gcd
 
 
 def _parse_strings(uniques, blank, freq, codes, column):
@@ -200,7 +223,8 @@ def _string_grid(kind, text, blank, freq, codes, column):
     if kind == "int":
         nums = np.zeros(n, dtype=np.int64)
         nums[~blank] = text[~blank].str.strip().astype(np.int64).to_numpy()
-        ordinal, off, step, base, found = _integer_grid(nums[~blank], freq, column)
+        rows = np.bincount(codes[codes >= 0], minlength=n)[~blank]
+        ordinal, off, step, base, found = _integer_grid(nums[~blank], freq, column, rows)
         full_ord = np.zeros(n, np.int64)
         full_off = np.zeros(n, bool)
         full_ord[~blank], full_off[~blank] = ordinal, off
@@ -317,7 +341,9 @@ def _infer_date_freq(phases: dict[str, np.ndarray]) -> str:
     return "day"
 
 
-def _mode(values: np.ndarray) -> int:
-    uniq, counts = np.unique(values, return_counts=True)
+def _mode(values: np.ndarray, weights: np.ndarray | None = None) -> int:
+    """Most common value (by ``weights`` when given); the smallest on ties."""
+    uniq, inverse = np.unique(values, return_inverse=True)
+    counts = np.bincount(inverse.reshape(-1), weights=weights, minlength=len(uniq))
     return int(uniq[np.argmax(counts)])
 
