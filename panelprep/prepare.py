@@ -33,6 +33,7 @@ from panelprep.clean import (
 )
 from panelprep.components import METHODS, VarianceComponents
 from panelprep.errors import InputError
+from panelprep.evidence import collect_evidence
 from panelprep.findings import Finding, gate
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import OutputFolder, ReadOptions, sha256_file, write_table
@@ -189,6 +190,8 @@ def prepare_frame(
     summary["steps"] = [s.to_dict() for s in flow.ledger.story]
     summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
     summary["components"] = components.to_dict()
+    progress("evidence on the entity effect")
+    summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x)
     summary["transforms"] = info
     summary["cautions"] = _cautions(info, components, sample_ix)
     tables["dropped"] = flow.ledger.to_frame(frame, [*options.entity, options.time])
