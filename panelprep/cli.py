@@ -104,12 +104,20 @@ def prepare_command(
     entity: EntityOpt,
     time: TimeOpt,
     y: Annotated[str, typer.Option("--y", help="Dependent variable.")],
-    x: Annotated[str, typer.Option("--x", help="Regressors, comma-separated.")],
+    x: Annotated[str, typer.Option("--x", help="Regressors, comma-separated (may name lags, e.g. sales_lag1).")],
     out: Annotated[Path, typer.Option("--out", "-o", help="Output folder.")],
     transform: Annotated[str, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway.")] = "within,between,quasi",
     method: Annotated[str, typer.Option("--method", help="Variance components: swamy-arora, wallace-hussain, amemiya or nerlove.")] = "swamy-arora",
     output_format: Annotated[str, typer.Option("--format", help="Data files as parquet or csv.")] = "parquet",
     force: Annotated[bool, typer.Option("--force", help="Replace a non-empty output folder.")] = False,
+    duplicates: Annotated[str, typer.Option("--duplicates", help="fail, drop-exact, keep-first, keep-last or mean.")] = "fail",
+    normalise_ids: Annotated[str, typer.Option("--normalise-ids", help="none, trim or trim-fold.")] = "none",
+    singletons: Annotated[str, typer.Option("--singletons", help="keep or drop.")] = "keep",
+    balance: Annotated[str, typer.Option("--balance", help="keep, complete-entities or largest-block.")] = "keep",
+    window: Annotated[str | None, typer.Option("--window", help="FIRST:LAST period labels to keep, either may be empty.")] = None,
+    lag: Annotated[str | None, typer.Option("--lag", help="Lags as var:k,... creating var_lagk.")] = None,
+    lead: Annotated[str | None, typer.Option("--lead", help="Leads as var:k,... creating var_leadk.")] = None,
+    diff: Annotated[str | None, typer.Option("--diff", help="Differences as var[:k],... creating var_diffk.")] = None,
     freq: FreqOpt = None,
     fail_on: FailOpt = "error",
     input_format: FormatOpt = None,
@@ -118,28 +126,52 @@ def prepare_command(
     missing_token: TokenOpt = None,
     quiet: QuietOpt = False,
 ) -> None:
-    """Audit, then write estimation-ready files with provenance into --out."""
-    from panelprep.prepare import prepare
+    """Clean, audit, then write estimation-ready files with provenance into --out."""
+    from panelprep.clean import Policies
+    from panelprep.lags import parse_shifts
+    from panelprep.prepare import PrepareOptions, run_preparation
 
     try:
         if fail_on not in ("error", "warning"):
             raise InputError(f"--fail-on {fail_on!r} must be error or warning")
-        result = prepare(
-            data, out, entity, time, y, x, transforms=transform, method=method,
-            output_format=output_format, force=force, freq=freq, fail_on=fail_on,
+        options = PrepareOptions(
+            entity=pipeline.split_names(entity) or [], time=time, y=y,
+            x=pipeline.split_names(x) or [], freq=freq,
+            transforms=pipeline.split_names(transform) or [], method=method,
+            output_format=output_format, fail_on=fail_on,
+            policies=Policies(duplicates=duplicates, normalise_ids=normalise_ids,
+                              singletons=singletons, balance=balance, window=_window(window)),
+            shifts=[*parse_shifts("lag", lag), *parse_shifts("lead", lead),
+                    *parse_shifts("diff", diff)],
+        )
+        result = run_preparation(
+            data, out, options,
             read_options=_read_options(input_format, delimiter, decimal_comma, missing_token),
-            progress=pipeline.stderr_progress(quiet),
+            force=force, progress=pipeline.stderr_progress(quiet),
         )
     except InputError as err:
         _unusable(str(err))
-    summary = result.summary
+    _print_preparation(result.summary, out)
+    raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
+
+
+def _window(text: str | None) -> tuple[str | None, str | None]:
+    if not text:
+        return (None, None)
+    first, sep, last = text.partition(":")
+    if not sep:
+        raise InputError(f"--window {text!r} must be FIRST:LAST (either may be empty)")
+    return (first.strip() or None, last.strip() or None)
+
+
+def _print_preparation(summary: dict, out: Path) -> None:
     typer.echo("\n".join(audit_lines(summary)))
     if summary.get("components"):
         typer.echo("")
         typer.echo("\n".join(components_lines(summary["components"])))
     typer.echo("")
-    typer.echo(f"written to {out}: " + ", ".join(f["name"] for f in summary["files"]))
-    raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
+    names = ", ".join(f["name"] for f in summary.get("files", [])) or "diagnostics only"
+    typer.echo(f"written to {out}: {names}, diagnostics.json, diagnostics.txt")
 
 
 @app.command("components")

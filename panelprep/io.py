@@ -64,6 +64,9 @@ class ReadOptions:
     entity_as_text: bool = True
 
 
+DEFAULT_READ = ReadOptions()
+
+
 def detect_format(path: Path, given: str | None = None) -> str:
     """The input format: ``given`` if set, else by the file's extension."""
     if given is not None:
@@ -122,7 +125,7 @@ def _csv_header(path: Path, delimiter: str | None) -> tuple[list[str], str]:
     return [n.strip() for n in names], delimiter
 
 
-def column_names(path: Path, options: ReadOptions = ReadOptions()) -> list[str]:
+def column_names(path: Path, options: ReadOptions = DEFAULT_READ) -> list[str]:
     """Column names of a file without reading its data."""
     check_readable(path)
     fmt = detect_format(path, options.input_format)
@@ -148,7 +151,7 @@ def read_frame(
     columns: list[str] | None,
     entity: list[str],
     time: str | None = None,
-    options: ReadOptions = ReadOptions(),
+    options: ReadOptions = DEFAULT_READ,
 ) -> pd.DataFrame:
     """Read ``columns`` (all when None) of a data file into a DataFrame.
 

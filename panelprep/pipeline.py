@@ -23,7 +23,7 @@ from panelprep.checks.shape import gap_table
 from panelprep.errors import ColumnError, InputError
 from panelprep.findings import Finding, apply_severities, gate
 from panelprep.index import PanelIndex, build_index
-from panelprep.io import ReadOptions, column_names, read_frame, sha256_file
+from panelprep.io import DEFAULT_READ, ReadOptions, column_names, read_frame, sha256_file
 
 Progress = Callable[[str], None]
 
@@ -197,7 +197,7 @@ def load(
     entity: Sequence[str],
     time: str,
     vars: Sequence[str] | None,
-    options: ReadOptions = ReadOptions(),
+    options: ReadOptions = DEFAULT_READ,
     extra: Sequence[str] = (),
 ) -> tuple[pd.DataFrame, dict[str, Any]]:
     """Read the columns a run needs and describe the input for provenance."""
@@ -218,7 +218,7 @@ def audit_file(
     entity: str | Sequence[str],
     time: str,
     vars: str | Sequence[str] | None = None,
-    options: ReadOptions = ReadOptions(),
+    options: ReadOptions = DEFAULT_READ,
     progress: Progress = _silent,
     **audit_options: Any,
 ) -> AuditReport:

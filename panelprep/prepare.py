@@ -36,7 +36,7 @@ from panelprep.errors import InputError
 from panelprep.evidence import collect_evidence
 from panelprep.findings import Finding, gate
 from panelprep.index import PanelIndex, build_index
-from panelprep.io import OutputFolder, ReadOptions, sha256_file, write_table
+from panelprep.io import DEFAULT_READ, OutputFolder, ReadOptions, sha256_file, write_table
 from panelprep.lags import Shift, add_shifts
 from panelprep.ledger import Ledger, StepRecord, require_rows
 from panelprep.pipeline import AuditReport, Progress, _silent, audit, load, split_names
@@ -83,6 +83,13 @@ class PrepareOptions:
     def variables(self) -> list[str]:
         return [self.y, *self.x]
 
+    @property
+    def columns_to_read(self) -> list[str]:
+        """Model variables that come from the file, and the sources of lags and differences."""
+        made = {shift.name for shift in self.shifts}
+        sources = [shift.variable for shift in self.shifts]
+        return list(dict.fromkeys([*(v for v in self.variables if v not in made), *sources]))
+
 
 @dataclass(eq=False)
 class Preparation:
@@ -96,7 +103,8 @@ class Preparation:
 
     @property
     def verdict(self) -> str:
-        return self.audit.verdict
+        """The gate over the audit's findings and those of the components."""
+        return self.summary["verdict"]
 
     def to_dict(self) -> dict[str, Any]:
         return self.summary
@@ -106,7 +114,7 @@ def prepare_frame(
     frame: pd.DataFrame,
     options: PrepareOptions,
     input_info: dict[str, Any] | None = None,
-    read_options: ReadOptions = ReadOptions(),
+    read_options: ReadOptions = DEFAULT_READ,
     progress: Progress = _silent,
 ) -> Preparation:
     """Clean, audit and transform a panel held in memory; nothing is written.
@@ -385,29 +393,45 @@ def prepare(
     method: str = "swamy-arora",
     output_format: str = "parquet",
     force: bool = False,
-    freq: str | None = None,
-    fail_on: str = "error",
-    read_options: ReadOptions = ReadOptions(),
+    read_options: ReadOptions = DEFAULT_READ,
     progress: Progress = _silent,
-    **extra: Any,
+    **options: Any,
 ) -> Preparation:
     """Read ``data``, prepare it, and write every output into ``out``.
 
+    Keyword ``options`` are the remaining fields of ``PrepareOptions``
+    (``freq``, ``fail_on``, ``policies``, ``shifts``, ``severities``, ...).
     Returns the ``Preparation``; ``verdict == "fail"`` means the gate failed
     and only the diagnostics were written.
+
+    Examples
+    --------
+    >>> from panelprep.prepare import prepare
+    >>> prep = prepare("firms.csv", "out", entity="firm_id", time="year",
+    ...                y="sales", x="capital,staff")            # doctest: +SKIP
+    >>> prep.summary["components"]["theta"]                     # doctest: +SKIP
     """
-    options = PrepareOptions(
+    settings = PrepareOptions(
         entity=split_names(entity) or [], time=time, y=y, x=split_names(x) or [],
-        freq=freq, transforms=split_names(transforms) or [], method=method,
-        output_format=output_format, fail_on=fail_on, **extra,
+        transforms=split_names(transforms) or [], method=method,
+        output_format=output_format, **options,
     )
+    return run_preparation(data, out, settings, read_options, force, progress)
+
+
+def run_preparation(
+    data: str | Path, out: str | Path, options: PrepareOptions,
+    read_options: ReadOptions = DEFAULT_READ, force: bool = False, progress: Progress = _silent,
+) -> Preparation:
+    """Read, prepare and write into a folder that appears complete or not at all."""
     options.validate()
     folder = OutputFolder(Path(out), [Path(data)], force=force)
     try:
         progress(f"reading {data}")
-        frame, info = load(data, options.entity, time, options.variables, read_options)
+        frame, info = load(data, options.entity, options.time, options.columns_to_read,
+                           read_options)
         prep = prepare_frame(frame, options, info, read_options, progress)
-        write_outputs(prep, folder, options, read_options, progress)
+        write_outputs(prep, folder, options, progress)
         folder.commit()
     except BaseException:
         folder.abandon()
@@ -416,7 +440,7 @@ def prepare(
 
 
 def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptions,
-                  read_options: ReadOptions, progress: Progress = _silent) -> None:
+                  progress: Progress = _silent) -> None:
     """Data files, then diagnostics.json and diagnostics.txt, into the temporary folder."""
     from panelprep.report.text import preparation_lines
 
@@ -451,13 +475,13 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
 def estimate_file_components(
     data: str | Path, entity: str | Sequence[str], time: str, y: str, x: str | Sequence[str],
     method: str = "swamy-arora", freq: str | None = None,
-    read_options: ReadOptions = ReadOptions(), progress: Progress = _silent,
+    read_options: ReadOptions = DEFAULT_READ, progress: Progress = _silent,
 ) -> dict[str, Any]:
     """Variance components of a file's estimation sample, as a dict."""
     options = PrepareOptions(entity=split_names(entity) or [], time=time, y=y,
                              x=split_names(x) or [], freq=freq, method=method, transforms=[])
     options.validate()
-    frame, info = load(data, options.entity, time, options.variables, read_options)
+    frame, info = load(data, options.entity, time, options.columns_to_read, read_options)
     prep = prepare_frame(frame, options, info, read_options, progress)
     if prep.components is None:
         raise InputError(f"{data}: the audit gate failed, so no components were estimated "
