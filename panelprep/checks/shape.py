@@ -104,7 +104,9 @@ def balance(ctx: AuditContext, self: Check):
     ix = ctx.sample_index
     per_entity = ctx.periods_per_entity
     if ix.n_entities == 0:
-        return self.finding(0, "the estimation sample is empty: no entity to describe")
+        # nothing is left to estimate on: a gate must not pass this as a clean panel
+        return self.finding(0, "the estimation sample is empty: no entity to describe",
+                            severity="error")
     is_balanced = bool((per_entity == ix.n_periods).all())
     values, counts = np.unique(per_entity, return_counts=True)
     first, last = ix.period_labels([0, ix.n_periods - 1])
