@@ -201,10 +201,17 @@ def components_command(
         )
     except InputError as err:
         _unusable(str(err))
+    if found.components is None:
+        failing = ", ".join(dict.fromkeys(f["id"] for f in found.summary["findings"]
+                                          if f["severity"] == "error"))
+        typer.echo(f"panelprep: the audit gate failed ({failing}); no components estimated "
+                   "(panelprep audit shows why)", err=True)
+        raise typer.Exit(EXIT_FAIL)
+    components = found.summary["components"]
     if as_json:
-        typer.echo(json.dumps(found, indent=2, allow_nan=False))
+        typer.echo(json.dumps(components, indent=2, allow_nan=False))
     else:
-        typer.echo("\n".join(components_lines(found)))
+        typer.echo("\n".join(components_lines(components)))
 
 
 def _write_json(path: Path, document: dict, source: Path) -> None:

@@ -476,14 +476,13 @@ def estimate_file_components(
     data: str | Path, entity: str | Sequence[str], time: str, y: str, x: str | Sequence[str],
     method: str = "swamy-arora", freq: str | None = None,
     read_options: ReadOptions = DEFAULT_READ, progress: Progress = _silent,
-) -> dict[str, Any]:
-    """Variance components of a file's estimation sample, as a dict."""
+) -> Preparation:
+    """Audit a file and estimate the variance components of its estimation sample.
+
+    Nothing is written; ``components`` is None when the gate failed.
+    """
     options = PrepareOptions(entity=split_names(entity) or [], time=time, y=y,
                              x=split_names(x) or [], freq=freq, method=method, transforms=[])
     options.validate()
     frame, info = load(data, options.entity, time, options.columns_to_read, read_options)
-    prep = prepare_frame(frame, options, info, read_options, progress)
-    if prep.components is None:
-        raise InputError(f"{data}: the audit gate failed, so no components were estimated "
-                         "(run panelprep audit to see why)")
-    return prep.components.to_dict()
+    return prepare_frame(frame, options, info, read_options, progress)
