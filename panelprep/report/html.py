@@ -1,0 +1,714 @@
+"""The HTML report: one self-contained page a person opens in a browser.
+
+Everything the page needs is inside it: the style sheet, and the pictures as
+inline SVG drawn with matplotlib (the presence map's cells are a PNG inside
+the SVG as a data URI).  The page references nothing on the network, and the
+same input gives byte-identical output.  Every text that comes from the data
+or the user (ids, column names, paths, messages) goes through
+``html.escape``.
+
+Sections carry stable ids: ``story``, ``findings``, ``panel``, ``variation``,
+``components``, ``evidence``, ``cautions`` and ``files``; the pictures are
+``picture-presence``, ``picture-obs``, ``picture-share`` and
+``picture-theta``.  An audit has no ``story``, ``components``, ``evidence``,
+``picture-theta``, and has ``cautions``/``files`` only when its summary does.
+"""
+
+from __future__ import annotations
+
+import html
+import io
+import math
+import os
+import re
+from pathlib import Path
+from typing import Any
+
+from panelprep.findings import SEVERITIES
+
+# Our palette: paper background, ink text, a deep teal for what is there and
+# copper for its counterpart (between variation), plus one hue per severity.
+PAPER = "#faf8f3"
+INK = "#1c2330"
+MUTED = "#5b6472"
+RULE = "#e2ddd2"
+TEAL = "#1f6f6b"
+COPPER = "#c2703d"
+ABSENT = "#ece6d9"
+SEVERITY_COLOURS = {"error": "#a8322d", "warning": "#a86a12", "info": "#3f6396"}
+
+AUDIT_SECTIONS = ("findings", "panel", "variation")
+PREPARATION_SECTIONS = ("story", "findings", "panel", "variation", "components", "evidence",
+                        "cautions", "files")
+
+_TESTS = (("breusch_pagan", "Breusch-Pagan LM"), ("honda", "Honda"), ("mundlak", "Mundlak"),
+          ("hausman", "Hausman"))
+
+_CSS = f"""
+:root {{
+  --paper: {PAPER}; --ink: {INK}; --muted: {MUTED}; --rule: {RULE}; --teal: {TEAL};
+  --copper: {COPPER}; --error: {SEVERITY_COLOURS["error"]};
+  --warning: {SEVERITY_COLOURS["warning"]};
+  --info: {SEVERITY_COLOURS["info"]}; --pass: #2f7d4f; --card: #ffffff;
+}}
+* {{ box-sizing: border-box; }}
+html {{ background: var(--paper); }}
+body {{
+  margin: 0; color: var(--ink); font: 15px/1.55 system-ui, -apple-system, "Segoe UI", Roboto,
+  "Helvetica Neue", Arial, sans-serif; -webkit-font-smoothing: antialiased;
+}}
+code, .mono, td.num {{ font-family: ui-monospace, "SFMono-Regular", Menlo, Consolas,
+  "Liberation Mono", monospace; font-size: 0.88em; }}
+td.num {{ text-align: right; white-space: nowrap; font-variant-numeric: tabular-nums; }}
+header.top {{
+  background: var(--ink); color: #f4f1ea; padding: 28px 0 22px;
+  border-bottom: 5px solid var(--teal);
+}}
+.wrap {{ max-width: 1120px; margin: 0 auto; padding: 0 28px; }}
+.brand {{ letter-spacing: .14em; text-transform: uppercase; font-size: 12px; color: #b9c3cf; }}
+h1 {{ margin: 4px 0 14px; font-size: 28px; font-weight: 650; letter-spacing: -.01em; }}
+.verdict {{
+  display: inline-block; padding: 3px 14px; border-radius: 999px; font-weight: 700;
+  letter-spacing: .08em; font-size: 14px; vertical-align: middle; margin-left: 12px;
+}}
+.verdict.pass {{ background: var(--pass); color: #fff; }}
+.verdict.fail {{ background: var(--error); color: #fff; }}
+dl.meta {{ display: grid; grid-template-columns: max-content 1fr; gap: 4px 18px; margin: 0;
+  font-size: 14px; }}
+dl.meta dt {{ color: #9fabb9; }}
+dl.meta dd {{ margin: 0; overflow-wrap: anywhere; }}
+nav.toc {{ position: sticky; top: 0; z-index: 2; background: rgba(250, 248, 243, .96);
+  border-bottom: 1px solid var(--rule); backdrop-filter: blur(4px); }}
+nav.toc .wrap {{ display: flex; flex-wrap: wrap; gap: 4px 20px; padding-top: 9px;
+  padding-bottom: 9px; font-size: 13.5px; }}
+nav.toc a {{ color: var(--teal); text-decoration: none; font-weight: 560; }}
+nav.toc a:hover {{ text-decoration: underline; }}
+main {{ padding: 10px 0 50px; }}
+section {{ background: var(--card); border: 1px solid var(--rule); border-radius: 10px;
+  padding: 20px 26px 22px; margin: 22px 0; }}
+h2 {{ font-size: 19px; margin: 0 0 4px; font-weight: 650; }}
+h2 + p.lead {{ margin-top: 0; }}
+h3 {{ font-size: 15px; margin: 20px 0 6px; }}
+p.lead, .note {{ color: var(--muted); }}
+.note {{ font-size: 13.5px; }}
+table {{ border-collapse: collapse; width: 100%; margin: 10px 0 4px; font-size: 14px; }}
+th {{ text-align: left; font-weight: 600; color: var(--muted); font-size: 12.5px;
+  text-transform: uppercase; letter-spacing: .04em; border-bottom: 2px solid var(--rule);
+  padding: 6px 10px; }}
+th.num {{ text-align: right; }}
+td {{ padding: 6px 10px; border-bottom: 1px solid var(--rule); vertical-align: top; }}
+tr:last-child td, tr:last-child th {{ border-bottom: none; }}
+table.kv th {{ width: 38%; text-transform: none; letter-spacing: 0; font-size: 14px;
+  color: var(--ink); font-weight: 500; border-bottom: 1px solid var(--rule); }}
+.scroll {{ overflow-x: auto; }}
+.badge {{ display: inline-block; min-width: 74px; text-align: center; padding: 2px 8px;
+  border-radius: 4px; font-size: 11.5px; font-weight: 700; letter-spacing: .07em;
+  text-transform: uppercase; color: #fff; }}
+.badge.error {{ background: var(--error); }}
+.badge.warning {{ background: var(--warning); }}
+.badge.info {{ background: var(--info); }}
+.counts {{ display: flex; flex-wrap: wrap; gap: 10px; margin: 8px 0 4px; }}
+.count {{ border: 1px solid var(--rule); border-radius: 8px; padding: 6px 14px;
+  font-size: 13.5px; }}
+.count b {{ font-size: 18px; margin-right: 6px; }}
+.count.error b {{ color: var(--error); }}
+.count.warning b {{ color: var(--warning); }}
+.count.info b {{ color: var(--info); }}
+details summary {{ cursor: pointer; color: var(--teal); font-size: 13px; }}
+details ul {{ margin: 4px 0 0; padding-left: 18px; font-size: 13px; color: var(--muted); }}
+.flow {{ display: flex; flex-wrap: wrap; align-items: stretch; gap: 12px; margin: 10px 0 6px; }}
+.stat {{ flex: 1 1 180px; border-left: 4px solid var(--teal); background: #f3f7f6;
+  padding: 8px 14px; border-radius: 0 8px 8px 0; }}
+.stat.before {{ border-left-color: var(--copper); background: #fbf4ee; }}
+.stat .big {{ font-size: 22px; font-weight: 650; display: block; }}
+.stat .small {{ color: var(--muted); font-size: 13px; }}
+.arrow {{ align-self: center; font-size: 24px; color: var(--muted); }}
+.minus {{ color: var(--error); }}
+.caution {{ border-left: 4px solid var(--warning); background: #fdf6ea; padding: 10px 16px;
+  border-radius: 0 8px 8px 0; margin: 14px 0 4px; }}
+ul.cautions {{ padding-left: 20px; margin: 8px 0 0; }}
+ul.cautions li {{ margin: 6px 0; }}
+ol.reading {{ padding-left: 22px; }}
+ol.reading li {{ margin: 6px 0; }}
+figure {{ margin: 18px 0 6px; }}
+figure .plot svg {{ max-width: 100%; height: auto; display: block; }}
+figure .plot {{ max-width: 980px; }}
+figcaption {{ color: var(--muted); font-size: 13.5px; margin-top: 6px; }}
+figcaption b {{ color: var(--ink); }}
+.patterns {{ font-family: ui-monospace, Menlo, Consolas, monospace; font-size: 13px; }}
+.nowrap {{ white-space: nowrap; }}
+.empty {{ color: var(--muted); font-style: italic; }}
+footer {{ color: var(--muted); font-size: 12.5px; padding: 0 0 40px; }}
+@media print {{ nav.toc {{ display: none; }} section {{ break-inside: avoid; }} }}
+"""
+
+
+def _e(value: Any) -> str:
+    """Escaped text of any value; None is shown as a dash."""
+    return "–" if value is None else html.escape(str(value), quote=True)
+
+
+def _num(value: Any, digits: int = 4) -> str:
+    """A number for a person: thousands separators, at most ``digits`` decimals."""
+    if value is None:
+        return "–"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, int):
+        return f"{value:,}"
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            return _e(value)
+        if value != 0 and (abs(value) >= 1e9 or abs(value) < 1e-3):
+            return f"{value:.{digits}g}"
+        return f"{value:,.{digits}f}".rstrip("0").rstrip(".")
+    return _e(value)
+
+
+def _pct(share: float | None) -> str:
+    return "–" if share is None else f"{100 * share:.1f}%"
+
+
+def _table(header: list[str], rows: list[list[str]], numeric: set[int] = frozenset(),
+           cls: str = "") -> str:
+    """A table from already escaped cells; columns in ``numeric`` align right."""
+    head = "".join(f'<th class="num">{h}</th>' if i in numeric else f"<th>{h}</th>"
+                   for i, h in enumerate(header))
+    body = "".join(
+        "<tr>" + "".join(f'<td class="num">{c}</td>' if i in numeric else f"<td>{c}</td>"
+                         for i, c in enumerate(row)) + "</tr>"
+        for row in rows
+    )
+    return (f'<div class="scroll"><table class="{cls}"><thead><tr>{head}</tr></thead>'
+            f"<tbody>{body}</tbody></table></div>")
+
+
+def _kv(rows: list[tuple[str, str]]) -> str:
+    body = "".join(f"<tr><th>{k}</th><td>{v}</td></tr>" for k, v in rows)
+    return f'<div class="scroll"><table class="kv"><tbody>{body}</tbody></table></div>'
+
+
+def _section(sid: str, title: str, body: str, lead: str = "") -> str:
+    lead_html = f'<p class="lead">{lead}</p>' if lead else ""
+    return f'<section id="{sid}"><h2>{title}</h2>{lead_html}{body}</section>'
+
+
+def _figure(fid: str, svg: str, caption: str) -> str:
+    return (f'<figure id="{fid}"><div class="plot">{svg}</div>'
+            f"<figcaption>{caption}</figcaption></figure>")
+
+
+def _is_preparation(summary: dict[str, Any]) -> bool:
+    return "steps" in summary
+
+
+# ---------------------------------------------------------------- pictures
+
+
+def _plot_rc(salt: str) -> dict[str, Any]:
+    return {
+        "svg.hashsalt": f"panelprep-{salt}",
+        "svg.fonttype": "path",
+        "font.family": "DejaVu Sans",
+        "font.size": 9,
+        "axes.edgecolor": MUTED,
+        "axes.labelcolor": INK,
+        "axes.titlesize": 10,
+        "axes.spines.top": False,
+        "axes.spines.right": False,
+        "xtick.color": MUTED,
+        "ytick.color": MUTED,
+        "figure.facecolor": "white",
+        "axes.facecolor": "white",
+        "hatch.color": "#b9b2a4",
+    }
+
+
+def _svg(draw, salt: str, width: float, height: float, title: str) -> str:
+    """Draw on a fresh figure and return its SVG, made safe to inline.
+
+    Element ids get a per-picture prefix so several SVGs share one page
+    without clashing, and the RDF metadata block (which names web
+    addresses) is left out.
+    """
+    import matplotlib
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    with matplotlib.rc_context(_plot_rc(salt)):
+        fig = Figure(figsize=(width, height), layout="constrained")
+        FigureCanvasAgg(fig)
+        draw(fig)
+        buffer = io.StringIO()
+        fig.savefig(buffer, format="svg", metadata={"Date": None})
+    text = buffer.getvalue()
+    text = text[text.index("<svg"):]
+    text = re.sub(r"\s*<metadata>.*?</metadata>", "", text, flags=re.DOTALL)
+    text = re.sub(r' id="([^"]+)"', rf' id="{salt}-\1"', text)
+    text = re.sub(r"url\(#([^)]+)\)", rf"url(#{salt}-\1)", text)
+    text = re.sub(r'xlink:href="#([^"]+)"', rf'xlink:href="#{salt}-\1"', text)
+    return text.replace("<svg ", f'<svg role="img" aria-labelledby="{salt}-title" ', 1).replace(
+        ">", f'><title id="{salt}-title">{_e(title)}</title>', 1)
+
+
+def _period_ticks(labels: list[str], most: int = 14) -> list[int]:
+    if not labels:
+        return []
+    step = max(1, math.ceil(len(labels) / most))
+    return list(range(0, len(labels), step))
+
+
+def _presence_svg(presence: dict[str, Any]) -> str:
+    import numpy as np
+    from matplotlib.colors import ListedColormap
+
+    matrix = np.asarray(presence["matrix"], dtype=float).reshape(
+        len(presence["entities"]), len(presence["periods"]))
+    rows, columns = matrix.shape
+    height = min(7.5, max(1.8, 0.9 + 0.035 * rows + (0.16 * rows if rows <= 40 else 0)))
+
+    def draw(fig):
+        ax = fig.add_subplot()
+        if rows == 0 or columns == 0:
+            ax.text(0.5, 0.5, "no rows in the sample", ha="center", va="center", color=MUTED)
+            ax.set_axis_off()
+            return
+        ax.imshow(matrix, aspect="auto", interpolation="none", vmin=0, vmax=1,
+                  cmap=ListedColormap([ABSENT, TEAL]))
+        ticks = _period_ticks(presence["periods"])
+        ax.set_xticks(ticks, [presence["periods"][i] for i in ticks],
+                      rotation=45 if columns > 8 else 0, ha="right" if columns > 8 else "center")
+        if rows <= 40:
+            ax.set_yticks(range(rows), presence["entities"], fontsize=8)
+        else:
+            ax.set_yticks([])
+            ax.set_ylabel(f"{rows:,} entities, key order top to bottom")
+        ax.set_xlabel("period")
+        ax.tick_params(length=0)
+        for spine in ax.spines.values():
+            spine.set_visible(False)
+
+    return _svg(draw, "presence", 9.6, height, "Presence map of entities by period")
+
+
+def _weighted_hist(ax, values: list[float], weights: list[int], discrete: bool,
+                   colour: str, span: tuple[float, float] | None = None) -> None:
+    """Histogram of distinct values with their entity counts as weights.
+
+    Integer counts get one bar per value while the range is at most 60
+    values wide, else 40 bins; continuous values get 40 bins over ``span``.
+    """
+    bins: Any = 40
+    if discrete:
+        low, high = int(min(values)), int(max(values))
+        if high - low <= 60:
+            bins = [b - 0.5 for b in range(low, high + 2)]
+    ax.hist(values, bins=bins, weights=weights, range=None if discrete else span,
+            histtype="bar", rwidth=0.86, color=colour)
+
+
+def _obs_svg(obs: dict[str, Any]) -> str:
+    rows = obs["rows"]
+
+    def draw(fig):
+        ax = fig.add_subplot()
+        if not rows["values"]:
+            ax.text(0.5, 0.5, "no rows in the sample", ha="center", va="center", color=MUTED)
+            ax.set_axis_off()
+            return
+        _weighted_hist(ax, rows["values"], rows["entities"], True, TEAL)
+        ax.set_xlabel("rows per entity")
+        ax.set_ylabel("entities")
+        ax.yaxis.get_major_locator().set_params(integer=True)
+        ax.xaxis.get_major_locator().set_params(integer=True)
+        ax.grid(axis="y", color=RULE, linewidth=0.6)
+        ax.set_axisbelow(True)
+
+    return _svg(draw, "obs", 6.4, 2.8, "Distribution of rows per entity")
+
+
+def _share_svg(share: dict[str, Any]) -> str:
+    names = list(share["variables"])
+    height = max(1.5, 0.75 + 0.36 * len(names))
+
+    def draw(fig):
+        ax = fig.add_subplot()
+        if not names:
+            ax.text(0.5, 0.5, "no numeric variables", ha="center", va="center", color=MUTED)
+            ax.set_axis_off()
+            return
+        ys = list(range(len(names)))
+        for y, name in zip(ys, names):
+            within = share["variables"][name]["within"]
+            if within is None:
+                ax.barh(y, 1.0, color="white", edgecolor="#b9b2a4", hatch="///", height=0.62)
+                ax.text(0.5, y, "undefined (no spread, or too few rows or entities)",
+                        ha="center", va="center", color=MUTED, fontsize=8)
+                continue
+            ax.barh(y, within, color=TEAL, height=0.62)
+            ax.barh(y, 1.0 - within, left=within, color=COPPER, height=0.62)
+            if within >= 0.05:
+                ax.text(within / 2, y, f"{100 * within:.0f}%", ha="center", va="center",
+                        color="white", fontsize=8, fontweight="bold")
+            if within <= 0.95:
+                ax.text((1 + within) / 2, y, f"{100 * (1 - within):.0f}%", ha="center",
+                        va="center", color="white", fontsize=8, fontweight="bold")
+        ax.set_yticks(ys, names)
+        ax.invert_yaxis()
+        ax.set_xlim(0, 1)
+        ax.set_xticks([0, 0.25, 0.5, 0.75, 1.0], ["0%", "25%", "50%", "75%", "100%"])
+        ax.tick_params(axis="y", length=0)
+        ax.spines["left"].set_visible(False)
+        from matplotlib.patches import Patch
+
+        ax.legend(handles=[Patch(color=TEAL, label="within entities"),
+                           Patch(color=COPPER, label="between entities")],
+                  loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=2, frameon=False)
+
+    return _svg(draw, "share", 8.0, height, "Within and between share of variance")
+
+
+def _theta_svg(theta: dict[str, Any]) -> str:
+    def draw(fig):
+        ax = fig.add_subplot()
+        _weighted_hist(ax, theta["values"], theta["entities"], False, TEAL, span=(0.0, 1.0))
+        if theta.get("median") is not None:
+            ax.axvline(theta["median"], color=COPPER, linewidth=1.4)
+            ax.text(theta["median"], 1.0, f" median {theta['median']:.3f}", color=COPPER,
+                    transform=ax.get_xaxis_transform(), va="top", ha="left", fontsize=8)
+        ax.set_xlim(0, 1)
+        ax.set_xlabel("theta_i (0: pooled data, 1: within transform)")
+        ax.set_ylabel("entities")
+        ax.yaxis.get_major_locator().set_params(integer=True)
+        ax.grid(axis="y", color=RULE, linewidth=0.6)
+        ax.set_axisbelow(True)
+
+    return _svg(draw, "theta", 6.4, 2.8, "Distribution of theta_i")
+
+
+# ---------------------------------------------------------------- sections
+
+
+def _header(summary: dict[str, Any]) -> str:
+    keys, source = summary.get("keys", {}), summary.get("input", {})
+    verdict = str(summary.get("verdict", "")).lower()
+    kind = "Preparation report" if _is_preparation(summary) else "Audit report"
+    freq = keys.get("freq")
+    if freq is not None:
+        freq = f"{freq} ({'inferred' if keys.get('freq_inferred') else 'given'})"
+    rows = [
+        ("input", _e(source.get("path") or "(data frame in memory)")),
+        ("rows read", _num(source.get("rows"))),
+        ("sha256", f'<code>{_e(source.get("sha256"))}</code>'),
+        ("key", _e(" + ".join(keys.get("entity", []))) + " over " + _e(keys.get("time"))),
+        ("frequency", _e(freq)),
+        ("gate", f"fails on {_e(summary.get('fail_on'))} and above"),
+    ]
+    tool = summary.get("tool", {})
+    meta = "".join(f"<dt>{k}</dt><dd>{v}</dd>" for k, v in rows)
+    return (
+        '<header class="top"><div class="wrap">'
+        f'<div class="brand">{_e(tool.get("name", "panelprep"))} '
+        f'{_e(tool.get("version", ""))}</div>'
+        f'<h1>{kind}<span class="verdict {_e(verdict)}">{_e(verdict.upper())}</span></h1>'
+        f'<dl class="meta">{meta}</dl></div></header>'
+    )
+
+
+def _story(summary: dict[str, Any]) -> str:
+    steps = summary.get("steps") or []
+    source, sample = summary.get("input", {}), summary.get("sample")
+    first = steps[0] if steps else None
+    read_rows = first["rows_before"] if first else source.get("rows")
+    flow = (f'<div class="flow"><div class="stat before"><span class="big">{_num(read_rows)}</span>'
+            '<span class="small">rows read</span></div>')
+    if sample:
+        flow += (f'<div class="arrow">→</div><div class="stat"><span class="big">'
+                 f'{_num(sample.get("rows"))}</span><span class="small">rows and '
+                 f'{_num(sample.get("entities"))} entities in the estimation sample</span></div>')
+    flow += "</div>"
+    if sample:
+        flow += (f'<p class="note">Dependent variable <code>{_e(sample.get("y"))}</code>; '
+                 "regressors " + ", ".join(f"<code>{_e(x)}</code>" for x in sample.get("x", []))
+                 + ".</p>")
+    if steps:
+        rows = []
+        for s in steps:
+            change = s["rows_after"] - s["rows_before"]
+            rows.append([
+                _e(s["step"]), _num(s["rows_before"]), _num(s["rows_after"]),
+                f'<span class="minus">{change:,}</span>' if change else "0",
+                _num(s["entities_before"]), _num(s["entities_after"]), _e(s.get("note") or ""),
+            ])
+        table = _table(["step", "rows before", "rows after", "change", "entities before",
+                        "entities after", "note"], rows, numeric={1, 2, 3, 4, 5})
+    else:
+        table = '<p class="empty">No step ran before the gate.</p>'
+    dropped = summary.get("dropped") or {}
+    reasons = dropped.get("by_reason") or {}
+    if dropped:
+        text = ", ".join(f"<code>{_e(k)}</code> {_num(v)}" for k, v in reasons.items()) or "none"
+        table += (f'<p class="note">Rows dropped in all: <b>{_num(dropped.get("rows", 0))}</b> '
+                  f"({text}); each is listed with its reason in <code>dropped.parquet</code>.</p>")
+    return _section("story", "What the run did", flow + table,
+                    "Each step in order, with the rows and entities it kept.")
+
+
+def _findings(summary: dict[str, Any]) -> str:
+    found = sorted(summary.get("findings") or [],
+                   key=lambda f: -SEVERITIES.index(f["severity"]) if f.get("severity") in SEVERITIES
+                   else 0)
+    tally = {s: sum(1 for f in found if f.get("severity") == s) for s in reversed(SEVERITIES)}
+    counts = "".join(f'<div class="count {s}"><b>{n}</b>{s}</div>' for s, n in tally.items())
+    if not found:
+        return _section("findings", "Findings",
+                        f'<div class="counts">{counts}</div><p class="empty">No findings.</p>')
+    rows = []
+    for f in found:
+        severity = f.get("severity", "info")
+        examples = f.get("examples") or []
+        cell = _e(f.get("message"))
+        if examples:
+            items = "".join(
+                "<li>" + ", ".join(f"{_e(k)} <code>{_e(v)}</code>" for k, v in ex.items()) + "</li>"
+                for ex in examples)
+            cell += (f"<details><summary>{len(examples)} example(s)</summary>"
+                     f"<ul>{items}</ul></details>")
+        rows.append([f'<span class="badge {_e(severity)}">{_e(severity)}</span>',
+                     f"<code>{_e(f.get('id'))}</code>", _num(f.get("count")), cell])
+    body = f'<div class="counts">{counts}</div>' + _table(
+        ["severity", "finding", "count", "what was found"], rows, numeric={2})
+    return _section("findings", "Findings", body,
+                    f"Worst first. The gate fails on {_e(summary.get('fail_on'))} and above.")
+
+
+def _panel(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
+    panel = summary.get("panel") or {}
+    shape = next((f for f in summary.get("findings") or [] if f.get("id") == "panel-shape"), None)
+    details = (shape or {}).get("details") or {}
+    span = (f" ({_e(details.get('first_period'))} to {_e(details.get('last_period'))})"
+            if details.get("first_period") is not None else "")
+    obs = panel.get("obs_per_entity") or {}
+    rows = [
+        ("rows in the audited sample",
+         f"{_num(panel.get('rows'))} of {_num(panel.get('rows_read'))} read"),
+        ("entities", _num(panel.get("entities"))),
+        ("periods", _num(panel.get("periods")) + span),
+        ("shape", "balanced" if panel.get("balanced") else "unbalanced"),
+        ("rows per entity (min / median / max)",
+         f"{_num(obs.get('min'))} / {_num(obs.get('median'))} / {_num(obs.get('max'))}"),
+        ("entities with a single row", _num(panel.get("singleton_entities"))),
+        ("entities with holes in their series", _num(panel.get("entities_with_gaps"))),
+        ("exact repeated rows", _num(panel.get("exact_duplicate_rows"))),
+        ("conflicting duplicate keys", _num(panel.get("conflicting_duplicate_keys"))),
+        ("rows without a full key", _num(panel.get("rows_without_key"))),
+    ]
+    body = _kv(rows)
+    patterns = details.get("patterns") or []
+    if patterns:
+        body += ("<h3>Most common presence patterns</h3>"
+                 + _table(["pattern (■ observed, · absent)", "entities", "share"],
+                          [[f'<span class="patterns">{_e(p.get("pattern"))}</span>',
+                            _num(p.get("entities")), _pct(p.get("share"))] for p in patterns],
+                          numeric={1, 2}))
+    presence = pictures.get("presence")
+    if presence is not None:
+        body += _figure("picture-presence", _presence_svg(presence),
+                        "<b>Presence map.</b> One row per entity, one column per period; a dark "
+                        f"cell is a period with a row in the sample. {_e(presence.get('rule'))}")
+    obs_pic = pictures.get("obs_per_entity")
+    if obs_pic is not None:
+        body += _figure("picture-obs", _obs_svg(obs_pic),
+                        "<b>Rows per entity.</b> How many entities have each number of rows in "
+                        "the sample.")
+    return _section("panel", "The panel", body,
+                    "The audited sample: keyed rows, exact repeats collapsed, every selected "
+                    "variable present.")
+
+
+def _variation(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
+    variables = summary.get("variables") or {}
+    share = ((pictures.get("share") or {}).get("variables")) or {}
+    rows = []
+    for name, v in variables.items():
+        flags = [label for key, label in (("time_invariant", "constant within entities"),
+                                          ("period_invariant", "constant within periods"))
+                 if v.get(key)]
+        rows.append([
+            f"<code>{_e(name)}</code>", _num(v.get("n")), _num(v.get("mean")), _num(v.get("min")),
+            _num(v.get("max")), _num(v.get("sd_overall")), _num(v.get("sd_between")),
+            _num(v.get("sd_within")), _pct((share.get(name) or {}).get("within")),
+            _pct(v.get("varying_share")), _e("; ".join(flags)),
+        ])
+    if rows:
+        body = _table(["variable", "n", "mean", "min", "max", "sd overall", "sd between",
+                       "sd within", "within share", "entities varying", "flags"], rows,
+                      numeric=set(range(1, 10)))
+    else:
+        body = '<p class="empty">No numeric variables were selected.</p>'
+    body += ('<p class="note">SDs: overall with ddof 1; between over the entity means with ddof 1; '
+             "within from deviations from entity means over n − N. "
+             f"{_e((pictures.get('share') or {}).get('definition', ''))}.</p>")
+    if pictures.get("share") is not None:
+        body += _figure("picture-share", _share_svg(pictures["share"]),
+                        "<b>Within and between.</b> How each variable's variance splits into "
+                        "variation inside entities over time and variation across entity means. "
+                        "A variable with little within variation is poorly identified by a "
+                        "within (fixed-effects) fit.")
+    return _section("variation", "Variation", body,
+                    "Spread of each variable overall, between entities and within entities.")
+
+
+def _components(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
+    c = summary["components"]
+    theta = c.get("theta") or {}
+    rows = [
+        ("method", f"<code>{_e(c.get('method'))}</code>"),
+        ("rows and entities used",
+         f"{_num(c.get('n_obs'))} rows, {_num(c.get('n_entities'))} entities"),
+        ("entity effect variance s2_u", _num(c.get("sigma2_entity"), 6)),
+        ("idiosyncratic variance s2_e", _num(c.get("sigma2_idiosyncratic"), 6)),
+        ("entity share s2_u / (s2_u + s2_e)", _num(c.get("entity_share"))),
+        ("theta_i (min / median / max)",
+         f"{_num(theta.get('min'))} / {_num(theta.get('median'))} / {_num(theta.get('max'))}"),
+    ]
+    body = _kv(rows)
+    notes = []
+    if c.get("truncated_negative"):
+        notes.append(f"The estimate of s2_u was negative ({_num(c.get('raw_sigma2_entity'), 6)}) "
+                     "and was set to 0.")
+    for key, label in (("dropped_within", "Left out of the within regression"),
+                       ("dropped_between", "Left out of the between regression"),
+                       ("dropped_pooled", "Left out of the pooled regression")):
+        if c.get(key):
+            notes.append(f"{label}: " + ", ".join(f"<code>{_e(n)}</code>" for n in c[key]) + ".")
+    if notes:
+        body += "".join(f'<p class="note">{n}</p>' for n in notes)
+    if pictures.get("theta") is not None:
+        body += _figure("picture-theta", _theta_svg(pictures["theta"]),
+                        "<b>theta_i per entity.</b> "
+                        f"{_e(pictures['theta'].get('definition'))}; entities with more rows get a "
+                        "theta closer to 1, so their quasi-demeaned rows are closer to within "
+                        "deviations.")
+    return _section("components", "Variance components and theta", body,
+                    "The split of the error variance into an entity part and an idiosyncratic "
+                    "part, and the quasi-demeaning weight it gives each entity.")
+
+
+def _evidence(summary: dict[str, Any]) -> str:
+    ev = summary["evidence"]
+    rows = []
+    for key, label in _TESTS:
+        t = ev.get(key)
+        if not isinstance(t, dict):
+            continue
+        p_value = t.get("p_value")
+        rows.append([f'<span class="nowrap">{label}</span>', _num(t.get("statistic")),
+                     _num(t.get("df")), "≈ 0" if p_value == 0 else _num(p_value),
+                     _e(t.get("note") or "")])
+    body = _table(["test", "statistic", "df", "p-value", "note"], rows, numeric={1, 2, 3})
+    caution = ev.get("caution")
+    reading = [line for line in ev.get("reading") or [] if line != caution]
+    if reading:
+        body += ("<h3>In plain words</h3><ol class=\"reading\">"
+                 + "".join(f"<li>{_e(line)}</li>" for line in reading) + "</ol>")
+    body += (f'<div class="caution"><b>Evidence, not a verdict.</b> '
+             f"{_e(caution or 'These tests are evidence, not a verdict.')}</div>")
+    return _section("evidence", "Evidence on the choice of estimator", body,
+                    "Tests for entity effects and for their correlation with the regressors.")
+
+
+def _cautions(summary: dict[str, Any]) -> str:
+    items = summary.get("cautions") or []
+    body = ('<ul class="cautions">' + "".join(f"<li>{_e(c)}</li>" for c in items) + "</ul>"
+            if items else '<p class="empty">Nothing to add.</p>')
+    return _section("cautions", "Before you fit a model", body)
+
+
+def _files(summary: dict[str, Any]) -> str:
+    body = ""
+    built = summary.get("transforms") or {}
+    if built:
+        rows = [[f"<code>{_e(name)}</code>", _num(info.get("rows")),
+                 _e(", ".join(f"{k.replace('_', ' ')} {_num(v)}" for k, v in info.items()
+                              if k != "rows"))]
+                for name, info in built.items()]
+        body += "<h3>Transforms built</h3>" + _table(["transform", "rows", "details"], rows,
+                                                     numeric={1})
+    files = summary.get("files") or []
+    if files:
+        rows = [[f"<code>{_e(f.get('name'))}</code>", _num(f.get("rows")),
+                 f"<code>{_e(f.get('sha256'))}</code>"] for f in files]
+        body += "<h3>Files in the output folder</h3>" + _table(["file", "rows", "sha256"], rows,
+                                                               numeric={1})
+        body += ('<p class="note">Beside them: diagnostics.json, diagnostics.txt and this page, '
+                 "report.html.</p>")
+    else:
+        body += '<p class="empty">No data files were written.</p>'
+    return _section("files", "Files written", body)
+
+
+def render_html(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
+    """The whole report as one self-contained HTML page.
+
+    Parameters
+    ----------
+    summary : dict
+        ``AuditReport.to_dict()`` for an audit, or a preparation's summary
+        (the diagnostics document, with ``steps``, ``components``,
+        ``evidence``, ``cautions`` and ``files`` when it got that far).
+    pictures : dict
+        ``panelprep.figures.picture_data(...)`` of the same sample; a key
+        that is absent or None leaves its picture out.
+
+    Returns
+    -------
+    str
+        The page.  No external resource is referenced and the same input
+        gives the same text.
+    """
+    preparation = _is_preparation(summary)
+    parts: list[tuple[str, str, str]] = []
+    if preparation:
+        parts.append(("story", "Run", _story(summary)))
+    parts.append(("findings", "Findings", _findings(summary)))
+    parts.append(("panel", "Panel", _panel(summary, pictures)))
+    parts.append(("variation", "Variation", _variation(summary, pictures)))
+    if summary.get("components"):
+        parts.append(("components", "Components", _components(summary, pictures)))
+    if summary.get("evidence"):
+        parts.append(("evidence", "Evidence", _evidence(summary)))
+    if preparation or "cautions" in summary:
+        parts.append(("cautions", "Cautions", _cautions(summary)))
+    if preparation or "files" in summary:
+        parts.append(("files", "Files", _files(summary)))
+    nav = "".join(f'<a href="#{sid}">{label}</a>' for sid, label, _ in parts)
+    tool = summary.get("tool", {})
+    source = summary.get("input", {}).get("path") or "panel"
+    title = f"{'Preparation' if preparation else 'Audit'} report · {source}"
+    return (
+        "<!DOCTYPE html>\n"
+        '<html lang="en"><head><meta charset="utf-8">'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">'
+        f"<title>{_e(title)}</title><style>{_CSS}</style></head><body>"
+        + _header(summary)
+        + f'<nav class="toc"><div class="wrap">{nav}</div></nav>'
+        + '<main><div class="wrap">' + "".join(body for _, _, body in parts) + "</div></main>"
+        + f'<footer><div class="wrap">Written by {_e(tool.get("name", "panelprep"))} '
+          f'{_e(tool.get("version", ""))}. Self-contained page: nothing is loaded from '
+          "the network.</div></footer></body></html>\n"
+    )
+
+
+def write_html(path: str | os.PathLike[str], summary: dict[str, Any],
+               pictures: dict[str, Any]) -> Path:
+    """Write ``render_html(summary, pictures)`` to ``path`` atomically (UTF-8); returns the path."""
+    path = Path(path)
+    tmp = path.with_name(path.name + ".partial")
+    try:
+        tmp.write_text(render_html(summary, pictures), encoding="utf-8")
+        tmp.replace(path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return path
