@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
+import scipy.linalg.lapack
 
 EPS = float(np.finfo(np.float64).eps)
 
@@ -120,7 +121,9 @@ def ols(
     Notes
     -----
     Rank detection: pivoted QR ``X_s P = Q R`` (``scipy.linalg.qr`` with
-    ``pivoting=True, mode='economic'``) of the scaled block ``X_s = X / scale``.
+    ``pivoting=True``; ``mode='raw'`` keeps Q as Householder factors, the same
+    factorisation as ``mode='economic'`` without forming Q) of the scaled
+    block ``X_s = X / scale``.
     The leading ``r`` pivoted columns are kept, where ``r`` counts the diagonal
     entries with ``|R_jj| > rtol * |R_00|``.  ``|R_00|`` is the largest
     column norm of ``X_s``, so an exactly zero column (``R_jj = 0``) is always
@@ -155,25 +158,29 @@ def ols(
     xtx_inv = np.zeros((0, 0))
     rank = 0
     if n > 0 and k > 0:
-        Xs = X / col_scale
-        Q, R, piv = scipy.linalg.qr(Xs, mode="economic", pivoting=True)
+        # raw Householder factors: Q is applied to y without ever being formed
+        scaled = np.divide(X, col_scale, out=np.empty((n, k), order="F"))
+        (reflectors, tau), R, piv = scipy.linalg.qr(
+            scaled, mode="raw", pivoting=True, overwrite_a=True, check_finite=False
+        )
         diag = np.abs(np.diag(R))
         if diag.size and diag[0] > 0:
             reference = max(diag[0], 1.0) if scale is not None else diag[0]
             rank = int(np.count_nonzero(diag > rtol * reference))
         if rank:
+            qty = _apply_qt(reflectors[:, : len(tau)], tau, y)
             R11 = R[:rank, :rank]
-            b_piv = scipy.linalg.solve_triangular(R11, Q[:, :rank].T @ y)
+            b_piv = scipy.linalg.solve_triangular(R11, qty[:rank])
             R11_inv = scipy.linalg.solve_triangular(R11, np.eye(rank))
             inv_piv = R11_inv @ R11_inv.T
             sel = piv[:rank]
             order = np.argsort(sel)
             kept[sel] = True
             coef[sel] = b_piv / col_scale[sel]
-            sel_sorted = sel[order]
-            d = 1.0 / col_scale[sel_sorted]
+            d = 1.0 / col_scale[sel[order]]
             xtx_inv = inv_piv[np.ix_(order, order)] * d[:, None] * d[None, :]
-    resid = y - X[:, kept] @ coef[kept] if rank else y.copy()
+    # dropped columns have coefficient 0, so X @ coef needs no column copy
+    resid = y - X @ coef if rank else y.copy()
     return OlsFit(
         coef=coef,
         resid=resid,
@@ -186,6 +193,17 @@ def ols(
         df_resid=max(n - rank, 0),
         rtol=rtol,
     )
+
+
+def _apply_qt(reflectors: np.ndarray, tau: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """``Q' y`` from the Householder factors of a raw QR (LAPACK ``dormqr``)."""
+    c = np.asfortranarray(y.reshape(-1, 1), dtype=np.float64).copy(order="F")
+    qty, _work, info = scipy.linalg.lapack.dormqr(
+        "L", "T", reflectors, tau, c, lwork=max(64, reflectors.shape[1])
+    )
+    if info != 0:
+        raise np.linalg.LinAlgError(f"dormqr failed with info={info}")
+    return qty[:, 0]
 
 
 def cluster_cov(
