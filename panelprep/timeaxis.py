@@ -158,7 +158,9 @@ def _parse_uniques(uniques, blank, freq, codes, column):
     if pd.api.types.is_datetime64_any_dtype(uniques.dtype):
         stamps = pd.DatetimeIndex(uniques)
         if stamps.tz is not None:
-            stamps = stamps.tz_convert("UTC").tz_localize(None)
+            # the period is the calendar date as recorded: converting to UTC first would
+            # put midnight, New Year's Day in Berlin into the previous day and year
+            stamps = stamps.tz_localize(None)
         return ("date", *_date_grid(stamps, freq, column))
     return _parse_strings(uniques, blank, freq, codes, column)
 
@@ -277,7 +279,7 @@ def _date_strings(text, blank, freq, codes, column):
         )
     stamps = pd.DatetimeIndex(parsed)
     if stamps.tz is not None:
-        stamps = stamps.tz_convert("UTC").tz_localize(None)
+        stamps = stamps.tz_localize(None)
     stamps = stamps.where(~blank, stamps[~blank][0])
     ordinal, off, step, base, found = _date_grid(stamps, freq, column)
     return "date", ordinal, off, step, base, found
