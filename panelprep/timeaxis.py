@@ -33,6 +33,9 @@ _PATTERNS: dict[str, re.Pattern[str]] = {
     "week": re.compile(r"^\s*(\d{4})-?W(\d{2})\s*$"),
 }
 
+# a UTC offset (Z, +01:00, -0500) written after a time of day
+_UTC_OFFSET = re.compile(r"^(?P<wall>.*\d{2}:\d{2}(?::\d{2}(?:\.\d+)?)?)\s*(?:Z|[+-]\d{2}(?::?\d{2})?)$")
+
 _EPOCH_WEEKDAY = 3  # 1970-01-01 was a Thursday (Monday = 0)
 INT_GRID_SHARE = 0.9  # share of rows that must sit on an integer grid of step > 1
 
@@ -269,7 +272,10 @@ def _string_grid(kind, text, blank, freq, codes, column):
 
 
 def _date_strings(text, blank, freq, codes, column):
-    parsed = pd.to_datetime(text.where(~pd.Series(blank), None), errors="coerce", format="ISO8601")
+    # keep the wall-clock time as written: offsets differ across a daylight-saving change
+    # (+01:00 in winter, +02:00 in summer), which pandas refuses to parse as one column
+    wall = text.str.replace(_UTC_OFFSET.pattern, r"\g<wall>", regex=True)
+    parsed = pd.to_datetime(wall.where(~pd.Series(blank), None), errors="coerce", format="ISO8601")
     bad = parsed.isna().to_numpy() & ~blank
     if bad.any():
         k = int(np.flatnonzero(bad)[0])
