@@ -134,14 +134,15 @@ class _Moments:
         }
 
 
-def _finding(fid: str, severity: str, message: str, examples: Sequence[Any] = ()) -> dict:
-    examples = list(examples)
+def _finding(fid: str, severity: str, message: str, regressors: Sequence[Any] = ()) -> dict:
+    """A finding dict; ``examples`` name the regressors concerned, one dict each."""
+    regressors = list(regressors)
     return {
         "id": fid,
         "severity": severity,
-        "count": max(len(examples), 1),
+        "count": max(len(regressors), 1),
         "message": message,
-        "examples": [str(e) for e in examples[:_MAX_EXAMPLES]],
+        "examples": [{"regressor": str(r)} for r in regressors[:_MAX_EXAMPLES]],
     }
 
 
@@ -172,7 +173,8 @@ class VarianceComponents:
     dof_ : dict
         Denominators and trace coefficients the method used.
     findings_ : list of dict
-        ``{id, severity, count, message, examples}``; ids
+        ``{id, severity, count, message, examples}`` (examples are
+        ``{"regressor": name}`` dicts for the dropped-regressor findings); ids
         ``entity-variance-negative``, ``idiosyncratic-variance-negative``,
         ``regressor-dropped-within``, ``regressor-dropped-between``,
         ``regressor-dropped-pooled``, ``components-underidentified``.

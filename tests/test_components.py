@@ -289,7 +289,7 @@ def test_time_invariant_regressor_is_dropped_within(method):
     else:
         assert out["dropped_within"] == ["z"]
         found = [f for f in out["findings"] if f["id"] == "regressor-dropped-within"]
-        assert found and found[0]["examples"] == ["z"] and found[0]["severity"] == "warning"
+        assert found and found[0]["examples"] == [{"regressor": "z"}] and found[0]["severity"] == "warning"
     assert out["dropped_between"] == []
     assert np.isfinite(vc.theta_).all() and np.all((vc.theta_ >= 0) & (vc.theta_ <= 1))
     assert all(np.isfinite(v) for v in (vc.sigma2_entity_, vc.sigma2_idiosyncratic_))
