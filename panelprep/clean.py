@@ -110,7 +110,10 @@ def _period_ordinal(index: PanelIndex, label: str, side: str) -> int:
     except InputError as err:
         raise InputError(f"time window {side} {label!r}: {err}") from None
     if index.axis.freq == "int":
-        return int((int(label) - index.axis.base) // index.axis.step)
+        # a label between grid points bounds the window from inside: round the first
+        # bound up and the last down, so no period outside [first, last] is kept
+        offset = int(label) - index.axis.base
+        return int(-(-offset // index.axis.step) if side == "first" else offset // index.axis.step)
     return int(axis.ordinal[0])
 
 
