@@ -111,9 +111,21 @@ def sniff_delimiter(header_line: str) -> str:
     return best if counts[best] > 0 else ","
 
 
+def _first_line(path: Path) -> bytes:
+    """The header line's bytes, decompressed by extension (``.gz``, ``.bz2``) as Arrow reads it."""
+    head = b""
+    with pa.input_stream(str(path), compression="detect") as handle:
+        while b"\n" not in head:
+            block = handle.read(1 << 16)
+            if not block:
+                break
+            head += block
+    end = head.find(b"\n")
+    return head if end < 0 else head[: end + 1]
+
+
 def _csv_header(path: Path, delimiter: str | None) -> tuple[list[str], str]:
-    with open(path, "rb") as handle:
-        raw = handle.readline()
+    raw = _first_line(path)
     try:
         line = raw.decode("utf-8-sig")
     except UnicodeDecodeError as err:
@@ -230,8 +242,7 @@ def _has_non_finite(column: pa.ChunkedArray) -> bool:
 
 
 def _raw_header(path: Path, delimiter: str) -> list[str]:
-    with open(path, "rb") as handle:
-        line = handle.readline().decode("utf-8-sig")
+    line = _first_line(path).decode("utf-8-sig")
     return next(csv.reader(_io.StringIO(line), delimiter=delimiter))
 
 
