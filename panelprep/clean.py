@@ -169,8 +169,17 @@ def merge_means(
     target = np.flatnonzero(counts > 1)
     out = frame.copy()
     for j, name in enumerate(variables):
-        column = out[name].to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
-        column[first_row[target]] = means[target, j]
+        merged = means[target, j]
+        if pd.api.types.is_numeric_dtype(out[name].dtype):
+            column = out[name].to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
+            column[first_row[target]] = merged
+        else:
+            # A text column (declared missing tokens, stray text) keeps its other cells as
+            # written, so the audit still reports stray text and reads tokens as missing;
+            # numpy's float-to-text is the shortest text that reads back to the same float.
+            column = out[name].to_numpy(dtype=object, copy=True)
+            column[first_row[target]] = np.where(np.isnan(merged), None,
+                                                 merged.astype(str).astype(object))
         out[name] = column
     drop = np.zeros(index.n_rows, dtype=bool)
     drop[rows[shared]] = True

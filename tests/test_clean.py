@@ -18,6 +18,7 @@ import pytest
 
 from panelprep.clean import Policies, balance_removal, singleton_removal, window_removal
 from panelprep.index import build_index
+from panelprep.io import ReadOptions
 from panelprep.pipeline import load
 from panelprep.prepare import PrepareOptions, prepare_frame
 
@@ -392,3 +393,44 @@ def test_window_between_grid_points_of_a_stepped_integer_axis():
     removal = window_removal(index, ("1991", "1995"))
     assert sorted(set(frame["year"][~removal.mask])) == [1992, 1994]
     assert window_removal(index, ("1992", "1994")).mask.sum() == 4
+
+
+def _text_panel(stray: str | None) -> pd.DataFrame:
+    """Three firms over 2001-2003, sales held as text (as read with a declared token).
+
+    a/2001 is written twice with different sales (1.5, 2.5) and capital (2, 3); a/2002 holds
+    the token ``n/a``; ``stray``, when given, replaces b/2002's sales.
+    """
+    sales = ["1.5", "2.5", "n/a", "3", "1", stray or "2", "4", "1", "5", "4"]
+    return pd.DataFrame({
+        "firm_id": ["a", "a", "a", "a", "b", "b", "b", "c", "c", "c"],
+        "year": [2001, 2001, 2002, 2003, 2001, 2002, 2003, 2001, 2002, 2003],
+        "sales": pd.array(sales, dtype="str"),
+        "capital": [2.0, 3.0, 4.0, 5.0, 1.0, 2.0, 3.0, 1.0, 2.0, 7.0],
+    })
+
+
+def test_mean_on_a_text_column_with_declared_missing_tokens():
+    # the a/2001 pair merges to sales (1.5 + 2.5) / 2 = 2.0 and capital 2.5 on row 0; row 1 goes
+    # as merged, row 2 (a/2002, "n/a") goes by listwise deletion: 10 - 2 = 8 rows
+    frame = _text_panel(None)
+    options = PrepareOptions(entity=["firm_id"], time="year", y="sales", x=["capital"],
+                             transforms=["within"], policies=Policies(duplicates="mean"))
+    prep = prepare_frame(frame, options, read_options=ReadOptions(missing_tokens=("n/a",)))
+    assert prep.verdict == "pass"
+    clean = prep.tables["clean"]
+    assert _cell(clean, "a", 2001)[["sales", "capital"]].values.tolist() == [[2.0, 2.5]]
+    dropped = _dropped(frame, prep)
+    assert dropped[["input_row", "reason"]].values.tolist() == [
+        [1, "duplicate-key-merged"], [2, "listwise-missing"]]
+    _check_story(frame, prep, 8)
+
+
+def test_mean_leaves_stray_text_to_the_audit():
+    # "12%" in b/2002 is not a number: the merge must not turn it into a silent gap
+    frame = _text_panel("12%")
+    options = PrepareOptions(entity=["firm_id"], time="year", y="sales", x=["capital"],
+                             transforms=["within"], policies=Policies(duplicates="mean"))
+    prep = prepare_frame(frame, options, read_options=ReadOptions(missing_tokens=("n/a",)))
+    assert prep.verdict == "fail"
+    assert "values-not-numeric" in {f.id for f in prep.audit.findings}
