@@ -1,0 +1,1101 @@
+"""The run file: every choice of a preparation in one TOML file.
+
+A run file makes a preparation reproducible: the same file on the same data
+gives the same outputs.  It is read with the standard library's ``tomllib``;
+options given on the command line override the file's values key by key.
+Relative paths in the file are read from the run file's folder; relative
+paths given on the command line are read from the working directory.
+
+Every key is optional except those marked *required*: a prepare needs
+``input.path``, ``panel.entity``, ``panel.time``, ``model.y``, ``model.x``
+and ``output.dir``, from the file or from the command line.
+
+Keys
+----
+
+| key | type | default | meaning |
+|---|---|---|---|
+| `input.path` | path | *required* | data file; a relative path is read from the run file's folder |
+| `input.format` | `csv`, `parquet`, `arrow` | by extension | input format |
+| `input.delimiter` | one character | sniffed | CSV field separator |
+| `input.decimal_comma` | bool | `false` | CSV numbers use `,` as the decimal mark |
+| `input.missing_tokens` | list of text | `[]` | texts read as missing in numeric variables, e.g. `["n/a", "-"]` |
+| `panel.entity` | text or list of text | *required* | entity key column(s) |
+| `panel.time` | text | *required* | time column |
+| `panel.freq` | `year`, `quarter`, `month`, `week`, `day`, `int` | inferred | period frequency |
+| `model.y` | text | *required* | dependent variable |
+| `model.x` | list of text | *required* | regressors (at least one) |
+| `contract.schema` | path | none | pandera YAML contract checked before the panel checks |
+| `contract.validate_outputs` | bool | `false` | also check the written data files against the contract |
+| `checks.fail_on` | `error`, `warning` | `error` | lowest severity that fails the gate |
+| `checks.low_within_ratio` | number in [0, 1] | `0.05` | within SD / overall SD below this is reported as thin |
+| `checks.constant_rtol` | number in (0, 1) | `1e-09` | constancy tolerance, relative to the variable's largest absolute value |
+| `checks.severity` | table of finding id = `info`, `warning`, `error` | `{}` | severity per finding id, replacing the default |
+| `clean.duplicates` | `fail`, `drop-exact`, `keep-first`, `keep-last`, `mean` | `fail` | what to do with repeated (entity, time) keys |
+| `clean.normalise_ids` | `none`, `trim`, `trim-fold` | `none` | strip spaces from text ids (`trim-fold` also folds case) |
+| `clean.singletons` | `keep`, `drop` | `keep` | drop entities observed once |
+| `clean.balance` | `keep`, `complete-entities`, `largest-block` | `keep` | make the panel balanced |
+| `clean.window` | two period labels, `""` for open | `["", ""]` | first and last period to keep |
+| `derive.lag` | list of `var:k` | `[]` | gap-aware lags, k periods back |
+| `derive.lead` | list of `var:k` | `[]` | gap-aware leads, k periods ahead |
+| `derive.diff` | list of `var` or `var:k` | `[]` | gap-aware differences x(t) - x(t-k), k = 1 when absent |
+| `output.dir` | path | *required* | output folder; a relative path is read from the run file's folder |
+| `output.transforms` | list among `within`, `between`, `quasi`, `twoway` | `["within", "between", "quasi"]` | transformed files to write |
+| `output.method` | `swamy-arora`, `wallace-hussain`, `amemiya`, `nerlove` | `swamy-arora` | variance components for theta |
+| `output.format` | `parquet`, `csv` | `parquet` | format of the data files |
+| `output.force` | bool | `false` | replace a non-empty output folder |
+
+Errors are ``InputError`` with one line naming the file, the line, the key
+and what is allowed.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import math
+import os
+import re
+import tempfile
+import textwrap
+import tomllib
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+from pyarrow import feather
+
+from panelprep._version import __version__
+from panelprep.checks import CHECK_IDS, Thresholds
+from panelprep.checks.context import looks_numeric
+from panelprep.errors import InputError
+from panelprep.findings import SEVERITIES
+from panelprep.io import (
+    FORMATS,
+    ReadOptions,
+    column_names,
+    detect_format,
+    integer_text_to_int,
+    read_frame,
+    sniff_delimiter,
+)
+from panelprep.timeaxis import FREQUENCIES, build_time_axis
+
+# Finding ids that modules other than the structural checks emit; a run file
+# may set their severity too.
+EXTRA_FINDING_IDS = (
+    "entity-variance-negative",
+    "regressor-dropped-within",
+    "regressor-dropped-between",
+    "components-underidentified",
+    "contract-check-failed",
+)
+FINDING_IDS: tuple[str, ...] = (*CHECK_IDS, *EXTRA_FINDING_IDS)
+
+FAIL_ON = ("error", "warning")
+DUPLICATES = ("fail", "drop-exact", "keep-first", "keep-last", "mean")
+NORMALISE_IDS = ("none", "trim", "trim-fold")
+SINGLETONS = ("keep", "drop")
+BALANCE = ("keep", "complete-entities", "largest-block")
+TRANSFORMS = ("within", "between", "quasi", "twoway")
+METHODS = ("swamy-arora", "wallace-hussain", "amemiya", "nerlove")
+OUTPUT_FORMATS = ("parquet", "csv")
+
+_DEFAULT_THRESHOLDS = Thresholds()
+
+
+@dataclass
+class InputSection:
+    """``[input]``: where the data is and how to read it."""
+
+    path: Path | None = None
+    format: str | None = None
+    delimiter: str | None = None
+    decimal_comma: bool = False
+    missing_tokens: list[str] = field(default_factory=list)
+
+
+@dataclass
+class PanelSection:
+    """``[panel]``: the key columns."""
+
+    entity: list[str] | None = None
+    time: str | None = None
+    freq: str | None = None
+
+
+@dataclass
+class ModelSection:
+    """``[model]``: the variables of the regression the outputs are for."""
+
+    y: str | None = None
+    x: list[str] | None = None
+
+
+@dataclass
+class ContractSection:
+    """``[contract]``: an optional pandera schema the data must satisfy."""
+
+    schema: Path | None = None
+    validate_outputs: bool = False
+
+
+@dataclass
+class ChecksSection:
+    """``[checks]``: the gate, the limits of the checks, severities per finding id."""
+
+    fail_on: str = "error"
+    low_within_ratio: float = _DEFAULT_THRESHOLDS.low_within_ratio
+    constant_rtol: float = _DEFAULT_THRESHOLDS.constant_rtol
+    severity: dict[str, str] = field(default_factory=dict)
+
+
+@dataclass
+class CleanSection:
+    """``[clean]``: cleaning policies; the defaults change nothing."""
+
+    duplicates: str = "fail"
+    normalise_ids: str = "none"
+    singletons: str = "keep"
+    balance: str = "keep"
+    window: tuple[str | None, str | None] = (None, None)
+
+
+@dataclass
+class DeriveSection:
+    """``[derive]``: gap-aware lags, leads and differences, as ``var:k`` texts."""
+
+    lag: list[str] = field(default_factory=list)
+    lead: list[str] = field(default_factory=list)
+    diff: list[str] = field(default_factory=list)
+
+
+@dataclass
+class OutputSection:
+    """``[output]``: what to write and where."""
+
+    dir: Path | None = None
+    transforms: list[str] = field(default_factory=lambda: ["within", "between", "quasi"])
+    method: str = "swamy-arora"
+    format: str = "parquet"
+    force: bool = False
+
+
+_SECTIONS: dict[str, type] = {
+    "input": InputSection,
+    "panel": PanelSection,
+    "model": ModelSection,
+    "contract": ContractSection,
+    "checks": ChecksSection,
+    "clean": CleanSection,
+    "derive": DeriveSection,
+    "output": OutputSection,
+}
+REQUIRED = ("input.path", "panel.entity", "panel.time", "model.y", "model.x", "output.dir")
+_PATH_KEYS = ("input.path", "contract.schema", "output.dir")
+
+
+class _Bad(Exception):
+    """A value of the wrong type or outside what a key allows (``expected`` says what is)."""
+
+    def __init__(self, expected: str) -> None:
+        super().__init__(expected)
+        self.expected = expected
+
+
+def _text(value: Any, cli: bool) -> str:
+    if not isinstance(value, str) or not value.strip():
+        raise _Bad("a non-empty text")
+    return value.strip()
+
+
+def _path(value: Any, cli: bool) -> Path:
+    if isinstance(value, Path):
+        return value
+    return Path(_text(value, cli))
+
+
+def _bool(value: Any, cli: bool) -> bool:
+    if not isinstance(value, bool):
+        raise _Bad("true or false")
+    return value
+
+
+def _number(low: float, high: float, low_open: bool) -> Callable[[Any, bool], float]:
+    bracket = "(" if low_open else "["
+    expected = f"a number in {bracket}{low:g}, {high:g}{')' if low_open else ']'}"
+
+    def parse(value: Any, cli: bool) -> float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise _Bad(expected)
+        number = float(value)
+        inside = (low < number if low_open else low <= number) and (
+            number < high if low_open else number <= high
+        )
+        if not math.isfinite(number) or not inside:
+            raise _Bad(expected)
+        return number
+
+    return parse
+
+
+def _choice(allowed: tuple[str, ...]) -> Callable[[Any, bool], str]:
+    def parse(value: Any, cli: bool) -> str:
+        if not isinstance(value, str) or value not in allowed:
+            raise _Bad(f"one of {', '.join(allowed)}")
+        return value
+
+    return parse
+
+
+def _items(value: Any, cli: bool, what: str) -> list[Any]:
+    """A list from the file; on the command line a comma-separated text is a list too."""
+    if cli and isinstance(value, str):
+        return [item.strip() for item in value.split(",") if item.strip()]
+    if isinstance(value, tuple):
+        value = list(value)
+    if not isinstance(value, list):
+        raise _Bad(what)
+    return value
+
+
+def _texts(value: Any, cli: bool) -> list[str]:
+    what = "a list of non-empty texts"
+    items = _items(value, cli, what)
+    if not all(isinstance(item, str) and item.strip() for item in items):
+        raise _Bad(what)
+    return [item.strip() for item in items]
+
+
+def _names(value: Any, cli: bool) -> list[str]:
+    """Column names: a text (commas separate several) or a list of texts, none repeated."""
+    what = "a column name or a non-empty list of distinct column names"
+    if isinstance(value, str):
+        items: list[Any] = value.split(",")
+    else:
+        items = _items(value, cli, what)
+    if not items or not all(isinstance(item, str) and item.strip() for item in items):
+        raise _Bad(what)
+    names = [item.strip() for item in items]
+    if len(set(names)) != len(names):
+        raise _Bad(what)
+    return names
+
+
+def _choices(allowed: tuple[str, ...]) -> Callable[[Any, bool], list[str]]:
+    what = f"a list of distinct values among {', '.join(allowed)}"
+
+    def parse(value: Any, cli: bool) -> list[str]:
+        items = _items(value, cli, what)
+        if not all(isinstance(item, str) and item in allowed for item in items):
+            raise _Bad(what)
+        if len(set(items)) != len(items):
+            raise _Bad(what)
+        return list(items)
+
+    return parse
+
+
+def _char(value: Any, cli: bool) -> str:
+    if cli and value == "\\t":
+        value = "\t"
+    if not isinstance(value, str) or len(value) != 1 or value in ('"', "\n", "\r"):
+        raise _Bad('one character, e.g. ";" or "\\t"')
+    return value
+
+
+def _severities(value: Any, cli: bool) -> dict[str, str]:
+    if not isinstance(value, Mapping):
+        raise _Bad("a table of finding id = info, warning or error")
+    out = {}
+    for finding_id, severity in value.items():
+        if finding_id not in FINDING_IDS:
+            raise _Bad(f"a table whose keys are finding ids ({', '.join(FINDING_IDS)})")
+        if severity not in SEVERITIES:
+            raise _Bad("a table of finding id = info, warning or error")
+        out[str(finding_id)] = str(severity)
+    return out
+
+
+def _window(value: Any, cli: bool) -> tuple[str | None, str | None]:
+    what = 'two period labels as texts, "" for an open end, e.g. ["2010", ""]'
+    items = value.split(",") if cli and isinstance(value, str) else _items(value, cli, what)
+    if len(items) != 2:
+        raise _Bad(what)
+    out: list[str | None] = []
+    for item in items:
+        if isinstance(item, bool) or not isinstance(item, (str, int)):
+            raise _Bad(what)
+        label = str(item).strip()
+        out.append(label or None)
+    return out[0], out[1]
+
+
+_SHIFT = re.compile(r"^\s*([^:]+?)\s*(?::\s*([^:]*?)\s*)?$")
+
+
+def _shifts(need_k: bool) -> Callable[[Any, bool], list[str]]:
+    what = 'a list of "var:k" texts with k a whole number >= 1' + (
+        "" if need_k else ' (or "var" for k = 1)'
+    )
+
+    def parse(value: Any, cli: bool) -> list[str]:
+        items = _items(value, cli, what)
+        out = []
+        for item in items:
+            if not isinstance(item, str):
+                raise _Bad(what)
+            match = _SHIFT.match(item)
+            if match is None:
+                raise _Bad(what)
+            name, distance = match.group(1), match.group(2)
+            if distance is None:
+                if need_k:
+                    raise _Bad(what)
+                out.append(name)
+                continue
+            if not distance.isdigit() or int(distance) < 1:
+                raise _Bad(what)
+            out.append(f"{name}:{int(distance)}")
+        return out
+
+    return parse
+
+
+@dataclass(frozen=True)
+class _Key:
+    kind: str
+    parse: Callable[[Any, bool], Any]
+    help: str
+
+
+_KEYS: dict[str, dict[str, _Key]] = {
+    "input": {
+        "path": _Key("path", _path, "data file; a relative path is read from this file's folder"),
+        "format": _Key("`csv`, `parquet`, `arrow`", _choice(FORMATS), "input format"),
+        "delimiter": _Key("one character", _char, "CSV field separator"),
+        "decimal_comma": _Key("bool", _bool, "CSV numbers use `,` as the decimal mark"),
+        "missing_tokens": _Key("list of text", _texts,
+                               'texts read as missing in numeric variables, e.g. `["n/a", "-"]`'),
+    },
+    "panel": {
+        "entity": _Key("text or list of text", _names, "entity key column(s)"),
+        "time": _Key("text", _text, "time column"),
+        "freq": _Key(", ".join(f"`{f}`" for f in FREQUENCIES), _choice(FREQUENCIES),
+                     "period frequency"),
+    },
+    "model": {
+        "y": _Key("text", _text, "dependent variable"),
+        "x": _Key("list of text", _names, "regressors (at least one)"),
+    },
+    "contract": {
+        "schema": _Key("path", _path, "pandera YAML contract checked before the panel checks"),
+        "validate_outputs": _Key("bool", _bool,
+                                 "also check the written data files against the contract"),
+    },
+    "checks": {
+        "fail_on": _Key("`error`, `warning`", _choice(FAIL_ON),
+                        "lowest severity that fails the gate"),
+        "low_within_ratio": _Key("number in [0, 1]", _number(0.0, 1.0, False),
+                                 "within SD / overall SD below this is reported as thin"),
+        "constant_rtol": _Key("number in (0, 1)", _number(0.0, 1.0, True),
+                              "constancy tolerance, relative to the variable's largest "
+                              "absolute value"),
+        "severity": _Key("table of finding id = `info`, `warning`, `error`", _severities,
+                         "severity per finding id, replacing the default"),
+    },
+    "clean": {
+        "duplicates": _Key(", ".join(f"`{v}`" for v in DUPLICATES), _choice(DUPLICATES),
+                           "what to do with repeated (entity, time) keys"),
+        "normalise_ids": _Key(", ".join(f"`{v}`" for v in NORMALISE_IDS), _choice(NORMALISE_IDS),
+                              "strip spaces from text ids (`trim-fold` also folds case)"),
+        "singletons": _Key("`keep`, `drop`", _choice(SINGLETONS), "drop entities observed once"),
+        "balance": _Key(", ".join(f"`{v}`" for v in BALANCE), _choice(BALANCE),
+                        "make the panel balanced"),
+        "window": _Key('two period labels, `""` for open', _window,
+                       "first and last period to keep"),
+    },
+    "derive": {
+        "lag": _Key("list of `var:k`", _shifts(True), "gap-aware lags, k periods back"),
+        "lead": _Key("list of `var:k`", _shifts(True), "gap-aware leads, k periods ahead"),
+        "diff": _Key("list of `var` or `var:k`", _shifts(False),
+                     "gap-aware differences x(t) - x(t-k), k = 1 when absent"),
+    },
+    "output": {
+        "dir": _Key("path", _path,
+                    "output folder; a relative path is read from this file's folder"),
+        "transforms": _Key("list among " + ", ".join(f"`{t}`" for t in TRANSFORMS),
+                           _choices(TRANSFORMS), "transformed files to write"),
+        "method": _Key(", ".join(f"`{m}`" for m in METHODS), _choice(METHODS),
+                       "variance components for theta"),
+        "format": _Key("`parquet`, `csv`", _choice(OUTPUT_FORMATS), "format of the data files"),
+        "force": _Key("bool", _bool, "replace a non-empty output folder"),
+    },
+}
+
+# Defaults shown in the key table where the value itself says little.
+_TABLE_DEFAULTS = {
+    "input.format": "by extension",
+    "input.delimiter": "sniffed",
+    "panel.freq": "inferred",
+    "contract.schema": "none",
+}
+
+
+def _default(dotted: str) -> Any:
+    section, key = dotted.split(".")
+    return getattr(_SECTIONS[section](), key)
+
+
+def key_table() -> str:
+    """The markdown table of every run-file key (the one in this module's docstring)."""
+    lines = ["| key | type | default | meaning |", "|---|---|---|---|"]
+    for section, keys in _KEYS.items():
+        for name, spec in keys.items():
+            dotted = f"{section}.{name}"
+            if dotted in REQUIRED:
+                shown = "*required*"
+            elif dotted in _TABLE_DEFAULTS:
+                shown = _TABLE_DEFAULTS[dotted]
+            else:
+                value = _default(dotted)
+                shown = f"`{value if isinstance(value, str) else _toml_value(value)}`"
+            help_text = spec.help.replace("this file's folder", "the run file's folder")
+            lines.append(f"| `{dotted}` | {spec.kind} | {shown} | {help_text} |")
+    return "\n".join(lines)
+
+
+@dataclass
+class RunFile:
+    """A parsed run file: one dataclass per section, holding plain values.
+
+    Attributes
+    ----------
+    input, panel, model, contract, checks, clean, derive, output :
+        the sections (see the module docstring for every key and default).
+    source : the run file read, or None when built in code.
+    lines : line of each ``section.key`` in the file, for messages about
+        keys checked together (not compared).
+    """
+
+    input: InputSection = field(default_factory=InputSection)
+    panel: PanelSection = field(default_factory=PanelSection)
+    model: ModelSection = field(default_factory=ModelSection)
+    contract: ContractSection = field(default_factory=ContractSection)
+    checks: ChecksSection = field(default_factory=ChecksSection)
+    clean: CleanSection = field(default_factory=CleanSection)
+    derive: DeriveSection = field(default_factory=DeriveSection)
+    output: OutputSection = field(default_factory=OutputSection)
+    source: Path | None = None
+    lines: dict[str, int] = field(default_factory=dict, compare=False, repr=False)
+
+    def get(self, dotted: str) -> Any:
+        """The value of a key given as ``section.key``."""
+        section, key = _split_dotted(dotted)
+        return getattr(getattr(self, section), key)
+
+    def merged(self, overrides: Mapping[str, Any]) -> RunFile:
+        """A copy with command-line values in place of the file's.
+
+        Parameters
+        ----------
+        overrides : values keyed by ``section.key`` (``{"model.y": "sales"}``);
+            None means "not given" and keeps the file's value.  List keys
+            also take a comma-separated text.  ``checks.severity`` is merged
+            id by id rather than replaced.
+
+        Returns
+        -------
+        RunFile, checked to hold every required key.
+
+        Raises
+        ------
+        InputError naming the key and what it allows, or the first required
+        key still missing.
+        """
+        out = copy.deepcopy(self)
+        for dotted, value in overrides.items():
+            if value is None:
+                continue
+            section, key = _split_dotted(dotted)
+            try:
+                parsed = _KEYS[section][key].parse(value, True)
+            except _Bad as bad:
+                raise InputError(
+                    f"command-line value for {dotted} must be {bad.expected}, got {value!r}"
+                ) from None
+            if dotted == "checks.severity":
+                parsed = {**out.checks.severity, **parsed}
+            setattr(getattr(out, section), key, parsed)
+            out.lines.pop(dotted, None)
+        out._require()
+        return out
+
+    def _where(self, dotted: str) -> str:
+        if self.source is None:
+            return ""
+        line = self.lines.get(dotted)
+        return f"{self.source}:{line}: " if line else f"{self.source}: "
+
+    def _require(self) -> None:
+        for dotted in REQUIRED:
+            if self.get(dotted) is None:
+                section, key = dotted.split(".")
+                where = f"{self.source}: " if self.source is not None else ""
+                raise InputError(
+                    f"{where}{dotted} is required: set {key} under [{section}] "
+                    "or give it on the command line"
+                )
+        if not self.model.x:
+            raise InputError(f"{self._where('model.x')}model.x names no regressor")
+        if self.model.y in self.model.x:
+            raise InputError(f"{self._where('model.x')}model.y {self.model.y!r} "
+                             "is also in model.x")
+        keys = [*self.panel.entity, self.panel.time]
+        if self.panel.time in self.panel.entity:
+            raise InputError(f"{self._where('panel.time')}panel.time {self.panel.time!r} "
+                             "is also an entity column")
+        clash = [v for v in [self.model.y, *self.model.x] if v in keys]
+        if clash:
+            raise InputError(f"{self._where('model.x')}key column(s) {clash} cannot also be "
+                             "model.y or model.x")
+
+    def read_options(self) -> ReadOptions:
+        """How to read the input, as ``panelprep.io.ReadOptions``."""
+        return ReadOptions(
+            input_format=self.input.format,
+            delimiter=self.input.delimiter,
+            decimal_comma=self.input.decimal_comma,
+            missing_tokens=tuple(self.input.missing_tokens),
+        )
+
+    def thresholds(self) -> Thresholds:
+        """The limits of the checks, as ``panelprep.checks.Thresholds``."""
+        return Thresholds(
+            low_within_ratio=self.checks.low_within_ratio,
+            constant_rtol=self.checks.constant_rtol,
+        )
+
+    def to_toml(self, base: str | Path | None = None) -> str:
+        """The canonical run file: every key in a fixed order, each with a comment.
+
+        Keys without a value (an inferred frequency, no contract) are
+        written commented out.  Paths are written as held (absolute after
+        ``load_run_file``) or, with ``base``, relative to that folder.
+        Loading the text again gives an equal ``RunFile`` (its ``source`` aside).
+        """
+        values = {f"{s}.{k}": self.get(f"{s}.{k}") for s, keys in _KEYS.items() for k in keys}
+        if base is not None:
+            for dotted in _PATH_KEYS:
+                if values[dotted] is not None:
+                    values[dotted] = Path(os.path.relpath(Path(values[dotted]).resolve(),
+                                                          Path(base).resolve()))
+        active = {dotted for dotted, value in values.items() if value is not None}
+        title = f"panelprep run file, canonical form (panelprep {__version__})"
+        return _render(values, active, {}, [title])
+
+
+def _split_dotted(dotted: str) -> tuple[str, str]:
+    section, _, key = dotted.partition(".")
+    if section not in _KEYS or key not in _KEYS[section]:
+        raise InputError(f"unknown run-file key {dotted!r}; keys are "
+                         + ", ".join(f"{s}.{k}" for s, keys in _KEYS.items() for k in keys))
+    return section, key
+
+
+# --- reading -----------------------------------------------------------------
+
+_BARE_OR_QUOTED = r'(?:[A-Za-z0-9_-]+|"(?:[^"\\]|\\.)*"|\'[^\']*\')'
+_HEADER = re.compile(rf"^\s*\[\[?\s*({_BARE_OR_QUOTED}(?:\s*\.\s*{_BARE_OR_QUOTED})*)\s*\]\]?")
+_KEY_LINE = re.compile(rf"^\s*({_BARE_OR_QUOTED}(?:\s*\.\s*{_BARE_OR_QUOTED})*)\s*=")
+_PART = re.compile(_BARE_OR_QUOTED)
+
+
+def _key_parts(dotted: str) -> tuple[str, ...]:
+    parts = []
+    for part in _PART.findall(dotted):
+        if part[0] in "\"'":
+            part = part[1:-1]
+            if part and part[0] != "'":
+                part = part.replace('\\"', '"').replace("\\\\", "\\")
+        parts.append(part)
+    return tuple(parts)
+
+
+def key_lines(text: str) -> dict[tuple[str, ...], int]:
+    """Line (from 1) where each table header and key of a TOML text first appears.
+
+    A light scan, not a parser: it follows ``[table]`` headers and
+    ``key =`` lines, skipping multi-line strings, which is enough to point
+    at the line of a key that the parsed document shows is wrong.
+    """
+    found: dict[tuple[str, ...], int] = {}
+    table: tuple[str, ...] = ()
+    in_string: str | None = None
+    for number, line in enumerate(text.splitlines(), start=1):
+        if in_string is not None:
+            if line.count(in_string) % 2 == 1:
+                in_string = None
+            continue
+        header = _HEADER.match(line)
+        if header and not _KEY_LINE.match(line):
+            table = _key_parts(header.group(1))
+            found.setdefault(table, number)
+        else:
+            key = _KEY_LINE.match(line)
+            if key:
+                found.setdefault((*table, *_key_parts(key.group(1))), number)
+        for quotes in ('"""', "'''"):
+            if line.count(quotes) % 2 == 1:
+                in_string = quotes
+                break
+    return found
+
+
+def _line_of(lines: dict[tuple[str, ...], int], path: tuple[str, ...]) -> int | None:
+    """The line of ``path``, or of its closest enclosing table or key that was found."""
+    for end in range(len(path), 0, -1):
+        if path[:end] in lines:
+            return lines[path[:end]]
+    return None
+
+
+def load_run_file(path: str | Path, overrides: Mapping[str, Any] | None = None) -> RunFile:
+    """Read a run file, apply command-line ``overrides`` and check it is complete.
+
+    Parameters
+    ----------
+    path : the TOML run file.
+    overrides : values by ``section.key`` that replace the file's (see
+        ``RunFile.merged``); a required key may come from here alone.
+
+    Returns
+    -------
+    RunFile whose paths from the file are resolved against its folder.
+
+    Raises
+    ------
+    InputError, one line: the file is absent or not TOML (with the line
+    tomllib reports), a section or key is unknown (with its line), a value
+    has the wrong type or is not allowed (key, line and what is allowed), or
+    a required key is missing.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> folder = pathlib.Path(tempfile.mkdtemp())
+    >>> _ = (folder / "run.toml").write_text(
+    ...     '[input]\\npath = "panel.csv"\\n[panel]\\nentity = "firm"\\ntime = "year"\\n'
+    ...     '[model]\\ny = "sales"\\nx = ["capital"]\\n[output]\\ndir = "out"\\n')
+    >>> run = load_run_file(folder / "run.toml", {"model.y": "staff"})
+    >>> run.model.y, run.input.path == folder.resolve() / "panel.csv"
+    ('staff', True)
+    """
+    source = Path(path)
+    text = _read_text(source)
+    try:
+        document = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as err:
+        message = " ".join(str(err).split())
+        at = re.search(r"line (\d+)", message)
+        where = f"{source}:{at.group(1)}" if at else f"{source}"
+        raise InputError(f"{where}: not valid TOML: {message}") from None
+    lines = key_lines(text)
+    run = RunFile(source=source)
+
+    def fail(key_path: tuple[str, ...], message: str) -> InputError:
+        line = _line_of(lines, key_path)
+        return InputError(f"{source}:{line}: {message}" if line else f"{source}: {message}")
+
+    for section, body in document.items():
+        if section not in _KEYS:
+            if isinstance(body, dict):
+                raise fail((section,), f"unknown section [{section}]; sections are "
+                           + ", ".join(f"[{s}]" for s in _KEYS))
+            raise fail((section,), f"unknown key {section!r} outside any section; "
+                       "put keys under a [section]")
+        if not isinstance(body, dict):
+            raise fail((section,), f"{section} must be a table: write [{section}] "
+                       "and its keys below it")
+        for key, value in body.items():
+            dotted = f"{section}.{key}"
+            if key not in _KEYS[section]:
+                raise fail((section, key), f"unknown key {dotted}; [{section}] takes "
+                           + ", ".join(_KEYS[section]))
+            try:
+                parsed = _KEYS[section][key].parse(value, False)
+            except _Bad as bad:
+                bad_path = (section, key)
+                if dotted == "checks.severity" and isinstance(value, dict):
+                    wrong = next((k for k in value if k not in FINDING_IDS), None)
+                    if wrong is not None:
+                        raise fail((section, key, wrong),
+                                   f"unknown finding id {wrong!r} in checks.severity; ids are "
+                                   + ", ".join(FINDING_IDS)) from None
+                    wrong = next(k for k, v in value.items() if v not in SEVERITIES)
+                    raise fail((section, key, wrong),
+                               f"checks.severity.{wrong} must be one of "
+                               f"{', '.join(SEVERITIES)}, got {value[wrong]!r}") from None
+                raise fail(bad_path, f"{dotted} must be {bad.expected}, got {_shown(value)}"
+                           ) from None
+            if dotted in _PATH_KEYS and not parsed.is_absolute():
+                parsed = (source.parent / parsed).resolve()
+            setattr(getattr(run, section), key, parsed)
+            line = _line_of(lines, (section, key))
+            if line is not None:
+                run.lines[dotted] = line
+    return run.merged(overrides or {})
+
+
+def _shown(value: Any) -> str:
+    if isinstance(value, dict):
+        return "a table"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    return repr(value)
+
+
+def _read_text(path: Path) -> str:
+    if not path.exists():
+        raise InputError(f"{path}: no such run file")
+    if path.is_dir():
+        raise InputError(f"{path}: is a directory, expected a run file")
+    try:
+        raw = path.read_bytes()
+    except OSError as err:
+        raise InputError(f"{path}: cannot read the run file: {err.strerror}") from None
+    try:
+        return raw.decode("utf-8-sig")
+    except UnicodeDecodeError as err:
+        line = raw[: err.start].count(b"\n") + 1
+        raise InputError(f"{path}:{line}: the run file is not UTF-8 text") from None
+
+
+# --- writing -----------------------------------------------------------------
+
+
+def _toml_value(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (int, float)):
+        return repr(float(value)) if isinstance(value, float) else str(value)
+    if isinstance(value, Path):
+        value = value.as_posix()
+    if isinstance(value, str):
+        # JSON strings are TOML basic strings, once DEL (allowed raw in JSON) is escaped
+        return json.dumps(value, ensure_ascii=False).replace("\x7f", "\\u007f")
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml_value("" if v is None else v) for v in value) + "]"
+    if isinstance(value, Mapping):
+        inner = ", ".join(f"{k} = {_toml_value(v)}" for k, v in value.items())
+        return "{" + (f" {inner} " if inner else "") + "}"
+    raise TypeError(f"cannot write {value!r} as TOML")
+
+
+def _assignment(dotted: str, value: Any) -> str:
+    key = dotted.split(".")[1]
+    if dotted == "panel.entity" and isinstance(value, list) and len(value) == 1:
+        value = value[0]
+    return f"{key} = {_toml_value(value)}"
+
+
+_EXAMPLES = {
+    "input.path": "data.csv",
+    "input.format": "csv",
+    "input.delimiter": ";",
+    "panel.entity": "firm_id",
+    "panel.time": "year",
+    "panel.freq": "year",
+    "model.y": "sales",
+    "model.x": ["capital"],
+    "output.dir": "prepared",
+    "contract.schema": "schemas/firm_year.yaml",
+    "checks.severity": {"period-holes": "error"},
+}
+
+
+def _render(values: dict[str, Any], active: set[str], notes: dict[str, str],
+            header: list[str]) -> str:
+    """TOML text of ``values``: keys in ``active`` set, the others commented out.
+
+    ``notes`` adds a trailing comment to a key's line (the starter's
+    ``# guessed`` marks).
+    """
+    out = [f"# {line}" if line else "#" for line in header]
+    for section, keys in _KEYS.items():
+        out += ["", f"[{section}]"]
+        for key, spec in keys.items():
+            dotted = f"{section}.{key}"
+            if dotted == "checks.severity":
+                continue
+            value = values.get(dotted)
+            out.append(f"# {_plain(spec.help)} [{_plain(spec.kind)}]")
+            shown = value if value is not None else _EXAMPLES.get(dotted)
+            line = _assignment(dotted, shown)
+            if dotted in notes:
+                line += f"  # {notes[dotted]}"
+            out.append(line if dotted in active else f"# {line}")
+        if section == "checks":
+            severity = values.get("checks.severity") or {}
+            text = (_plain(_KEYS["checks"]["severity"].help) + " (info, warning or error); ids: "
+                    + ", ".join(FINDING_IDS))
+            out += [""] + [f"# {line}" for line in textwrap.wrap(text, 92, break_on_hyphens=False)]
+            shown_map = severity or _EXAMPLES["checks.severity"]
+            on = "checks.severity" in active and bool(severity)
+            prefix = "" if on else "# "
+            out.append(f"{prefix}[checks.severity]")
+            out += [f"{prefix}{k} = {_toml_value(v)}" for k, v in shown_map.items()]
+    return "\n".join(out) + "\n"
+
+
+def _plain(text: str) -> str:
+    return text.replace("`", "")
+
+
+# --- the starter file ----------------------------------------------------------
+
+_SAMPLE_ROWS = 1000
+_ID_WORDS = {"id", "ids", "firm", "entity", "code", "name", "company", "country", "person",
+             "individual", "household", "unit", "ident", "identifier", "key", "ticker", "isin",
+             "region", "state", "plant", "store", "school", "group"}
+_TIME_WORDS = {"year", "yr", "date", "period", "quarter", "qtr", "month", "week", "day", "time",
+               "wave", "t", "fyear", "fiscal"}
+
+
+def _words(name: str) -> list[str]:
+    spaced = re.sub(r"([a-z0-9])([A-Z])", r"\1 \2", name)
+    return [w for w in re.split(r"[^A-Za-z0-9]+", spaced.lower()) if w]
+
+
+def _named_like(name: str, vocabulary: set[str]) -> bool:
+    for word in _words(name):
+        if word in vocabulary:
+            return True
+        # glued forms such as firmid, companycode
+        if any(word.endswith(v) and word[: -len(v)] in vocabulary for v in ("id", "code", "key")):
+            return True
+    return False
+
+
+def _sample(path: Path, options: ReadOptions, names: list[str]) -> pd.DataFrame:
+    """The first rows of a data file; CSV columns all as text, so ids keep their zeros."""
+    fmt = detect_format(path, options.input_format)
+    if fmt == "csv":
+        with open(path, "rb") as handle:
+            head = b"".join(line for _, line in zip(range(_SAMPLE_ROWS + 1), handle))
+        with tempfile.TemporaryDirectory() as folder:
+            part = Path(folder) / f"sample{path.suffix or '.csv'}"
+            part.write_bytes(head)
+            return read_frame(part, None, names, None, options)
+    try:
+        if fmt == "parquet":
+            batches = pq.ParquetFile(path).iter_batches(batch_size=_SAMPLE_ROWS)
+            first = next(batches, None)
+            if first is None:
+                return pq.read_schema(path).empty_table().to_pandas()
+            return first.to_pandas()
+        return feather.read_table(path, memory_map=True).slice(0, _SAMPLE_ROWS).to_pandas()
+    except (pa.ArrowException, OSError, ValueError) as err:
+        raise InputError(f"{path}: cannot read as {fmt}: {err}") from None
+
+
+def _is_text(values: pd.Series) -> bool:
+    return pd.api.types.is_string_dtype(values.dtype) or values.dtype == object
+
+
+def _whole_numbers(values: pd.Series) -> bool:
+    as_int = integer_text_to_int(values) if _is_text(values) else values
+    return pd.api.types.is_integer_dtype(as_int.dtype)
+
+
+def _parses_as_time(values: pd.Series, name: str) -> str | None:
+    """The frequency the values parse at, or None when they are not periods."""
+    present = values.dropna()
+    if len(present) == 0:
+        return None
+    if _is_text(present):
+        present = integer_text_to_int(present)
+    try:
+        return build_time_axis(present.reset_index(drop=True), None, name).freq
+    except (InputError, ValueError, TypeError, OverflowError):
+        return None
+
+
+def _guess_time(frame: pd.DataFrame, decimal_comma: bool) -> tuple[str | None, str | None]:
+    """(column, frequency): a time-named column that parses, else a text column of
+    period labels or dates, else a column of whole numbers that look like years."""
+    columns = list(frame.columns)
+    for name in columns:
+        if _named_like(name, _TIME_WORDS):
+            freq = _parses_as_time(frame[name], name)
+            if freq is not None:
+                return name, freq
+    for name in columns:
+        values = frame[name]
+        if _is_text(values) and not looks_numeric(values, decimal_comma):
+            freq = _parses_as_time(values, name)
+            if freq is not None:
+                return name, freq
+    for name in columns:
+        values = frame[name]
+        if _whole_numbers(values):
+            numbers = pd.to_numeric(values.dropna(), errors="coerce")
+            if len(numbers) and numbers.between(1800, 2200).all():
+                return name, _parses_as_time(values, name)
+    named = [n for n in columns if _named_like(n, _TIME_WORDS)]
+    return (named[0] if named else None), None
+
+
+def _guess_entity(frame: pd.DataFrame, time: str | None, decimal_comma: bool) -> str | None:
+    """A text column named like an id, else an id-named column of whole numbers,
+    else the first text column."""
+    columns = [c for c in frame.columns if c != time]
+    text = [c for c in columns if _is_text(frame[c]) and not looks_numeric(frame[c], decimal_comma)]
+    id_named = [c for c in columns if _named_like(c, _ID_WORDS)]
+    for name in id_named:
+        if name in text:
+            return name
+    for name in id_named:
+        if _whole_numbers(frame[name]):
+            return name
+    return text[0] if text else None
+
+
+_DECIMAL_COMMA = re.compile(r"^\s*[-+]?\d+,\d+\s*$")
+
+
+def _guess_decimal_comma(frame: pd.DataFrame, delimiter: str) -> bool:
+    if delimiter == ",":
+        return False
+    for name in frame.columns:
+        values = frame[name]
+        if not _is_text(values):
+            continue
+        present = values.dropna().astype(str)
+        present = present[present.str.strip() != ""]
+        if len(present) and present.str.fullmatch(_DECIMAL_COMMA.pattern).mean() >= 0.5:
+            return True
+    return False
+
+
+_TOKENS = ("n/a", "N/A", "na", "NA", "-", ".", "null", "NULL", "nan", "NaN", "#N/A", "missing")
+
+
+def _seen_tokens(frame: pd.DataFrame, numeric: list[str]) -> list[str]:
+    seen: list[str] = []
+    for name in numeric:
+        values = frame[name]
+        if _is_text(values):
+            stripped = values.dropna().astype(str).str.strip()
+            seen += [t for t in _TOKENS if t not in seen and (stripped == t).any()]
+    return seen
+
+
+def starter_run_file(data_path: str | Path, frame_head: pd.DataFrame | None = None,
+                     run_dir: str | Path | None = None) -> str:
+    """A commented starter run file for a data file, with guessed keys marked.
+
+    Parameters
+    ----------
+    data_path : the data file (CSV, Parquet or Arrow).
+    frame_head : the first rows of the data, when already read; else up to
+        1,000 rows are read (CSV columns as text).
+    run_dir : the folder the run file will be saved in; paths are written
+        relative to it.  Without it ``input.path`` is written absolute.
+
+    Returns
+    -------
+    TOML text that ``load_run_file`` reads without error.  The entity,
+    time, y and x keys are guesses marked ``# guessed``: the entity is a
+    text column named like an id (``firm_id``, ``code``, ``name``...), else
+    an id-named column of whole numbers, else the first text column; the
+    time column is named like a period (``year``, ``date``, ``quarter``...)
+    and parses as one, else holds period labels or dates, else years; y is
+    the first numeric column left and x the other numeric columns.  Every
+    other key is written commented out with its default.
+
+    Raises
+    ------
+    InputError when the file cannot be read or has fewer than two columns
+    besides the entity and time columns.
+    """
+    path = Path(data_path)
+    names = column_names(path)
+    options = ReadOptions()
+    delimiter = None
+    if detect_format(path) == "csv":
+        with open(path, "rb") as handle:
+            delimiter = sniff_delimiter(handle.readline().decode("utf-8-sig", errors="replace"))
+        options = ReadOptions(delimiter=delimiter)
+    frame = frame_head if frame_head is not None else _sample(path, options, names)
+    decimal_comma = delimiter is not None and _guess_decimal_comma(frame, delimiter)
+
+    time, freq = _guess_time(frame, decimal_comma)
+    entity = _guess_entity(frame, time, decimal_comma)
+    notes = {}
+    if time is None:
+        time = next(c for c in frame.columns if c != entity)
+        notes["panel.time"] = "guessed: no column looked like a period; check it"
+    else:
+        notes["panel.time"] = "guessed: " + (f"looks like {freq} periods" if freq
+                                             else "named like a period")
+    if entity is None:
+        entity = next(c for c in frame.columns if c != time)
+        notes["panel.entity"] = "guessed: no text column; check it"
+    else:
+        notes["panel.entity"] = "guessed"
+    rest = [c for c in frame.columns if c not in (entity, time)]
+    numeric = [c for c in rest if looks_numeric(frame[c], decimal_comma)]
+    chosen = numeric if len(numeric) >= 2 else numeric + [c for c in rest if c not in numeric]
+    if len(chosen) < 2:
+        raise InputError(f"{path}: cannot write a starter run file: it needs at least two "
+                         f"columns besides {entity!r} and {time!r}; columns are {names}")
+    notes["model.y"] = "guessed: first numeric column as y"
+    notes["model.x"] = "guessed: the other numeric columns"
+
+    base = Path(run_dir) if run_dir is not None else None
+    data_written = (Path(os.path.relpath(path.resolve(), base.resolve())) if base is not None
+                    else path.resolve())
+    values: dict[str, Any] = {f"{s}.{k}": _default(f"{s}.{k}")
+                              for s, keys in _KEYS.items() for k in keys}
+    values.update({
+        "input.path": data_written,
+        "input.decimal_comma": decimal_comma,
+        "panel.entity": [entity],
+        "panel.time": time,
+        "panel.freq": freq if freq in FREQUENCIES else None,
+        "model.y": chosen[0],
+        "model.x": chosen[1:],
+        "output.dir": Path(f"{path.stem}-prepared"),
+    })
+    active = set(REQUIRED)
+    if decimal_comma:
+        active.add("input.decimal_comma")
+        notes["input.decimal_comma"] = "guessed: numbers such as 3,14 in the sample"
+    if delimiter not in (None, ","):
+        values["input.delimiter"] = delimiter
+        notes["input.delimiter"] = "sniffed from the header; set it to be sure"
+    if freq in FREQUENCIES:
+        notes["panel.freq"] = "as the sample looks; inferred when absent"
+    tokens = _seen_tokens(frame, chosen)
+    if tokens:
+        values["input.missing_tokens"] = tokens
+        notes["input.missing_tokens"] = "seen in the sample: declare them if they mean missing"
+    notes["output.dir"] = "relative to this file's folder"
+    header = [
+        f"panelprep run file: a starter for {path.name}, written by panelprep {__version__}.",
+        "Lines marked 'guessed' were guessed from the data: check them before a run.",
+        "Commented-out keys show their default or an example; remove the '# ' to set one.",
+        "Values given on the command line override this file.",
+    ]
+    return _render(values, active, notes, header)
+
+
+__all__ = [
+    "EXTRA_FINDING_IDS", "FINDING_IDS", "REQUIRED", "RunFile", "key_lines", "key_table",
+    "load_run_file", "starter_run_file",
+]
