@@ -100,68 +100,95 @@ def audit_command(
 
 @app.command("prepare")
 def prepare_command(
-    data: Annotated[Path, typer.Argument(help="CSV, Parquet or Arrow/Feather file.")],
-    entity: EntityOpt,
-    time: TimeOpt,
-    y: Annotated[str, typer.Option("--y", help="Dependent variable.")],
-    x: Annotated[str, typer.Option("--x", help="Regressors, comma-separated (may name lags, e.g. sales_lag1).")],
-    out: Annotated[Path, typer.Option("--out", "-o", help="Output folder.")],
-    transform: Annotated[str, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway.")] = "within,between,quasi",
-    method: Annotated[str, typer.Option("--method", help="Variance components: swamy-arora, wallace-hussain, amemiya or nerlove.")] = "swamy-arora",
-    output_format: Annotated[str, typer.Option("--format", help="Data files as parquet or csv.")] = "parquet",
-    force: Annotated[bool, typer.Option("--force", help="Replace a non-empty output folder.")] = False,
-    duplicates: Annotated[str, typer.Option("--duplicates", help="fail, drop-exact, keep-first, keep-last or mean.")] = "fail",
-    normalise_ids: Annotated[str, typer.Option("--normalise-ids", help="none, trim or trim-fold.")] = "none",
-    singletons: Annotated[str, typer.Option("--singletons", help="keep or drop.")] = "keep",
-    balance: Annotated[str, typer.Option("--balance", help="keep, complete-entities or largest-block.")] = "keep",
-    window: Annotated[str | None, typer.Option("--window", help="FIRST:LAST period labels to keep, either may be empty.")] = None,
+    data: Annotated[Path | None, typer.Argument(help="CSV, Parquet or Arrow/Feather file (or input.path of --config).")] = None,
+    config: Annotated[Path | None, typer.Option("--config", "-c", help="Run file (TOML); flags given here override it.")] = None,
+    entity: Annotated[str | None, typer.Option("--entity", "-e", help="Entity key column(s), comma-separated.")] = None,
+    time: Annotated[str | None, typer.Option("--time", "-t", help="Time column.")] = None,
+    y: Annotated[str | None, typer.Option("--y", help="Dependent variable.")] = None,
+    x: Annotated[str | None, typer.Option("--x", help="Regressors, comma-separated (may name lags, e.g. sales_lag1).")] = None,
+    out: Annotated[Path | None, typer.Option("--out", "-o", help="Output folder.")] = None,
+    transform: Annotated[str | None, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway (default within,between,quasi).")] = None,
+    method: Annotated[str | None, typer.Option("--method", help="Variance components: swamy-arora (default), wallace-hussain, amemiya or nerlove.")] = None,
+    output_format: Annotated[str | None, typer.Option("--format", help="Data files as parquet (default) or csv.")] = None,
+    force: Annotated[bool | None, typer.Option("--force/--no-force", help="Replace a non-empty output folder.")] = None,
+    contract: Annotated[Path | None, typer.Option("--contract", help="pandera YAML schema the input must satisfy.")] = None,
+    duplicates: Annotated[str | None, typer.Option("--duplicates", help="fail (default), drop-exact, keep-first, keep-last or mean.")] = None,
+    normalise_ids: Annotated[str | None, typer.Option("--normalise-ids", help="none (default), trim or trim-fold.")] = None,
+    singletons: Annotated[str | None, typer.Option("--singletons", help="keep (default) or drop.")] = None,
+    balance: Annotated[str | None, typer.Option("--balance", help="keep (default), complete-entities or largest-block.")] = None,
+    window: Annotated[str | None, typer.Option("--window", help="FIRST,LAST period labels to keep; either may be empty.")] = None,
     lag: Annotated[str | None, typer.Option("--lag", help="Lags as var:k,... creating var_lagk.")] = None,
     lead: Annotated[str | None, typer.Option("--lead", help="Leads as var:k,... creating var_leadk.")] = None,
     diff: Annotated[str | None, typer.Option("--diff", help="Differences as var[:k],... creating var_diffk.")] = None,
+    severity: Annotated[str | None, typer.Option("--severity", help="Severity per finding id, e.g. period-holes=error,entity-single-obs=info.")] = None,
     freq: FreqOpt = None,
-    fail_on: FailOpt = "error",
+    fail_on: Annotated[str | None, typer.Option("--fail-on", help="Lowest severity that fails the gate: error (default) or warning.")] = None,
     input_format: FormatOpt = None,
     delimiter: DelimOpt = None,
-    decimal_comma: DecimalOpt = False,
+    decimal_comma: Annotated[bool | None, typer.Option("--decimal-comma/--decimal-point", help="CSV numbers use ',' as decimal mark.")] = None,
     missing_token: TokenOpt = None,
     quiet: QuietOpt = False,
 ) -> None:
     """Clean, audit, then write estimation-ready files with provenance into --out."""
-    from panelprep.clean import Policies
-    from panelprep.lags import parse_shifts
-    from panelprep.prepare import PrepareOptions, run_preparation
+    from panelprep.config import RunFile, load_run_file
+    from panelprep.prepare import run_from_file
 
+    overrides = {
+        "input.path": data, "input.format": input_format, "input.delimiter": delimiter,
+        "input.decimal_comma": decimal_comma, "input.missing_tokens": missing_token,
+        "panel.entity": entity, "panel.time": time, "panel.freq": freq,
+        "model.y": y, "model.x": x, "contract.schema": contract,
+        "checks.fail_on": fail_on, "checks.severity": _severity_map(severity),
+        "clean.duplicates": duplicates, "clean.normalise_ids": normalise_ids,
+        "clean.singletons": singletons, "clean.balance": balance, "clean.window": window,
+        "derive.lag": lag, "derive.lead": lead, "derive.diff": diff,
+        "output.dir": out, "output.transforms": transform, "output.method": method,
+        "output.format": output_format, "output.force": force,
+    }
     try:
-        if fail_on not in ("error", "warning"):
-            raise InputError(f"--fail-on {fail_on!r} must be error or warning")
-        options = PrepareOptions(
-            entity=pipeline.split_names(entity) or [], time=time, y=y,
-            x=pipeline.split_names(x) or [], freq=freq,
-            transforms=pipeline.split_names(transform) or [], method=method,
-            output_format=output_format, fail_on=fail_on,
-            policies=Policies(duplicates=duplicates, normalise_ids=normalise_ids,
-                              singletons=singletons, balance=balance, window=_window(window)),
-            shifts=[*parse_shifts("lag", lag), *parse_shifts("lead", lead),
-                    *parse_shifts("diff", diff)],
-        )
-        result = run_preparation(
-            data, out, options,
-            read_options=_read_options(input_format, delimiter, decimal_comma, missing_token),
-            force=force, progress=pipeline.stderr_progress(quiet),
-        )
+        run = load_run_file(config, overrides) if config else RunFile().merged(overrides)
+        result = run_from_file(run, progress=pipeline.stderr_progress(quiet))
     except InputError as err:
         _unusable(str(err))
-    _print_preparation(result.summary, out)
+    _print_preparation(result.summary, run.output.dir)
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 
-def _window(text: str | None) -> tuple[str | None, str | None]:
+def _severity_map(text: str | None) -> dict[str, str] | None:
     if not text:
-        return (None, None)
-    first, sep, last = text.partition(":")
-    if not sep:
-        raise InputError(f"--window {text!r} must be FIRST:LAST (either may be empty)")
-    return (first.strip() or None, last.strip() or None)
+        return None
+    out = {}
+    for item in text.split(","):
+        finding_id, sep, level = item.partition("=")
+        if not sep:
+            raise InputError(f"--severity {item!r} must be finding-id=level")
+        out[finding_id.strip()] = level.strip()
+    return out
+
+
+@app.command("draft")
+def draft_command(
+    data: Annotated[Path, typer.Argument(help="The data file to draft a run file for.")],
+    out: Annotated[Path | None, typer.Option("--out", "-o", help="Write the run file here (default: print it).")] = None,
+    force: Annotated[bool, typer.Option("--force", help="Overwrite an existing run file.")] = False,
+) -> None:
+    """Write a commented starter run file for DATA, with guessed keys marked."""
+    from panelprep.config import starter_run_file
+
+    try:
+        text = starter_run_file(data)
+        if out is None:
+            typer.echo(text, nl=False)
+            return
+        if out.exists() and not force:
+            raise InputError(f"{out}: exists (use --force to overwrite)")
+        if out.resolve() == data.resolve():
+            raise InputError(f"{out}: would overwrite the data file")
+        out.write_text(text, encoding="utf-8")
+    except InputError as err:
+        _unusable(str(err))
+    typer.echo(f"wrote {out}; check the lines marked 'guessed', then run: "
+               f"panelprep prepare --config {out}", err=True)
 
 
 def _print_preparation(summary: dict, out: Path) -> None:

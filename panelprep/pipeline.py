@@ -105,6 +105,7 @@ def audit(
     input_info: dict[str, Any] | None = None,
     index: PanelIndex | None = None,
     progress: Progress = _silent,
+    prior_findings: Sequence[Finding] = (),
 ) -> AuditReport:
     """Run every structural check on a panel held in a DataFrame.
 
@@ -118,6 +119,9 @@ def audit(
     fail_on : lowest severity that fails the gate (``error`` or ``warning``).
     thresholds : limits of the checks (see ``Thresholds``).
     severities : severity per finding id, overriding the defaults.
+    index : a ``PanelIndex`` already built for ``frame`` (reused, not rebuilt).
+    prior_findings : findings of earlier steps (a schema contract) that the
+        gate judges together with the checks'.
 
     Returns
     -------
@@ -147,7 +151,7 @@ def audit(
         decimal_comma=decimal_comma,
         missing_tokens=tuple(missing_tokens),
     )
-    findings: list[Finding] = []
+    findings: list[Finding] = list(prior_findings)
     for check in CHECKS:
         progress(f"check {check.id}")
         found = check.run(context)

@@ -37,7 +37,9 @@ from panelprep.evidence import collect_evidence
 from panelprep.findings import Finding, gate
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import DEFAULT_READ, OutputFolder, ReadOptions, sha256_file, write_table
-from panelprep.lags import Shift, add_shifts
+from panelprep.config import RunFile
+from panelprep.contracts import check_contract, load_contract
+from panelprep.lags import Shift, add_shifts, parse_shifts
 from panelprep.ledger import Ledger, StepRecord, require_rows
 from panelprep.pipeline import AuditReport, Progress, _silent, audit, load, split_names
 
@@ -64,6 +66,8 @@ class PrepareOptions:
     twoway_tol: float = 1e-12
     policies: Policies = field(default_factory=Policies)
     shifts: list[Shift] = field(default_factory=list)
+    contract: Any = None
+    validate_outputs: bool = False
 
     def validate(self) -> None:
         self.policies.validate()
@@ -126,6 +130,10 @@ def prepare_frame(
     options.validate()
     policies = options.policies
     flow = _Flow(frame, Ledger(rows_read=len(frame)))
+    contract_findings = []
+    if options.contract is not None:
+        progress("checking the schema contract")
+        contract_findings = check_contract(frame, options.contract, where="input")
 
     if policies.normalise_ids != "none":
         flow.frame, changed = normalise_ids(flow.frame, options.entity, policies.normalise_ids)
@@ -152,7 +160,7 @@ def prepare_frame(
         freq=options.freq, fail_on=options.fail_on, thresholds=options.thresholds,
         severities=severities, decimal_comma=read_options.decimal_comma,
         missing_tokens=read_options.missing_tokens, input_info=input_info,
-        index=flow.index, progress=progress,
+        index=flow.index, progress=progress, prior_findings=contract_findings,
     )
     ctx = report.context
     summary = report.to_dict()
@@ -192,6 +200,8 @@ def prepare_frame(
                                  components.theta_, options, progress)
 
     findings = report.findings + [Finding(**f) for f in components.findings_]
+    if options.validate_outputs and options.contract is not None:
+        findings += check_contract(tables["clean"], options.contract, where="output clean")
     summary["findings"] = [f.to_dict() for f in findings]
     summary["verdict"] = gate(findings, options.fail_on)
     summary["sample"] = _sample_summary(ctx, sample_ix, options)
@@ -470,6 +480,26 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
     folder.path("diagnostics.json").write_text(text + "\n", encoding="utf-8")
     folder.path("diagnostics.txt").write_text("\n".join(preparation_lines(prep.summary)) + "\n",
                                               encoding="utf-8")
+
+
+def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
+    """Run the preparation a run file describes (after command-line overrides)."""
+    contract = load_contract(run.contract.schema) if run.contract.schema else None
+    options = PrepareOptions(
+        entity=list(run.panel.entity), time=run.panel.time, y=run.model.y, x=list(run.model.x),
+        freq=run.panel.freq, transforms=list(run.output.transforms), method=run.output.method,
+        output_format=run.output.format, fail_on=run.checks.fail_on,
+        severities=dict(run.checks.severity), thresholds=run.thresholds(),
+        policies=Policies(
+            duplicates=run.clean.duplicates, normalise_ids=run.clean.normalise_ids,
+            singletons=run.clean.singletons, balance=run.clean.balance, window=run.clean.window,
+        ),
+        shifts=[*parse_shifts("lag", run.derive.lag), *parse_shifts("lead", run.derive.lead),
+                *parse_shifts("diff", run.derive.diff)],
+        contract=contract, validate_outputs=run.contract.validate_outputs,
+    )
+    return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
+                           force=run.output.force, progress=progress)
 
 
 def estimate_file_components(
