@@ -176,7 +176,7 @@ def draft_command(
     from panelprep.config import starter_run_file
 
     try:
-        text = starter_run_file(data)
+        text = starter_run_file(data, run_dir=None if out is None else out.resolve().parent)
         if out is None:
             typer.echo(text, nl=False)
             return
@@ -255,11 +255,20 @@ def _write_json(path: Path, document: dict, source: Path) -> None:
 
 
 def main() -> None:
-    """Entry point that also turns unexpected failures into one line and exit 2."""
+    """Entry point: usage errors and unexpected failures become one line and exit 2."""
     try:
-        app(standalone_mode=True)
-    except SystemExit:
-        raise
-    except Exception as err:  # last line of defence: never a traceback for a user
-        typer.echo(f"panelprep: error: internal failure: {type(err).__name__}: {err}", err=True)
+        code = app(standalone_mode=False)
+    except typer.TyperException as err:  # usage errors: bad or missing options
+        ctx = getattr(err, "ctx", None)
+        where = f" ({ctx.command_path} --help shows the options)" if ctx is not None else ""
+        message = " ".join(err.format_message().split())
+        typer.echo(f"panelprep: error: {message}{where}", err=True)
         sys.exit(EXIT_UNUSABLE)
+    except typer.Abort:
+        typer.echo("panelprep: error: aborted", err=True)
+        sys.exit(EXIT_UNUSABLE)
+    except Exception as err:  # noqa: BLE001 - last line of defence: never a traceback for a user
+        message = " ".join(str(err).split())
+        typer.echo(f"panelprep: error: internal failure: {type(err).__name__}: {message}", err=True)
+        sys.exit(EXIT_UNUSABLE)
+    sys.exit(code or 0)

@@ -136,8 +136,10 @@ def prepare_frame(
         contract_findings = check_contract(frame, options.contract, where="input")
 
     if policies.normalise_ids != "none":
+        before = _distinct_entities(flow.frame, options.entity)
         flow.frame, changed = normalise_ids(flow.frame, options.entity, policies.normalise_ids)
-        flow.note(f"normalise entity ids ({policies.normalise_ids})", f"{changed:,} ids changed")
+        flow.note(f"normalise entity ids ({policies.normalise_ids})", before,
+                  _distinct_entities(flow.frame, options.entity), f"{changed:,} ids changed")
     progress(f"indexing {len(flow.frame):,} rows")
     flow.index = build_index(flow.frame, options.entity, options.time, options.freq)
     flow.apply(window_removal(flow.index, policies.window))
@@ -217,6 +219,11 @@ def prepare_frame(
     if summary["verdict"] == "fail":
         prep.tables = {}
     return prep
+
+
+def _distinct_entities(frame: pd.DataFrame, entity: list[str]) -> int:
+    """Distinct complete entity keys, counted before an index exists."""
+    return int(len(frame[entity].dropna().drop_duplicates()))
 
 
 def _context(flow: _Flow, options: PrepareOptions, read_options: ReadOptions) -> AuditContext:
@@ -302,10 +309,11 @@ class _Flow:
     def __post_init__(self) -> None:
         self.origin = np.arange(len(self.frame))
 
-    def note(self, step: str, note: str) -> None:
+    def note(self, step: str, entities_before: int, entities_after: int, note: str) -> None:
         """A step that changes values but removes no row."""
         rows = len(self.frame)
-        self.ledger.story.append(StepRecord(step, rows, rows, 0, 0, note))
+        self.ledger.story.append(StepRecord(step, rows, rows, entities_before, entities_after,
+                                            note))
 
     def apply(self, removal: Removal | None) -> None:
         """Before the audit: remove rows from the frame and the index."""
