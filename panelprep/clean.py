@@ -69,7 +69,13 @@ class Removal:
 
 
 def normalise_ids(frame: pd.DataFrame, entity: list[str], how: str) -> tuple[pd.DataFrame, int]:
-    """Entity ids trimmed (and case-folded); returns the new frame and ids changed."""
+    """Entity ids trimmed (and case-folded); returns the new frame and rows changed.
+
+    ``trim-fold`` merges ids that differ only by case, and writes each merged
+    id in its most frequent trimmed spelling (ties: the first in sort order),
+    so ``F00042`` stays ``F00042`` when a stray ``f00042`` joins it.  The work
+    is on distinct ids, broadcast back through factorised codes.
+    """
     if how == "none":
         return frame, 0
     out = frame.copy()
@@ -78,9 +84,19 @@ def normalise_ids(frame: pd.DataFrame, entity: list[str], how: str) -> tuple[pd.
         values = frame[column]
         if pd.api.types.is_numeric_dtype(values.dtype):
             continue
-        new = values.str.strip()
+        codes, uniques = pd.factorize(values, use_na_sentinel=True)
+        trimmed = pd.Series(uniques, dtype="str").str.strip()
         if how == "trim-fold":
-            new = new.str.casefold()
+            counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
+            spellings = pd.DataFrame({"folded": trimmed.str.casefold(), "spelling": trimmed,
+                                      "rows": counts})
+            spellings = spellings.groupby(["folded", "spelling"], sort=True)["rows"].sum()
+            spellings = spellings.reset_index().sort_values(
+                ["folded", "rows", "spelling"], ascending=[True, False, True], kind="stable")
+            canonical = spellings.drop_duplicates("folded").set_index("folded")["spelling"]
+            trimmed = trimmed.str.casefold().map(canonical)
+        new = pd.Series(np.asarray(trimmed, dtype=object)[np.where(codes >= 0, codes, 0)],
+                        index=values.index, dtype="str").where(codes >= 0)
         changed |= (new != values).fillna(False).to_numpy(dtype=bool)
         out[column] = new
     return out, int(changed.sum())
