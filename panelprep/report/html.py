@@ -97,7 +97,7 @@ th {{ text-align: left; font-weight: 600; color: var(--muted); font-size: 12.5px
   padding: 6px 10px; }}
 th.num {{ text-align: right; }}
 td {{ padding: 6px 10px; border-bottom: 1px solid var(--rule); vertical-align: top; }}
-tr:last-child td, tr:last-child th {{ border-bottom: none; }}
+tr:last-child td, table.kv tr:last-child th {{ border-bottom: none; }}
 table.kv th {{ width: 38%; text-transform: none; letter-spacing: 0; font-size: 14px;
   color: var(--ink); font-weight: 500; border-bottom: 1px solid var(--rule); }}
 .scroll {{ overflow-x: auto; }}
