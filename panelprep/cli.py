@@ -154,6 +154,36 @@ def prepare_command(
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 
+@app.command("demo")
+def demo_command(
+    folder: Annotated[Path, typer.Argument(help="Folder for the demo data, run file and outputs.")] = Path("panelprep-demo"),
+    force: Annotated[bool, typer.Option("--force", help="Redo the demo in a folder that is not empty.")] = False,
+    quiet: QuietOpt = False,
+) -> None:
+    """Write an invented demo panel with planted defects and prepare it from a run file."""
+    from panelprep.demo import run_demo
+
+    try:
+        result, planted = run_demo(folder, force=force, progress=pipeline.stderr_progress(quiet))
+    except InputError as err:
+        _unusable(str(err))
+    summary = result.summary
+    typer.echo(f"demo data (invented firms, not real companies): {folder / 'firms.csv'}, "
+               f"{planted['rows']:,} rows, {planted['firms']} firms, 2005-2024")
+    typer.echo(f"  planted: {planted['exact_duplicate_rows']} repeated rows, "
+               f"{planted['conflicting_duplicate_keys']} conflicting keys, "
+               f"{planted['lookalike_groups']} look-alike ids, {planted['gap_firms']} firms with holes, "
+               f"{planted['singleton_firms']} singletons, "
+               f"{sum(planted['missing_cells'].values())} missing cells")
+    typer.echo(f"run file: {folder / 'run.toml'}")
+    typer.echo("")
+    _print_preparation(summary, folder / "out")
+    typer.echo("")
+    typer.echo(f"read {folder / 'out' / 'diagnostics.txt'} top to bottom; rerun with: "
+               f"panelprep prepare --config {folder / 'run.toml'} --force")
+    raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
+
+
 def _severity_map(text: str | None) -> dict[str, str] | None:
     if not text:
         return None

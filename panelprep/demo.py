@@ -14,6 +14,7 @@ operation; the only Python loops are over the few defect kinds.
 from __future__ import annotations
 
 from os import PathLike
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -316,3 +317,29 @@ def _firm_values(
     log_y = (-0.9 + _ELASTICITY_CAPITAL * log_k + _ELASTICITY_STAFF * log_l + effect[firm]
              + cycle[t] + rng.normal(0.0, 0.12, n_rows))
     return np.round(np.exp(log_y), 3), np.round(np.exp(log_k), 3), np.round(np.exp(log_l), 1)
+
+
+def run_demo(folder: str | Path, force: bool = False, progress=None):
+    """Write the demo data and run file into ``folder`` and run the preparation.
+
+    Returns ``(preparation, planted)`` where ``planted`` counts the defects
+    planted in the invented data.  Outputs go to ``folder/out``.
+    """
+    from importlib import resources
+
+    from panelprep.config import load_run_file
+    from panelprep.errors import InputError
+    from panelprep.prepare import run_from_file
+
+    folder = Path(folder)
+    if folder.exists() and not folder.is_dir():
+        raise InputError(f"{folder}: exists and is not a folder")
+    if folder.exists() and any(folder.iterdir()) and not force:
+        raise InputError(f"{folder}: folder exists and is not empty (use --force to redo the demo)")
+    folder.mkdir(parents=True, exist_ok=True)
+    planted = write_demo_csv(folder / "firms.csv")
+    run_text = resources.files("panelprep").joinpath("data/demo_run.toml").read_text("utf-8")
+    (folder / "run.toml").write_text(run_text, encoding="utf-8")
+    run = load_run_file(folder / "run.toml", {"output.force": True if force else None})
+    kwargs = {} if progress is None else {"progress": progress}
+    return run_from_file(run, **kwargs), planted

@@ -148,7 +148,7 @@ def prepare_frame(
         flow.apply(duplicate_removal(flow.frame, flow.index, ctx.repeat, policies.duplicates))
         if policies.duplicates == "mean":
             ctx = _context(flow, options, read_options)
-            flow.frame, removal = merge_means(flow.frame, flow.index, ctx.values, options.variables)
+            flow.frame, removal = merge_means(flow.frame, flow.index, ctx.values, ctx.variables)
             flow.apply(removal)
     if options.shifts:
         flow.frame = add_shifts(flow.frame, flow.index, options.shifts)
@@ -227,7 +227,9 @@ def _distinct_entities(frame: pd.DataFrame, entity: list[str]) -> int:
 
 
 def _context(flow: _Flow, options: PrepareOptions, read_options: ReadOptions) -> AuditContext:
-    return AuditContext(flow.frame, flow.index, options.variables,
+    """A context over the model variables already in the frame (lags come later)."""
+    present = [v for v in options.variables if v in flow.frame.columns]
+    return AuditContext(flow.frame, flow.index, present,
                         decimal_comma=read_options.decimal_comma,
                         missing_tokens=read_options.missing_tokens)
 

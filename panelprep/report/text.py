@@ -52,7 +52,7 @@ def audit_lines(report: dict[str, Any]) -> list[str]:
             if details.get("first_period") else "-")
     obs = panel["obs_per_entity"]
     lines += _table([
-        ["rows", f"{panel['rows']:,} of {panel['rows_read']:,} read"],
+        ["rows", f"{panel['rows']:,} of {panel['rows_read']:,} audited"],
         ["entities", f"{panel['entities']:,}"],
         ["periods", f"{panel['periods']:,} ({span})"],
         ["shape", ("balanced" if panel["balanced"] else "unbalanced")
