@@ -12,6 +12,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import os
 import re
 import subprocess
 import sys
@@ -181,16 +182,15 @@ def test_user_text_is_escaped():
 def test_same_input_gives_the_same_page(tmp_path):
     summary, pictures = _preparation()
     first = render_html(summary, pictures)
-    again = render_html(*_preparation())
-    assert first == again
-    # and in a fresh interpreter, where nothing is cached
-    script = (
-        "import sys, hashlib; sys.path.insert(0, sys.argv[1]); "
-        "import test_report_html as t; from panelprep.report.html import render_html; "
-        "print(hashlib.sha256(render_html(*t._preparation()).encode()).hexdigest())"
-    )
-    out = subprocess.run([sys.executable, "-c", script, str(Path(__file__).parent)],
-                         capture_output=True, text=True, check=True)
+    assert render_html(*_preparation()) == first
+    # and from the JSON form of the same input, in a fresh interpreter with another hash seed
+    source = tmp_path / "input.json"
+    source.write_text(json.dumps([summary, pictures], allow_nan=False), encoding="utf-8")
+    script = ("import json, sys, hashlib; from panelprep.report.html import render_html; "
+              "s, p = json.load(open(sys.argv[1], encoding='utf-8')); "
+              "print(hashlib.sha256(render_html(s, p).encode()).hexdigest())")
+    out = subprocess.run([sys.executable, "-c", script, str(source)], capture_output=True,
+                         text=True, check=True, env={**os.environ, "PYTHONHASHSEED": "2718"})
     assert out.stdout.strip() == hashlib.sha256(first.encode()).hexdigest()
 
 
