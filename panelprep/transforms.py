@@ -408,6 +408,19 @@ def twoway(
         max_solves = 1 + DIRECT_REFINE_ROUNDS
     any_free = bool(free.any())
 
+    # First pass: group sums of every column; the small dense products and the
+    # solve then run once on the whole block (matrix-matrix, not per column).
+    xbar = np.empty((na, k), dtype=np.float64, order="F")
+    sums_x_b = np.empty((nb, k), dtype=np.float64, order="F")
+    for j in range(k):
+        xbar[:, j] = group_sums(a, block[:, j], na) * inv_a
+        sums_x_b[:, j] = group_sums(b, block[:, j], nb)
+    if any_free and k:
+        effects, used = solve(sums_x_b - inc.rmatvec(xbar))
+        shift_a = xbar - inc.matvec(effects) * inv_a[:, None]
+    else:
+        effects, used, shift_a = None, np.zeros(k, dtype=np.int64), xbar
+
     out = np.empty((n, k), dtype=np.float64, order="F")
     buf = np.empty(n, dtype=np.float64)
     precision = 0.0
@@ -417,24 +430,19 @@ def twoway(
         r = out[:, j]
         scale = float(np.sqrt(np.dot(col, col) / n)) if n else 0.0
         scale = scale if scale > 0 else 1.0
-        xbar = group_sums(a, col, na) * inv_a
+        np.take(shift_a[:, j], a, out=buf, mode="clip")
+        np.subtract(col, buf, out=r)
         col_iter = 0
-        if any_free:
-            g, used = solve(group_sums(b, col, nb) - inc.rmatvec(xbar))
-            col_iter += used
-            np.take(xbar - inc.matvec(g) * inv_a, a, out=buf, mode="clip")
-            np.subtract(col, buf, out=r)
-            np.take(g, b, out=buf, mode="clip")
+        if effects is not None:
+            col_iter = int(used[j])
+            np.take(effects[:, j], b, out=buf, mode="clip")
             np.subtract(r, buf, out=r)
-        else:
-            np.take(xbar, a, out=buf, mode="clip")
-            np.subtract(col, buf, out=r)
         sums_b = group_sums(b, r, nb)
         col_prec = _precision(r, a, na, inv_a, sums_b, inv_b, scale)
         solves = 1
         while any_free and col_prec > tol and solves < max_solves and col_iter < max_iter:
-            delta, used = solve(sums_b)
-            col_iter += used
+            delta, step = solve(sums_b)
+            col_iter += step
             solves += 1
             np.take(delta, b, out=buf, mode="clip")
             np.subtract(r, buf, out=r)
@@ -488,10 +496,10 @@ def _direct_solver(full: np.ndarray, free_idx: np.ndarray, nb: int):
         def apply(rhs):
             return pinv @ rhs
 
-    def solve(rhs: np.ndarray) -> tuple[np.ndarray, int]:
-        g = np.zeros(nb)
+    def solve(rhs: np.ndarray) -> tuple[np.ndarray, int | np.ndarray]:
+        g = np.zeros(rhs.shape)
         g[free_idx] = apply(rhs[free_idx])
-        return g, 1
+        return g, (1 if rhs.ndim == 1 else np.ones(rhs.shape[1], dtype=np.int64))
 
     return solve
 
@@ -514,7 +522,7 @@ def _cg_solver(sparse, count_b, inv_a, free_idx, nb, tol, max_iter):
         (m, m), matvec=lambda v: np.ravel(v) / diag, dtype=np.float64
     )
 
-    def solve(rhs: np.ndarray) -> tuple[np.ndarray, int]:
+    def solve_one(rhs: np.ndarray) -> tuple[np.ndarray, int]:
         count = [0]
 
         def callback(_xk):
@@ -527,5 +535,15 @@ def _cg_solver(sparse, count_b, inv_a, free_idx, nb, tol, max_iter):
         g = np.zeros(nb)
         g[free_idx] = sol
         return g, max(count[0], 1)
+
+    def solve(rhs: np.ndarray) -> tuple[np.ndarray, int | np.ndarray]:
+        """CG per column; iteration counts per column for a 2-D right-hand side."""
+        if rhs.ndim == 1:
+            return solve_one(rhs)
+        g = np.zeros(rhs.shape)
+        used = np.zeros(rhs.shape[1], dtype=np.int64)
+        for j in range(rhs.shape[1]):
+            g[:, j], used[j] = solve_one(rhs[:, j])
+        return g, used
 
     return solve
