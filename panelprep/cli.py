@@ -72,6 +72,7 @@ def audit_command(
     vars: Annotated[str | None, typer.Option("--vars", help="Variables to check, comma-separated (default: all numeric non-key columns).")] = None,
     freq: FreqOpt = None,
     report: Annotated[Path | None, typer.Option("--report", help="Write the JSON report here.")] = None,
+    report_html: Annotated[Path | None, typer.Option("--report-html", help="Write a self-contained HTML report here.")] = None,
     fail_on: FailOpt = "error",
     input_format: FormatOpt = None,
     delimiter: DelimOpt = None,
@@ -92,6 +93,8 @@ def audit_command(
         document = result.to_dict()
         if report is not None:
             _write_json(report, document, data)
+        if report_html is not None:
+            _write_html(report_html, document, result, data)
     except InputError as err:
         _unusable(str(err))
     typer.echo("\n".join(audit_lines(document)))
@@ -228,7 +231,7 @@ def _print_preparation(summary: dict, out: Path) -> None:
         typer.echo("\n".join(components_lines(summary["components"])))
     typer.echo("")
     names = ", ".join(f["name"] for f in summary.get("files", [])) or "diagnostics only"
-    typer.echo(f"written to {out}: {names}, diagnostics.json, diagnostics.txt")
+    typer.echo(f"written to {out}: {names}, diagnostics.json, diagnostics.txt, report.html")
 
 
 @app.command("components")
@@ -269,6 +272,18 @@ def components_command(
         typer.echo(json.dumps(components, indent=2, allow_nan=False))
     else:
         typer.echo("\n".join(components_lines(components)))
+
+
+def _write_html(path: Path, document: dict, result, source: Path) -> None:
+    from panelprep.figures import picture_data
+    from panelprep.report.html import write_html
+
+    if path.resolve() == Path(source).resolve():
+        raise InputError(f"{path}: the HTML report would overwrite the input file")
+    try:
+        write_html(path, document, picture_data(result.context))
+    except OSError as err:
+        raise InputError(f"{path}: cannot write the HTML report: {err.strerror}") from None
 
 
 def _write_json(path: Path, document: dict, source: Path) -> None:

@@ -34,6 +34,7 @@ from panelprep.clean import (
 from panelprep.components import METHODS, VarianceComponents
 from panelprep.errors import InputError
 from panelprep.evidence import collect_evidence
+from panelprep.figures import picture_data
 from panelprep.findings import Finding, gate
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import DEFAULT_READ, OutputFolder, ReadOptions, sha256_file, write_table
@@ -104,6 +105,7 @@ class Preparation:
     components: VarianceComponents | None
     tables: dict[str, pd.DataFrame]
     summary: dict[str, Any]
+    sample_index: PanelIndex | None = None
 
     @property
     def verdict(self) -> str:
@@ -215,7 +217,7 @@ def prepare_frame(
     summary["transforms"] = info
     summary["cautions"] = _cautions(info, components, sample_ix)
     tables["dropped"] = flow.ledger.to_frame(frame, [*options.entity, options.time])
-    prep = Preparation(report, flow.ledger, components, tables, summary)
+    prep = Preparation(report, flow.ledger, components, tables, summary, sample_ix)
     if summary["verdict"] == "fail":
         prep.tables = {}
     return prep
@@ -462,6 +464,7 @@ def run_preparation(
 def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptions,
                   progress: Progress = _silent) -> None:
     """Data files, then diagnostics.json and diagnostics.txt, into the temporary folder."""
+    from panelprep.report.html import render_html
     from panelprep.report.text import preparation_lines
 
     suffix = "parquet" if options.output_format == "parquet" else "csv"
@@ -490,6 +493,17 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
     folder.path("diagnostics.json").write_text(text + "\n", encoding="utf-8")
     folder.path("diagnostics.txt").write_text("\n".join(preparation_lines(prep.summary)) + "\n",
                                               encoding="utf-8")
+    progress("writing report.html")
+    folder.path("report.html").write_text(render_html(prep.summary, pictures_of(prep)),
+                                          encoding="utf-8")
+
+
+def pictures_of(prep: Preparation) -> dict[str, Any]:
+    """The data behind the report's pictures, on the sample the files were written from."""
+    if prep.sample_index is not None and prep.components is not None:
+        return picture_data(prep.sample_index, theta=prep.components.theta_,
+                            variation=prep.summary["variables"])
+    return picture_data(prep.audit.context)
 
 
 def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
