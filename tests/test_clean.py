@@ -15,6 +15,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from panelprep.clean import Policies, balance_removal, singleton_removal, window_removal
 from panelprep.index import build_index
@@ -434,3 +436,33 @@ def test_mean_leaves_stray_text_to_the_audit():
     prep = prepare_frame(frame, options, read_options=ReadOptions(missing_tokens=("n/a",)))
     assert prep.verdict == "fail"
     assert "values-not-numeric" in {f.id for f in prep.audit.findings}
+
+
+@settings(max_examples=40, deadline=None)
+@given(seed=st.integers(0, 2**31 - 1))
+def test_largest_block_is_the_best_block_by_brute_force(seed):
+    # Brute force over every block [a, b] of years: the firms observed in every year of it,
+    # times its length; the policy must keep exactly a best block's rows.
+    rng = np.random.default_rng(seed)
+    n_firms, n_years = int(rng.integers(1, 7)), int(rng.integers(1, 8))
+    present = rng.random((n_firms, n_years)) < 0.7
+    firms, years = np.nonzero(present)
+    if len(firms) == 0:
+        return
+    frame = pd.DataFrame({"firm_id": [f"f{i}" for i in firms], "year": 2000 + years})
+    frame = frame.iloc[rng.permutation(len(frame))].reset_index(drop=True)
+    observed = frame.groupby("firm_id")["year"].apply(set).to_dict()
+    first, last = int(frame["year"].min()), int(frame["year"].max())
+    best = 0
+    for a in range(first, last + 1):
+        for b in range(a, last + 1):
+            block = set(range(a, b + 1))
+            best = max(best, sum(block <= seen for seen in observed.values()) * len(block))
+    # the frequency is given: two years three apart could also be read as a grid of step 3
+    index = build_index(frame, ["firm_id"], "year", freq="year")
+    removal = balance_removal(index, np.ones(len(frame), dtype=bool), "largest-block")
+    kept = frame if removal is None else frame[~removal.mask]
+    assert len(kept) == best
+    # what is kept is balanced: each kept firm has every year of the kept span
+    span = set(range(int(kept["year"].min()), int(kept["year"].max()) + 1))
+    assert all(set(g) == span for _, g in kept.groupby("firm_id")["year"])

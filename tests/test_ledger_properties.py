@@ -18,19 +18,25 @@ from panelprep.clean import BALANCE, DUPLICATES, NORMALISE, SINGLETONS, Policies
 from panelprep.errors import InputError
 from panelprep.prepare import TRANSFORMS, PrepareOptions, prepare_frame
 
-KEY = ["firm_id", "year"]
 
+def _panel(seed: int, defects: set[str], two_part: bool) -> pd.DataFrame:
+    """A shuffled unbalanced panel (firms f00.., years 2001..) with the requested defects.
 
-def _panel(seed: int, defects: set[str]) -> pd.DataFrame:
-    """A shuffled unbalanced panel (firms f00.., years 2001..) with the requested defects."""
+    With ``two_part`` the entity is (region, firm_id) and each firm code is used in two
+    regions, so a key part that got lost would merge two entities.
+    """
     rng = np.random.default_rng(seed)
     n_firms, n_years = int(rng.integers(5, 10)), int(rng.integers(3, 7))
     rows = []
     for firm in range(n_firms):
         present = rng.random(n_years) < 0.75
         present[rng.integers(n_years)] = True
-        rows += [(f"f{firm:02d}", 2001 + t) for t in np.flatnonzero(present)]
-    frame = pd.DataFrame(rows, columns=KEY)
+        region = "north" if firm % 2 else "south"
+        code = f"f{firm // 2:02d}" if two_part else f"f{firm:02d}"
+        rows += [(region, code, 2001 + t) for t in np.flatnonzero(present)]
+    frame = pd.DataFrame(rows, columns=["region", "firm_id", "year"])
+    if not two_part:
+        frame = frame.drop(columns="region")
     n = len(frame)
     frame["sales"] = rng.normal(100.0, 15.0, n).round(2)
     frame["capital"] = rng.normal(50.0, 8.0, n).round(2)
@@ -50,6 +56,8 @@ def _panel(seed: int, defects: set[str]) -> pd.DataFrame:
         frame.loc[pick, "firm_id"] = [f" {v.upper()} " for v in frame.loc[pick, "firm_id"]]
     if "missing-key" in defects:
         frame.loc[rng.random(n) < 0.06, "firm_id"] = rng.choice(["", " ", None])
+        if two_part:
+            frame.loc[rng.random(n) < 0.04, "region"] = None
         frame.loc[rng.random(n) < 0.06, "year"] = pd.NA
     if "missing-value" in defects:
         frame.loc[rng.random(n) < 0.08, "sales"] = np.nan
@@ -58,11 +66,13 @@ def _panel(seed: int, defects: set[str]) -> pd.DataFrame:
     return frame.iloc[rng.permutation(n)].reset_index(drop=True)
 
 
-def _key_text(table: pd.DataFrame) -> pd.Series:
+def _key_text(table: pd.DataFrame, key: list[str]) -> pd.Series:
     """Keys as comparable text; a missing part reads '<NA>' on both sides."""
-    firm = table["firm_id"].astype(object).where(table["firm_id"].notna(), "<NA>").astype(str)
-    year = table["year"].astype(object).where(table["year"].notna(), "<NA>").astype(str)
-    return firm + "|" + year
+    text = pd.Series("", index=table.index, dtype=object)
+    for column in key:
+        part = table[column].astype(object).where(table[column].notna(), "<NA>")
+        text = text + "|" + part.map(str)
+    return text.astype(str)
 
 
 policies = st.builds(
@@ -82,10 +92,14 @@ policies = st.builds(
                                      "missing-value"])),
     policy=policies,
     transforms=st.sets(st.sampled_from(TRANSFORMS), min_size=1).map(sorted),
+    two_part=st.booleans(),
 )
-def test_every_input_row_is_kept_or_in_the_ledger_once(seed, defects, policy, transforms):
-    frame = _panel(seed, defects)
-    options = PrepareOptions(entity=["firm_id"], time="year", y="sales", x=["capital"],
+def test_every_input_row_is_kept_or_in_the_ledger_once(seed, defects, policy, transforms,
+                                                       two_part):
+    frame = _panel(seed, defects, two_part)
+    entity = ["region", "firm_id"] if two_part else ["firm_id"]
+    key = [*entity, "year"]
+    options = PrepareOptions(entity=entity, time="year", y="sales", x=["capital"],
                              transforms=transforms, policies=policy,
                              # rows without a key are a cleaning step here, not a gate failure
                              severities={"key-missing": "warning"})
@@ -101,17 +115,17 @@ def test_every_input_row_is_kept_or_in_the_ledger_once(seed, defects, policy, tr
         clean, dropped = prep.tables["clean"], prep.tables["dropped"]
         assert len(frame) == len(clean) + len(dropped)
         if policy.duplicates != "fail":
-            assert not clean.duplicated(KEY).any()
+            assert not clean.duplicated(key).any()
         if policy.normalise_ids == "none":
             # the very same keys, as a multiset: kept rows and ledger rows make up the input
-            both = pd.concat([_key_text(clean), _key_text(dropped)]).sort_values()
-            assert both.tolist() == _key_text(frame).sort_values().tolist()
+            both = pd.concat([_key_text(clean, key), _key_text(dropped, key)]).sort_values()
+            assert both.tolist() == _key_text(frame, key).sort_values().tolist()
     else:
         event("gate failed")
-        dropped = prep.ledger.to_frame(frame, KEY)
+        dropped = prep.ledger.to_frame(frame, key)
     rows = dropped["input_row"].to_numpy()
     assert len(np.unique(rows)) == len(rows)
     assert ((rows >= 0) & (rows < len(frame))).all()
-    source = frame[KEY].iloc[rows].reset_index(drop=True)
-    pd.testing.assert_frame_equal(dropped[KEY], source)
+    source = frame[key].iloc[rows].reset_index(drop=True)
+    pd.testing.assert_frame_equal(dropped[key], source)
     assert dropped["reason"].notna().all() and dropped["step"].notna().all()
