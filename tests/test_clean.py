@@ -14,7 +14,6 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -166,12 +165,15 @@ def test_mean_on_conflicting_duplicates():
 
 
 def test_trim_fold_merges_lookalike_ids_into_three_balanced_firms():
-    # lookalike_ids.csv: A12 (2019, 2020), a12 (2021), " A12 " (2022) -> a12 over 2019-2022;
-    # B07 (2019, 2020), "B07 " (2021, 2022) -> b07; C33 (2019-2022). 3 firms x 4 years,
-    # nothing removed.
+    # lookalike_ids.csv: A12 (2019, 2020), a12 (2021), " A12 " (2022) -> one firm over
+    # 2019-2022; B07 (2019, 2020), "B07 " (2021, 2022) -> one firm; C33 (2019-2022).
+    # 3 firms x 4 years, nothing removed.  Each merged id is written in its most frequent
+    # trimmed spelling: A12 (3 rows once " A12 " is trimmed) beats a12 (1 row), B07 has 4.
+    # Rows whose id text changed: " A12 ", a12, and the two "B07 " rows = 4.
     frame, prep = _prepare("lookalike_ids.csv", normalise_ids="trim-fold")
     clean = prep.tables["clean"]
-    assert sorted(clean["firm_id"].unique()) == ["a12", "b07", "c33"]
+    assert sorted(clean["firm_id"].unique()) == ["A12", "B07", "C33"]
+    assert prep.summary["steps"][0]["note"].startswith("4 ")
     assert clean.groupby("firm_id")["year"].apply(sorted).tolist() == [[2019, 2020, 2021, 2022]] * 3
     assert prep.summary["panel"]["balanced"] is True
     assert prep.summary["panel"]["entities"] == 3
@@ -190,8 +192,6 @@ def test_trim_alone_keeps_case_apart():
     _check_story(frame, prep, 12)
 
 
-@pytest.mark.xfail(strict=True, reason="prepare.py _Flow.note records 0 entities before and "
-                   "after the id normalisation step")
 def test_id_normalisation_step_reports_entities_before_and_after():
     # 6 ids as written (A12, a12, " A12 ", B07, "B07 ", C33) become 3 after trim-fold
     _, prep = _prepare("lookalike_ids.csv", normalise_ids="trim-fold")
