@@ -37,6 +37,8 @@ from panelprep.prepare import PrepareOptions, prepare, prepare_frame
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 DATA_FILES = ("clean", "within", "between", "quasi", "twoway")
+# what a preparation writes besides data files, also when the gate fails
+DIAGNOSTICS = {"diagnostics.json", "diagnostics.txt", "report.html"}
 GRUNFELD = ["--entity", "firm", "--time", "year", "--y", "invest", "--x", "value,capital"]
 
 
@@ -94,8 +96,7 @@ def diagnostics(grunfeld_run) -> dict:
 
 def test_writes_every_file(grunfeld_run):
     expected = {f"{name}.parquet" for name in (*DATA_FILES, "dropped")}
-    assert {p.name for p in grunfeld_run.iterdir()} == expected | {"diagnostics.json",
-                                                                  "diagnostics.txt"}
+    assert {p.name for p in grunfeld_run.iterdir()} == expected | DIAGNOSTICS
 
 
 def test_swamy_arora_components_match_the_published_example(diagnostics):
@@ -247,7 +248,7 @@ def test_gate_failure_writes_only_diagnostics(tmp_path):
     result = invoke("prepare", FIXTURES / "conflicting_duplicates.csv", "--entity", "firm_id",
                     "--time", "year", "--y", "sales", "--x", "capital,staff", "--out", out)
     assert result.exit_code == 1, result.output
-    assert sorted(p.name for p in out.iterdir()) == ["diagnostics.json", "diagnostics.txt"]
+    assert {p.name for p in out.iterdir()} == DIAGNOSTICS
     summary = json.loads((out / "diagnostics.json").read_text(encoding="utf-8"))
     assert summary["verdict"] == "fail"
     assert "key-conflict" in {f["id"] for f in summary["findings"]}
