@@ -446,3 +446,24 @@ def test_window_keeps_lags_that_reach_before_it(grunfeld_csv, tmp_path):
     assert int(clean["year"].min()) == 1940 and len(clean) == 150
     merged = clean.merge(_grunfeld_lagged(grunfeld_csv), on=["firm", "year"], suffixes=("", "_ref"))
     np.testing.assert_array_equal(merged["value_lag1"], merged["value_lag1_ref"])
+
+
+def test_cleaning_policies_from_the_command_line(tmp_path):
+    # conflicting_duplicates.csv with keep-last: rows 5, 6 (00102/2020) and 17 (00104/2022)
+    # give way to the later rows 13 and 18 (hand count, see test_clean.py)
+    out = tmp_path / "dup"
+    result = invoke("prepare", FIXTURES / "conflicting_duplicates.csv", "--entity", "firm_id",
+                    "--time", "year", "--y", "sales", "--x", "capital,staff", "--out", out,
+                    "--duplicates", "keep-last")
+    assert result.exit_code == 0, result.output
+    dropped = pd.read_parquet(out / "dropped.parquet")
+    assert sorted(dropped["input_row"]) == [5, 6, 17]
+    # singletons.csv with --singletons drop: rows 8, 9 and 12 are the three one-row firms
+    out = tmp_path / "single"
+    result = invoke("prepare", FIXTURES / "singletons.csv", "--entity", "firm_id", "--time",
+                    "year", "--y", "sales", "--x", "capital", "--out", out,
+                    "--singletons", "drop")
+    assert result.exit_code == 0, result.output
+    dropped = pd.read_parquet(out / "dropped.parquet")
+    assert sorted(dropped["input_row"]) == [8, 9, 12]
+    assert len(pd.read_parquet(out / "clean.parquet")) == 10
