@@ -162,6 +162,18 @@ def test_week_labels_lie_inside_their_week(weekday):
     assert all(0 <= (s - label).days < 7 for label, s in zip(labels, stamps))
 
 
+def test_off_grid_weekday_goes_in_the_week_that_holds_it():
+    # a Sunday panel with one Wednesday: its period's label (a Monday) must lie in the
+    # 7 days up to and including that Wednesday, like every other row's
+    stamps = list(pd.date_range("2021-01-03", periods=6, freq="W-SUN")) * 3
+    stamps.append(pd.Timestamp("2021-01-13"))
+    axis = build_time_axis(pd.Series(stamps), column="when")
+    assert axis.name == "week"
+    assert np.flatnonzero(axis.off_grid).tolist() == [18]
+    labels = pd.to_datetime(axis.label(axis.ordinal))
+    assert all(0 <= (s - label).days < 7 for label, s in zip(labels, stamps))
+
+
 def test_business_days_are_daily():
     axis = build_time_axis(pd.Series(pd.bdate_range("2021-01-01", periods=30)), column="when")
     assert axis.name == "day"
