@@ -33,6 +33,15 @@ from panelprep._linalg import OlsFit, ols
 from panelprep.transforms import theta_per_entity, within
 
 METHODS = ("swamy-arora", "wallace-hussain", "amemiya", "nerlove")
+# every finding id the estimators emit (a run file may set their severity)
+FINDING_IDS = (
+    "entity-variance-negative",
+    "idiosyncratic-variance-negative",
+    "regressor-dropped-within",
+    "regressor-dropped-between",
+    "regressor-dropped-pooled",
+    "components-underidentified",
+)
 
 INTERCEPT = "(intercept)"
 

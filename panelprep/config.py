@@ -72,10 +72,15 @@ from pyarrow import feather
 from panelprep._version import __version__
 from panelprep.checks import CHECK_IDS, Thresholds
 from panelprep.checks.context import looks_numeric
+from panelprep.clean import BALANCE, DUPLICATES, SINGLETONS
+from panelprep.clean import NORMALISE as NORMALISE_IDS
+from panelprep.components import FINDING_IDS as COMPONENT_FINDING_IDS
+from panelprep.components import METHODS
 from panelprep.errors import InputError
-from panelprep.findings import SEVERITIES
+from panelprep.findings import CONTRACT_FINDING_ID, SEVERITIES
 from panelprep.io import (
     FORMATS,
+    OUTPUT_FORMATS,
     ReadOptions,
     column_names,
     detect_format,
@@ -84,26 +89,14 @@ from panelprep.io import (
     sniff_delimiter,
 )
 from panelprep.timeaxis import FREQUENCIES, build_time_axis
+from panelprep.transforms import TRANSFORMS
 
 # Finding ids that modules other than the structural checks emit; a run file
 # may set their severity too.
-EXTRA_FINDING_IDS = (
-    "entity-variance-negative",
-    "regressor-dropped-within",
-    "regressor-dropped-between",
-    "components-underidentified",
-    "contract-check-failed",
-)
+EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, CONTRACT_FINDING_ID)
 FINDING_IDS: tuple[str, ...] = (*CHECK_IDS, *EXTRA_FINDING_IDS)
 
 FAIL_ON = ("error", "warning")
-DUPLICATES = ("fail", "drop-exact", "keep-first", "keep-last", "mean")
-NORMALISE_IDS = ("none", "trim", "trim-fold")
-SINGLETONS = ("keep", "drop")
-BALANCE = ("keep", "complete-entities", "largest-block")
-TRANSFORMS = ("within", "between", "quasi", "twoway")
-METHODS = ("swamy-arora", "wallace-hussain", "amemiya", "nerlove")
-OUTPUT_FORMATS = ("parquet", "csv")
 
 _DEFAULT_THRESHOLDS = Thresholds()
 

@@ -21,7 +21,7 @@ import pandas as pd
 import yaml
 
 from panelprep.errors import InputError
-from panelprep.findings import MAX_EXAMPLES, Finding
+from panelprep.findings import CONTRACT_FINDING_ID, MAX_EXAMPLES, Finding
 
 try:
     import pandera.pandas as pa
@@ -34,7 +34,7 @@ try:
 except ImportError:  # pandera before 0.26 kept the pandas serialisers in pandera.io
     from pandera.io import deserialize_schema  # type: ignore[attr-defined,no-redef]
 
-FINDING_ID = "contract-check-failed"
+FINDING_ID = CONTRACT_FINDING_ID
 
 # Settings pandera reads from a schema file; anything else is a typo that
 # pandera would silently ignore.

@@ -12,6 +12,8 @@ from dataclasses import dataclass, field
 from typing import Any
 
 SEVERITIES = ("info", "warning", "error")
+# emitted by panelprep.contracts; named here so importing it needs no pandera
+CONTRACT_FINDING_ID = "contract-check-failed"
 MAX_EXAMPLES = 10
 
 

@@ -25,6 +25,7 @@ from pyarrow import feather
 from panelprep.errors import ColumnError, InputError
 
 FORMATS = ("csv", "parquet", "arrow")
+OUTPUT_FORMATS = ("parquet", "csv")
 _SUFFIXES = {
     ".csv": "csv",
     ".tsv": "csv",

@@ -32,21 +32,26 @@ from panelprep.clean import (
     window_removal,
 )
 from panelprep.components import METHODS, VarianceComponents
+from panelprep.config import RunFile
 from panelprep.errors import InputError
 from panelprep.evidence import collect_evidence
 from panelprep.figures import picture_data
 from panelprep.findings import Finding, gate
 from panelprep.index import PanelIndex, build_index
-from panelprep.io import DEFAULT_READ, OutputFolder, ReadOptions, sha256_file, write_table
-from panelprep.config import RunFile
-from panelprep.contracts import check_contract, load_contract
+from panelprep.io import (
+    DEFAULT_READ,
+    OUTPUT_FORMATS,
+    OutputFolder,
+    ReadOptions,
+    sha256_file,
+    write_table,
+)
 from panelprep.lags import Shift, add_shifts, parse_shifts
 from panelprep.ledger import Ledger, StepRecord, require_rows
 from panelprep.pipeline import AuditReport, Progress, _silent, audit, load, split_names
+from panelprep.transforms import TRANSFORMS
 
-TRANSFORMS = ("within", "between", "quasi", "twoway")
 DEFAULT_TRANSFORMS = ("within", "between", "quasi")
-OUTPUT_FORMATS = ("parquet", "csv")
 
 
 @dataclass
@@ -134,6 +139,8 @@ def prepare_frame(
     flow = _Flow(frame, Ledger(rows_read=len(frame)))
     contract_findings = []
     if options.contract is not None:
+        from panelprep.contracts import check_contract
+
         progress("checking the schema contract")
         contract_findings = check_contract(frame, options.contract, where="input")
 
@@ -144,7 +151,6 @@ def prepare_frame(
                   _distinct_entities(flow.frame, options.entity), f"{changed:,} ids changed")
     progress(f"indexing {len(flow.frame):,} rows")
     flow.index = build_index(flow.frame, options.entity, options.time, options.freq)
-    flow.apply(window_removal(flow.index, policies.window))
     if policies.duplicates != "fail":
         ctx = _context(flow, options, read_options)
         flow.apply(duplicate_removal(flow.frame, flow.index, ctx.repeat, policies.duplicates))
@@ -154,6 +160,8 @@ def prepare_frame(
             flow.apply(removal)
     if options.shifts:
         flow.frame = add_shifts(flow.frame, flow.index, options.shifts)
+    # after the lags, so a lag at the window's first period may reach before it
+    flow.apply(window_removal(flow.index, policies.window))
 
     severities = dict(options.severities)
     if policies.duplicates == "fail":
@@ -205,6 +213,8 @@ def prepare_frame(
 
     findings = report.findings + [Finding(**f) for f in components.findings_]
     if options.validate_outputs and options.contract is not None:
+        from panelprep.contracts import check_contract
+
         findings += check_contract(tables["clean"], options.contract, where="output clean")
     summary["findings"] = [f.to_dict() for f in findings]
     summary["verdict"] = gate(findings, options.fail_on)
@@ -225,7 +235,7 @@ def prepare_frame(
 
 def _distinct_entities(frame: pd.DataFrame, entity: list[str]) -> int:
     """Distinct complete entity keys, counted before an index exists."""
-    return int(len(frame[entity].dropna().drop_duplicates()))
+    return len(frame[entity].dropna().drop_duplicates())
 
 
 def _context(flow: _Flow, options: PrepareOptions, read_options: ReadOptions) -> AuditContext:
@@ -483,7 +493,8 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
         path = folder.path(f"{name}.{'parquet' if name == 'dropped' else suffix}")
         progress(f"writing {path.name}")
         meta = {"panelprep": json.dumps({**base_meta, "file": name,
-                                         "transform": prep.summary.get("transforms", {}).get(name),
+                                         "transform": name if name in TRANSFORMS else None,
+                                         "transform_info": prep.summary.get("transforms", {}).get(name),
                                          "theta": (prep.summary.get("components") or {}).get("theta")},
                                         sort_keys=True, allow_nan=False)}
         write_table(table, path, fmt, meta)
@@ -508,7 +519,11 @@ def pictures_of(prep: Preparation) -> dict[str, Any]:
 
 def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
     """Run the preparation a run file describes (after command-line overrides)."""
-    contract = load_contract(run.contract.schema) if run.contract.schema else None
+    contract = None
+    if run.contract.schema:
+        from panelprep.contracts import load_contract
+
+        contract = load_contract(run.contract.schema)
     options = PrepareOptions(
         entity=list(run.panel.entity), time=run.panel.time, y=run.model.y, x=list(run.model.x),
         freq=run.panel.freq, transforms=list(run.output.transforms), method=run.output.method,

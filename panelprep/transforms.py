@@ -27,6 +27,8 @@ import scipy.sparse.linalg
 
 from panelprep._groups import group_counts, group_sums
 
+TRANSFORMS = ("within", "between", "quasi", "twoway")
+
 # Above this many levels in the smaller of the two groupings the (levels x
 # levels) normal equations are solved by preconditioned conjugate gradients
 # instead of a dense Cholesky factorisation.

@@ -2,11 +2,21 @@
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 import pytest
+
+# Property tests keep their example counts small so CI stays quick;
+# PANELPREP_FUZZ_SCALE=50 multiplies every count for a longer local fuzz.
+FUZZ_SCALE = max(1, int(os.environ.get("PANELPREP_FUZZ_SCALE", "1")))
+
+
+def examples(count: int) -> int:
+    """A property test's example count, scaled for a longer local fuzz."""
+    return count * FUZZ_SCALE
 
 
 @pytest.fixture(scope="session")
