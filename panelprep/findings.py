@@ -14,6 +14,8 @@ from typing import Any
 SEVERITIES = ("info", "warning", "error")
 # emitted by panelprep.contracts; named here so importing it needs no pandera
 CONTRACT_FINDING_ID = "contract-check-failed"
+# emitted by the audit itself when it picks the variables to check
+SKIPPED_COLUMNS_ID = "columns-not-checked"
 MAX_EXAMPLES = 10
 
 

@@ -21,9 +21,16 @@ from panelprep.checks import CHECKS, AuditContext, Thresholds
 from panelprep.checks.context import looks_numeric
 from panelprep.checks.shape import gap_table
 from panelprep.errors import ColumnError, InputError
-from panelprep.findings import Finding, apply_severities, gate
+from panelprep.findings import SEVERITIES, SKIPPED_COLUMNS_ID, Finding, apply_severities, gate
 from panelprep.index import PanelIndex, build_index
-from panelprep.io import DEFAULT_READ, ReadOptions, column_names, read_frame, sha256_file
+from panelprep.io import (
+    DEFAULT_READ,
+    ReadOptions,
+    column_names,
+    detect_format,
+    read_frame,
+    sha256_file,
+)
 
 Progress = Callable[[str], None]
 
@@ -135,12 +142,14 @@ def audit(
     >>> panelprep.audit(frame, entity="firm", time="year").verdict
     'pass'
     """
-    if fail_on not in ("error", "warning", "info"):
+    if fail_on not in ("error", "warning"):
         raise InputError(f"--fail-on {fail_on!r} must be error or warning")
+    _check_severities(severities or {})
     entity = split_names(entity) or []
     if not entity:
         raise InputError("no entity column given")
-    names = choose_variables(frame, entity, time, split_names(vars), decimal_comma)
+    chosen = split_names(vars)
+    names = choose_variables(frame, entity, time, chosen, decimal_comma)
     progress(f"indexing {len(frame):,} rows on ({', '.join(entity)}) x {time}")
     index = index or build_index(frame, entity, time, freq)
     context = AuditContext(
@@ -152,6 +161,10 @@ def audit(
         missing_tokens=tuple(missing_tokens),
     )
     findings: list[Finding] = list(prior_findings)
+    if chosen is None:
+        skipped = _skipped_columns(frame, [*entity, time], names)
+        if skipped is not None:
+            findings.append(skipped)
     for check in CHECKS:
         progress(f"check {check.id}")
         found = check.run(context)
@@ -172,6 +185,36 @@ def audit(
     )
 
 
+def _check_severities(severities: dict[str, str]) -> None:
+    from panelprep.config import FINDING_IDS
+
+    for finding_id, severity in severities.items():
+        if finding_id not in FINDING_IDS:
+            raise InputError(f"severity given for unknown finding id {finding_id!r}; ids are "
+                             + ", ".join(FINDING_IDS))
+        if severity not in SEVERITIES:
+            raise InputError(f"severity {severity!r} for {finding_id} must be one of "
+                             + ", ".join(SEVERITIES))
+
+
+def _skipped_columns(frame: pd.DataFrame, keys: list[str], chosen: list[str]) -> Finding | None:
+    """Non-key columns left out because they do not look numeric (no --vars given)."""
+    skipped = [c for c in frame.columns if c not in keys and c not in chosen]
+    if not skipped:
+        return None
+    comma = [c for c in skipped if looks_numeric(frame[c], decimal_comma=True)]
+    if comma:
+        message = (f"{len(skipped)} column(s) not checked because they are not numbers as read; "
+                   f"{', '.join(comma)} look like numbers with decimal commas "
+                   "(try --decimal-comma, or name the variables with --vars)")
+    else:
+        message = (f"{len(skipped)} column(s) not checked because they hold text: "
+                   f"{', '.join(skipped[:10])} (name variables with --vars to check them)")
+    return Finding(id=SKIPPED_COLUMNS_ID, severity="warning" if comma else "info",
+                   count=len(skipped), message=message,
+                   examples=[{"column": c} for c in skipped])
+
+
 def _panel_summary(ctx: AuditContext) -> dict[str, Any]:
     ix = ctx.sample_index
     per_entity = ctx.periods_per_entity
@@ -184,11 +227,11 @@ def _panel_summary(ctx: AuditContext) -> dict[str, Any]:
         "periods": int(max(ix.n_periods, 0)),
         "balanced": bool(has_rows and (per_entity == ix.n_periods).all()),
         "obs_per_entity": {
-            "min": int(ctx.sample_counts.min()) if has_rows else 0,
-            "median": float(np.median(ctx.sample_counts)) if has_rows else 0.0,
-            "max": int(ctx.sample_counts.max()) if has_rows else 0,
+            "min": int(per_entity.min()) if has_rows else 0,
+            "median": float(np.median(per_entity)) if has_rows else 0.0,
+            "max": int(per_entity.max()) if has_rows else 0,
         },
-        "singleton_entities": int((ctx.sample_counts == 1).sum()),
+        "singleton_entities": int((per_entity == 1).sum()),
         "entities_with_gaps": int((holes > 0).sum()),
         "exact_duplicate_rows": int(ctx.repeat.sum()),
         "conflicting_duplicate_keys": len(ctx.conflicting_cells),
@@ -213,7 +256,7 @@ def load(
     columns = None if vars is None else list(dict.fromkeys([*entity, time, *vars, *extra]))
     frame = read_frame(path, columns, list(entity), time, options)
     info = {"path": str(path), "sha256": sha256_file(path), "rows": len(frame),
-            "format": path.suffix.lstrip(".").lower() or options.input_format}
+            "format": detect_format(path, options.input_format)}
     return frame, info
 
 

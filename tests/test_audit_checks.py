@@ -16,6 +16,7 @@ import pandas as pd
 import pytest
 from statsmodels.datasets import grunfeld
 
+from panelprep.errors import InputError
 from panelprep.io import ReadOptions
 from panelprep.pipeline import audit, audit_file
 
@@ -452,8 +453,10 @@ def test_severity_overrides():
                         severities={"key-missing": "info"})
     assert report.finding("key-missing").severity == "info"
     assert report.verdict == "pass"
-    with pytest.raises(ValueError):
+    with pytest.raises(InputError, match="period-holes"):
         audit_file(FIXTURES / "gaps.csv", "firm_id", "year", severities={"period-holes": "loud"})
+    with pytest.raises(InputError, match="unknown finding id"):
+        audit_file(FIXTURES / "gaps.csv", "firm_id", "year", severities={"period-gaps": "error"})
 
 
 def test_fail_on_warning():

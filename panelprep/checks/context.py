@@ -110,7 +110,10 @@ class AuditContext:
         candidates = np.sort(order[shared])
         repeat = np.zeros(n, dtype=bool)
         if len(candidates):
-            subset = self.frame.iloc[candidates]
+            # rows are compared on the key and the selected variables, so the
+            # count is the same whether the file was read whole or only in part
+            columns = [*self.index.entity, self.index.time, *self.variables]
+            subset = self.frame[columns].iloc[candidates]
             repeat[candidates] = subset.duplicated(keep="first").to_numpy()
         remaining = candidates[~repeat[candidates]]
         cell_left = self.index.cell[remaining]

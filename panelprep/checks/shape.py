@@ -132,7 +132,7 @@ def balance(ctx: AuditContext, self: Check):
 
 @check("entity-single-obs", "warning", "entities observed once")
 def singletons(ctx: AuditContext, self: Check):
-    counts = ctx.sample_counts
+    counts = ctx.periods_per_entity
     single = np.flatnonzero(counts == 1)
     if len(single) == 0:
         return None
