@@ -380,7 +380,7 @@ def test_collect_evidence_grunfeld_json_and_reading(grunfeld_panel):
 def test_grunfeld_hausman_published_value(grunfeld_panel):
     y, X, codes, counts = grunfeld_panel
     s2_u, s2_e, theta, _ = _balanced_swamy_arora(y, X, X, codes, len(counts), 20)
-    # Swamy-Arora sigma_u = 84.20, sigma_e = 52.77 and Hausman = 2.13 on 2 df (Baltagi,
+    # Swamy-Arora entity-effect SD 84.20, idiosyncratic SD 52.77 and Hausman = 2.13 on 2 df (Baltagi,
     # Econometric Analysis of Panel Data, Grunfeld example; values from memory).  The
     # components check the test-side inputs, the statistics check panelprep.
     assert round(float(np.sqrt(s2_u)), 2) == 84.20

@@ -5,7 +5,7 @@ Outside checks:
 * Grunfeld investment data (``statsmodels.datasets.grunfeld``, the 10 firms
   without American Steel, 1935-1954) against the published Swamy-Arora
   random-effects example (Baltagi, Econometric Analysis of Panel Data,
-  Table 2.1: sigma_u = 84.20, sigma_e = 52.77, theta = 0.8612, random-effects
+  Table 2.1: entity-effect SD 84.20, idiosyncratic SD 52.77, theta = 0.8612, random-effects
   slopes 0.1098 and 0.3081 with intercept -57.83, within slopes 0.1101 and
   0.3101; values from memory).
 * The same quantities computed another way: the textbook balanced
@@ -102,7 +102,7 @@ def test_writes_every_file(grunfeld_run):
 def test_swamy_arora_components_match_the_published_example(diagnostics):
     comp = diagnostics["components"]
     assert comp["method"] == "swamy-arora"
-    # Baltagi, Table 2.1 (values from memory): sigma_u 84.20, sigma_e 52.77, theta 0.8612
+    # Baltagi, Table 2.1 (values from memory): entity-effect SD 84.20, idiosyncratic SD 52.77, theta 0.8612
     assert np.sqrt(comp["sigma2_entity"]) == pytest.approx(84.20, abs=0.005)
     assert np.sqrt(comp["sigma2_idiosyncratic"]) == pytest.approx(52.77, abs=0.005)
     for stat in ("min", "median", "max"):

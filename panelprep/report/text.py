@@ -56,11 +56,11 @@ def audit_lines(report: dict[str, Any]) -> list[str]:
         ["entities", f"{panel['entities']:,}"],
         ["periods", f"{panel['periods']:,} ({span})"],
         ["shape", ("balanced" if panel["balanced"] else "unbalanced")
-         + f"; rows per entity {obs['min']} / {_num(obs['median'])} / {obs['max']} (min / median / max)"],
+         + f"; periods per entity {obs['min']} / {_num(obs['median'])} / {obs['max']} (min / median / max)"],
         ["singletons", f"{panel['singleton_entities']:,}"],
         ["with holes", f"{panel['entities_with_gaps']:,} entities"],
-        ["repeats", f"{panel['exact_duplicate_rows']:,} exact repeated rows, "
-                    f"{panel['conflicting_duplicate_keys']:,} conflicting keys"],
+        ["repeats", (f"{panel['exact_duplicate_rows']:,} exact repeated rows, "
+                    f"{panel['conflicting_duplicate_keys']:,} conflicting keys")],
     ])
     patterns = details.get("patterns")
     if patterns:
@@ -74,8 +74,8 @@ def audit_lines(report: dict[str, Any]) -> list[str]:
                          for f in found], right={2})
     else:
         lines.append("  none")
-    lines += ["", "Variation (estimation sample; SDs: overall ddof 1, between over entity means "
-              "ddof 1, within with n - N)"]
+    lines += ["", ("Variation (estimation sample; SDs: overall ddof 1, between over entity means "
+              "ddof 1, within with n - N)")]
     header = ["variable", "n", "mean", "min", "max", "sd overall", "sd between", "sd within",
               "within share", "entities varying"]
     rows = [header]
@@ -103,8 +103,8 @@ def components_lines(components: dict[str, Any]) -> list[str]:
         ["idiosyncratic variance (s2_e)", _num(components["sigma2_idiosyncratic"], 6)],
         ["entity share s2_u / (s2_u + s2_e)", _num(components["entity_share"], 4)],
         ["theta_i = 1 - sqrt(s2_e / (T_i s2_u + s2_e))",
-         f"{_num(theta.get('min'))} / {_num(theta.get('median'))} / {_num(theta.get('max'))}"
-         " (min / median / max)"],
+         (f"{_num(theta.get('min'))} / {_num(theta.get('median'))} / {_num(theta.get('max'))}"
+         " (min / median / max)")],
     ])
     if components.get("truncated_negative"):
         lines.append(f"  the estimate of s2_u was negative ({_num(components.get('raw_sigma2_entity'), 6)})"
