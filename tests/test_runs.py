@@ -105,7 +105,7 @@ def test_a_bad_run_file_is_exit_2_naming_key_and_line(tmp_path, text, words):
     done = subprocess.run(
         [sys.executable, "-c", "from panelprep.cli import main; main()",
          "prepare", "--config", str(run)],
-        capture_output=True, text=True, timeout=120,
+        check=False, capture_output=True, text=True, timeout=120,
     )
     assert done.returncode == 2
     lines = done.stderr.strip().splitlines()
@@ -147,7 +147,7 @@ def test_demo_runs_end_to_end_and_keeps_its_promises(tmp_path):
 def _readme_commands() -> list[str]:
     text = (ROOT / "README.md").read_text(encoding="utf-8")
     head = text.split("\n## ", 1)[0]
-    return re.findall(r"```bash\n(.+?)\n```", head, flags=re.S)
+    return re.findall(r"```bash\n(.+?)\n```", head, flags=re.DOTALL)
 
 
 def test_readme_opens_with_exactly_two_set_up_commands():
@@ -164,7 +164,7 @@ def test_readme_demo_command_runs(tmp_path):
     assert argv[0].endswith("panelprep") and argv[1] == "demo"
     done = subprocess.run(
         [sys.executable, "-c", "from panelprep.cli import main; main()", *argv[1:], "--quiet"],
-        cwd=tmp_path, capture_output=True, text=True, timeout=300,
+        check=False, cwd=tmp_path, capture_output=True, text=True, timeout=300,
     )
     assert done.returncode == 0, done.stderr
     assert (tmp_path / argv[2] / "out" / "report.html").exists()
