@@ -66,6 +66,16 @@ class PanelIndex:
         return np.where(self.keyed, cell, -1)
 
     @cached_property
+    def sorted_cells(self) -> np.ndarray:
+        """The distinct (entity, period) cells of keyed rows, ascending."""
+        cells = self.cell[self.order]
+        if len(cells) == 0:
+            return cells
+        first = np.ones(len(cells), dtype=bool)
+        first[1:] = cells[1:] != cells[:-1]
+        return cells[first]
+
+    @cached_property
     def order(self) -> np.ndarray:
         """Positions of keyed rows sorted by (entity, period), stable."""
         rows = np.flatnonzero(self.keyed)
@@ -88,7 +98,10 @@ class PanelIndex:
         """Index of a subset of rows (boolean mask or positions), codes re-densified.
 
         Entity codes are re-numbered so entities with no remaining rows vanish,
-        and the period grid is cut to the span the subset covers.
+        and the period grid is cut to the span the subset covers.  Both maps
+        keep the order of codes, so when ``rows`` is a boolean mask and this
+        index's sort order is already known, the subset inherits it instead of
+        sorting again.
         """
         ent = self.entity_codes[rows]
         per = self.period_codes[rows]
@@ -100,7 +113,7 @@ class PanelIndex:
         remap = np.full(self.n_entities, -1, dtype=np.int64)
         remap[present] = np.arange(len(present))
         new_ent = np.where(ent >= 0, remap[np.where(ent >= 0, ent, 0)], -1)
-        return PanelIndex(
+        child = PanelIndex(
             entity=self.entity,
             time=self.time,
             entity_codes=new_ent,
@@ -118,6 +131,12 @@ class PanelIndex:
             n_periods=high - low + 1,
             period_codes=per,
         )
+        rows = np.asarray(rows)
+        if rows.dtype == bool and "order" in self.__dict__:
+            position = np.cumsum(rows) - 1
+            kept = self.order[rows[self.order]]
+            child.__dict__["order"] = position[kept]
+        return child
 
 
 @dataclass(frozen=True)

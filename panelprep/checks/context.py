@@ -160,7 +160,7 @@ class AuditContext:
     def sample_cells(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Distinct (entity, period) pairs of the sample, sorted: (entity, period, starts)."""
         ix = self.sample_index
-        cells = np.unique(ix.cell)
+        cells = ix.sorted_cells
         entity = cells // max(ix.n_periods, 1)
         period = cells - entity * max(ix.n_periods, 1)
         return entity, period, segment_bounds(entity)
