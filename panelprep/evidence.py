@@ -102,24 +102,34 @@ def _within_varying(X: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.
 def _independent_after(base: np.ndarray, extra: np.ndarray) -> np.ndarray:
     """Boolean mask of ``extra`` columns that add a direction to ``base``, greedily in order.
 
-    Each extra column is projected off the span of ``base`` and of the extra
-    columns already accepted (classical Gram-Schmidt, applied twice for
-    stability); it is accepted when what is left has norm above
-    ``default_rtol(n, p)`` times its own norm.  ``base`` must have full column
-    rank (the kept columns of an :func:`~panelprep._linalg.ols` fit).
+    Works on the (p x p) cross-product matrix of ``[base, extra]``, one pass
+    over the rows: eliminating the accepted columns in order leaves, for
+    each extra column, the squared norm of what is not in the span of
+    ``base`` and of the extra columns accepted before it (a Schur
+    complement).  A column is accepted when that norm is above
+    ``max(default_rtol(n, p), 1e3 * sqrt(eps))`` times its own norm; the
+    floor allows for the squaring of the condition number in a cross
+    product.  ``base`` must have full column rank (the kept columns of an
+    :func:`~panelprep._linalg.ols` fit).
     """
-    n, p = extra.shape[0], base.shape[1] + extra.shape[1]
-    rtol = default_rtol(n, p)
-    basis = np.linalg.qr(base, mode="reduced")[0] if base.shape[1] else np.zeros((n, 0))
-    ok = np.zeros(extra.shape[1], dtype=bool)
-    for j in range(extra.shape[1]):
-        v = extra[:, j].copy()
-        for _ in range(2):
-            v -= basis @ (basis.T @ v)
-        left = float(np.linalg.norm(v))
-        if left > rtol * float(np.linalg.norm(extra[:, j])):
+    n, k_base, k_extra = extra.shape[0], base.shape[1], extra.shape[1]
+    rtol = max(default_rtol(n, k_base + k_extra), 1e3 * math.sqrt(np.finfo(float).eps))
+    design = np.column_stack([base, extra])
+    gram = design.T @ design
+    ok = np.zeros(k_extra, dtype=bool)
+    accepted = list(range(k_base))
+    for j in range(k_extra):
+        column = k_base + j
+        own = gram[column, column]
+        if accepted:
+            block = gram[np.ix_(accepted, accepted)]
+            cross = gram[accepted, column]
+            left = own - cross @ np.linalg.solve(block, cross)
+        else:
+            left = own
+        if own > 0 and left > (rtol**2) * own:
             ok[j] = True
-            basis = np.column_stack([basis, v / left])
+            accepted.append(column)
     return ok
 
 

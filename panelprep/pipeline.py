@@ -19,7 +19,6 @@ import pandas as pd
 from panelprep._version import __version__
 from panelprep.checks import CHECKS, AuditContext, Thresholds
 from panelprep.checks.context import looks_numeric
-from panelprep.checks.shape import gap_table
 from panelprep.errors import ColumnError, InputError
 from panelprep.findings import SEVERITIES, SKIPPED_COLUMNS_ID, Finding, apply_severities, gate
 from panelprep.index import PanelIndex, build_index
@@ -218,7 +217,7 @@ def _skipped_columns(frame: pd.DataFrame, keys: list[str], chosen: list[str]) ->
 def _panel_summary(ctx: AuditContext) -> dict[str, Any]:
     ix = ctx.sample_index
     per_entity = ctx.periods_per_entity
-    holes, _, _ = gap_table(ctx)
+    holes, _, _ = ctx.gaps
     has_rows = ix.n_entities > 0
     return {
         "rows": int(ctx.sample.sum()),

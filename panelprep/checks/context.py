@@ -166,6 +166,30 @@ class AuditContext:
         return entity, period, segment_bounds(entity)
 
     @cached_property
+    def gaps(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Per sample entity: holes in its span, the longest hole, periods missing inside it.
+
+        One diff over the sorted distinct cells: a jump of more than one
+        period inside an entity is a hole of (jump - 1) periods.
+        """
+        entity, period, starts = self.sample_cells
+        n_entities = self.sample_index.n_entities
+        holes = np.zeros(n_entities, dtype=np.int64)
+        longest = np.zeros(n_entities, dtype=np.int64)
+        missing = np.zeros(n_entities, dtype=np.int64)
+        if len(entity) > 1:
+            width = np.diff(period) - 1
+            width[entity[1:] != entity[:-1]] = 0
+            owner = entity[1:]
+            jump = width > 0
+            holes = group_counts(owner[jump], n_entities)
+            missing = np.bincount(owner, weights=width, minlength=n_entities).astype(np.int64)
+            # longest hole: a segment maximum over the entity-sorted widths
+            per_entity = np.concatenate(([0], width))
+            longest[entity[starts]] = np.maximum.reduceat(per_entity, starts)
+        return holes, longest, missing
+
+    @cached_property
     def periods_per_entity(self) -> np.ndarray:
         """Distinct periods observed per entity in the sample."""
         entity, _, _ = self.sample_cells

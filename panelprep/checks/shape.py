@@ -17,27 +17,9 @@ from panelprep.findings import MAX_EXAMPLES
 PRESENT, ABSENT = "■", "·"
 
 
-def gap_table(ctx: AuditContext) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per sample entity: number of holes, longest hole, periods missing inside its span."""
-    entity, period, _ = ctx.sample_cells
-    n_entities = ctx.sample_index.n_entities
-    holes = np.zeros(n_entities, dtype=np.int64)
-    longest = np.zeros(n_entities, dtype=np.int64)
-    missing = np.zeros(n_entities, dtype=np.int64)
-    if len(entity) > 1:
-        same = entity[1:] == entity[:-1]
-        width = np.diff(period) - 1
-        jump = same & (width > 0)
-        owner = entity[1:][jump]
-        holes = group_counts(owner, n_entities)
-        missing = np.bincount(owner, weights=width[jump], minlength=n_entities).astype(np.int64)
-        np.maximum.at(longest, owner, width[jump])
-    return holes, longest, missing
-
-
 @check("period-holes", "warning", "periods missing between an entity's first and last observation")
 def time_gaps(ctx: AuditContext, self: Check):
-    holes, longest, missing = gap_table(ctx)
+    holes, longest, missing = ctx.gaps
     with_gaps = np.flatnonzero(holes > 0)
     if len(with_gaps) == 0:
         return None
