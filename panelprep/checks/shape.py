@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import numpy as np
 
-from panelprep._groups import group_counts
 from panelprep.checks.base import Check, check
 from panelprep.checks.context import AuditContext
 from panelprep.findings import MAX_EXAMPLES
