@@ -6,6 +6,7 @@ are read as text from CSV so that ``00123`` stays ``00123``.
 
 from __future__ import annotations
 
+import codecs
 import csv
 import hashlib
 import io as _io
@@ -129,8 +130,8 @@ def _csv_header(path: Path, delimiter: str | None) -> tuple[list[str], str]:
     raw = _first_line(path)
     try:
         line = raw.decode("utf-8-sig")
-    except UnicodeDecodeError as err:
-        raise InputError(f"{path}: header line is not UTF-8 text (byte {err.start})") from None
+    except UnicodeDecodeError:
+        raise InputError(_not_utf8(path)) from None
     if not line.strip():
         raise InputError(f"{path}: the first line is blank, expected a header")
     delimiter = delimiter or sniff_delimiter(line)
@@ -232,9 +233,42 @@ def _arrow_csv(
     parse = pacsv.ParseOptions(delimiter=delimiter, newlines_in_values=False)
     read = pacsv.ReadOptions(block_size=1 << 24)
     try:
-        return pacsv.read_csv(path, read_options=read, parse_options=parse, convert_options=convert)
+        table = pacsv.read_csv(path, read_options=read, parse_options=parse,
+                               convert_options=convert)
     except pa.ArrowInvalid as err:
+        text = str(err)
+        if "invalid UTF8" in text:
+            raise InputError(_not_utf8(path)) from None
+        if "Empty CSV file" in text:
+            raise InputError(f"{path}: no data rows, only a header") from None
         raise InputError(f"{path}: cannot parse as CSV: {_short(err)}") from None
+    # Arrow reads a column holding bytes that are not UTF-8 as binary; pandas would
+    # then fail on it far from here, so say where the bad bytes are instead
+    if any(pa.types.is_binary(t) or pa.types.is_large_binary(t) for t in table.schema.types):
+        raise InputError(_not_utf8(path))
+    return table
+
+
+def _not_utf8(path: Path) -> str:
+    """One line naming the first byte of ``path`` that is not UTF-8 text, by line number."""
+    decoder = codecs.getincrementaldecoder("utf-8")()
+    line, offset = 1, 0
+    with pa.input_stream(str(path), compression="detect") as handle:
+        while block := handle.read(1 << 20):
+            if offset == 0 and block[:2] in (codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE):
+                return f"{path}: is UTF-16 text, not UTF-8; save the file as UTF-8"
+            try:
+                decoder.decode(block)
+            except UnicodeDecodeError as err:
+                # err.object is the undecoded tail of the previous block plus this one
+                seen = err.object
+                at = offset + len(block) - len(seen) + err.start
+                line += seen[: err.start].count(b"\n")
+                return (f"{path}: not UTF-8 text: byte 0x{seen[err.start]:02x} at line {line} "
+                        f"(byte offset {at}); save the file as UTF-8")
+            line += block.count(b"\n")
+            offset += len(block)
+    return f"{path}: not UTF-8 text; save the file as UTF-8"
 
 
 def _has_non_finite(column: pa.ChunkedArray) -> bool:
