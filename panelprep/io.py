@@ -40,6 +40,7 @@ _SUFFIXES = {
 _DELIMITERS = (",", ";", "\t", "|")
 # whole numbers, also as written by tools that store years as floats ("1935.0")
 _INTEGER_TEXT = re.compile(r"^\s*-?\d{1,18}(?:\.0*)?\s*$")
+_LEADING_ZERO = re.compile(r"^\s*-?0\d")
 
 
 @dataclass(frozen=True)
@@ -282,12 +283,19 @@ def _raw_header(path: Path, delimiter: str) -> list[str]:
 
 
 def integer_text_to_int(values: pd.Series) -> pd.Series:
-    """Text that is all whole numbers becomes int64 (Int64 with gaps); else unchanged."""
+    """Text that is all whole numbers becomes int64 (Int64 with gaps); else unchanged.
+
+    Numbers written with leading zeros (waves ``01``, ``02``) stay text, so
+    every output writes them as they were read; the time axis reads such
+    text as integer periods all the same.
+    """
     if not (pd.api.types.is_string_dtype(values.dtype) or values.dtype == object):
         return values
     present = values.dropna()
-    uniques = pd.Series(present.unique())
-    if len(uniques) == 0 or not uniques.astype(str).str.fullmatch(_INTEGER_TEXT.pattern).all():
+    uniques = pd.Series(present.unique()).astype(str)
+    if len(uniques) == 0 or not uniques.str.fullmatch(_INTEGER_TEXT.pattern).all():
+        return values
+    if uniques.str.match(_LEADING_ZERO.pattern).any():
         return values
     digits = values.astype("string").str.strip().str.replace(r"\.0*$", "", regex=True)
     if len(present) == len(values):
