@@ -209,10 +209,12 @@ def _read_csv(
     as_text = [*(entity if options.entity_as_text else []), *([time] if time else [])]
     text_columns = {raw_names[c]: pa.string() for c in as_text if c in raw_names}
     table = _arrow_csv(path, include, text_columns, delimiter, options)
-    # Arrow reads the texts "nan" and "inf" as floats; read such columns again as text
-    # so they are reported like any other text instead of becoming missing or infinite.
+    # Arrow reads the texts "nan" and "inf" as floats, and whole numbers too long for
+    # int64 as rounded floats; read such columns again as text so they are reported
+    # like any other text instead of becoming missing, infinite or silently rounded.
     spelled = {name: pa.string() for name, column in zip(table.column_names, table.columns)
-               if pa.types.is_floating(column.type) and _has_non_finite(column)}
+               if pa.types.is_floating(column.type)
+               and (_has_non_finite(column) or _has_huge(column))}
     if spelled:
         table = _arrow_csv(path, include, {**text_columns, **spelled}, delimiter, options)
     return table.rename_columns([n.strip() for n in table.column_names])
@@ -275,6 +277,12 @@ def _not_utf8(path: Path) -> str:
 def _has_non_finite(column: pa.ChunkedArray) -> bool:
     """Whether a float column holds NaN or infinity (nulls, i.e. empty fields, do not count)."""
     return bool(pc.any(pc.invert(pc.is_finite(column))).as_py())
+
+
+def _has_huge(column: pa.ChunkedArray) -> bool:
+    """Whether a float column reaches 2^53 in magnitude, where float64 drops integer digits."""
+    largest = pc.max(pc.abs(column)).as_py()
+    return largest is not None and largest >= 2.0**53
 
 
 def _raw_header(path: Path, delimiter: str) -> list[str]:

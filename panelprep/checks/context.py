@@ -28,6 +28,8 @@ from panelprep._groups import group_counts, segment_bounds
 from panelprep.index import PanelIndex
 from panelprep.variation import variation_table
 
+# every whole number below 2^53 in magnitude is exact in float64; from there on some are not
+_EXACT_INTEGER = 2.0**53
 _NUMBER = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
 
 
@@ -238,10 +240,11 @@ def _to_float(
     if pd.api.types.is_numeric_dtype(values.dtype):
         out = values.to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
         token_missing = np.isin(out, _numeric_tokens(missing_tokens, decimal_comma))
-        bad_rows = np.flatnonzero(np.isinf(out))
+        unusable = np.isinf(out) | _inexact_integers(values, out)
+        bad_rows = np.flatnonzero(unusable)
         if len(bad_rows) == 0 and not token_missing.any():
             return out, None
-        out[token_missing | np.isinf(out)] = np.nan
+        out[token_missing | unusable] = np.nan
         shown = list(dict.fromkeys(str(v) for v in values.iloc[bad_rows[:200]]))[:10]
         return out, NonNumeric(
             column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum())
@@ -256,7 +259,8 @@ def _to_float(
     blank = (stripped == "").to_numpy() & present
     out = np.full(len(values), np.nan)
     out[is_number] = stripped[is_number].astype(np.float64).to_numpy()
-    out[token_missing] = np.nan
+    is_number = is_number & ~_inexact_integer_text(stripped, out)
+    out[token_missing | ~is_number] = np.nan
     bad_rows = np.flatnonzero(present & ~is_number & ~token_missing & ~blank)
     if len(bad_rows) == 0 and not token_missing.any():
         return out, None
@@ -264,6 +268,39 @@ def _to_float(
     return out, NonNumeric(
         column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum())
     )
+
+
+def _inexact_integers(values: pd.Series, as_float: np.ndarray) -> np.ndarray:
+    """Rows of an integer column whose value float64 cannot hold exactly (beyond 2^53)."""
+    big = np.abs(as_float) >= _EXACT_INTEGER
+    if not pd.api.types.is_integer_dtype(values.dtype) or not big.any():
+        return np.zeros(len(values), dtype=bool)
+    kind = np.uint64 if pd.api.types.is_unsigned_integer_dtype(values.dtype) else np.int64
+    exact = values.to_numpy(dtype=kind, na_value=0)[big]
+    rounded = as_float[big]
+    # a value rounded up to 2^63 (2^64 unsigned) has no way back into its integer type
+    overflow = rounded >= 2.0 ** (64 if kind is np.uint64 else 63)
+    out = np.zeros(len(values), dtype=bool)
+    out[big] = overflow | (np.where(overflow, 0.0, rounded).astype(kind) != exact)
+    return out
+
+
+def _inexact_integer_text(text: pd.Series, as_float: np.ndarray) -> np.ndarray:
+    """Rows whose text is a whole number with more digits than float64 holds exactly."""
+    big = np.abs(np.nan_to_num(as_float)) >= _EXACT_INTEGER
+    out = np.zeros(len(text), dtype=bool)
+    if not big.any():
+        return out
+    candidate = text[big]
+    whole = candidate.str.fullmatch(r"[-+]?\d+").fillna(False).to_numpy(dtype=bool)
+    fits = whole & (candidate.str.lstrip("+-").str.len().to_numpy() <= 18)
+    rows = np.flatnonzero(big)
+    exact = candidate[fits].astype(np.int64).to_numpy()
+    out[rows[fits]] = as_float[rows[fits]].astype(np.int64) != exact
+    # 19 digits and more do not fit int64: compare as Python integers (rare texts)
+    wide = rows[whole & ~fits]
+    out[wide] = [int(t) != int(f) for t, f in zip(text.iloc[wide], as_float[wide])]
+    return out
 
 
 def _numeric_tokens(tokens: tuple[str, ...], decimal_comma: bool) -> list[float]:
