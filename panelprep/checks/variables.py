@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 
 from panelprep._groups import group_counts
@@ -10,7 +12,8 @@ from panelprep.checks.context import AuditContext
 from panelprep.findings import MAX_EXAMPLES
 
 
-@check("values-not-numeric", "error", "text in a variable that should be numeric")
+@check("values-not-numeric", "error",
+       "text, infinities or whole numbers beyond 2^53 in a variable that should be numeric")
 def not_numeric(ctx: AuditContext, self: Check):
     bad = {name: p for name, p in ctx.non_numeric.items() if len(p.rows)}
     if not bad:
@@ -27,10 +30,28 @@ def not_numeric(ctx: AuditContext, self: Check):
         total,
         f"{total} value(s) that are not numbers in {names}; e.g. "
         + ", ".join(repr(v) for p in bad.values() for v in p.values[:3])
-        + " (declare tokens that mean missing with --missing-token)",
+        + f" ({'; '.join(_hints([v for p in bad.values() for v in p.values], ctx.decimal_comma))})",
         examples,
         details,
     )
+
+
+_LONG_INTEGER = re.compile(r"^\s*[-+]?\d{16,}\s*$")
+_COMMA_NUMBER = re.compile(r"^\s*[-+]?\d*,\d+\s*$")
+_NOT_FINITE = re.compile(r"^\s*[-+]?(inf|infinity|nan)\s*$", re.IGNORECASE)
+
+
+def _hints(values: list[str], decimal_comma: bool) -> list[str]:
+    """What to do about the kinds of bad value seen, most specific first."""
+    hints = []
+    if any(_LONG_INTEGER.match(v) for v in values):
+        hints.append("whole numbers beyond 2^53 cannot be held exactly as float64")
+    if any(_NOT_FINITE.match(v) for v in values):
+        hints.append("infinite and NaN values are not usable numbers")
+    if not decimal_comma and any(_COMMA_NUMBER.match(v) for v in values):
+        hints.append("if ',' is the decimal mark, use --decimal-comma")
+    hints.append("declare tokens that mean missing with --missing-token")
+    return hints
 
 
 @check("values-declared-missing", "info", "texts read as missing because they were declared so")
