@@ -14,12 +14,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
+from conftest import examples
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from panelprep.pipeline import audit
 
-SETTINGS = settings(max_examples=60, deadline=None,
+SETTINGS = settings(max_examples=examples(60), deadline=None,
                     suppress_health_check=[HealthCheck.too_slow])
 
 ROLES = ("full", "gap", "single", "new-single", "hole-by-missing", "tail-missing", "lost")

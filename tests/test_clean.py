@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from conftest import examples
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -438,7 +439,7 @@ def test_mean_leaves_stray_text_to_the_audit():
     assert "values-not-numeric" in {f.id for f in prep.audit.findings}
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40), deadline=None)
 @given(seed=st.integers(0, 2**31 - 1))
 def test_largest_block_is_the_best_block_by_brute_force(seed):
     # Brute force over every block [a, b] of years: the firms observed in every year of it,

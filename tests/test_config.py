@@ -9,6 +9,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from conftest import examples
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -340,7 +341,7 @@ names = st.text(st.characters(blacklist_categories=("Cs", "Cc")), min_size=1, ma
     lambda s: s.strip() == s and "," not in s and s.strip())
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=examples(40), deadline=None)
 @given(y=names, x=st.lists(names, min_size=1, max_size=3, unique=True), time=names,
        entity=names, tokens=st.lists(names, max_size=3),
        ratio=st.floats(0, 1), rtol=st.floats(1e-15, 0.5))

@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
+from conftest import examples
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -219,7 +220,7 @@ cells = st.one_of(
 )
 
 
-@settings(max_examples=25, deadline=None)
+@settings(max_examples=examples(25), deadline=None)
 @given(data=st.data(), n=st.integers(0, 6))
 def test_never_raises_on_any_data(firm_year, data, n):
     columns = data.draw(st.lists(st.sampled_from(["firm_id", "year", "sales", "capital", "staff",

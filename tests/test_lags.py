@@ -12,6 +12,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import examples
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -19,7 +20,7 @@ from panelprep.errors import InputError
 from panelprep.index import build_index
 from panelprep.lags import Shift, add_shifts, parse_shifts, shifted_values
 
-SETTINGS = settings(max_examples=30, deadline=None,
+SETTINGS = settings(max_examples=examples(30), deadline=None,
                     suppress_health_check=[HealthCheck.too_slow])
 
 

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from conftest import examples
 from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
@@ -85,7 +86,7 @@ policies = st.builds(
 )
 
 
-@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=examples(40), deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
     seed=st.integers(0, 2**31 - 1),
     defects=st.sets(st.sampled_from(["exact", "conflict", "lookalike", "missing-key",

@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
-from conftest import Panel, random_unbalanced_panel
+from conftest import Panel, examples, random_unbalanced_panel
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from statsmodels.tools.sm_exceptions import SingularMatrixWarning
@@ -133,7 +133,7 @@ def test_theta_matches_formula_and_edge_cases():
     np.testing.assert_array_equal(theta_per_entity(-3.0, 1.0, counts), 0.0)
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=examples(60), deadline=None)
 @given(
     s2u=st.floats(0, 1e12, allow_nan=False),
     s2e=st.floats(0, 1e12, allow_nan=False),
