@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
+from functools import cached_property
 from pathlib import Path
 from typing import Any
 
@@ -103,14 +104,26 @@ class PrepareOptions:
 
 @dataclass(eq=False)
 class Preparation:
-    """The result of ``prepare``: the audit, what was built, and where it went."""
+    """The result of ``prepare``: the audit, what was built, and where it went.
+
+    ``tables`` builds every output table on first use and keeps them;
+    ``outputs`` holds the recipe, so a run that writes files builds, writes
+    and frees one table at a time instead of holding them all.
+    """
 
     audit: AuditReport
     ledger: Ledger
     components: VarianceComponents | None
-    tables: dict[str, pd.DataFrame]
+    outputs: OutputTables | None
     summary: dict[str, Any]
     sample_index: PanelIndex | None = None
+
+    @cached_property
+    def tables(self) -> dict[str, pd.DataFrame]:
+        """Every output table by name (empty when the gate failed)."""
+        if self.outputs is None:
+            return {}
+        return {name: self.outputs.build(name) for name in self.outputs.names}
 
     @property
     def verdict(self) -> str:
@@ -180,7 +193,7 @@ def prepare_frame(
         summary["steps"] = [s.to_dict() for s in flow.ledger.story]
         summary["files"] = []
         summary["cautions"] = [_gate_caution(report)]
-        return Preparation(report, flow.ledger, None, {}, summary)
+        return Preparation(report, flow.ledger, None, None, summary)
 
     progress("building the estimation sample")
     flow.drop(~ctx.keyed, "key-missing", "drop rows without a full key")
@@ -208,14 +221,18 @@ def prepare_frame(
     progress(f"variance components ({options.method})")
     components = VarianceComponents(method=options.method).fit(y, X, codes, counts, names=options.x)
     keys = flow.frame[[*options.entity, options.time]].iloc[np.flatnonzero(sample)]
-    tables, info = _build_tables(keys.reset_index(drop=True), sample_ix, values, counts,
-                                 components.theta_, options, progress)
+    outputs = OutputTables(
+        keys=keys.reset_index(drop=True), index=sample_ix, values=values, counts=counts,
+        theta=components.theta_, options=options, ledger=flow.ledger, raw=frame,
+        progress=progress,
+    )
 
     findings = report.findings + [Finding(**f) for f in components.findings_]
     if options.validate_outputs and options.contract is not None:
         from panelprep.contracts import check_contract
 
-        findings += check_contract(tables["clean"], options.contract, where="output clean")
+        findings += check_contract(outputs.build("clean"), options.contract,
+                                   where="output clean")
     summary["findings"] = [f.to_dict() for f in findings]
     summary["verdict"] = gate(findings, options.fail_on)
     summary["sample"] = _sample_summary(ctx, sample_ix, options)
@@ -224,13 +241,11 @@ def prepare_frame(
     summary["components"] = components.to_dict()
     progress("evidence on the entity effect")
     summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x)
-    summary["transforms"] = info
-    summary["cautions"] = _cautions(info, components, sample_ix)
-    tables["dropped"] = flow.ledger.to_frame(frame, [*options.entity, options.time])
-    prep = Preparation(report, flow.ledger, components, tables, summary, sample_ix)
+    summary["transforms"] = outputs.info
+    summary["cautions"] = _cautions(outputs.info, components, sample_ix)
     if summary["verdict"] == "fail":
-        prep.tables = {}
-    return prep
+        outputs = None
+    return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
 
 
 def _distinct_entities(frame: pd.DataFrame, entity: list[str]) -> int:
@@ -246,49 +261,75 @@ def _context(flow: _Flow, options: PrepareOptions, read_options: ReadOptions) ->
                         missing_tokens=read_options.missing_tokens)
 
 
-def _build_tables(
-    keys: pd.DataFrame, sample_ix: PanelIndex, values: np.ndarray, counts: np.ndarray,
-    theta: np.ndarray, options: PrepareOptions, progress: Progress,
-) -> tuple[dict[str, pd.DataFrame], dict[str, Any]]:
-    """The clean table and each requested transform, with what to report about each."""
-    codes = sample_ix.entity_codes
-    names = options.variables
-    tables: dict[str, pd.DataFrame] = {"clean": _with_keys(keys, names, values)}
-    info: dict[str, Any] = {}
-    multi = counts[codes] > 1
-    n_singletons = int((counts == 1).sum())
-    for name in options.transforms:
-        progress(f"transform {name}")
+@dataclass(eq=False)
+class OutputTables:
+    """Builds the clean table, each transform and the ledger table on demand.
+
+    ``info`` says what each transform did; it is known before building,
+    except the two-way transform's iterations and precision, which are added
+    when that table is built.
+    """
+
+    keys: pd.DataFrame
+    index: PanelIndex
+    values: np.ndarray
+    counts: np.ndarray
+    theta: np.ndarray
+    options: PrepareOptions
+    ledger: Ledger
+    raw: pd.DataFrame
+    progress: Progress = _silent
+    info: dict[str, Any] = field(init=False)
+
+    def __post_init__(self) -> None:
+        multi_rows = int((self.counts[self.index.entity_codes] > 1).sum())
+        singletons = int((self.counts == 1).sum())
+        plan = {
+            "within": {"rows": multi_rows,
+                       "entities_absorbed": int(self.index.n_entities - singletons),
+                       "singletons_dropped": singletons},
+            "between": {"rows": int(self.index.n_entities)},
+            "quasi": {"rows": len(self.keys)},
+            "twoway": {"rows": multi_rows, "singletons_dropped": singletons},
+        }
+        self.info = {name: plan[name] for name in self.options.transforms}
+
+    @property
+    def names(self) -> list[str]:
+        return ["clean", *self.options.transforms, "dropped"]
+
+    def build(self, name: str) -> pd.DataFrame:
+        """One output table, built afresh."""
+        codes, names, values = self.index.entity_codes, self.options.variables, self.values
+        if name == "clean":
+            return _with_keys(self.keys, names, values)
+        if name == "dropped":
+            return self.ledger.to_frame(self.raw, [*self.options.entity, self.options.time])
+        self.progress(f"transform {name}")
+        multi = self.counts[codes] > 1
         if name == "within":
-            block = transforms.within(values, codes, counts)[multi]
-            tables[name] = _with_keys(keys[multi].reset_index(drop=True), names, block)
-            info[name] = {"rows": int(multi.sum()),
-                          "entities_absorbed": int(sample_ix.n_entities - n_singletons),
-                          "singletons_dropped": n_singletons}
-        elif name == "between":
-            table = sample_ix.entity_labels.copy()
-            means = transforms.between(values, codes, counts)
+            block = transforms.within(values, codes, self.counts)[multi]
+            return _with_keys(self.keys[multi].reset_index(drop=True), names, block)
+        if name == "between":
+            table = self.index.entity_labels.copy()
+            means = transforms.between(values, codes, self.counts)
             for j, column in enumerate(names):
                 table[column] = means[:, j]
-            table["n_obs"] = counts
-            tables[name] = table
-            info[name] = {"rows": len(table)}
-        elif name == "quasi":
-            table = _with_keys(keys, names, transforms.quasi(values, codes, counts, theta))
-            table["const"] = 1.0 - theta[codes]
-            table["theta"] = theta[codes]
-            tables[name] = table
-            info[name] = {"rows": len(table)}
-        else:
-            sub = sample_ix.subset(multi)
-            block, result = transforms.twoway(
-                values[multi], sub.entity_codes, sub.period_codes, sub.n_entities, sub.n_periods,
-                tol=options.twoway_tol,
-            )
-            tables[name] = _with_keys(keys[multi].reset_index(drop=True), names, block)
-            info[name] = {"rows": int(multi.sum()), "singletons_dropped": n_singletons,
-                          **asdict(result)}
-    return tables, info
+            table["n_obs"] = self.counts
+            return table
+        if name == "quasi":
+            block = transforms.quasi(values, codes, self.counts, self.theta)
+            table = _with_keys(self.keys, names, block)
+            table["const"] = 1.0 - self.theta[codes]
+            table["theta"] = self.theta[codes]
+            return table
+        sub = self.index.subset(multi)
+        block, result = transforms.twoway(
+            values[multi], sub.entity_codes, sub.period_codes, sub.n_entities, sub.n_periods,
+            tol=self.options.twoway_tol,
+        )
+        self.info["twoway"].update(asdict(result))
+        return _with_keys(self.keys[multi].reset_index(drop=True), names, block)
 
 
 def _sample_summary(ctx: AuditContext, sample_ix: PanelIndex, options: PrepareOptions) -> dict:
@@ -488,7 +529,9 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
                     "x": options.x, "freq": options.freq, "transforms": options.transforms,
                     "fail_on": options.fail_on},
     }
-    for name, table in prep.tables.items():
+    for name in prep.outputs.names if prep.outputs is not None else []:
+        # built, written and freed one at a time: peak memory holds one table
+        table = prep.tables[name] if "tables" in prep.__dict__ else prep.outputs.build(name)
         fmt = "parquet" if name == "dropped" else options.output_format
         path = folder.path(f"{name}.{'parquet' if name == 'dropped' else suffix}")
         progress(f"writing {path.name}")
@@ -499,6 +542,7 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
                                         sort_keys=True, allow_nan=False)}
         write_table(table, path, fmt, meta)
         files.append({"name": path.name, "rows": len(table), "sha256": sha256_file(path)})
+        del table
     prep.summary["files"] = files
     text = json.dumps(prep.summary, indent=2, ensure_ascii=False, allow_nan=False)
     folder.path("diagnostics.json").write_text(text + "\n", encoding="utf-8")
