@@ -52,3 +52,16 @@ def segment_bounds(sorted_codes: np.ndarray) -> np.ndarray:
         return np.zeros(0, dtype=np.int64)
     change = np.flatnonzero(sorted_codes[1:] != sorted_codes[:-1]) + 1
     return np.concatenate(([0], change)).astype(np.int64)
+
+
+def compact_codes(codes: np.ndarray, n_groups: int) -> tuple[np.ndarray, int]:
+    """Codes renumbered over the groups that occur, when there are more groups than rows.
+
+    A per-group array then never outgrows the rows (a period grid spanning
+    centuries holds mostly empty periods).  Returns ``(codes, n_groups)``
+    unchanged when ``n_groups`` is at most ``len(codes)``; group order is kept.
+    """
+    if n_groups <= len(codes):
+        return codes, n_groups
+    present, compact = np.unique(codes, return_inverse=True)
+    return compact.reshape(-1).astype(np.int64, copy=False), len(present)

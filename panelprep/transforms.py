@@ -25,7 +25,7 @@ import scipy.sparse
 import scipy.sparse.csgraph
 import scipy.sparse.linalg
 
-from panelprep._groups import group_counts, group_sums
+from panelprep._groups import compact_codes, group_counts, group_sums
 
 TRANSFORMS = ("within", "between", "quasi", "twoway")
 
@@ -386,6 +386,10 @@ def twoway(
     n, k = block.shape
     entity_codes = _check_codes(entity_codes, n, n_entities, "entity_codes")
     period_codes = _check_codes(period_codes, n, n_periods, "period_codes")
+    # levels without rows change nothing; dropping them keeps every per-level array
+    # within the row count however long the period grid is
+    entity_codes, n_entities = compact_codes(entity_codes, n_entities)
+    period_codes, n_periods = compact_codes(period_codes, n_periods)
     if n_periods <= n_entities:
         a, b, na, nb, solved = entity_codes, period_codes, n_entities, n_periods, "period"
     else:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from panelprep._groups import group_counts, group_means, group_sums
+from panelprep._groups import compact_codes, group_counts, group_means, group_sums
 from panelprep.index import PanelIndex
 
 
@@ -39,10 +39,10 @@ def variation_table(
     deviation = values - means[codes]
     within_ss = (deviation**2).sum(axis=0)
     entity_ss = group_sums(codes, deviation**2, n_entities)
-    period = index.period_codes
-    period_counts = group_counts(period, index.n_periods)
+    period, n_periods = compact_codes(index.period_codes, index.n_periods)
+    period_counts = group_counts(period, n_periods)
     period_ss = group_sums(period, (values - group_means(period, values, period_counts)[period]) ** 2,
-                           index.n_periods)
+                           n_periods)
     multi = counts >= 2
     multi_period = period_counts >= 2
     out: dict[str, dict] = {}
