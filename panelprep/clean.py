@@ -13,9 +13,10 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from panelprep._groups import group_counts, group_sums, segment_bounds
+from panelprep._groups import compact_codes, group_counts, group_sums, segment_bounds
 from panelprep.errors import InputError
 from panelprep.index import PanelIndex
+from panelprep.limits import LARGEST_BLOCK_PERIODS
 from panelprep.timeaxis import build_time_axis
 
 DUPLICATES = ("fail", "drop-exact", "keep-first", "keep-last", "mean")
@@ -207,12 +208,15 @@ def singleton_removal(index: PanelIndex, alive: np.ndarray, with_periods: bool) 
     """Entities (and with ``with_periods`` also periods) with one row, to a fixed point."""
     drop = np.zeros(index.n_rows, dtype=bool)
     current = alive.copy()
+    # a grid longer than the rows is counted over the periods that occur
+    periods, n_periods = compact_codes(np.where(index.keyed, index.period_codes, 0),
+                                       max(index.n_periods, 1))
     while True:
         e_counts = group_counts(index.entity_codes[current], index.n_entities)
         lone = current & (e_counts[np.where(current, index.entity_codes, 0)] == 1)
         if with_periods:
-            p_counts = group_counts(index.period_codes[current], max(index.n_periods, 1))
-            lone |= current & (p_counts[np.where(current, index.period_codes, 0)] == 1)
+            p_counts = group_counts(periods[current], n_periods)
+            lone |= current & (p_counts[periods] == 1)
         if not lone.any():
             break
         drop |= lone
@@ -266,8 +270,10 @@ def _largest_block(entity: np.ndarray, period: np.ndarray, n_entities: int, n_pe
     Each entity's observed periods split into maximal runs; an entity is
     complete over [a, b] when one of its runs covers it.  Counting runs with
     start <= a and end >= b for every (a, b) is a 2-D cumulative sum over a
-    (periods x periods) table, so the cost is one pass over the cells plus
-    periods squared.
+    table of the periods that occur (a block cannot span a period nobody
+    observes, and between two occurring periods a run covers, every period
+    occurs), so the cost is one pass over the cells plus occurring periods
+    squared; more than ``LARGEST_BLOCK_PERIODS`` of them is refused.
     """
     if len(entity) == 0:
         return 0, -1, np.zeros(n_entities, dtype=bool)
@@ -276,16 +282,24 @@ def _largest_block(entity: np.ndarray, period: np.ndarray, n_entities: int, n_pe
     starts = segment_bounds(np.cumsum(new_run))
     ends = np.append(starts[1:], len(entity)) - 1
     run_start, run_end = period[starts], period[ends]
-    table = np.zeros((n_periods, n_periods), dtype=np.int64)
-    np.add.at(table, (run_start, run_end), 1)
-    # covering[a, b] = #runs with start <= a and end >= b
+    occurring, rank = np.unique(period, return_inverse=True)
+    rank = rank.reshape(-1)
+    size = len(occurring)
+    if size > LARGEST_BLOCK_PERIODS:
+        raise InputError(
+            f"balance = largest-block compares every pair of periods and takes at most "
+            f"{LARGEST_BLOCK_PERIODS:,} distinct periods; this sample has {size:,} "
+            "(use complete-entities, or narrow the time window first)"
+        )
+    table = np.zeros((size, size), dtype=np.int64)
+    np.add.at(table, (rank[starts], rank[ends]), 1)
+    # covering[a, b] = #runs with start <= a and end >= b (a, b ranks of occurring periods)
     covering = np.cumsum(np.cumsum(table[:, ::-1], axis=0), axis=1)[:, ::-1]
-    a, b = np.meshgrid(np.arange(n_periods), np.arange(n_periods), indexing="ij")
-    score = np.where(b >= a, covering * (b - a + 1), -1)
-    best = int(np.argmax(score))
-    low, high = divmod(best, n_periods)
+    length = np.arange(size)[None, :] - np.arange(size)[:, None] + 1
+    score = np.where(length > 0, covering * length, -1)
+    low, high = (int(occurring[r]) for r in divmod(int(np.argmax(score)), size))
     run_entity = entity[starts]
     covers = (run_start <= low) & (run_end >= high)
     complete = np.zeros(n_entities, dtype=bool)
     complete[run_entity[covers]] = True
-    return int(low), int(high), complete
+    return low, high, complete
