@@ -19,6 +19,7 @@ import pandas as pd
 
 from panelprep._groups import group_counts, segment_bounds
 from panelprep.errors import ColumnError
+from panelprep.limits import check_grid
 from panelprep.timeaxis import TimeAxis, build_time_axis
 
 
@@ -190,6 +191,9 @@ def build_index(
                 codes = np.where(np.isin(codes, np.flatnonzero(blank.to_numpy())), -1, codes)
         missing |= codes < 0
         combined = combined * np.int64(max(len(uniques), 1)) + np.where(codes < 0, 0, codes)
+        if len(entity) > 2:
+            # re-rank (order kept) so the product of distinct counts cannot overflow int64
+            combined = pd.factorize(combined, sort=True)[0].astype(np.int64, copy=False)
 
     combined = np.where(missing, -1, combined)
     entity_codes, uniq_combined = pd.factorize(combined, sort=True, use_na_sentinel=True)
@@ -210,6 +214,8 @@ def build_index(
         last = int(axis.ordinal[has_time].max())
     else:
         first, last = 0, -1
+    if has_time.any():
+        check_grid(len(uniq_combined), last - first + 1, time, *axis.label([first, last]))
     period_codes = np.where(has_time, axis.ordinal - first, -1).astype(np.int64)
     return PanelIndex(
         entity=entity,

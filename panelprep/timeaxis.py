@@ -37,6 +37,8 @@ _PATTERNS: dict[str, re.Pattern[str]] = {
 _UTC_OFFSET = re.compile(r"^(?P<wall>.*\d{2}:\d{2}(?::\d{2}(?:\.\d+)?)?)\s*(?:Z|[+-]\d{2}(?::?\d{2})?)$")
 
 _EPOCH_WEEKDAY = 3  # 1970-01-01 was a Thursday (Monday = 0)
+# integer periods further apart than this cannot be differenced in int64 without overflow
+MAX_PERIOD_SPAN = 1 << 62
 INT_GRID_SHARE = 0.9  # share of rows that must sit on an integer grid of step > 1
 
 
@@ -136,6 +138,11 @@ def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "t
     )
 
 
+def _shown(value: object) -> str:
+    """A value as written in a message: ``1e+300``, not ``np.float64(1e+300)``."""
+    return repr(value.item() if isinstance(value, np.generic) else value)
+
+
 def _first_row(codes: np.ndarray, unique_position: int) -> int:
     return int(np.flatnonzero(codes == unique_position)[0]) + 1
 
@@ -153,11 +160,23 @@ def _parse_uniques(uniques, blank, freq, codes, column):
         if bad.any():
             k = int(np.flatnonzero(bad)[0])
             raise TimeParseError(
-                f"time column {column!r}: value {uniques[k]!r} at row {_first_row(codes, k)} "
+                f"time column {column!r}: value {_shown(uniques[k])} at row {_first_row(codes, k)} "
                 "is not a whole-number period"
             )
+        # integers are taken as stored (through float64 two large ones could merge);
+        # a float period must be a whole number float64 holds exactly
+        limit = 2.0**63 if pd.api.types.is_integer_dtype(uniques.dtype) else 2.0**53
+        huge = np.abs(nums) >= limit
+        if huge.any():
+            k = int(np.flatnonzero(huge)[0])
+            raise TimeParseError(
+                f"time column {column!r}: value {_shown(uniques[k])} at row {_first_row(codes, k)} "
+                "is too large to be a period"
+            )
+        whole = (np.asarray(uniques, dtype=np.int64)
+                 if pd.api.types.is_integer_dtype(uniques.dtype) else nums.astype(np.int64))
         rows = np.bincount(codes[codes >= 0], minlength=n)
-        return ("int", *_integer_grid(nums.astype(np.int64), freq, column, rows))
+        return ("int", *_integer_grid(whole, freq, column, rows))
     if pd.api.types.is_datetime64_any_dtype(uniques.dtype):
         stamps = pd.DatetimeIndex(uniques)
         if stamps.tz is not None:
@@ -173,6 +192,12 @@ def _integer_grid(values: np.ndarray, freq: str | None, column: str, rows: np.nd
     if freq not in (None, "int", "year"):
         raise TimeParseError(
             f"time column {column!r} holds whole numbers, which cannot be read as --freq {freq}"
+        )
+    low, high = int(values.min()), int(values.max())
+    if high - low >= MAX_PERIOD_SPAN:
+        raise TimeParseError(
+            f"time column {column!r} spans {low} to {high}, too wide a range of periods "
+            "to place on one grid (look for mistyped values)"
         )
     step = 1 if freq == "year" else _integer_step(values, rows)
     residue = values % step
