@@ -26,6 +26,7 @@ import pandas as pd
 
 from panelprep._groups import group_counts, segment_bounds
 from panelprep.index import PanelIndex
+from panelprep.limits import GRID_PERIODS
 from panelprep.variation import variation_table
 
 # every whole number below 2^53 in magnitude is exact in float64; from there on some are not
@@ -44,11 +45,14 @@ class Thresholds:
         variable's largest absolute value (default 1e-9).
     max_pattern_periods : presence patterns are summarised only for grids of
         at most this many periods.
+    max_grid_periods : a grid of more periods is reported as most likely
+        mistyped (default ``limits.GRID_PERIODS``, 100,000).
     """
 
     low_within_ratio: float = 0.05
     constant_rtol: float = 1e-9
     max_pattern_periods: int = 512
+    max_grid_periods: int = GRID_PERIODS
 
 
 @dataclass(frozen=True)

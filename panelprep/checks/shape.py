@@ -12,6 +12,7 @@ import numpy as np
 from panelprep.checks.base import Check, check
 from panelprep.checks.context import AuditContext
 from panelprep.findings import MAX_EXAMPLES
+from panelprep.limits import grid_is_large
 
 PRESENT, ABSENT = "■", "·"
 
@@ -86,7 +87,7 @@ def balance(ctx: AuditContext, self: Check):
     per_entity = ctx.periods_per_entity
     if ix.n_entities == 0:
         # nothing is left to estimate on: a gate must not pass this as a clean panel
-        return self.finding(0, "the estimation sample is empty: no entity to describe",
+        return self.finding(0, f"the estimation sample is empty: {_why_empty(ctx)}",
                             severity="error")
     is_balanced = bool((per_entity == ix.n_periods).all())
     values, counts = np.unique(per_entity, return_counts=True)
@@ -103,12 +104,42 @@ def balance(ctx: AuditContext, self: Check):
         "patterns": presence_patterns(ctx),
     }
     shape = "balanced" if is_balanced else "unbalanced"
-    return self.finding(
-        int((per_entity < ix.n_periods).sum()),
-        f"{shape}: {ix.n_entities} entities over {ix.n_periods} periods ({first} to {last}); "
-        f"{int((per_entity < ix.n_periods).sum())} entit(ies) miss at least one period",
-        details=details,
-    )
+    message = (f"{shape}: {ix.n_entities} entities over {ix.n_periods} periods ({first} to "
+               f"{last}); {int((per_entity < ix.n_periods).sum())} entit(ies) miss at least one "
+               "period")
+    # shapes no panel method can use are warnings, so a gate on warnings stops them
+    degenerate = _degenerate(ctx)
+    if degenerate:
+        message += "; " + degenerate
+    return self.finding(int((per_entity < ix.n_periods).sum()), message, details=details,
+                        severity="warning" if degenerate else None)
+
+
+def _degenerate(ctx: AuditContext) -> str:
+    """Why the sample's shape defeats panel methods, or '' when it does not."""
+    ix = ctx.sample_index
+    if grid_is_large(ix.n_periods, ctx.thresholds.max_grid_periods):
+        occurring = len(np.unique(ctx.sample_cells[1]))
+        return (f"the grid spans {ix.n_periods:,} {ix.axis.name} periods for {occurring:,} "
+                "that occur: look for mistyped time values")
+    if ix.n_entities == 1:
+        return "only one entity: there is no variation between entities"
+    if ix.n_periods == 1:
+        return "only one period: there is no variation within entities"
+    return ""
+
+
+def _why_empty(ctx: AuditContext) -> str:
+    """Which rule removed the last rows, for the empty-sample message."""
+    if not ctx.keyed.any():
+        return "no row has both an entity and a time value"
+    base = ctx.base
+    if ctx.variables and base.any():
+        absent = np.isnan(ctx.values[base]).all(axis=0)
+        if absent.any():
+            names = ", ".join(v for v, a in zip(ctx.variables, absent) if a)
+            return f"{names} ha{'s' if absent.sum() == 1 else 've'} no usable value in any keyed row"
+    return "no keyed row has every selected variable present"
 
 
 @check("entity-single-obs", "warning", "entities observed once")
