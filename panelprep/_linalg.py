@@ -1,8 +1,9 @@
 """Least squares with explicit rank detection, and an entity-clustered covariance.
 
 Everything here works on small dense blocks: ``X`` is (n, k) with k the number
-of regressors (a handful), so the cost is one pivoted QR of an (n, k) block
-and a few k x k operations.  Rank deficiency is a normal outcome (a regressor
+of regressors (a handful); the QR is computed block by block of rows (a
+tall-skinny QR), so the cost is one pass over the rows and a few k x k
+operations, and memory holds one block copy at a time.  Rank deficiency is a normal outcome (a regressor
 with no within variation, two collinear regressors, fewer rows than columns):
 it is detected, reported in the result and never turns into NaN or an
 exception.
@@ -15,7 +16,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
-import scipy.linalg.lapack
 
 EPS = float(np.finfo(np.float64).eps)
 
@@ -25,6 +25,10 @@ EPS = float(np.finfo(np.float64).eps)
 # keeping any column whose independent part is more than ~1e-9 of the largest
 # column for n up to ~10 million rows.
 RTOL_FACTOR = 10.0
+
+# Rows per block of the tall-skinny QR in ``ols``: large enough for LAPACK to
+# run at full speed, small enough that one block copy stays far below the data.
+QR_BLOCK_ROWS = 1 << 18
 
 
 def default_rtol(n: int, k: int) -> float:
@@ -120,10 +124,10 @@ def ols(
 
     Notes
     -----
-    Rank detection: pivoted QR ``X_s P = Q R`` (``scipy.linalg.qr`` with
-    ``pivoting=True``; ``mode='raw'`` keeps Q as Householder factors, the same
-    factorisation as ``mode='economic'`` without forming Q) of the scaled
-    block ``X_s = X / scale``.
+    Rank detection: pivoted QR ``X_s P = Q R`` of the scaled block
+    ``X_s = X / scale``, computed as the pivoted QR of the small triangular
+    factor of ``[X_s, y]`` (see ``_stacked_r``): ``X_s = Q_1 R_x`` with
+    orthonormal ``Q_1``, so ``R_x`` has the same column norms and pivots.
     The leading ``r`` pivoted columns are kept, where ``r`` counts the diagonal
     entries with ``|R_jj| > rtol * |R_00|``.  ``|R_00|`` is the largest
     column norm of ``X_s``, so an exactly zero column (``R_jj = 0``) is always
@@ -158,17 +162,17 @@ def ols(
     xtx_inv = np.zeros((0, 0))
     rank = 0
     if n > 0 and k > 0:
-        # raw Householder factors: Q is applied to y without ever being formed
-        scaled = np.divide(X, col_scale, out=np.empty((n, k), order="F"))
-        (reflectors, tau), R, piv = scipy.linalg.qr(
-            scaled, mode="raw", pivoting=True, overwrite_a=True, check_finite=False
-        )
+        # R of [X_s, y] by blocks of rows (tall-skinny QR): the same R as one
+        # QR of the whole block, but only one block is ever copied
+        r_xy = _stacked_r(X, col_scale, y)
+        # the pivoted QR of R_x has the pivots and |R_jj| of the pivoted QR of X_s
+        Q2, R, piv = scipy.linalg.qr(r_xy[:k, :k], pivoting=True, check_finite=False)
         diag = np.abs(np.diag(R))
         if diag.size and diag[0] > 0:
             reference = max(diag[0], 1.0) if scale is not None else diag[0]
             rank = int(np.count_nonzero(diag > rtol * reference))
         if rank:
-            qty = _apply_qt(reflectors[:, : len(tau)], tau, y)
+            qty = Q2.T @ r_xy[:k, k]
             R11 = R[:rank, :rank]
             b_piv = scipy.linalg.solve_triangular(R11, qty[:rank])
             R11_inv = scipy.linalg.solve_triangular(R11, np.eye(rank))
@@ -195,15 +199,32 @@ def ols(
     )
 
 
-def _apply_qt(reflectors: np.ndarray, tau: np.ndarray, y: np.ndarray) -> np.ndarray:
-    """``Q' y`` from the Householder factors of a raw QR (LAPACK ``dormqr``)."""
-    c = np.asfortranarray(y.reshape(-1, 1), dtype=np.float64).copy(order="F")
-    qty, _work, info = scipy.linalg.lapack.dormqr(
-        "L", "T", reflectors, tau, c, lwork=max(64, reflectors.shape[1])
-    )
-    if info != 0:
-        raise np.linalg.LinAlgError(f"dormqr failed with info={info}")
-    return qty[:, 0]
+def _stacked_r(X: np.ndarray, col_scale: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Upper-triangular R of ``[X / col_scale, y]`` computed block by block of rows.
+
+    Each block of ``QR_BLOCK_ROWS`` rows is factorised on its own (LAPACK
+    ``geqrf``, no pivoting) and the small R factors are stacked and
+    factorised again; the result is the R of the whole matrix up to the signs
+    of its rows, which neither the pivots nor ``|R_jj|`` nor the solution
+    depend on.  Memory holds one block copy at a time, and the blocks are
+    independent, so the same reduction runs partition by partition.
+    """
+    n, k = X.shape
+    factors = []
+    for start in range(0, n, QR_BLOCK_ROWS):
+        stop = min(start + QR_BLOCK_ROWS, n)
+        block = np.empty((stop - start, k + 1), order="F")
+        np.divide(X[start:stop], col_scale, out=block[:, :k])
+        block[:, k] = y[start:stop]
+        r = scipy.linalg.qr(block, mode="r", overwrite_a=True, check_finite=False)[0]
+        factors.append(r[: min(stop - start, k + 1)])
+    stacked = np.vstack(factors)
+    if len(factors) > 1 or stacked.shape[0] < k + 1:
+        stacked = scipy.linalg.qr(stacked, mode="r", check_finite=False)[0]
+    out = np.zeros((k + 1, k + 1))
+    rows = min(stacked.shape[0], k + 1)
+    out[:rows] = np.triu(stacked[:rows])
+    return out
 
 
 def cluster_cov(
