@@ -89,7 +89,7 @@ def picture_data(
         index = source
         keyed = index.keyed
         n_periods = max(index.n_periods, 1)
-        cells = np.unique(index.cell[keyed])
+        cells = index.sorted_cells
         entity, period = cells // n_periods, cells % n_periods
         rows_per_entity = group_counts(index.entity_codes[keyed], index.n_entities)
     n_entities, n_periods = index.n_entities, max(index.n_periods, 0)

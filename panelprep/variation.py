@@ -36,13 +36,17 @@ def variation_table(
         return {name: _empty_row() for name in names}
     counts = group_counts(codes, n_entities)
     means = group_means(codes, values, counts)
-    deviation = values - means[codes]
-    within_ss = (deviation**2).sum(axis=0)
-    entity_ss = group_sums(codes, deviation**2, n_entities)
+    # one (n, k) buffer, reused: squared deviations from entity, then period, means
+    squares = np.subtract(values, means[codes], order="F")
+    np.square(squares, out=squares)
+    entity_ss = group_sums(codes, squares, n_entities)
+    within_ss = entity_ss.sum(axis=0)
     period, n_periods = compact_codes(index.period_codes, index.n_periods)
     period_counts = group_counts(period, n_periods)
-    period_ss = group_sums(period, (values - group_means(period, values, period_counts)[period]) ** 2,
-                           n_periods)
+    np.subtract(values, group_means(period, values, period_counts)[period], out=squares)
+    np.square(squares, out=squares)
+    period_ss = group_sums(period, squares, n_periods)
+    del squares
     multi = counts >= 2
     multi_period = period_counts >= 2
     out: dict[str, dict] = {}
