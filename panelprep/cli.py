@@ -114,6 +114,7 @@ def prepare_command(
     method: Annotated[str | None, typer.Option("--method", help="Variance components: swamy-arora (default), wallace-hussain, amemiya or nerlove.")] = None,
     output_format: Annotated[str | None, typer.Option("--format", help="Data files as parquet (default) or csv.")] = None,
     force: Annotated[bool | None, typer.Option("--force/--no-force", help="Replace a non-empty output folder.")] = None,
+    evidence: Annotated[bool | None, typer.Option("--evidence/--no-evidence", help="Compute the tests that inform the choice of estimator (default on).")] = None,
     contract: Annotated[Path | None, typer.Option("--contract", help="pandera YAML schema the input must satisfy.")] = None,
     duplicates: Annotated[str | None, typer.Option("--duplicates", help="fail (default), drop-exact, keep-first, keep-last or mean.")] = None,
     normalise_ids: Annotated[str | None, typer.Option("--normalise-ids", help="none (default), trim or trim-fold.")] = None,
@@ -146,7 +147,7 @@ def prepare_command(
         "clean.singletons": singletons, "clean.balance": balance, "clean.window": window,
         "derive.lag": lag, "derive.lead": lead, "derive.diff": diff,
         "output.dir": out, "output.transforms": transform, "output.method": method,
-        "output.format": output_format, "output.force": force,
+        "output.format": output_format, "output.force": force, "output.evidence": evidence,
     }
     try:
         run = load_run_file(config, overrides) if config else RunFile().merged(overrides)

@@ -44,6 +44,7 @@ Keys
 | `output.method` | `swamy-arora`, `wallace-hussain`, `amemiya`, `nerlove` | `swamy-arora` | variance components for theta |
 | `output.format` | `parquet`, `csv` | `parquet` | format of the data files |
 | `output.force` | bool | `false` | replace a non-empty output folder |
+| `output.evidence` | bool | `true` | compute the entity-effect and correlated-effects tests |
 
 Errors are ``InputError`` with one line naming the file, the line, the key
 and what is allowed.
@@ -176,6 +177,7 @@ class OutputSection:
     method: str = "swamy-arora"
     format: str = "parquet"
     force: bool = False
+    evidence: bool = True
 
 
 _SECTIONS: dict[str, type] = {
@@ -427,6 +429,8 @@ _KEYS: dict[str, dict[str, _Key]] = {
                        "variance components for theta"),
         "format": _Key("`parquet`, `csv`", _choice(OUTPUT_FORMATS), "format of the data files"),
         "force": _Key("bool", _bool, "replace a non-empty output folder"),
+        "evidence": _Key("bool", _bool,
+                         "compute the entity-effect and correlated-effects tests"),
     },
 }
 

@@ -75,6 +75,7 @@ class PrepareOptions:
     shifts: list[Shift] = field(default_factory=list)
     contract: Any = None
     validate_outputs: bool = False
+    evidence: bool = True
 
     def validate(self) -> None:
         self.policies.validate()
@@ -239,8 +240,9 @@ def prepare_frame(
     summary["steps"] = [s.to_dict() for s in flow.ledger.story]
     summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
     summary["components"] = components.to_dict()
-    progress("evidence on the entity effect")
-    summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x)
+    if options.evidence:
+        progress("evidence on the entity effect")
+        summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x)
     summary["transforms"] = outputs.info
     summary["cautions"] = _cautions(outputs.info, components, sample_ix)
     if summary["verdict"] == "fail":
@@ -580,6 +582,7 @@ def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
         shifts=[*parse_shifts("lag", run.derive.lag), *parse_shifts("lead", run.derive.lead),
                 *parse_shifts("diff", run.derive.diff)],
         contract=contract, validate_outputs=run.contract.validate_outputs,
+        evidence=run.output.evidence,
     )
     return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
                            force=run.output.force, progress=progress)
