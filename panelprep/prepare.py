@@ -216,7 +216,11 @@ def prepare_frame(
     sample_ix = flow.index.subset(sample)
     codes = sample_ix.entity_codes
     counts = group_counts(codes, sample_ix.n_entities)
-    values = np.asfortranarray(ctx.values[sample])
+    if np.array_equal(sample, ctx.sample):
+        values = ctx.sample_values
+    else:
+        values = np.asfortranarray(ctx.values[sample])
+    ctx.release_values()
     y, X = values[:, 0], values[:, 1:]
 
     progress(f"variance components ({options.method})")

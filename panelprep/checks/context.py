@@ -94,6 +94,14 @@ class AuditContext:
         """Selected variables as float64 (n, k), column-major; NaN where absent."""
         return self._numeric[0]
 
+    def release_values(self) -> None:
+        """Free the full numeric block once the sample has been taken from it.
+
+        It is a cache: ``values`` rebuilds it from the frame if asked again.
+        The sample's own block and every mask stay.
+        """
+        self.__dict__.pop("_numeric", None)
+
     @property
     def non_numeric(self) -> dict[str, NonNumeric]:
         return self._numeric[1]
