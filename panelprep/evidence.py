@@ -67,6 +67,26 @@ _HAUSMAN_VARIANCE_CHOICE = (
 )
 
 
+def _shared(cache: dict | None, key: str, compute: Any) -> Any:
+    """``compute()`` once per ``cache``: the tests share transforms and one regression."""
+    if cache is None:
+        return compute()
+    if key not in cache:
+        cache[key] = compute()
+    return cache[key]
+
+
+def _random_effects_fit(y, X, entity_codes, counts, theta_g, cache):
+    """The quasi-demeaned regression of y on [1 - theta_i, X*], shared by both tests."""
+    def compute():
+        one_minus = (1.0 - theta_g)[entity_codes]
+        y_q = quasi(y, entity_codes, counts, theta_g)
+        base = np.column_stack([one_minus, quasi(X, entity_codes, counts, theta_g)])
+        return y_q, base, ols(y_q, base)
+
+    return _shared(cache, "random_effects", compute)
+
+
 def _p_chi2(statistic: float, df: int) -> float:
     return float(scipy.stats.chi2.sf(statistic, df))
 
@@ -258,6 +278,7 @@ def mundlak_test(
     theta: float | np.ndarray,
     names: Sequence[str],
     cluster: bool = True,
+    _cache: dict | None = None,
 ) -> dict[str, Any]:
     """Mundlak test: do the entity means of the regressors enter the random-effects regression?
 
@@ -305,7 +326,7 @@ def mundlak_test(
     n_groups = len(counts)
     theta_g = _entity_theta(theta, n_groups)
     covariance = "entity-clustered" if cluster else "conventional"
-    varying = _within_varying(X, entity_codes, counts)
+    varying = _shared(_cache, "varying", lambda: _within_varying(X, entity_codes, counts))
     invariant = [names[j] for j in np.flatnonzero(~varying)]
     result: dict[str, Any] = {
         "statistic": None,
@@ -320,10 +341,9 @@ def mundlak_test(
         result["note"] = "no regressor varies within entities, so there are no means to test"
         return result
 
-    one_minus = (1.0 - theta_g)[entity_codes]
-    y_q = quasi(y, entity_codes, counts, theta_g)
-    base = np.column_stack([one_minus, quasi(X, entity_codes, counts, theta_g)])
-    base_kept = ols(y_q, base).kept
+    y_q, base, base_fit = _random_effects_fit(y, X, entity_codes, counts, theta_g, _cache)
+    one_minus = base[:, 0]
+    base_kept = base_fit.kept
     var_idx = np.flatnonzero(varying)
     means = one_minus[:, None] * between(X[:, var_idx], entity_codes, counts)[entity_codes]
     # A pivoted QR of the whole design could drop the constant or a
@@ -391,6 +411,7 @@ def hausman_test(
     sigma2_idiosyncratic: float,
     theta: float | np.ndarray,
     names: Sequence[str] | None = None,
+    _cache: dict | None = None,
 ) -> dict[str, Any]:
     """Classical Hausman contrast between within and random-effects slopes.
 
@@ -462,7 +483,7 @@ def hausman_test(
             "(T_i s2_u + s2_e))), so s2_e (X*'X*)^-1 is not the random-effects covariance "
             "and the contrast is not the classical one."
         )
-    varying = _within_varying(X, entity_codes, counts)
+    varying = _shared(_cache, "varying", lambda: _within_varying(X, entity_codes, counts))
     if not varying.any():
         notes.append("No regressor varies within entities; there is nothing to contrast.")
         result["note"] = " ".join(notes)
@@ -475,12 +496,7 @@ def hausman_test(
         within(Xv, entity_codes, counts),
         scale=np.linalg.norm(Xv, axis=0),
     )
-    one_minus = (1.0 - theta_g)[entity_codes]
-    y_q = quasi(y, entity_codes, counts, theta_g)
-    fit_q = ols(
-        y_q,
-        np.column_stack([one_minus, quasi(X, entity_codes, counts, theta_g)]),
-    )
+    y_q, _, fit_q = _random_effects_fit(y, X, entity_codes, counts, theta_g, _cache)
     if math.sqrt(fit_q.ssr) <= default_rtol(len(y_q), fit_q.rank) * float(np.linalg.norm(y_q)):
         notes.append("The regression fits exactly (residuals are rounding); no test is possible.")
         result["note"] = " ".join(notes)
@@ -691,8 +707,10 @@ def collect_evidence(
     pooled = ols(y, np.column_stack([np.ones(len(y)), X]), names=["const", *names])
     y_scale = float(np.linalg.norm(y - y.mean())) if len(y) else 0.0
     out: dict[str, Any] = dict(entity_effect_lm(pooled.resid, entity_codes, counts, y_scale))
+    # both correlated-effects tests run on the same quasi-demeaned regression
+    shared: dict = {}
     out["mundlak"] = mundlak_test(
-        y, X, entity_codes, counts, components.theta_, names, cluster=True
+        y, X, entity_codes, counts, components.theta_, names, cluster=True, _cache=shared
     )
     out["hausman"] = hausman_test(
         y,
@@ -703,6 +721,7 @@ def collect_evidence(
         float(components.sigma2_idiosyncratic_),
         components.theta_,
         names=names,
+        _cache=shared,
     )
     out["reading"] = read_evidence(out)
     out["caution"] = CAUTION
