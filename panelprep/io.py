@@ -24,6 +24,7 @@ import pyarrow.parquet as pq
 from pyarrow import feather
 
 from panelprep.errors import ColumnError, InputError
+from panelprep.limits import check_memory
 
 FORMATS = ("csv", "parquet", "arrow")
 OUTPUT_FORMATS = ("parquet", "csv")
@@ -173,7 +174,8 @@ def read_frame(
     CSV entity columns are read as text; a CSV time column is read as text
     and turned into integers only when every value is a whole number, so
     dates and period labels round-trip to the same strings.  Parquet and
-    Arrow keep their stored types.
+    Arrow keep their stored types.  Raises ``InputError`` before reading
+    when the run would not fit in memory (see ``limits.check_memory``).
     """
     names = column_names(path, options)
     wanted = names if columns is None else columns
@@ -181,6 +183,8 @@ def read_frame(
     if absent:
         raise ColumnError(f"{path}: column(s) {absent} not found; columns are {names}")
     fmt = detect_format(path, options.input_format)
+    # before anything is read: a file that cannot fit stops here, not in the swap
+    check_memory(path, fmt, wanted, len(names))
     try:
         if fmt == "csv":
             table = _read_csv(path, wanted, entity, time, options)
