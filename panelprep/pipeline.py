@@ -254,6 +254,8 @@ def load(
             raise ColumnError(f"{path}: key column {column!r} not found; columns are {names}")
     columns = None if vars is None else list(dict.fromkeys([*entity, time, *vars, *extra]))
     frame = read_frame(path, columns, list(entity), time, options)
+    if frame.empty:
+        raise InputError(f"{path}: no data rows, only a header")
     info = {"path": str(path), "sha256": sha256_file(path), "rows": len(frame),
             "format": detect_format(path, options.input_format)}
     return frame, info
