@@ -207,7 +207,9 @@ def _skipped_columns(frame: pd.DataFrame, keys: list[str], chosen: list[str]) ->
                    f"{', '.join(comma)} look like numbers with decimal commas "
                    "(try --decimal-comma, or name the variables with --vars)")
     else:
-        message = (f"{len(skipped)} column(s) not checked because they hold text: "
+        empty = [c for c in skipped if frame[c].isna().all()]
+        held = "hold no value at all" if len(empty) == len(skipped) else "hold text"
+        message = (f"{len(skipped)} column(s) not checked because they {held}: "
                    f"{', '.join(skipped[:10])} (name variables with --vars to check them)")
     return Finding(id=SKIPPED_COLUMNS_ID, severity="warning" if comma else "info",
                    count=len(skipped), message=message,
