@@ -134,8 +134,12 @@ def _independent_after(base: np.ndarray, extra: np.ndarray) -> np.ndarray:
     """
     n, k_base, k_extra = extra.shape[0], base.shape[1], extra.shape[1]
     rtol = max(default_rtol(n, k_base + k_extra), 1e3 * math.sqrt(np.finfo(float).eps))
-    design = np.column_stack([base, extra])
-    gram = design.T @ design
+    # the cross products by blocks, so [base, extra] is never copied
+    gram = np.empty((k_base + k_extra, k_base + k_extra))
+    gram[:k_base, :k_base] = base.T @ base
+    gram[:k_base, k_base:] = base.T @ extra
+    gram[k_base:, :k_base] = gram[:k_base, k_base:].T
+    gram[k_base:, k_base:] = extra.T @ extra
     ok = np.zeros(k_extra, dtype=bool)
     accepted = list(range(k_base))
     for j in range(k_extra):
@@ -351,14 +355,17 @@ def mundlak_test(
     # constant across entities is proportional to the constant column), which
     # would change what is tested; so the means are screened against the
     # kept base columns first.
-    mean_ok = _independent_after(base[:, base_kept], means)
+    kept_base = base if base_kept.all() else base[:, base_kept]
+    mean_ok = _independent_after(kept_base, means)
     notes = []
     if not mean_ok.all():
         notes.append(
             "means left out because they are collinear with the other regressors: "
             + ", ".join(names[j] for j, ok in zip(var_idx, mean_ok) if not ok)
         )
-    Z = np.asfortranarray(np.column_stack([base[:, base_kept], means[:, mean_ok]]))
+    Z = np.empty((len(y_q), int(base_kept.sum() + mean_ok.sum())), order="F")
+    Z[:, : int(base_kept.sum())] = kept_base
+    Z[:, int(base_kept.sum()):] = means[:, mean_ok]
     fit = ols(y_q, Z)
     mean_pos = np.arange(int(np.count_nonzero(base_kept)), Z.shape[1])
     tested_mask = fit.kept[mean_pos]
