@@ -8,10 +8,13 @@ from __future__ import annotations
 
 import codecs
 import csv
+import glob
 import hashlib
 import io as _io
 import os
 import re
+import shutil
+import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -324,59 +327,80 @@ def write_table(frame: pd.DataFrame, path: Path, fmt: str, metadata: dict[str, s
     """Write a data file; Parquet carries ``metadata`` as key-value pairs.
 
     Written without the pandas index and without timestamps, so the same
-    frame and metadata give the same bytes on every run.
+    frame and metadata give the same bytes on every run.  A failing write
+    (a full disk) is an ``InputError`` naming the file.
     """
     table = pa.Table.from_pandas(frame, preserve_index=False)
-    if fmt == "parquet":
-        schema_meta = {k.encode(): v.encode() for k, v in metadata.items()}
-        table = table.replace_schema_metadata(schema_meta)
-        pq.write_table(table, path, compression="zstd", write_statistics=True)
-    elif fmt == "csv":
-        pacsv.write_csv(table, path)
-    else:
-        raise InputError(f"--format {fmt!r} must be parquet or csv")
+    try:
+        if fmt == "parquet":
+            schema_meta = {k.encode(): v.encode() for k, v in metadata.items()}
+            table = table.replace_schema_metadata(schema_meta)
+            pq.write_table(table, path, compression="zstd", write_statistics=True)
+        elif fmt == "csv":
+            pacsv.write_csv(table, path)
+        else:
+            raise InputError(f"--format {fmt!r} must be parquet or csv")
+    except OSError as err:
+        raise InputError(f"cannot write {path.name} into {path.parent}: "
+                         f"{err.strerror or _short(err)}") from None
 
 
 class OutputFolder:
     """A folder that appears complete or not at all.
 
-    Files are written into a hidden temporary folder beside ``target``; on
-    ``commit`` it is renamed into place (an existing ``target`` is moved
-    aside first and removed only after the rename succeeded).  If anything
-    fails before ``commit``, the temporary folder is removed and ``target``
-    is left as it was.
+    Files are written into a hidden temporary folder beside ``target``
+    (``.NAME.partial-PID-XXXX``); on ``commit`` it is renamed into place (an
+    existing ``target`` is moved aside first and removed only after the
+    rename succeeded).  If anything fails before ``commit``, the temporary
+    folder is removed and ``target`` is left as it was.  A run killed
+    outright leaves its temporary folder behind; the next run for the same
+    target removes those whose process is gone.
+
+    Refused up front: a ``target`` that is or contains one of ``inputs``, a
+    ``target`` that is a file, and a non-empty ``target`` unless ``force``.
     """
 
     def __init__(self, target: Path, inputs: list[Path], force: bool = False) -> None:
         self.target = Path(target)
+        self.force = force
         target_abs = self.target.resolve()
         for source in inputs:
             source_abs = Path(source).resolve()
             if source_abs == target_abs or target_abs in source_abs.parents:
                 raise InputError(f"{self.target}: output folder equals or contains the input {source}")
+        self._refuse_existing()
+        # beside the target as named (not where a symbolic link leads), so the final
+        # rename stays within one folder
+        parent = self.target.absolute().parent
+        if not parent.is_dir():
+            raise InputError(f"{self.target}: parent folder {parent} does not exist")
+        _remove_abandoned(parent, self.target.name)
+        try:
+            self.temp = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.partial-{os.getpid()}-",
+                                              dir=parent))
+        except OSError as err:
+            raise InputError(f"{self.target}: cannot create output: {err.strerror}") from None
+
+    def _refuse_existing(self) -> None:
+        if self.target.is_symlink() and not self.target.exists():
+            raise InputError(f"{self.target}: is a broken symbolic link")
         if self.target.exists():
             if not self.target.is_dir():
                 raise InputError(f"{self.target}: exists and is not a folder")
-            if any(self.target.iterdir()) and not force:
+            if any(self.target.iterdir()) and not self.force:
                 raise InputError(f"{self.target}: folder exists and is not empty (use --force to replace it)")
-        parent = target_abs.parent
-        if not parent.exists():
-            raise InputError(f"{self.target}: parent folder {parent} does not exist")
-        self.temp = parent / f".{self.target.name}.partial-{os.getpid()}"
-        if self.temp.exists():
-            _remove_tree(self.temp)
-        try:
-            self.temp.mkdir()
-        except OSError as err:
-            raise InputError(f"{self.target}: cannot create output: {err.strerror}") from None
 
     def path(self, name: str) -> Path:
         return self.temp / name
 
     def commit(self) -> None:
+        # whatever appeared at the target while the run worked is judged again
+        self._refuse_existing()
         old = None
-        if self.target.exists():
-            old = self.target.with_name(f".{self.target.name}.old-{os.getpid()}")
+        if self.target.exists() or self.target.is_symlink():
+            old = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.old-{os.getpid()}-",
+                                        dir=self.temp.parent))
+            old.rmdir()
             self.target.rename(old)
         try:
             self.temp.rename(self.target)
@@ -385,14 +409,34 @@ class OutputFolder:
                 old.rename(self.target)
             raise
         if old is not None:
-            _remove_tree(old)
+            # a symbolic link moved aside is removed itself, never what it points to
+            if old.is_symlink():
+                old.unlink()
+            else:
+                _remove_tree(old)
 
     def abandon(self) -> None:
         if self.temp.exists():
             _remove_tree(self.temp)
 
 
-def _remove_tree(folder: Path) -> None:
-    import shutil
+def _remove_abandoned(parent: Path, name: str) -> None:
+    """Remove temporary folders for ``name`` left by runs whose process has ended."""
+    for folder in parent.glob(f".{glob.escape(name)}.partial-*"):
+        pid = folder.name[len(name) + len(".partial-") + 1:].split("-")[0]
+        if pid.isdigit() and not _process_alive(int(pid)) and folder.is_dir():
+            _remove_tree(folder)
 
+
+def _process_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _remove_tree(folder: Path) -> None:
     shutil.rmtree(folder, ignore_errors=True)
