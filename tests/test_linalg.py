@@ -34,3 +34,37 @@ def test_blocked_qr_drops_collinear_and_zero_columns(monkeypatch, block_rows):
     # whichever of the collinear columns is kept, the fitted values are the same
     reference, *_ = np.linalg.lstsq(np.column_stack([a, b]), y, rcond=None)
     np.testing.assert_allclose(X @ fit.coef, np.column_stack([a, b]) @ reference, rtol=1e-9)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_cross_product_route_agrees_with_qr_route(monkeypatch, seed):
+    # the same regression through both routes of ols; numpy's lstsq as the outside reference
+    rng = np.random.default_rng(seed)
+    n = 5000
+    X = rng.normal(size=(n, 5)) * [1.0, 1e2, 1e-2, 3.0, 7.0]
+    X[:, 4] += 0.5 * X[:, 0]  # correlated, condition number ~1e4 after scaling
+    y = X @ [0.3, -0.02, 40.0, 1.5, -0.7] + rng.normal(size=n)
+    monkeypatch.setattr(_linalg, "GRAM_MIN_ROWS", 10**12)
+    by_qr = _linalg.ols(y, X)
+    monkeypatch.setattr(_linalg, "GRAM_MIN_ROWS", 1)
+    by_gram = _linalg.ols(y, X)
+    reference, *_ = np.linalg.lstsq(X, y, rcond=None)
+    np.testing.assert_allclose(by_gram.coef, reference, rtol=1e-12)
+    np.testing.assert_allclose(by_gram.coef, by_qr.coef, rtol=1e-12)
+    # (X'X)^-1 keeps the cross product's rounding (no refinement step): about
+    # cond^2 * eps, far below what a standard error is read to
+    np.testing.assert_allclose(by_gram.xtx_inv, by_qr.xtx_inv, rtol=1e-7)
+    assert by_gram.rank == by_qr.rank == 5
+
+
+def test_cross_product_route_drops_noise_and_collinear_columns(monkeypatch):
+    monkeypatch.setattr(_linalg, "GRAM_MIN_ROWS", 1)
+    rng = np.random.default_rng(3)
+    a, b = rng.normal(size=(2, 2000))
+    noise = 1e-15 * rng.normal(size=2000)  # a time-invariant regressor after demeaning
+    X = np.column_stack([a, b, a - b, noise])
+    y = a + 2 * b + rng.normal(size=2000)
+    fit = _linalg.ols(y, X, names=["a", "b", "a-b", "noise"],
+                      scale=np.array([1.0, 1.0, 1.0, 1.0]))
+    assert fit.rank == 2 and "noise" in fit.dropped
+    assert np.isfinite(fit.coef).all() and np.isfinite(fit.xtx_inv).all()
