@@ -43,8 +43,19 @@ QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress lines
 FailOpt = Annotated[str, typer.Option("--fail-on", help="Lowest severity that fails the gate: error or warning.")]
 
 
+def _show_version(value: bool) -> None:
+    if value:
+        from panelprep._version import __version__
+
+        typer.echo(f"panelprep {__version__}")
+        raise typer.Exit(EXIT_PASS)
+
+
 @app.callback()
-def root() -> None:
+def root(
+    version: Annotated[bool, typer.Option("--version", callback=_show_version, is_eager=True,
+                                          help="Print the version and exit.")] = False,
+) -> None:
     """Audit, clean and transform entity-by-period panels before any model is fitted."""
 
 
