@@ -113,7 +113,8 @@ class PanelIndex:
         present = np.flatnonzero(group_counts(ent[ent >= 0], self.n_entities) > 0)
         remap = np.full(self.n_entities, -1, dtype=np.int64)
         remap[present] = np.arange(len(present))
-        new_ent = np.where(ent >= 0, remap[np.where(ent >= 0, ent, 0)], -1)
+        new_ent = (np.where(ent >= 0, remap[np.where(ent >= 0, ent, 0)], -1) if len(remap)
+                   else np.full(len(ent), -1, dtype=np.int64))
         child = PanelIndex(
             entity=self.entity,
             time=self.time,
