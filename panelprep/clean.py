@@ -236,7 +236,7 @@ def balance_removal(
     ``complete-entities`` asks for every period of the time window when one
     was given (either end may be open), else of the span the rows cover.
     """
-    if how == "keep":
+    if how == "keep" or not alive.any():
         return None
     rows = np.flatnonzero(alive)
     cells = np.unique(index.cell[rows])
