@@ -10,7 +10,6 @@ import codecs
 import csv
 import glob
 import hashlib
-import io as _io
 import os
 import re
 import shutil
@@ -122,13 +121,14 @@ def _first_line(path: Path) -> bytes:
     """The header line's bytes, decompressed by extension (``.gz``, ``.bz2``) as Arrow reads it."""
     head = b""
     with pa.input_stream(str(path), compression="detect") as handle:
-        while b"\n" not in head:
+        while b"\n" not in head and b"\r" not in head:
             block = handle.read(1 << 16)
             if not block:
                 break
             head += block
-    end = head.find(b"\n")
-    return head if end < 0 else head[: end + 1]
+    # Arrow ends a line at \n, \r\n or a lone \r; so does the header
+    ends = [i for i in (head.find(b"\n"), head.find(b"\r")) if i >= 0]
+    return head[: min(ends)] if ends else head
 
 
 def _csv_header(path: Path, delimiter: str | None) -> tuple[list[str], str]:
@@ -140,8 +140,14 @@ def _csv_header(path: Path, delimiter: str | None) -> tuple[list[str], str]:
     if not line.strip():
         raise InputError(f"{path}: the first line is blank, expected a header")
     delimiter = delimiter or sniff_delimiter(line)
-    names = next(csv.reader(_io.StringIO(line), delimiter=delimiter))
-    return [n.strip() for n in names], delimiter
+    return [n.strip() for n in _split_header(path, line, delimiter)], delimiter
+
+
+def _split_header(path: Path, line: str, delimiter: str) -> list[str]:
+    try:
+        return next(csv.reader([line], delimiter=delimiter))
+    except csv.Error as err:
+        raise InputError(f"{path}: cannot read the header line: {err}") from None
 
 
 def column_names(path: Path, options: ReadOptions = DEFAULT_READ) -> list[str]:
@@ -293,8 +299,7 @@ def _has_huge(column: pa.ChunkedArray) -> bool:
 
 
 def _raw_header(path: Path, delimiter: str) -> list[str]:
-    line = _first_line(path).decode("utf-8-sig")
-    return next(csv.reader(_io.StringIO(line), delimiter=delimiter))
+    return _split_header(path, _first_line(path).decode("utf-8-sig"), delimiter)
 
 
 def integer_text_to_int(values: pd.Series) -> pd.Series:
