@@ -328,14 +328,17 @@ def _short(err: BaseException) -> str:
     return text if len(text) <= 200 else text[:197] + "..."
 
 
-def write_table(frame: pd.DataFrame, path: Path, fmt: str, metadata: dict[str, str]) -> None:
-    """Write a data file; Parquet carries ``metadata`` as key-value pairs.
+def write_table(
+    frame: pd.DataFrame | pa.Table, path: Path, fmt: str, metadata: dict[str, str]
+) -> None:
+    """Write a data file (a DataFrame or an Arrow table); Parquet carries ``metadata``.
 
     Written without the pandas index and without timestamps, so the same
     frame and metadata give the same bytes on every run.  A failing write
     (a full disk) is an ``InputError`` naming the file.
     """
-    table = pa.Table.from_pandas(frame, preserve_index=False)
+    table = frame if isinstance(frame, pa.Table) else pa.Table.from_pandas(
+        frame, preserve_index=False)
     try:
         if fmt == "parquet":
             schema_meta = {k.encode(): v.encode() for k, v in metadata.items()}

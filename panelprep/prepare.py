@@ -17,6 +17,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 
 from panelprep import transforms
 from panelprep._groups import group_counts
@@ -305,37 +306,42 @@ class OutputTables:
         return ["clean", *self.options.transforms, "dropped"]
 
     def build(self, name: str) -> pd.DataFrame:
-        """One output table, built afresh."""
+        """One output table as a DataFrame, built afresh."""
+        return self.arrow(name).to_pandas()
+
+    @cached_property
+    def _key_table(self) -> pa.Table:
+        return pa.Table.from_pandas(self.keys, preserve_index=False)
+
+    def arrow(self, name: str) -> pa.Table:
+        """One output table as an Arrow table: key columns, then numpy columns without a copy."""
         codes, names, values = self.index.entity_codes, self.options.variables, self.values
         if name == "clean":
-            return _with_keys(self.keys, names, values)
+            return _with_columns(self._key_table, names, values)
         if name == "dropped":
-            return self.ledger.to_frame(self.raw, [*self.options.entity, self.options.time])
+            frame = self.ledger.to_frame(self.raw, [*self.options.entity, self.options.time])
+            return pa.Table.from_pandas(frame, preserve_index=False)
         self.progress(f"transform {name}")
         multi = self.counts[codes] > 1
         if name == "within":
             block = transforms.within(values, codes, self.counts)[multi]
-            return _with_keys(self.keys[multi].reset_index(drop=True), names, block)
+            return _with_columns(self._key_table.filter(pa.array(multi)), names, block)
         if name == "between":
-            table = self.index.entity_labels.copy()
-            means = transforms.between(values, codes, self.counts)
-            for j, column in enumerate(names):
-                table[column] = means[:, j]
-            table["n_obs"] = self.counts
-            return table
+            labels = pa.Table.from_pandas(self.index.entity_labels, preserve_index=False)
+            table = _with_columns(labels, names, transforms.between(values, codes, self.counts))
+            return table.append_column("n_obs", pa.array(self.counts))
         if name == "quasi":
             block = transforms.quasi(values, codes, self.counts, self.theta)
-            table = _with_keys(self.keys, names, block)
-            table["const"] = 1.0 - self.theta[codes]
-            table["theta"] = self.theta[codes]
-            return table
+            table = _with_columns(self._key_table, names, block)
+            table = table.append_column("const", pa.array(1.0 - self.theta[codes]))
+            return table.append_column("theta", pa.array(self.theta[codes]))
         sub = self.index.subset(multi)
         block, result = transforms.twoway(
             values[multi], sub.entity_codes, sub.period_codes, sub.n_entities, sub.n_periods,
             tol=self.options.twoway_tol,
         )
         self.info["twoway"].update(asdict(result))
-        return _with_keys(self.keys[multi].reset_index(drop=True), names, block)
+        return _with_columns(self._key_table.filter(pa.array(multi)), names, block)
 
 
 def _sample_summary(ctx: AuditContext, sample_ix: PanelIndex, options: PrepareOptions) -> dict:
@@ -416,11 +422,11 @@ class _Flow:
         ))
 
 
-def _with_keys(keys: pd.DataFrame, names: list[str], block: np.ndarray) -> pd.DataFrame:
-    table = keys.copy()
-    for j, name in enumerate(names):
-        table[name] = block[:, j]
-    return table
+def _with_columns(keys: pa.Table, names: list[str], block: np.ndarray) -> pa.Table:
+    """Key columns followed by one column per name from a (rows, names) block."""
+    block = np.asfortranarray(block)
+    arrays = [*keys.columns, *(pa.array(block[:, j]) for j in range(len(names)))]
+    return pa.Table.from_arrays(arrays, names=[*keys.column_names, *names])
 
 
 def _gate_caution(report: AuditReport) -> str:
@@ -537,7 +543,7 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
     }
     for name in prep.outputs.names if prep.outputs is not None else []:
         # built, written and freed one at a time: peak memory holds one table
-        table = prep.tables[name] if "tables" in prep.__dict__ else prep.outputs.build(name)
+        table = prep.tables[name] if "tables" in prep.__dict__ else prep.outputs.arrow(name)
         fmt = "parquet" if name == "dropped" else options.output_format
         path = folder.path(f"{name}.{'parquet' if name == 'dropped' else suffix}")
         progress(f"writing {path.name}")

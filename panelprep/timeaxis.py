@@ -218,10 +218,12 @@ def _integer_step(values: np.ndarray, rows: np.ndarray) -> int:
     at least ``INT_GRID_SHARE`` of the rows sit, so an odd year in a panel
     observed every other year is off a grid of step 2 rather than making
     the step 1; the greatest common divisor of the spacings when no larger
-    step qualifies (every value sits on that grid).
+    step qualifies (every value sits on that grid).  Two distinct values are
+    too little evidence of a step: 2003 and 2005 alone are years with a hole,
+    not a two-year grid, so fewer than three distinct values give step 1.
     """
     spacing = np.diff(np.unique(values))
-    if len(spacing) == 0:
+    if len(spacing) < 2:
         return 1
     gcd = max(int(np.gcd.reduce(spacing)), 1)
     sizes, counts = np.unique(spacing[spacing > gcd], return_counts=True)
