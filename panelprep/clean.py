@@ -86,6 +86,8 @@ def normalise_ids(frame: pd.DataFrame, entity: list[str], how: str) -> tuple[pd.
         if pd.api.types.is_numeric_dtype(values.dtype):
             continue
         codes, uniques = pd.factorize(values, use_na_sentinel=True)
+        if len(uniques) == 0:
+            continue
         trimmed = pd.Series(uniques, dtype="str").str.strip()
         if how == "trim-fold":
             counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
@@ -206,6 +208,8 @@ def merge_means(
 
 def singleton_removal(index: PanelIndex, alive: np.ndarray, with_periods: bool) -> Removal | None:
     """Entities (and with ``with_periods`` also periods) with one row, to a fixed point."""
+    if not alive.any():
+        return None
     drop = np.zeros(index.n_rows, dtype=bool)
     current = alive.copy()
     # a grid longer than the rows is counted over the periods that occur
