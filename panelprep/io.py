@@ -284,6 +284,12 @@ def _not_utf8(path: Path) -> str:
                         f"(byte offset {at}); save the file as UTF-8")
             line += block.count(b"\n")
             offset += len(block)
+    try:
+        decoder.decode(b"", final=True)
+    except UnicodeDecodeError:
+        # a character cut short by the end of the file
+        return (f"{path}: not UTF-8 text: the file ends inside a character at line {line}; "
+                "save the file as UTF-8")
     return f"{path}: not UTF-8 text; save the file as UTF-8"
 
 
