@@ -27,7 +27,8 @@ from panelprep.errors import TimeParseError
 FREQUENCIES = ("year", "quarter", "month", "week", "day", "int")
 
 _PATTERNS: dict[str, re.Pattern[str]] = {
-    "int": re.compile(r"^\s*-?\d{1,9}\s*$"),
+    # whole numbers, also as written by tools that store years as floats ("1935.0")
+    "int": re.compile(r"^\s*-?\d{1,9}(?:\.0*)?\s*$"),
     "quarter": re.compile(r"^\s*(\d{4})\s*[-_ ]?[Qq]([1-4])\s*$"),
     "month": re.compile(r"^\s*(\d{4})(?:-|/|M|m)(\d{1,2})\s*$"),
     "week": re.compile(r"^\s*(\d{4})-?W(\d{2})\s*$"),
@@ -241,6 +242,14 @@ def _parse_strings(uniques, blank, freq, codes, column):
         matched = text.str.fullmatch(_PATTERNS[kind].pattern).to_numpy() | blank
         if matched.all():
             return _string_grid(kind, text, blank, freq, codes, column)
+        if kind == "int" and 2 * matched[~blank].sum() > (~blank).sum():
+            # mostly whole numbers: name the value that is not one, not a number that
+            # happens to fail as a date
+            k = int(np.flatnonzero(~matched)[0])
+            raise TimeParseError(
+                f"time column {column!r}: cannot read {text[k]!r} at row {_first_row(codes, k)} "
+                "as a period: the other values are whole numbers"
+            )
         if matched[~blank].any() and kind != "int":
             k = int(np.flatnonzero(~matched)[0])
             raise TimeParseError(
@@ -254,7 +263,8 @@ def _string_grid(kind, text, blank, freq, codes, column):
     n = len(text)
     if kind == "int":
         nums = np.zeros(n, dtype=np.int64)
-        nums[~blank] = text[~blank].str.strip().astype(np.int64).to_numpy()
+        nums[~blank] = (text[~blank].str.strip().str.replace(r"\.0*$", "", regex=True)
+                        .astype(np.int64).to_numpy())
         rows = np.bincount(codes[codes >= 0], minlength=n)[~blank]
         ordinal, off, step, base, found = _integer_grid(nums[~blank], freq, column, rows)
         full_ord = np.zeros(n, np.int64)
