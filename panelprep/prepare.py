@@ -38,7 +38,7 @@ from panelprep.config import RunFile
 from panelprep.errors import InputError
 from panelprep.evidence import collect_evidence
 from panelprep.figures import picture_data
-from panelprep.findings import Finding, gate
+from panelprep.findings import Finding, apply_severities, gate
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
@@ -233,7 +233,9 @@ def prepare_frame(
         progress=progress,
     )
 
-    findings = report.findings + [Finding(**f) for f in components.findings_]
+    # a severity given for a components finding counts like one given for a check
+    findings = report.findings + apply_severities(
+        [Finding(**f) for f in components.findings_], options.severities)
     if options.validate_outputs and options.contract is not None:
         from panelprep.contracts import check_contract
 
