@@ -160,7 +160,7 @@ def column_names(path: Path, options: ReadOptions = DEFAULT_READ) -> list[str]:
         elif fmt == "parquet":
             names = pq.read_schema(path).names
         else:
-            names = feather.read_table(path, memory_map=True).schema.names
+            names = _arrow_schema(path).names
     except InputError:
         raise
     except (pa.ArrowException, OSError, ValueError) as err:
@@ -169,6 +169,16 @@ def column_names(path: Path, options: ReadOptions = DEFAULT_READ) -> list[str]:
     if duplicated:
         raise ColumnError(f"{path}: duplicate column names {duplicated}")
     return names
+
+
+def _arrow_schema(path: Path) -> pa.Schema:
+    """The schema of an Arrow IPC / Feather file, without decompressing its data."""
+    try:
+        with pa.memory_map(str(path)) as source:
+            return pa.ipc.open_file(source).schema
+    except pa.ArrowInvalid:
+        # Feather version 1 files are not IPC files; reading them is the only way in
+        return feather.read_table(path, memory_map=True).schema
 
 
 def read_frame(
