@@ -12,8 +12,8 @@ import glob
 import hashlib
 import os
 import re
+import secrets
 import shutil
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -400,8 +400,7 @@ class OutputFolder:
             raise InputError(f"{self.target}: parent folder {parent} does not exist")
         _remove_abandoned(parent, self.target.name)
         try:
-            self.temp = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.partial-{os.getpid()}-",
-                                              dir=parent))
+            self.temp = _fresh_folder(parent, f".{self.target.name}.partial-{os.getpid()}-")
         except OSError as err:
             raise InputError(f"{self.target}: cannot create output: {err.strerror}") from None
 
@@ -422,8 +421,7 @@ class OutputFolder:
         self._refuse_existing()
         old = None
         if self.target.exists() or self.target.is_symlink():
-            old = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.old-{os.getpid()}-",
-                                        dir=self.temp.parent))
+            old = _fresh_folder(self.temp.parent, f".{self.target.name}.old-{os.getpid()}-")
             old.rmdir()
             self.target.rename(old)
         try:
@@ -442,6 +440,21 @@ class OutputFolder:
     def abandon(self) -> None:
         if self.temp.exists():
             _remove_tree(self.temp)
+
+
+def _fresh_folder(parent: Path, prefix: str) -> Path:
+    """A new folder ``parent/prefix<random>``, made with the usual permissions (umask).
+
+    ``tempfile.mkdtemp`` would make it private (0700), and the output
+    folder it becomes would stay so.
+    """
+    while True:
+        folder = parent / f"{prefix}{secrets.token_hex(4)}"
+        try:
+            folder.mkdir()
+        except FileExistsError:
+            continue
+        return folder
 
 
 def _remove_abandoned(parent: Path, name: str) -> None:

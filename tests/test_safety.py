@@ -233,6 +233,15 @@ def test_an_empty_existing_folder_is_filled_without_force(tmp_path, data):
     assert (out / "diagnostics.json").exists()
 
 
+def test_the_output_folder_gets_the_usual_permissions(tmp_path, data):
+    # a temporary folder made private (0700) would stay private once renamed into place
+    out = tmp_path / "out"
+    prepare(data, out, **KEYS)
+    usual = tmp_path / "made-by-mkdir"
+    usual.mkdir()
+    assert out.stat().st_mode & 0o777 == usual.stat().st_mode & 0o777
+
+
 def test_a_missing_parent_folder_is_one_line(tmp_path, data):
     result = CliRunner().invoke(app, ["prepare", str(data), *ARGS, "--out",
                                       str(tmp_path / "no" / "such" / "out")])
