@@ -509,10 +509,16 @@ def prepare(
 def run_preparation(
     data: str | Path, out: str | Path, options: PrepareOptions,
     read_options: ReadOptions = DEFAULT_READ, force: bool = False, progress: Progress = _silent,
+    keep: Sequence[str | Path] = (),
 ) -> Preparation:
-    """Read, prepare and write into a folder that appears complete or not at all."""
+    """Read, prepare and write into a folder that appears complete or not at all.
+
+    ``keep`` names other files the run reads (the run file, the contract):
+    like ``data``, an output folder that is or holds one is refused, so
+    ``force`` can never delete them.
+    """
     options.validate()
-    folder = OutputFolder(Path(out), [Path(data)], force=force)
+    folder = OutputFolder(Path(out), [Path(data), *map(Path, keep)], force=force)
     try:
         progress(f"reading {data}")
         frame, info = load(data, options.entity, options.time, options.columns_to_read,
@@ -597,7 +603,8 @@ def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
         evidence=run.output.evidence,
     )
     return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
-                           force=run.output.force, progress=progress)
+                           force=run.output.force, progress=progress,
+                           keep=[p for p in (run.source, run.contract.schema) if p is not None])
 
 
 def estimate_file_components(

@@ -213,6 +213,21 @@ def test_a_linked_output_folder_is_replaced_not_emptied_through_the_link(tmp_pat
     assert not link.is_symlink() and (link / "clean.parquet").exists()
 
 
+def test_a_run_file_inside_the_output_folder_is_never_deleted(tmp_path, data):
+    out = tmp_path / "out"
+    out.mkdir()
+    run = out / "run.toml"
+    run.write_text(f'[input]\npath = "{data}"\n[panel]\nentity = ["firm_id"]\ntime = "year"\n'
+                   '[model]\ny = "sales"\nx = ["capital", "staff"]\n'
+                   f'[output]\ndir = "{out}"\nforce = true\n', encoding="utf-8")
+    before = snapshot(out)
+    result = CliRunner().invoke(app, ["prepare", "--config", str(run), "--quiet"])
+    assert result.exit_code == 2
+    assert "equals or contains the input" in result.stderr and "run.toml" in result.stderr
+    assert snapshot(out) == before
+    assert leftovers(tmp_path) == []
+
+
 def test_a_folder_that_appears_during_the_run_is_not_replaced(tmp_path):
     target = tmp_path / "out"
     folder = OutputFolder(target, [])
