@@ -565,12 +565,18 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
         del table
     prep.summary["files"] = files
     text = json.dumps(prep.summary, indent=2, ensure_ascii=False, allow_nan=False)
-    folder.path("diagnostics.json").write_text(text + "\n", encoding="utf-8")
-    folder.path("diagnostics.txt").write_text("\n".join(preparation_lines(prep.summary)) + "\n",
-                                              encoding="utf-8")
+    _write_text(folder.path("diagnostics.json"), text + "\n")
+    _write_text(folder.path("diagnostics.txt"), "\n".join(preparation_lines(prep.summary)) + "\n")
     progress("writing report.html")
-    folder.path("report.html").write_text(render_html(prep.summary, pictures_of(prep)),
-                                          encoding="utf-8")
+    _write_text(folder.path("report.html"), render_html(prep.summary, pictures_of(prep)))
+
+
+def _write_text(path: Path, text: str) -> None:
+    """A text output; a failing write (a full disk) is one line naming the file."""
+    try:
+        path.write_text(text, encoding="utf-8")
+    except OSError as err:
+        raise InputError(f"cannot write {path.name}: {err.strerror or err}") from None
 
 
 def pictures_of(prep: Preparation) -> dict[str, Any]:
