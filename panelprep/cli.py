@@ -93,8 +93,6 @@ def audit_command(
 ) -> None:
     """Check a panel's structure and gate on what is found."""
     try:
-        if fail_on not in ("error", "warning"):
-            raise InputError(f"--fail-on {fail_on!r} must be error or warning")
         result = pipeline.audit_file(
             data, entity, time, vars,
             options=_read_options(input_format, delimiter, decimal_comma, missing_token),

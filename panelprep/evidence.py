@@ -67,6 +67,15 @@ _HAUSMAN_VARIANCE_CHOICE = (
 )
 
 
+def _as_sample(y, X, counts) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The estimation sample as float64 y (n,), X (n, k) and int64 counts (G,)."""
+    y = np.asarray(y, dtype=np.float64)
+    X = np.asarray(X, dtype=np.float64)
+    if X.ndim == 1:
+        X = X[:, None]
+    return y, X, np.asarray(counts, dtype=np.int64)
+
+
 def _shared(cache: dict | None, key: str, compute: Any) -> Any:
     """``compute()`` once per ``cache``: the tests share transforms and one regression."""
     if cache is None:
@@ -319,11 +328,7 @@ def mundlak_test(
         the covariance block actually inverted; with clustering it is at most
         G - 1.
     """
-    y = np.asarray(y, dtype=np.float64)
-    X = np.asarray(X, dtype=np.float64)
-    if X.ndim == 1:
-        X = X[:, None]
-    counts = np.asarray(counts, dtype=np.int64)
+    y, X, counts = _as_sample(y, X, counts)
     names = list(names)
     if len(names) != X.shape[1]:
         raise ValueError(f"{len(names)} names for {X.shape[1]} regressors")
@@ -459,11 +464,7 @@ def hausman_test(
         ``statistic, df, p_value, positive_definite, tested`` (regressors
         contrasted), ``note`` (always states the variance choice).
     """
-    y = np.asarray(y, dtype=np.float64)
-    X = np.asarray(X, dtype=np.float64)
-    if X.ndim == 1:
-        X = X[:, None]
-    counts = np.asarray(counts, dtype=np.int64)
+    y, X, counts = _as_sample(y, X, counts)
     k = X.shape[1]
     n_groups = len(counts)
     theta_g = _entity_theta(theta, n_groups)
@@ -705,11 +706,7 @@ def collect_evidence(
         ``hausman``, ``reading`` (:func:`read_evidence`) and ``caution``.  Numbers
         are Python floats or ints; undefined ones are None with a note.
     """
-    y = np.asarray(y, dtype=np.float64)
-    X = np.asarray(X, dtype=np.float64)
-    if X.ndim == 1:
-        X = X[:, None]
-    counts = np.asarray(counts, dtype=np.int64)
+    y, X, counts = _as_sample(y, X, counts)
     names = list(names)
     pooled = ols(y, np.column_stack([np.ones(len(y)), X]), names=["const", *names])
     y_scale = float(np.linalg.norm(y - y.mean())) if len(y) else 0.0
