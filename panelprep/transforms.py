@@ -88,18 +88,7 @@ def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndar
         Same shape as ``values``; 2-D output is Fortran-ordered.  The mean is
         ``sum / T_i`` (no ddof; this is a projection, not a variance).
     """
-    block, flat = _as_block(values)
-    n, k = block.shape
-    codes = _check_codes(codes, n, len(counts), "codes")
-    inv = _safe_inverse_counts(counts)
-    out = np.empty((n, k), dtype=np.float64, order="F")
-    buf = np.empty(n, dtype=np.float64)
-    for j in range(k):
-        col = block[:, j]
-        means = group_sums(codes, col, len(counts)) * inv
-        np.take(means, codes, out=buf, mode="clip")
-        np.subtract(col, buf, out=out[:, j])
-    return out[:, 0] if flat else out
+    return _subtract_group_sums(values, codes, counts, _safe_inverse_counts(counts))
 
 
 def between(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndarray:
@@ -147,13 +136,20 @@ def quasi(
     ndarray
         Same shape as ``values``; 2-D output is Fortran-ordered.
     """
-    block, flat = _as_block(values)
-    n, k = block.shape
-    codes = _check_codes(codes, n, len(counts), "codes")
     theta = np.asarray(theta, dtype=np.float64)
     if theta.shape != (len(counts),):
         raise ValueError(f"theta has shape {theta.shape}, expected ({len(counts)},)")
-    weight = theta * _safe_inverse_counts(counts)
+    return _subtract_group_sums(values, codes, counts, theta * _safe_inverse_counts(counts))
+
+
+def _subtract_group_sums(values, codes, counts, weight: np.ndarray) -> np.ndarray:
+    """``x - weight_i * sum_i(x)`` column by column: within (weight 1/T_i), quasi (theta_i/T_i).
+
+    One bincount and one take per column into reused buffers.
+    """
+    block, flat = _as_block(values)
+    n, k = block.shape
+    codes = _check_codes(codes, n, len(counts), "codes")
     out = np.empty((n, k), dtype=np.float64, order="F")
     buf = np.empty(n, dtype=np.float64)
     for j in range(k):
