@@ -30,6 +30,7 @@ import numpy as np
 
 from panelprep._groups import group_sums
 from panelprep._linalg import OlsFit, ols
+from panelprep._scale import standardise
 from panelprep.transforms import theta_per_entity, within
 
 METHODS = ("swamy-arora", "wallace-hussain", "amemiya", "nerlove")
@@ -41,6 +42,7 @@ FINDING_IDS = (
     "regressor-dropped-between",
     "regressor-dropped-pooled",
     "components-underidentified",
+    "variance-beyond-float-range",
 )
 
 INTERCEPT = "(intercept)"
@@ -143,6 +145,23 @@ class _Moments:
         }
 
 
+# entries of ``dof_`` in the response's squared units (the rest are counts and traces)
+_SQUARED_UNIT_DOF = ("ssr_within", "ssr_between", "e_Qe", "e_Pe")
+
+
+def _in_units(value: float, unit: float) -> float:
+    """A second moment of the scaled response back in the response's squared units."""
+    with np.errstate(over="ignore", under="ignore"):
+        return float(value * unit * unit)
+
+
+def _finite(value):
+    """``value``, or None where a float is infinite (JSON has no infinity)."""
+    if isinstance(value, float) and not np.isfinite(value):
+        return None
+    return value
+
+
 def _finding(fid: str, severity: str, message: str, regressors: Sequence[Any] = ()) -> dict:
     """A finding dict; ``examples`` name the regressors concerned, one dict each."""
     regressors = list(regressors)
@@ -171,6 +190,13 @@ class VarianceComponents:
         ``s2_e`` (truncated at 0 if the method's solve went negative).
     raw_sigma2_entity_ : float
         ``s2_u`` before truncation.
+    sigma_entity_, sigma_idiosyncratic_ : float
+        Square roots of the two components, always representable (a variance
+        of a response near 1e200 overflows float64; its root does not; then
+        ``sigma2_*_`` is infinite and a ``variance-beyond-float-range`` finding
+        says so).
+    entity_share_ : float
+        ``s2_u / (s2_u + s2_e)`` (0 when both are 0).
     truncated_negative_ : bool
         The raw ``s2_u`` was negative and was set to 0.
     theta_ : ndarray (G,)
@@ -190,6 +216,12 @@ class VarianceComponents:
 
     Notes
     -----
+    All moments are taken on ``y`` and ``X`` centred on their means and scaled
+    by powers of two (:func:`panelprep._scale.standardise`): every estimator
+    has an intercept or works within entities, so centring changes no
+    estimate, and shifting or rescaling a column changes the components only
+    through the response's units.
+
     With ``K_w`` the regressors kept in the within regression ``Qy`` on
     ``QX`` (residuals ``e_w``, coefficients ``b_w``) and ``N`` the number of
     entities:
@@ -270,6 +302,12 @@ class VarianceComponents:
         if len(labels) != X.shape[1]:
             raise ValueError(f"{len(labels)} names for {X.shape[1]} regressors")
 
+        # every moment on centred, power-of-two scaled columns: a regressor
+        # around 1e9 (or 1e-300) gives the same components as the same one
+        # around 0 (see _scale); s2 come back in the response's squared units
+        y_std = standardise(y)
+        X_std = standardise(X)
+        y, X = y_std.z[:, 0], X_std.z
         mom = _Moments(y, X, codes, counts)
         self.findings_: list[dict] = []
         self.dropped_within_: list[str] = []
@@ -286,33 +324,67 @@ class VarianceComponents:
             "nerlove": self._nerlove,
         }[self.method]
         s2u, s2e, dof = estimator(y, X, mom, labels)
+        unit = float(y_std.scale[0])
+        for key in _SQUARED_UNIT_DOF:
+            if key in dof:
+                dof[key] = _in_units(dof[key], unit)
 
         if s2e < 0:
             self.findings_.append(
                 _finding(
                     "idiosyncratic-variance-negative",
                     "warning",
-                    f"the {self.method} solve gave s2_e = {s2e:.6g} < 0; set to 0",
+                    f"the {self.method} solve gave s2_e = {_in_units(s2e, unit):.6g} < 0; set to 0",
                 )
             )
             s2e = 0.0
-        self.raw_sigma2_entity_ = float(s2u)
+        self.raw_sigma2_entity_ = _in_units(s2u, unit)
         self.truncated_negative_ = bool(s2u < 0)
         if self.truncated_negative_:
             self.findings_.append(
                 _finding(
                     "entity-variance-negative",
                     "warning",
-                    f"estimated entity variance {s2u:.6g} is negative; set to 0 "
-                    "(theta = 0: the random-effects transform is pooled OLS)",
+                    f"estimated entity variance {self.raw_sigma2_entity_:.6g} is negative; set "
+                    "to 0 (theta = 0: the random-effects transform is pooled OLS)",
                 )
             )
-        self.sigma2_entity_ = float(max(s2u, 0.0))
-        self.sigma2_idiosyncratic_ = float(s2e)
+        s2u = max(s2u, 0.0)
+        # standard deviations always fit in float64; variances of a response
+        # beyond about 1e154 (or below 1e-154) do not
+        self.sigma_entity_ = float(np.sqrt(s2u) * unit)
+        self.sigma_idiosyncratic_ = float(np.sqrt(s2e) * unit)
+        self.sigma2_entity_ = _in_units(s2u, unit)
+        self.sigma2_idiosyncratic_ = _in_units(s2e, unit)
+        self.entity_share_ = float(s2u / (s2u + s2e)) if s2u + s2e > 0 else 0.0
+        self._note_unrepresentable(s2u, s2e)
         self.dof_ = dof
         self._present = mom.present
-        self.theta_ = theta_per_entity(self.sigma2_entity_, self.sigma2_idiosyncratic_, counts)
+        # theta is a ratio of the components: taken in the scaled units
+        self.theta_ = theta_per_entity(s2u, s2e, counts)
         return self
+
+    def _note_unrepresentable(self, s2u: float, s2e: float) -> None:
+        """A finding when a variance is positive but outside float64 in the response's units."""
+        lost = [
+            name
+            for name, scaled, value in (
+                ("s2_u", s2u, self.sigma2_entity_),
+                ("s2_e", s2e, self.sigma2_idiosyncratic_),
+            )
+            if scaled > 0 and not (0.0 < value < np.inf)
+        ]
+        if lost:
+            self.findings_.append(
+                _finding(
+                    "variance-beyond-float-range",
+                    "info",
+                    f"{' and '.join(lost)} in the response's squared units lie outside what "
+                    f"float64 holds (sigma_u = {self.sigma_entity_:.6g}, sigma_e = "
+                    f"{self.sigma_idiosyncratic_:.6g}); theta and the transforms are exact, "
+                    "the variances are reported as null: rescale the response to see them",
+                )
+            )
 
     def _within_fit(self, mom: _Moments, labels: list[str], note: str) -> OlsFit:
         """Within regression ``Qy`` on ``QX``, columns scaled by the raw ``X`` norms."""
@@ -502,8 +574,7 @@ class VarianceComponents:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain summary of the fitted components (JSON-serialisable)."""
-        s2u, s2e = self.sigma2_entity_, self.sigma2_idiosyncratic_
-        total = s2u + s2e
+        s2u, s2e = _finite(self.sigma2_entity_), _finite(self.sigma2_idiosyncratic_)
         theta = self.theta_[self._present]
         return {
             "method": self.method,
@@ -512,20 +583,20 @@ class VarianceComponents:
             "n_regressors": int(self.n_regressors_),
             "sigma2_entity": s2u,
             "sigma2_idiosyncratic": s2e,
-            "sigma_entity": float(np.sqrt(s2u)),
-            "sigma_idiosyncratic": float(np.sqrt(s2e)),
-            "entity_share": float(s2u / total) if total > 0 else 0.0,
+            "sigma_entity": self.sigma_entity_,
+            "sigma_idiosyncratic": self.sigma_idiosyncratic_,
+            "entity_share": self.entity_share_,
             "theta": {
                 "min": float(theta.min()) if theta.size else 0.0,
                 "median": float(np.median(theta)) if theta.size else 0.0,
                 "max": float(theta.max()) if theta.size else 0.0,
             },
             "truncated_negative": self.truncated_negative_,
-            "raw_sigma2_entity": self.raw_sigma2_entity_,
+            "raw_sigma2_entity": _finite(self.raw_sigma2_entity_),
             "dropped_within": list(self.dropped_within_),
             "dropped_between": list(self.dropped_between_),
             "dropped_pooled": list(self.dropped_pooled_),
-            "dof": dict(self.dof_),
+            "dof": {key: _finite(value) for key, value in self.dof_.items()},
             "findings": [dict(f) for f in self.findings_],
         }
 
