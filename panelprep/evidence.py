@@ -35,6 +35,7 @@ import scipy.stats
 
 from panelprep._groups import group_sums
 from panelprep._linalg import cluster_cov, default_rtol, ols
+from panelprep._scale import standardise
 from panelprep.transforms import between, quasi, theta_per_entity, within
 
 #: Significance level used by :func:`read_evidence`.
@@ -708,6 +709,17 @@ def collect_evidence(
     """
     y, X, counts = _as_sample(y, X, counts)
     names = list(names)
+    # every regression here has a constant (or the constant column 1 - theta_i)
+    # or works within entities, so centring changes no statistic; scaling by
+    # powers of two keeps squares of values near 1e-300 or 1e300 in range
+    y_std, X_std = standardise(y), standardise(X)
+    y, X = y_std.z[:, 0], X_std.z
+    unit = float(y_std.scale[0])
+    sigma_u = getattr(components, "sigma_entity_", None)
+    sigma_e = getattr(components, "sigma_idiosyncratic_", None)
+    if sigma_u is None or sigma_e is None:
+        sigma_u = math.sqrt(float(components.sigma2_entity_))
+        sigma_e = math.sqrt(float(components.sigma2_idiosyncratic_))
     pooled = ols(y, np.column_stack([np.ones(len(y)), X]), names=["const", *names])
     y_scale = float(np.linalg.norm(y - y.mean())) if len(y) else 0.0
     out: dict[str, Any] = dict(entity_effect_lm(pooled.resid, entity_codes, counts, y_scale))
@@ -721,8 +733,8 @@ def collect_evidence(
         X,
         entity_codes,
         counts,
-        float(components.sigma2_entity_),
-        float(components.sigma2_idiosyncratic_),
+        (sigma_u / unit) ** 2,
+        (sigma_e / unit) ** 2,
         components.theta_,
         names=names,
         _cache=shared,

@@ -26,6 +26,7 @@ import scipy.sparse.csgraph
 import scipy.sparse.linalg
 
 from panelprep._groups import compact_codes, group_counts, group_sums
+from panelprep._scale import standardise
 
 TRANSFORMS = ("within", "between", "quasi", "twoway")
 
@@ -223,8 +224,9 @@ class TwowayResult:
         Achieved: max over columns of ``max(max_i |mean_i(r)|,
         max_t |mean_t(r)|) / scale_j``, where r is the transformed column,
         means are over the rows of each entity and of each period, and
-        ``scale_j = sqrt(sum_it x_it^2 / n)``, the root mean square of the
-        input column (1 if that is 0).
+        ``scale_j = sqrt(sum_it (x_it - xbar)^2 / n)``, the root mean square
+        of the centred input column (1 if that is 0), so a column's level
+        does not loosen the criterion.
     converged : bool
         ``precision <= tol``.
     n_components : int
@@ -382,6 +384,10 @@ def twoway(
     n, k = block.shape
     entity_codes = _check_codes(entity_codes, n, n_entities, "entity_codes")
     period_codes = _check_codes(period_codes, n, n_periods, "period_codes")
+    # the transform removes constants, so it runs on centred, power-of-two scaled
+    # columns: the precision is then relative to each column's spread, not its level
+    standard = standardise(block)
+    block = standard.z
     # levels without rows change nothing; dropping them keeps every per-level array
     # within the row count however long the period grid is
     entity_codes, n_entities = compact_codes(entity_codes, n_entities)
@@ -454,6 +460,7 @@ def twoway(
             col_prec = _precision(r, a, na, inv_a, sums_b, inv_b, scale)
         precision = max(precision, col_prec)
         iterations = max(iterations, col_iter)
+        r *= standard.scale[j]
     result = TwowayResult(
         method=method,
         iterations=int(iterations),

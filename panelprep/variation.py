@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from panelprep._groups import compact_codes, group_counts, group_means, group_sums
+from panelprep._scale import standardise
 from panelprep.index import PanelIndex
 
 
@@ -26,14 +27,24 @@ def variation_table(
     * ``time_invariant``: no entity with two or more rows varies;
       ``period_invariant``: no period with two or more rows varies.
 
+    Every sum of squares is taken on the columns centred on their mean and
+    scaled by a power of two (:func:`panelprep._scale.standardise`), so
+    shifting a variable by a constant changes only its mean, min and max,
+    and scaling it scales the SDs, at any magnitude float64 holds.
+
     A group is constant when the root mean square deviation from its mean
     is at most ``constant_rtol`` times the variable's largest absolute
-    value.  A statistic whose denominator is zero is None.
+    deviation from its overall mean (a decision that shifting or scaling
+    the variable does not change).  A statistic whose denominator is zero
+    is None.
     """
     codes = index.entity_codes
     n, n_entities = values.shape[0], index.n_entities
     if n == 0:
         return {name: _empty_row() for name in names}
+    raw = values
+    standard = standardise(raw)
+    values = standard.z
     counts = group_counts(codes, n_entities)
     means = group_means(codes, values, counts)
     # one (n, k) buffer, reused: squared deviations from entity, then period, means
@@ -52,18 +63,20 @@ def variation_table(
     out: dict[str, dict] = {}
     for j, name in enumerate(names):
         col = values[:, j]
+        unit = float(standard.scale[j])
         scale = max(float(np.abs(col).max()), np.finfo(float).tiny)
         tol = (constant_rtol * scale) ** 2
         varying = entity_ss[:, j] > tol * counts
         period_varying = period_ss[:, j] > tol * period_counts
         out[name] = {
             "n": int(n),
-            "mean": float(col.mean()),
-            "sd_overall": float(col.std(ddof=1)) if n > 1 else None,
-            "sd_between": float(means[:, j].std(ddof=1)) if n_entities > 1 else None,
-            "sd_within": float(np.sqrt(within_ss[j] / (n - n_entities))) if n > n_entities else None,
-            "min": float(col.min()),
-            "max": float(col.max()),
+            "mean": float(standard.centre[j] + unit * col.mean()),
+            "sd_overall": float(col.std(ddof=1) * unit) if n > 1 else None,
+            "sd_between": float(means[:, j].std(ddof=1) * unit) if n_entities > 1 else None,
+            "sd_within": (float(np.sqrt(within_ss[j] / (n - n_entities)) * unit)
+                          if n > n_entities else None),
+            "min": float(raw[:, j].min()),
+            "max": float(raw[:, j].max()),
             "varying_share": float(varying[multi].mean()) if multi.any() else None,
             "time_invariant": bool(multi.any() and not varying[multi].any()),
             "period_invariant": bool(multi_period.any() and not period_varying[multi_period].any()),

@@ -29,9 +29,6 @@ from panelprep.index import PanelIndex
 from panelprep.limits import GRID_PERIODS
 from panelprep.variation import variation_table
 
-# larger magnitudes overflow float64 in sums of squares over any number of rows
-# (1e100 squared is 1e200, far from the largest float, about 1.8e308)
-MAX_MAGNITUDE = 1e100
 # every whole number below 2^53 in magnitude is exact in float64; from there on some are not
 _EXACT_INTEGER = 2.0**53
 _NUMBER = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
@@ -45,7 +42,8 @@ class Thresholds:
         within SD / overall SD is below this (default 0.05).
     constant_rtol : a group counts as constant in a variable when the root
         mean square deviation from its mean is at most this times the
-        variable's largest absolute value (default 1e-9).
+        variable's largest absolute deviation from its overall mean
+        (default 1e-9).
     max_pattern_periods : presence patterns are summarised only for grids of
         at most this many periods.
     max_grid_periods : a grid of more periods is reported as most likely
@@ -247,8 +245,10 @@ def _to_float(
 ) -> tuple[np.ndarray, NonNumeric | None]:
     """Numeric view of a column; text that is not a number becomes NaN and is reported.
 
-    Infinite values, magnitudes beyond ``MAX_MAGNITUDE`` and whole numbers
-    float64 cannot hold exactly count as not numbers.  Declared missing
+    Infinite values (a text such as ``1e400`` reads as one) and whole numbers
+    float64 cannot hold exactly count as not numbers.  Every other finite
+    magnitude is usable: second moments are taken on centred, scaled columns
+    (``_scale.standardise``).  Declared missing
     tokens that are numbers (``-999``) also apply to a column already stored
     as numbers.
     """
@@ -257,7 +257,7 @@ def _to_float(
     if pd.api.types.is_numeric_dtype(values.dtype):
         out = values.to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
         token_missing = np.isin(out, _numeric_tokens(missing_tokens, decimal_comma))
-        unusable = ~(np.abs(out) <= MAX_MAGNITUDE) & ~np.isnan(out)
+        unusable = np.isinf(out)
         unusable |= _inexact_integers(values, out)
         bad_rows = np.flatnonzero(unusable)
         if len(bad_rows) == 0 and not token_missing.any():
@@ -278,8 +278,8 @@ def _to_float(
     out = np.full(len(values), np.nan)
     out[is_number] = stripped[is_number].astype(np.float64).to_numpy()
     is_number = is_number & ~_inexact_integer_text(stripped, out)
-    # "1e400" reads as infinity and "1e300" squares to it: both are unusable, not numbers
-    is_number &= np.abs(np.nan_to_num(out, nan=0.0)) <= MAX_MAGNITUDE
+    # "1e400" reads as infinity: unusable, not a number
+    is_number &= ~np.isinf(out)
     out[token_missing | ~is_number] = np.nan
     bad_rows = np.flatnonzero(present & ~is_number & ~token_missing & ~blank)
     if len(bad_rows) == 0 and not token_missing.any():

@@ -8,12 +8,12 @@ import numpy as np
 
 from panelprep._groups import group_counts
 from panelprep.checks.base import Check, check
-from panelprep.checks.context import MAX_MAGNITUDE, AuditContext
+from panelprep.checks.context import AuditContext
 from panelprep.findings import MAX_EXAMPLES
 
 
 @check("values-not-numeric", "error",
-       "text, infinities, magnitudes beyond 1e100 or whole numbers beyond 2^53 in a variable "
+       "text, infinities or whole numbers beyond 2^53 in a variable "
        "that should be numeric")
 def not_numeric(ctx: AuditContext, self: Check):
     bad = {name: p for name, p in ctx.non_numeric.items() if len(p.rows)}
@@ -42,9 +42,9 @@ _COMMA_NUMBER = re.compile(r"^\s*[-+]?\d*,\d+\s*$")
 _NOT_FINITE = re.compile(r"^\s*[-+]?(inf|infinity|nan)\s*$", re.IGNORECASE)
 
 
-def _too_large(value: str) -> bool:
+def _beyond_float(value: str) -> bool:
     try:
-        return abs(float(value.replace(",", "."))) > MAX_MAGNITUDE
+        return np.isinf(float(value.replace(",", ".")))
     except ValueError:
         return False
 
@@ -56,8 +56,8 @@ def _hints(values: list[str], decimal_comma: bool) -> list[str]:
         hints.append("whole numbers beyond 2^53 cannot be held exactly as float64")
     if any(_NOT_FINITE.match(v) for v in values):
         hints.append("infinite and NaN values are not usable numbers")
-    elif any(_too_large(v) for v in values):
-        hints.append(f"magnitudes beyond {MAX_MAGNITUDE:g} overflow float64 arithmetic: rescale")
+    elif any(_beyond_float(v) for v in values):
+        hints.append("magnitudes beyond about 1.8e308 do not fit float64: rescale")
     if not decimal_comma and any(_COMMA_NUMBER.match(v) for v in values):
         hints.append("if ',' is the decimal mark, use --decimal-comma")
     hints.append("declare tokens that mean missing with --missing-token")
