@@ -277,11 +277,19 @@ def components_command(
         typer.echo(f"panelprep: the audit gate failed ({failing}); no components estimated "
                    "(panelprep audit shows why)", err=True)
         raise typer.Exit(EXIT_FAIL)
-    components = found.summary["components"]
+    components = dict(found.summary["components"], verdict=found.verdict)
+    failed = [f for f in found.summary["findings"] if f["severity"] == "error"]
     if as_json:
         typer.echo(json.dumps(components, indent=2, allow_nan=False))
-    else:
+    elif not failed:
         typer.echo("\n".join(components_lines(components)))
+    if failed:
+        # the same gate as prepare: an under-identified fit is not a set of numbers to use
+        for finding in failed:
+            typer.echo(f"panelprep: {finding['id']}: {finding['message']}", err=True)
+        typer.echo("panelprep: the components gate failed; these components are not usable "
+                   "as estimates", err=True)
+        raise typer.Exit(EXIT_FAIL)
 
 
 def _write_html(path: Path, document: dict, result, source: Path) -> None:

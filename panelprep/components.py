@@ -366,14 +366,17 @@ class VarianceComponents:
 
     def _note_unrepresentable(self, s2u: float, s2e: float) -> None:
         """A finding when a variance is positive but outside float64 in the response's units."""
+        # below the smallest normal float a variance has lost digits, not only range
+        smallest = np.finfo(float).tiny
         lost = [
             name
             for name, scaled, value in (
                 ("s2_u", s2u, self.sigma2_entity_),
                 ("s2_e", s2e, self.sigma2_idiosyncratic_),
             )
-            if scaled > 0 and not (0.0 < value < np.inf)
+            if scaled > 0 and not (smallest <= value < np.inf)
         ]
+        self._unrepresentable = set(lost)
         if lost:
             self.findings_.append(
                 _finding(
@@ -574,7 +577,9 @@ class VarianceComponents:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain summary of the fitted components (JSON-serialisable)."""
-        s2u, s2e = _finite(self.sigma2_entity_), _finite(self.sigma2_idiosyncratic_)
+        lost = self._unrepresentable
+        s2u = None if "s2_u" in lost else self.sigma2_entity_
+        s2e = None if "s2_e" in lost else self.sigma2_idiosyncratic_
         theta = self.theta_[self._present]
         return {
             "method": self.method,

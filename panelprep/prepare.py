@@ -623,7 +623,8 @@ def estimate_file_components(
     Nothing is written; ``components`` is None when the gate failed.
     """
     options = PrepareOptions(entity=split_names(entity) or [], time=time, y=y,
-                             x=split_names(x) or [], freq=freq, method=method, transforms=[])
+                             x=split_names(x) or [], freq=freq, method=method, transforms=[],
+                             evidence=False)
     options.validate()
     frame, info = load(data, options.entity, time, options.columns_to_read, read_options)
     return prepare_frame(frame, options, info, read_options, progress)
