@@ -92,7 +92,7 @@ def standardise(values: np.ndarray) -> Standardised:
         return Standardised(np.zeros((0, k), order="F"), np.zeros(k), np.ones(k))
     largest = np.abs(block).max(axis=0)
     # a power of two at least the largest magnitude: |v| <= 1, so no sum overflows
-    mantissa, exponent = np.frexp(np.where(largest > 0, largest, 1.0))
+    _, exponent = np.frexp(np.where(largest > 0, largest, 1.0))
     first = np.ldexp(1.0, exponent)
     z = np.divide(block, first, order="F")
     mean = z.mean(axis=0)

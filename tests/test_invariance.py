@@ -202,7 +202,7 @@ def _write(path, frame: pd.DataFrame) -> None:
 def _components_cli(path, *extra) -> subprocess.CompletedProcess:
     return subprocess.run([*COMMAND, "components", str(path), "-e", "firm", "-t", "year",
                            "--y", "y", "--x", "x1,x2", "--json", *extra],
-                          capture_output=True, text=True, timeout=120)
+                          capture_output=True, text=True, timeout=120, check=False)
 
 
 def test_cli_components_and_gate_do_not_move_with_a_large_shift(tmp_path):
@@ -220,7 +220,7 @@ def test_cli_components_and_gate_do_not_move_with_a_large_shift(tmp_path):
         done = subprocess.run([*COMMAND, "audit", str(tmp_path / f"{name}.csv"), "-e", "firm",
                                "-t", "year", "--vars", "y,x1,x2",
                                "--report", str(tmp_path / f"{name}.json")],
-                              capture_output=True, text=True, timeout=120)
+                              capture_output=True, text=True, timeout=120, check=False)
         assert done.returncode == 0, done.stdout + done.stderr
         report = json.loads((tmp_path / f"{name}.json").read_text(encoding="utf-8"))
         findings[name] = sorted((f["id"], f["severity"], f["count"]) for f in report["findings"])
@@ -259,7 +259,7 @@ def test_cli_components_applies_the_gate_to_an_underidentified_fit(tmp_path):
     for name in ("one_period.csv", "two.csv"):
         done = subprocess.run([*COMMAND, "components", str(tmp_path / name), "-e", "firm", "-t",
                                "year", "--y", "y", "--x", "x1,x2"],
-                              capture_output=True, text=True, timeout=120)
+                              capture_output=True, text=True, timeout=120, check=False)
         assert done.returncode == 1, (name, done.stdout, done.stderr)
         assert "components-underidentified" in done.stderr
         assert done.stdout == ""
