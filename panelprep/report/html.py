@@ -1,8 +1,8 @@
 """The HTML report: one self-contained page a person opens in a browser.
 
 Everything the page needs is inside it: the style sheet, and the pictures as
-inline SVG drawn with matplotlib (the presence map's cells are a PNG inside
-the SVG as a data URI).  The page references nothing on the network, and the
+inline SVG written by :mod:`panelprep.report.svg` (plain elements, text in the
+browser's own font).  The page references nothing on the network, and the
 same input gives byte-identical output.  Every text that comes from the data
 or the user (ids, column names, paths, messages) goes through
 ``html.escape``.
@@ -17,10 +17,8 @@ Sections carry stable ids: ``story``, ``findings``, ``panel``, ``variation``,
 from __future__ import annotations
 
 import html
-import io
 import math
 import os
-import re
 from pathlib import Path
 from typing import Any
 
@@ -205,185 +203,43 @@ def _is_preparation(summary: dict[str, Any]) -> bool:
 # ---------------------------------------------------------------- pictures
 
 
-def _plot_rc(salt: str) -> dict[str, Any]:
-    return {
-        "svg.hashsalt": f"panelprep-{salt}",
-        "svg.fonttype": "path",
-        "font.family": "DejaVu Sans",
-        "font.size": 9,
-        "axes.edgecolor": MUTED,
-        "axes.labelcolor": INK,
-        "axes.titlesize": 10,
-        "axes.spines.top": False,
-        "axes.spines.right": False,
-        "xtick.color": MUTED,
-        "ytick.color": MUTED,
-        "figure.facecolor": "white",
-        "axes.facecolor": "white",
-        "hatch.color": "#b9b2a4",
-    }
+def _palette():
+    from panelprep.report.svg import Palette
 
-
-def _svg(draw, salt: str, width: float, height: float, title: str) -> str:
-    """Draw on a fresh figure and return its SVG, made safe to inline.
-
-    Element ids get a per-picture prefix so several SVGs share one page
-    without clashing, and the RDF metadata block (which names web
-    addresses) is left out.
-    """
-    import matplotlib
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    with matplotlib.rc_context(_plot_rc(salt)):
-        fig = Figure(figsize=(width, height), layout="constrained")
-        FigureCanvasAgg(fig)
-        draw(fig)
-        buffer = io.StringIO()
-        fig.savefig(buffer, format="svg", metadata={"Date": None})
-    text = buffer.getvalue()
-    text = text[text.index("<svg"):]
-    text = re.sub(r"\s*<metadata>.*?</metadata>", "", text, flags=re.DOTALL)
-    text = re.sub(r' id="([^"]+)"', rf' id="{salt}-\1"', text)
-    text = re.sub(r"url\(#([^)]+)\)", rf"url(#{salt}-\1)", text)
-    text = re.sub(r'xlink:href="#([^"]+)"', rf'xlink:href="#{salt}-\1"', text)
-    return text.replace("<svg ", f'<svg role="img" aria-labelledby="{salt}-title" ', 1).replace(
-        ">", f'><title id="{salt}-title">{_e(title)}</title>', 1)
-
-
-def _period_ticks(labels: list[str], most: int = 14) -> list[int]:
-    if not labels:
-        return []
-    step = max(1, math.ceil(len(labels) / most))
-    return list(range(0, len(labels), step))
+    return Palette(ink=INK, muted=MUTED, rule=RULE, fill=TEAL, accent=COPPER, absent=ABSENT)
 
 
 def _presence_svg(presence: dict[str, Any]) -> str:
-    import numpy as np
-    from matplotlib.colors import ListedColormap
+    from panelprep.report import svg
 
-    matrix = np.asarray(presence["matrix"], dtype=float).reshape(
-        len(presence["entities"]), len(presence["periods"]))
-    rows, columns = matrix.shape
-    height = min(7.5, max(1.8, 0.9 + 0.035 * rows + (0.16 * rows if rows <= 40 else 0)))
-
-    def draw(fig):
-        ax = fig.add_subplot()
-        if rows == 0 or columns == 0:
-            ax.text(0.5, 0.5, "no rows in the sample", ha="center", va="center", color=MUTED)
-            ax.set_axis_off()
-            return
-        ax.imshow(matrix, aspect="auto", interpolation="none", vmin=0, vmax=1,
-                  cmap=ListedColormap([ABSENT, TEAL]))
-        ticks = _period_ticks(presence["periods"])
-        ax.set_xticks(ticks, [presence["periods"][i] for i in ticks],
-                      rotation=45 if columns > 8 else 0, ha="right" if columns > 8 else "center")
-        if rows <= 40:
-            ax.set_yticks(range(rows), presence["entities"], fontsize=8)
-        else:
-            ax.set_yticks([])
-            ax.set_ylabel(f"{rows:,} entities, key order top to bottom")
-        ax.set_xlabel("period")
-        ax.tick_params(length=0)
-        for spine in ax.spines.values():
-            spine.set_visible(False)
-
-    return _svg(draw, "presence", 9.6, height, "Presence map of entities by period")
-
-
-def _weighted_hist(ax, values: list[float], weights: list[int], discrete: bool,
-                   colour: str, span: tuple[float, float] | None = None) -> None:
-    """Histogram of distinct values with their entity counts as weights.
-
-    Integer counts get one bar per value while the range is at most 60
-    values wide, else 40 bins; continuous values get 40 bins over ``span``.
-    """
-    bins: Any = 40
-    if discrete:
-        low, high = int(min(values)), int(max(values))
-        if high - low <= 60:
-            bins = [b - 0.5 for b in range(low, high + 2)]
-    ax.hist(values, bins=bins, weights=weights, range=None if discrete else span,
-            histtype="bar", rwidth=0.86, color=colour)
+    return svg.presence(presence, _palette(), "presence", "Presence map of entities by period")
 
 
 def _obs_svg(obs: dict[str, Any]) -> str:
+    from panelprep.report import svg
+
     rows = obs["rows"]
-
-    def draw(fig):
-        ax = fig.add_subplot()
-        if not rows["values"]:
-            ax.text(0.5, 0.5, "no rows in the sample", ha="center", va="center", color=MUTED)
-            ax.set_axis_off()
-            return
-        _weighted_hist(ax, rows["values"], rows["entities"], True, TEAL)
-        ax.set_xlabel("rows per entity")
-        ax.set_ylabel("entities")
-        ax.yaxis.get_major_locator().set_params(integer=True)
-        ax.xaxis.get_major_locator().set_params(integer=True)
-        ax.grid(axis="y", color=RULE, linewidth=0.6)
-        ax.set_axisbelow(True)
-
-    return _svg(draw, "obs", 6.4, 2.8, "Distribution of rows per entity")
+    return svg.distribution(rows["values"], rows["entities"], _palette(), "obs",
+                            "Distribution of rows per entity", "rows per entity", discrete=True)
 
 
 def _share_svg(share: dict[str, Any]) -> str:
-    names = list(share["variables"])
-    height = max(1.5, 0.75 + 0.36 * len(names))
+    from panelprep.report import svg
 
-    def draw(fig):
-        ax = fig.add_subplot()
-        if not names:
-            ax.text(0.5, 0.5, "no numeric variables", ha="center", va="center", color=MUTED)
-            ax.set_axis_off()
-            return
-        ys = list(range(len(names)))
-        for y, name in zip(ys, names):
-            within = share["variables"][name]["within"]
-            if within is None:
-                ax.barh(y, 1.0, color="white", edgecolor="#b9b2a4", hatch="///", height=0.62)
-                ax.text(0.5, y, "undefined (no spread, or too few rows or entities)",
-                        ha="center", va="center", color=MUTED, fontsize=8)
-                continue
-            ax.barh(y, within, color=TEAL, height=0.62)
-            ax.barh(y, 1.0 - within, left=within, color=COPPER, height=0.62)
-            if within >= 0.05:
-                ax.text(within / 2, y, f"{100 * within:.0f}%", ha="center", va="center",
-                        color="white", fontsize=8, fontweight="bold")
-            if within <= 0.95:
-                ax.text((1 + within) / 2, y, f"{100 * (1 - within):.0f}%", ha="center",
-                        va="center", color="white", fontsize=8, fontweight="bold")
-        ax.set_yticks(ys, names)
-        ax.invert_yaxis()
-        ax.set_xlim(0, 1)
-        ax.set_xticks([0, 0.25, 0.5, 0.75, 1.0], ["0%", "25%", "50%", "75%", "100%"])
-        ax.tick_params(axis="y", length=0)
-        ax.spines["left"].set_visible(False)
-        from matplotlib.patches import Patch
-
-        ax.legend(handles=[Patch(color=TEAL, label="within entities"),
-                           Patch(color=COPPER, label="between entities")],
-                  loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=2, frameon=False)
-
-    return _svg(draw, "share", 8.0, height, "Within and between share of variance")
+    return svg.shares(share["variables"], _palette(), "share",
+                      "Within and between share of variance", "within entities",
+                      "between entities")
 
 
 def _theta_svg(theta: dict[str, Any]) -> str:
-    def draw(fig):
-        ax = fig.add_subplot()
-        _weighted_hist(ax, theta["values"], theta["entities"], False, TEAL, span=(0.0, 1.0))
-        if theta.get("median") is not None:
-            ax.axvline(theta["median"], color=COPPER, linewidth=1.4)
-            ax.text(theta["median"], 1.0, f" median {theta['median']:.3f}", color=COPPER,
-                    transform=ax.get_xaxis_transform(), va="top", ha="left", fontsize=8)
-        ax.set_xlim(0, 1)
-        ax.set_xlabel("theta_i (0: pooled data, 1: within transform)")
-        ax.set_ylabel("entities")
-        ax.yaxis.get_major_locator().set_params(integer=True)
-        ax.grid(axis="y", color=RULE, linewidth=0.6)
-        ax.set_axisbelow(True)
+    from panelprep.report import svg
 
-    return _svg(draw, "theta", 6.4, 2.8, "Distribution of theta_i")
+    median = theta.get("median")
+    return svg.distribution(theta["values"], theta["entities"], _palette(), "theta",
+                            "Distribution of theta_i",
+                            "theta_i (0: pooled data, 1: within transform)", discrete=False,
+                            span=(0.0, 1.0), marker=median,
+                            marker_label="" if median is None else f"median {median:.3f}")
 
 
 # ---------------------------------------------------------------- sections
