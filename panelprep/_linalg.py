@@ -180,30 +180,13 @@ def ols(
         # R of [X_s, y]: by blocks of rows, either by QR of each block or from
         # the blocks' cross products; only one block is ever copied
         r_xy = _gram_r(X, col_scale, y) if gram_route else _stacked_r(X, col_scale, y)
-        # the pivoted QR of R_x has the pivots and |R_jj| of the pivoted QR of X_s
-        Q2, R, piv = scipy.linalg.qr(r_xy[:k, :k], pivoting=True, check_finite=False)
-        diag = np.abs(np.diag(R))
-        if diag.size and diag[0] > 0:
-            reference = max(diag[0], 1.0) if scale is not None else diag[0]
-            rank = int(np.count_nonzero(diag > rtol * reference))
-        if rank:
-            qty = Q2.T @ r_xy[:k, k]
-            R11 = R[:rank, :rank]
-            b_piv = scipy.linalg.solve_triangular(R11, qty[:rank])
-            R11_inv = scipy.linalg.solve_triangular(R11, np.eye(rank))
-            inv_piv = R11_inv @ R11_inv.T
-            sel = piv[:rank]
-            order = np.argsort(sel)
-            kept[sel] = True
-            coef[sel] = b_piv / col_scale[sel]
-            d = 1.0 / col_scale[sel[order]]
-            xtx_inv = inv_piv[np.ix_(order, order)] * d[:, None] * d[None, :]
-            if gram_route:
-                # one step of refinement (corrected semi-normal equations): the
-                # residual's cross product fixes what the squared condition lost
-                kept_idx = np.flatnonzero(kept)
-                residual = y - X @ coef
-                coef[kept_idx] += xtx_inv @ (X[:, kept_idx].T @ residual)
+        kept, coef, xtx_inv, rank = _solve_r(r_xy, rtol, col_scale, scale is not None)
+        if rank and gram_route:
+            # one step of refinement (corrected semi-normal equations): the
+            # residual's cross product fixes what the squared condition lost
+            kept_idx = np.flatnonzero(kept)
+            residual = y - X @ coef
+            coef[kept_idx] += xtx_inv @ (X[:, kept_idx].T @ residual)
     # dropped columns have coefficient 0, so X @ coef needs no column copy
     resid = y - X @ coef if rank else y.copy()
     return OlsFit(
@@ -218,6 +201,97 @@ def ols(
         df_resid=max(n - rank, 0),
         rtol=rtol,
     )
+
+
+def ols_from_r(
+    r_xy: np.ndarray,
+    n: int,
+    names: Sequence[str] | None = None,
+    scale: np.ndarray | None = None,
+    gram: bool | None = None,
+) -> OlsFit:
+    """:func:`ols` from the triangular factor of ``[X, y]`` instead of the rows.
+
+    ``r_xy`` is any (k+1, k+1) matrix with ``r_xy' r_xy = [X, y]'[X, y]`` (an R
+    factor of the rows, or of a stack of partial R factors, or the square root
+    of summed cross products), so a fit over many rows, or over rows that are
+    the sum of a within part and an entity part, needs only small matrices.
+    Rank detection, coefficients and ``xtx_inv`` are those of ``ols`` on the
+    rows (with ``gram`` the tolerance floor of the cross-product route, by
+    default from ``n``); ``resid`` is empty and ``ssr`` is ``r_xy[k, k]^2``.
+    """
+    r_xy = np.asarray(r_xy, dtype=np.float64)
+    k = r_xy.shape[0] - 1
+    labels = list(names) if names is not None else list(range(k))
+    col_scale = np.ones(k)
+    if scale is not None:
+        s = np.asarray(scale, dtype=np.float64).reshape(k)
+        good = np.isfinite(s) & (s > 0)
+        col_scale[good] = s[good]
+    rtol = default_rtol(n, k)
+    if n >= GRAM_MIN_ROWS if gram is None else gram:
+        rtol = max(rtol, GRAM_RTOL_FLOOR)
+    scaled = r_xy.copy()
+    scaled[:, :k] /= col_scale
+    if n > 0 and k > 0:
+        kept, coef, xtx_inv, rank = _solve_r(scaled, rtol, col_scale, scale is not None)
+        # the part of y outside the kept columns: Q2'Q1'y beyond the rank, plus rho
+        qty = _rotated_response(scaled, kept)
+        ssr = float(qty @ qty)
+    else:
+        kept, coef, xtx_inv, rank = np.zeros(k, dtype=bool), np.zeros(k), np.zeros((0, 0)), 0
+        ssr = float(r_xy[:, k] @ r_xy[:, k]) if k >= 0 else 0.0
+    return OlsFit(
+        coef=coef,
+        resid=np.zeros(0),
+        kept=kept,
+        dropped=[labels[j] for j in np.flatnonzero(~kept)],
+        rank=rank,
+        ssr=ssr,
+        xtx_inv=xtx_inv,
+        n_obs=n,
+        df_resid=max(n - rank, 0),
+        rtol=rtol,
+    )
+
+
+def _rotated_response(r_xy: np.ndarray, kept: np.ndarray) -> np.ndarray:
+    """The residual part of y in the R-factor representation, given the kept columns."""
+    k = r_xy.shape[0] - 1
+    target = r_xy[:, k]
+    if not kept.any():
+        return target
+    design = r_xy[:, :k][:, kept]
+    q, _ = np.linalg.qr(design)
+    return target - q @ (q.T @ target)
+
+
+def _solve_r(r_xy: np.ndarray, rtol: float, col_scale: np.ndarray, has_scale: bool):
+    """Rank, kept columns, coefficients and ``(X'X)^-1`` from the R of ``[X_s, y]``."""
+    k = r_xy.shape[0] - 1
+    kept = np.zeros(k, dtype=bool)
+    coef = np.zeros(k)
+    xtx_inv = np.zeros((0, 0))
+    rank = 0
+    # the pivoted QR of R_x has the pivots and |R_jj| of the pivoted QR of X_s
+    Q2, R, piv = scipy.linalg.qr(r_xy[:k, :k], pivoting=True, check_finite=False)
+    diag = np.abs(np.diag(R))
+    if diag.size and diag[0] > 0:
+        reference = max(diag[0], 1.0) if has_scale else diag[0]
+        rank = int(np.count_nonzero(diag > rtol * reference))
+    if rank:
+        qty = Q2.T @ r_xy[:k, k]
+        R11 = R[:rank, :rank]
+        b_piv = scipy.linalg.solve_triangular(R11, qty[:rank])
+        R11_inv = scipy.linalg.solve_triangular(R11, np.eye(rank))
+        inv_piv = R11_inv @ R11_inv.T
+        sel = piv[:rank]
+        order = np.argsort(sel)
+        kept[sel] = True
+        coef[sel] = b_piv / col_scale[sel]
+        d = 1.0 / col_scale[sel[order]]
+        xtx_inv = inv_piv[np.ix_(order, order)] * d[:, None] * d[None, :]
+    return kept, coef, xtx_inv, rank
 
 
 def _gram_r(X: np.ndarray, col_scale: np.ndarray, y: np.ndarray) -> np.ndarray:
@@ -318,6 +392,16 @@ def cluster_cov(
         scores[:, j] = np.bincount(
             cluster_codes, weights=X_kept[:, j] * resid, minlength=n_clusters
         )
+    return sandwich(scores, xtx_inv, n, n_clusters, correction)
+
+
+def sandwich(
+    scores: np.ndarray, xtx_inv: np.ndarray, n: int, n_clusters: int, correction: bool = True
+) -> np.ndarray:
+    """``c * A (sum_g s_g s_g') A`` from the cluster scores ``s_g`` (G, r) (see ``cluster_cov``)."""
+    r = scores.shape[1]
+    if r == 0:
+        return np.zeros((0, 0))
     meat = scores.T @ scores
     cov = xtx_inv @ meat @ xtx_inv
     if correction:

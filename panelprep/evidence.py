@@ -28,15 +28,17 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import scipy.stats
 
 from panelprep._groups import group_sums
-from panelprep._linalg import cluster_cov, default_rtol, ols
+from panelprep._linalg import default_rtol, ols_from_r, sandwich
+from panelprep._moments import EntityMoments, entity_moments, triangular
 from panelprep._scale import standardise
-from panelprep.transforms import between, quasi, theta_per_entity, within
+from panelprep.transforms import theta_per_entity
 
 #: Significance level used by :func:`read_evidence`.
 LEVEL = 0.05
@@ -86,15 +88,79 @@ def _shared(cache: dict | None, key: str, compute: Any) -> Any:
     return cache[key]
 
 
-def _random_effects_fit(y, X, entity_codes, counts, theta_g, cache):
-    """The quasi-demeaned regression of y on [1 - theta_i, X*], shared by both tests."""
-    def compute():
-        one_minus = (1.0 - theta_g)[entity_codes]
-        y_q = quasi(y, entity_codes, counts, theta_g)
-        base = np.column_stack([one_minus, quasi(X, entity_codes, counts, theta_g)])
-        return y_q, base, ols(y_q, base)
+@dataclass(eq=False)
+class _Sample:
+    """The estimation sample, standardised, with its shared per-entity statistics."""
 
-    return _shared(cache, "random_effects", compute)
+    X: np.ndarray
+    y: np.ndarray
+    codes: np.ndarray
+    counts: np.ndarray
+    unit: float
+    moments: EntityMoments
+
+    @property
+    def n(self) -> int:
+        return len(self.y)
+
+    @property
+    def k(self) -> int:
+        return self.X.shape[1]
+
+    def within_rows(self, extra: int = 0) -> np.ndarray:
+        """Within part of a design ``[entity column, X, extra entity columns, y]``."""
+        k, r = self.k, self.moments.r_within
+        rows = np.zeros((k + 1, k + 2 + extra))
+        rows[:, 1:1 + k] = r[:, :k]
+        rows[:, -1] = r[:, k]
+        return rows
+
+    def entity_rows(self, weight: np.ndarray, extra: list[int] | None = None) -> np.ndarray:
+        """Entity part ``weight_i [1, xbar_i, xbar_i[extra], ybar_i]``, one row per entity."""
+        means = self.moments.means
+        columns = [np.ones(len(weight)), *means[:, :self.k].T,
+                   *(means[:, j] for j in (extra or [])), means[:, self.k]]
+        return np.column_stack(columns) * weight[:, None]
+
+
+def _sample_of(y, X, entity_codes, counts, cache) -> _Sample:
+    """Standardise the sample and build its moments, once per ``cache``."""
+    def compute():
+        y_raw, X_raw, sizes = _as_sample(y, X, counts)
+        y_std, X_std = standardise(y_raw), standardise(X_raw)
+        codes = np.asarray(entity_codes)
+        z, Z = y_std.z[:, 0], X_std.z
+        return _Sample(X=Z, y=z, codes=codes, counts=sizes, unit=float(y_std.scale[0]),
+                       moments=entity_moments(Z, z, codes, sizes))
+
+    return _shared(cache, "sample", compute)
+
+
+def _fit_stack(stack: np.ndarray, columns: list[int], n: int, **kwargs):
+    """OLS of the stack's last column on ``columns`` (the stack has the design's cross product)."""
+    return ols_from_r(triangular(stack[:, [*columns, stack.shape[1] - 1]], len(columns) + 1),
+                      n, **kwargs)
+
+
+def _random_effects_stack(sample: _Sample, theta_g: np.ndarray, means: list[int]) -> np.ndarray:
+    """Rows whose cross product is that of ``[1 - theta_i, X*, (1 - theta_i) xbar_i[means], y*]``."""
+    weight = (1.0 - theta_g) * np.sqrt(sample.moments.counts)
+    return np.vstack([sample.within_rows(len(means)), sample.entity_rows(weight, means)])
+
+
+def _varying(sample: _Sample) -> np.ndarray:
+    """Boolean (k,): columns whose within deviations exceed rounding.
+
+    A column counts as time-varying when the norm of its within deviations is
+    above ``default_rtol(n, k)`` (the rank tolerance of ``_linalg.ols``) times
+    the norm of the (centred) column itself; demeaning an entity-constant
+    column leaves only rounding of order eps times its size.
+    """
+    n, k = sample.n, sample.k
+    if n == 0 or k == 0:
+        return np.zeros(k, dtype=bool)
+    mom = sample.moments
+    return mom.within_ss[:k] > default_rtol(n, k) ** 2 * mom.total_ss[:k]
 
 
 def _p_chi2(statistic: float, df: int) -> float:
@@ -113,23 +179,7 @@ def _entity_theta(theta: float | np.ndarray, n_groups: int) -> np.ndarray:
     return arr
 
 
-def _within_varying(X: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndarray:
-    """Boolean (k,): columns whose within deviations exceed rounding.
-
-    A column counts as time-varying when the norm of its within deviations is
-    above ``default_rtol(n, k)`` (the rank tolerance of ``_linalg.ols``) times
-    the norm of the column itself; demeaning an entity-constant column leaves
-    only rounding of order eps times its size.
-    """
-    n, k = X.shape
-    if n == 0 or k == 0:
-        return np.zeros(k, dtype=bool)
-    dev = np.linalg.norm(within(X, codes, counts), axis=0)
-    size = np.linalg.norm(X, axis=0)
-    return dev > default_rtol(n, k) * size
-
-
-def _independent_after(base: np.ndarray, extra: np.ndarray) -> np.ndarray:
+def _independent_after(base: np.ndarray, extra: np.ndarray, n: int | None = None) -> np.ndarray:
     """Boolean mask of ``extra`` columns that add a direction to ``base``, greedily in order.
 
     Works on the (p x p) cross-product matrix of ``[base, extra]``, one pass
@@ -140,9 +190,12 @@ def _independent_after(base: np.ndarray, extra: np.ndarray) -> np.ndarray:
     ``max(default_rtol(n, p), 1e3 * sqrt(eps))`` times its own norm; the
     floor allows for the squaring of the condition number in a cross
     product.  ``base`` must have full column rank (the kept columns of an
-    :func:`~panelprep._linalg.ols` fit).
+    :func:`~panelprep._linalg.ols` fit).  ``n`` is the number of rows the
+    design stands for when ``base`` and ``extra`` are a stack with the same
+    cross product (default: their own rows).
     """
-    n, k_base, k_extra = extra.shape[0], base.shape[1], extra.shape[1]
+    k_base, k_extra = base.shape[1], extra.shape[1]
+    n = extra.shape[0] if n is None else n
     rtol = max(default_rtol(n, k_base + k_extra), 1e3 * math.sqrt(np.finfo(float).eps))
     # the cross products by blocks, so [base, extra] is never copied
     gram = np.empty((k_base + k_extra, k_base + k_extra))
@@ -251,25 +304,54 @@ def entity_effect_lm(
     n = e.shape[0]
     pairs = float(np.sum(counts * (counts - 1)))
     ssr = float(e @ e)
-    note = None
+    note = _lm_undefined(pairs, ssr, n, y_scale)
+    if note is not None:
+        return _lm_missing(note)
+    return _lm_from_sums(group_sums(entity_codes, e, len(counts)), ssr, n, pairs)
+
+
+def _pooled_lm(sample: _Sample) -> dict[str, dict[str, Any]]:
+    """:func:`entity_effect_lm` of pooled OLS on ``[1, X]``, from the entity moments.
+
+    The pooled residuals' entity sums are ``T_i (ybar_i - b_0 - xbar_i b)``
+    (within deviations sum to zero), and their sum of squares is the stacked
+    fit's; no residual vector is formed.
+    """
+    n, k = sample.n, sample.k
+    counts = sample.moments.counts
+    stack = np.vstack([sample.within_rows(), sample.entity_rows(np.sqrt(counts))])
+    fit = _fit_stack(stack, list(range(1 + k)), n)
+    means = sample.moments.means
+    sums = counts * (means[:, k] - fit.coef[0] - means[:, :k] @ fit.coef[1:])
+    pairs = float(np.sum(sample.counts * (sample.counts - 1)))
+    y_scale = math.sqrt(float(sample.moments.total_ss[k]))
+    note = _lm_undefined(pairs, fit.ssr, n, y_scale)
+    if note is not None:
+        return _lm_missing(note)
+    return _lm_from_sums(sums, fit.ssr, n, pairs)
+
+
+def _lm_undefined(pairs: float, ssr: float, n: int, y_scale: float | None) -> str | None:
     if pairs <= 0:
-        note = (
-            "every entity has a single row, so there are no within-entity residual "
-            "pairs and the entity-effect test is undefined"
-        )
-    elif not ssr > 0 or (
+        return ("every entity has a single row, so there are no within-entity residual "
+                "pairs and the entity-effect test is undefined")
+    if not ssr > 0 or (
         y_scale is not None and math.sqrt(ssr) <= default_rtol(n, 1) * float(y_scale)
     ):
-        note = (
-            "pooled OLS fits exactly (the residuals are rounding), so the "
-            "entity-effect test is undefined"
-        )
-    if note is not None:
-        return {
-            "breusch_pagan": {"statistic": None, "df": 1, "p_value": None, "note": note},
-            "honda": {"statistic": None, "p_value": None, "note": note},
-        }
-    sums = group_sums(entity_codes, e, len(counts))
+        return ("pooled OLS fits exactly (the residuals are rounding), so the "
+                "entity-effect test is undefined")
+    return None
+
+
+def _lm_missing(note: str) -> dict[str, dict[str, Any]]:
+    return {
+        "breusch_pagan": {"statistic": None, "df": 1, "p_value": None, "note": note},
+        "honda": {"statistic": None, "p_value": None, "note": note},
+    }
+
+
+def _lm_from_sums(sums: np.ndarray, ssr: float, n: int, pairs: float) -> dict[str, dict]:
+    """Breusch-Pagan and Honda from the entity sums of the pooled residuals."""
     a = float(sums @ sums) / ssr - 1.0
     factor = float(n) ** 2 / (2.0 * pairs)
     lm = factor * a * a
@@ -329,14 +411,15 @@ def mundlak_test(
         the covariance block actually inverted; with clustering it is at most
         G - 1.
     """
-    y, X, counts = _as_sample(y, X, counts)
     names = list(names)
-    if len(names) != X.shape[1]:
-        raise ValueError(f"{len(names)} names for {X.shape[1]} regressors")
-    n_groups = len(counts)
+    sample = _sample_of(y, X, entity_codes, counts, _cache)
+    n, k = sample.n, sample.k
+    if len(names) != k:
+        raise ValueError(f"{len(names)} names for {k} regressors")
+    n_groups = len(sample.counts)
     theta_g = _entity_theta(theta, n_groups)
     covariance = "entity-clustered" if cluster else "conventional"
-    varying = _shared(_cache, "varying", lambda: _within_varying(X, entity_codes, counts))
+    varying = _shared(_cache, "varying", lambda: _varying(sample))
     invariant = [names[j] for j in np.flatnonzero(~varying)]
     result: dict[str, Any] = {
         "statistic": None,
@@ -351,29 +434,28 @@ def mundlak_test(
         result["note"] = "no regressor varies within entities, so there are no means to test"
         return result
 
-    y_q, base, base_fit = _random_effects_fit(y, X, entity_codes, counts, theta_g, _cache)
-    one_minus = base[:, 0]
-    base_kept = base_fit.kept
     var_idx = np.flatnonzero(varying)
-    means = one_minus[:, None] * between(X[:, var_idx], entity_codes, counts)[entity_codes]
+    # columns of the stack: [1 - theta_i, X* (k), (1 - theta_i) xbar_i (varying), y*]
+    stack = _random_effects_stack(sample, theta_g, list(var_idx))
+    base_cols = list(range(1 + k))
+    mean_cols = list(range(1 + k, 1 + k + len(var_idx)))
+    base_fit = _shared(_cache, "random_effects", lambda: _fit_stack(stack, base_cols, n))
+    base_kept = [c for c, kept in zip(base_cols, base_fit.kept) if kept]
     # A pivoted QR of the whole design could drop the constant or a
     # time-invariant regressor instead of a redundant mean (a mean that is
     # constant across entities is proportional to the constant column), which
     # would change what is tested; so the means are screened against the
     # kept base columns first.
-    kept_base = base if base_kept.all() else base[:, base_kept]
-    mean_ok = _independent_after(kept_base, means)
+    mean_ok = _independent_after(stack[:, base_kept], stack[:, mean_cols], n=n)
     notes = []
     if not mean_ok.all():
         notes.append(
             "means left out because they are collinear with the other regressors: "
             + ", ".join(names[j] for j, ok in zip(var_idx, mean_ok) if not ok)
         )
-    Z = np.empty((len(y_q), int(base_kept.sum() + mean_ok.sum())), order="F")
-    Z[:, : int(base_kept.sum())] = kept_base
-    Z[:, int(base_kept.sum()):] = means[:, mean_ok]
-    fit = ols(y_q, Z)
-    mean_pos = np.arange(int(np.count_nonzero(base_kept)), Z.shape[1])
+    design = base_kept + [c for c, ok in zip(mean_cols, mean_ok) if ok]
+    fit = _fit_stack(stack, design, n)
+    mean_pos = np.arange(len(base_kept), len(design))
     tested_mask = fit.kept[mean_pos]
     tested = [names[j] for j, t in zip(var_idx[mean_ok], tested_mask) if t]
     result["tested"] = tested
@@ -385,7 +467,8 @@ def mundlak_test(
         notes.append("no residual degrees of freedom; the covariance is undefined")
         result["note"] = "; ".join(notes)
         return result
-    if math.sqrt(fit.ssr) <= default_rtol(len(y_q), Z.shape[1]) * float(np.linalg.norm(y_q)):
+    y_norm = float(np.linalg.norm(stack[:, -1]))
+    if math.sqrt(fit.ssr) <= default_rtol(n, len(design)) * y_norm:
         notes.append("the regression fits exactly (residuals are rounding); no test is possible")
         result["note"] = "; ".join(notes)
         return result
@@ -394,7 +477,8 @@ def mundlak_test(
     kept_idx = np.flatnonzero(fit.kept)
     sel = np.searchsorted(kept_idx, mean_pos[tested_mask])
     if cluster:
-        V = cluster_cov(Z[:, fit.kept], fit.resid, entity_codes, fit.xtx_inv, n_groups)
+        scores = _mundlak_scores(sample, theta_g, var_idx, np.asarray(design), fit)
+        V = sandwich(scores, fit.xtx_inv, n, n_groups)
     else:
         V = fit.ssr / fit.df_resid * fit.xtx_inv
     Vg = V[np.ix_(sel, sel)]
@@ -413,6 +497,36 @@ def mundlak_test(
     result.update(statistic=stat, df=rank, p_value=_p_chi2(stat, rank))
     result["note"] = "; ".join(notes) if notes else None
     return result
+
+
+def _mundlak_scores(sample: _Sample, theta_g: np.ndarray, var_idx: np.ndarray,
+                    design: np.ndarray, fit) -> np.ndarray:
+    """Per-entity scores ``sum_t z_it e_it`` (G, kept columns) of the Mundlak regression.
+
+    Each row of the design is a within part ``w_it`` (the within deviations of
+    X, in the X* columns) plus an entity part ``c_i``, and so is each residual:
+    ``e_it = (y_w - X_w b) + (1 - theta_i)(ybar_i - ...)``.  Within parts sum to
+    zero in every entity, so ``sum_t z_it e_it = sum_t w_it e_w,it + T_i c_i
+    e_i``: one group sum per regressor for the first term, entity arithmetic
+    for the second.
+    """
+    k = sample.k
+    kept_cols = design[fit.kept]
+    coef = fit.coef[fit.kept]
+    one_minus = 1.0 - theta_g
+    means = sample.moments.means
+    # the entity part of each design column: [1, xbar_i, xbar_i[varying]] times 1 - theta_i
+    entity = np.column_stack([np.ones(len(theta_g)), means[:, :k], means[:, var_idx]])
+    entity *= one_minus[:, None]
+    fitted = entity[:, kept_cols] @ coef
+    entity_resid = one_minus * means[:, k] - fitted
+    scores = sample.moments.counts[:, None] * entity[:, kept_cols] * entity_resid[:, None]
+    slope = np.zeros(k)
+    in_x = (kept_cols >= 1) & (kept_cols <= k)
+    slope[kept_cols[in_x] - 1] = coef[in_x]
+    within_part = sample.moments.within_scores(sample.X, sample.y, slope)
+    scores[:, in_x] += within_part[:, kept_cols[in_x] - 1]
+    return scores
 
 
 def hausman_test(
@@ -465,11 +579,18 @@ def hausman_test(
         ``statistic, df, p_value, positive_definite, tested`` (regressors
         contrasted), ``note`` (always states the variance choice).
     """
-    y, X, counts = _as_sample(y, X, counts)
-    k = X.shape[1]
+    sample = _sample_of(y, X, entity_codes, counts, _cache)
+    unit = sample.unit ** 2
+    return _hausman(sample, float(sigma2_entity) / unit, float(sigma2_idiosyncratic) / unit,
+                    theta, names, _cache)
+
+
+def _hausman(sample: _Sample, sigma2_entity: float, s2_e: float, theta, names, cache) -> dict:
+    """:func:`hausman_test` on the standardised sample (variances in its units)."""
+    n, k = sample.n, sample.k
+    counts = sample.counts
     n_groups = len(counts)
     theta_g = _entity_theta(theta, n_groups)
-    s2_e = float(sigma2_idiosyncratic)
     notes = [_HAUSMAN_VARIANCE_CHOICE]
     result: dict[str, Any] = {
         "statistic": None,
@@ -492,21 +613,20 @@ def hausman_test(
             "(T_i s2_u + s2_e))), so s2_e (X*'X*)^-1 is not the random-effects covariance "
             "and the contrast is not the classical one."
         )
-    varying = _shared(_cache, "varying", lambda: _within_varying(X, entity_codes, counts))
+    varying = _shared(cache, "varying", lambda: _varying(sample))
     if not varying.any():
         notes.append("No regressor varies within entities; there is nothing to contrast.")
         result["note"] = " ".join(notes)
         return result
 
     cols = np.flatnonzero(varying)
-    Xv = X[:, cols]
-    fit_w = ols(
-        within(y, entity_codes, counts),
-        within(Xv, entity_codes, counts),
-        scale=np.linalg.norm(Xv, axis=0),
-    )
-    y_q, _, fit_q = _random_effects_fit(y, X, entity_codes, counts, theta_g, _cache)
-    if math.sqrt(fit_q.ssr) <= default_rtol(len(y_q), fit_q.rank) * float(np.linalg.norm(y_q)):
+    r = sample.moments.r_within
+    fit_w = ols_from_r(triangular(r[:, [*cols, k]], len(cols) + 1), n,
+                       scale=np.sqrt(sample.moments.total_ss[cols]))
+    stack = _random_effects_stack(sample, theta_g, [])
+    fit_q = _shared(cache, "random_effects", lambda: _fit_stack(stack, list(range(1 + k)), n))
+    y_norm = float(np.linalg.norm(stack[:, -1]))
+    if math.sqrt(fit_q.ssr) <= default_rtol(n, fit_q.rank) * y_norm:
         notes.append("The regression fits exactly (residuals are rounding); no test is possible.")
         result["note"] = " ".join(notes)
         return result
@@ -707,38 +827,24 @@ def collect_evidence(
         ``hausman``, ``reading`` (:func:`read_evidence`) and ``caution``.  Numbers
         are Python floats or ints; undefined ones are None with a note.
     """
-    y, X, counts = _as_sample(y, X, counts)
     names = list(names)
     # every regression here has a constant (or the constant column 1 - theta_i)
     # or works within entities, so centring changes no statistic; scaling by
     # powers of two keeps squares of values near 1e-300 or 1e300 in range
-    y_std, X_std = standardise(y), standardise(X)
-    y, X = y_std.z[:, 0], X_std.z
-    unit = float(y_std.scale[0])
+    shared: dict = {}
+    sample = _sample_of(y, X, entity_codes, counts, shared)
     sigma_u = getattr(components, "sigma_entity_", None)
     sigma_e = getattr(components, "sigma_idiosyncratic_", None)
     if sigma_u is None or sigma_e is None:
         sigma_u = math.sqrt(float(components.sigma2_entity_))
         sigma_e = math.sqrt(float(components.sigma2_idiosyncratic_))
-    pooled = ols(y, np.column_stack([np.ones(len(y)), X]), names=["const", *names])
-    y_scale = float(np.linalg.norm(y - y.mean())) if len(y) else 0.0
-    out: dict[str, Any] = dict(entity_effect_lm(pooled.resid, entity_codes, counts, y_scale))
+    out: dict[str, Any] = dict(_pooled_lm(sample))
     # both correlated-effects tests run on the same quasi-demeaned regression
-    shared: dict = {}
     out["mundlak"] = mundlak_test(
         y, X, entity_codes, counts, components.theta_, names, cluster=True, _cache=shared
     )
-    out["hausman"] = hausman_test(
-        y,
-        X,
-        entity_codes,
-        counts,
-        (sigma_u / unit) ** 2,
-        (sigma_e / unit) ** 2,
-        components.theta_,
-        names=names,
-        _cache=shared,
-    )
+    out["hausman"] = _hausman(sample, (sigma_u / sample.unit) ** 2,
+                              (sigma_e / sample.unit) ** 2, components.theta_, names, shared)
     out["reading"] = read_evidence(out)
     out["caution"] = CAUTION
     return out
