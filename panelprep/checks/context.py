@@ -131,6 +131,11 @@ class AuditContext:
             # count is the same whether the file was read whole or only in part
             columns = [*self.index.entity, self.index.time, *self.variables]
             subset = self.frame[columns].iloc[candidates]
+            instant = self.index.axis.instant
+            if instant is not None:
+                # the time value as the moment it denotes: 2021-01-31 and 2021-01-31T00:00:00
+                # on otherwise identical rows are an exact repeat, not a conflict
+                subset = subset.assign(**{self.index.time: instant[candidates]})
             repeat[candidates] = subset.duplicated(keep="first").to_numpy()
         remaining = candidates[~repeat[candidates]]
         cell_left = self.index.cell[remaining]
