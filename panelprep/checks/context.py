@@ -35,6 +35,8 @@ MAX_MAGNITUDE = 1e100
 # every whole number below 2^53 in magnitude is exact in float64; from there on some are not
 _EXACT_INTEGER = 2.0**53
 _NUMBER = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
+# NaN as text, as Python, numpy and pandas write it (nan, NaN, -nan)
+_NAN_TEXT = re.compile(r"^\s*[-+]?nan\s*$", re.IGNORECASE)
 
 
 @dataclass(frozen=True)
@@ -60,12 +62,19 @@ class Thresholds:
 
 @dataclass(frozen=True)
 class NonNumeric:
-    """Text found in a variable that should be numeric."""
+    """Text found in a variable that should be numeric, and values read as missing.
+
+    ``rows`` are the positions of values that are not numbers;
+    ``read_as_missing`` counts declared missing tokens; ``nan_rows`` are the
+    positions of NaN values read as missing (the text ``nan`` in CSV, a NaN
+    stored in a Parquet or Arrow float column).
+    """
 
     column: str
     rows: np.ndarray
     values: list[str]
     read_as_missing: int
+    nan_rows: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
 
 
 @dataclass(eq=False)
@@ -255,22 +264,29 @@ def _to_float(
     Infinite values, magnitudes beyond ``MAX_MAGNITUDE`` and whole numbers
     float64 cannot hold exactly count as not numbers.  Declared missing
     tokens that are numbers (``-999``) also apply to a column already stored
-    as numbers.
+    as numbers.  NaN is missing, and reported apart from the empty field:
+    the text ``nan`` (any case, a sign allowed) and a NaN that a column
+    keeps apart from its nulls (``double[pyarrow]``, as ``io.read_frame``
+    reads a Parquet float column holding NaN).  In a plain float64 column
+    NaN is how pandas writes missing, so it is simply missing there.
+    Booleans are 0 and 1 (nulls missing).
     """
     if pd.api.types.is_bool_dtype(values.dtype):
-        return values.astype(np.float64).to_numpy(), None
+        return values.to_numpy(dtype=np.float64, na_value=np.nan), None
     if pd.api.types.is_numeric_dtype(values.dtype):
         out = values.to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
         token_missing = np.isin(out, _numeric_tokens(missing_tokens, decimal_comma))
+        nan = np.isnan(out) & values.notna().to_numpy()
         unusable = ~(np.abs(out) <= MAX_MAGNITUDE) & ~np.isnan(out)
         unusable |= _inexact_integers(values, out)
         bad_rows = np.flatnonzero(unusable)
-        if len(bad_rows) == 0 and not token_missing.any():
+        if len(bad_rows) == 0 and not token_missing.any() and not nan.any():
             return out, None
         out[token_missing | unusable] = np.nan
         shown = list(dict.fromkeys(str(v) for v in values.iloc[bad_rows[:200]]))[:10]
         return out, NonNumeric(
-            column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum())
+            column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum()),
+            nan_rows=np.flatnonzero(nan),
         )
     text = values.astype("str")
     present = values.notna().to_numpy()
@@ -279,6 +295,8 @@ def _to_float(
         stripped = stripped.str.replace(",", ".", regex=False)
     is_number = stripped.str.fullmatch(_NUMBER.pattern).fillna(False).to_numpy(dtype=bool)
     token_missing = text.str.strip().isin(list(missing_tokens)).to_numpy() & present
+    nan = stripped.str.fullmatch(_NAN_TEXT.pattern).fillna(False).to_numpy(dtype=bool)
+    nan = nan & present & ~token_missing
     blank = (stripped == "").to_numpy() & present
     out = np.full(len(values), np.nan)
     out[is_number] = stripped[is_number].astype(np.float64).to_numpy()
@@ -286,12 +304,13 @@ def _to_float(
     # "1e400" reads as infinity and "1e300" squares to it: both are unusable, not numbers
     is_number &= np.abs(np.nan_to_num(out, nan=0.0)) <= MAX_MAGNITUDE
     out[token_missing | ~is_number] = np.nan
-    bad_rows = np.flatnonzero(present & ~is_number & ~token_missing & ~blank)
-    if len(bad_rows) == 0 and not token_missing.any():
+    bad_rows = np.flatnonzero(present & ~is_number & ~token_missing & ~blank & ~nan)
+    if len(bad_rows) == 0 and not token_missing.any() and not nan.any():
         return out, None
     shown = list(dict.fromkeys(text.iloc[bad_rows[:200]].tolist()))[:10]
     return out, NonNumeric(
-        column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum())
+        column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum()),
+        nan_rows=np.flatnonzero(nan),
     )
 
 
