@@ -49,17 +49,23 @@ _LEADING_ZERO = re.compile(r"^\s*-?0\d")
 # compressed CSV read by the file's last suffix (Arrow detects the first four, Python reads xz)
 CSV_COMPRESSIONS = (".gz", ".bz2", ".zst", ".lz4", ".xz")
 # the first bytes of files that are not CSV text, to say what a file is instead of "not UTF-8"
+_SUFFIX_ADVICE = ("compressed CSV is read from files named .csv" + ", .csv".join(CSV_COMPRESSIONS)
+                  + "; rename it so its last suffix says how it is compressed, or decompress it")
+_ARCHIVE_ADVICE = ("archives are not read; unpack it (compressed CSV is read from .csv"
+                   + ", .csv".join(CSV_COMPRESSIONS) + " files)")
+_COLUMNAR_ADVICE = "name it .parquet or .feather, or pass --input-format"
 _MAGIC = (
-    (b"\x1f\x8b", "gzip-compressed"),
-    (b"BZh", "bzip2-compressed"),
-    (b"\xfd7zXZ\x00", "xz-compressed"),
-    (b"\x28\xb5\x2f\xfd", "zstd-compressed"),
-    (b"\x04\x22\x4d\x18", "lz4-compressed"),
-    (b"PK\x03\x04", "a zip archive"),
-    (b"7z\xbc\xaf\x27\x1c", "a 7z archive"),
-    (b"PAR1", "a Parquet file"),
-    (b"ARROW1", "an Arrow IPC file"),
+    (b"\x1f\x8b", "gzip-compressed", _SUFFIX_ADVICE),
+    (b"BZh", "bzip2-compressed", _SUFFIX_ADVICE),
+    (b"\xfd7zXZ\x00", "xz-compressed", _SUFFIX_ADVICE),
+    (b"\x28\xb5\x2f\xfd", "zstd-compressed", _SUFFIX_ADVICE),
+    (b"\x04\x22\x4d\x18", "lz4-compressed", _SUFFIX_ADVICE),
+    (b"PK\x03\x04", "a zip archive", _ARCHIVE_ADVICE),
+    (b"7z\xbc\xaf\x27\x1c", "a 7z archive", _ARCHIVE_ADVICE),
+    (b"PAR1", "a Parquet file", _COLUMNAR_ADVICE),
+    (b"ARROW1", "an Arrow IPC file", _COLUMNAR_ADVICE),
 )
+_CONTROL = re.compile(r"[\x00-\x08\x0b\x0c\x0e-\x1f]")
 # names shown from a header that is not what it should be
 _EXCERPT = 40
 
@@ -186,6 +192,9 @@ def _csv_header(path: Path, delimiter: str | None) -> tuple[list[str], str]:
     except UnicodeDecodeError:
         _refuse_binary(path, raw)
         raise InputError(_not_utf8(path)) from None
+    if _CONTROL.search(line):
+        # a Parquet footer or a short archive can decode as text; control bytes give it away
+        _refuse_binary(path, raw)
     if not line.strip():
         raise InputError(f"{path}: the first line is blank, expected a header")
     if line.lstrip()[:1] in ("{", "[", "<"):
@@ -199,17 +208,9 @@ def _csv_header(path: Path, delimiter: str | None) -> tuple[list[str], str]:
 
 def _refuse_binary(path: Path, head: bytes) -> None:
     """Name what a compressed, archived or columnar file is, read as CSV text."""
-    for magic, kind in _MAGIC:
+    for magic, kind, advice in _MAGIC:
         if head.startswith(magic):
-            if kind.endswith("compressed"):
-                what = (f"compressed CSV is read from files named .csv{', .csv'.join(CSV_COMPRESSIONS)}; "
-                        "rename it so its last suffix says how it is compressed, or decompress it")
-            elif kind.startswith("a Parquet") or kind.startswith("an Arrow"):
-                what = "name it .parquet or .feather, or pass --input-format"
-            else:
-                what = ("archives are not read; unpack it (compressed CSV is read from .csv"
-                        f"{', .csv'.join(CSV_COMPRESSIONS)} files)")
-            raise InputError(f"{path}: is {kind}, not CSV text; {what}")
+            raise InputError(f"{path}: is {kind}, not CSV text; {advice}")
 
 
 def _excerpt(text: str, width: int = _EXCERPT) -> str:

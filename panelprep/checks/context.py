@@ -36,7 +36,7 @@ MAX_MAGNITUDE = 1e100
 _EXACT_INTEGER = 2.0**53
 _NUMBER = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
 # NaN as text, as Python, numpy and pandas write it (nan, NaN, -nan)
-_NAN_TEXT = re.compile(r"^\s*[-+]?nan\s*$", re.IGNORECASE)
+_NAN_TEXT = re.compile(r"^\s*[-+]?[nN][aA][nN]\s*$")
 
 
 @dataclass(frozen=True)
