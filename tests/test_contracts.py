@@ -231,3 +231,22 @@ def test_never_raises_on_any_data(firm_year, data, n):
     findings = check_contract(frame, firm_year)
     assert all(f.id == FINDING_ID and f.count >= 1 for f in findings)
     json.dumps([f.to_dict() for f in findings], allow_nan=False)
+
+
+def test_nan_stored_in_parquet_is_null_to_the_contract_as_nan_text_in_csv(firm_year, tmp_path):
+    # read_frame keeps a Parquet float column holding NaN in Arrow's type, where NaN is not
+    # null; the contract must still see it as missing, as it sees the text 'nan' in a CSV
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    frame = clean_frame()
+    pq.write_table(pa.table({
+        **{c: frame[c] for c in ("firm_id", "year", "capital", "staff")},
+        "sales": pa.array([10.0, float("nan"), None, 3.0], pa.float64()),
+    }), tmp_path / "nan.parquet")
+    (tmp_path / "nan.csv").write_text(
+        "firm_id,year,sales,capital,staff\nF01,2001,10.0,5.0,3\nF01,2002,nan,5.5,4\n"
+        "F02,2001,,2.0,2\nF02,2002,3.0,0.0,2\n", encoding="utf-8")
+    for name in ("nan.parquet", "nan.csv"):
+        read = read_frame(tmp_path / name, None, ["firm_id"], "year")
+        assert check_contract(read, firm_year) == [], name
