@@ -233,20 +233,19 @@ def test_never_raises_on_any_data(firm_year, data, n):
     json.dumps([f.to_dict() for f in findings], allow_nan=False)
 
 
-def test_nan_stored_in_parquet_is_null_to_the_contract_as_nan_text_in_csv(firm_year, tmp_path):
+def test_nan_stored_in_parquet_is_null_to_the_contract(tmp_path):
     # read_frame keeps a Parquet float column holding NaN in Arrow's type, where NaN is not
-    # null; the contract must still see it as missing, as it sees the text 'nan' in a CSV
+    # null; a contract that does not coerce must still see it as missing, as the audit does
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    frame = clean_frame()
-    pq.write_table(pa.table({
-        **{c: frame[c] for c in ("firm_id", "year", "capital", "staff")},
-        "sales": pa.array([10.0, float("nan"), None, 3.0], pa.float64()),
-    }), tmp_path / "nan.parquet")
-    (tmp_path / "nan.csv").write_text(
-        "firm_id,year,sales,capital,staff\nF01,2001,10.0,5.0,3\nF01,2002,nan,5.5,4\n"
-        "F02,2001,,2.0,2\nF02,2002,3.0,0.0,2\n", encoding="utf-8")
-    for name in ("nan.parquet", "nan.csv"):
-        read = read_frame(tmp_path / name, None, ["firm_id"], "year")
-        assert check_contract(read, firm_year) == [], name
+    contract = tmp_path / "plain.yaml"
+    contract.write_text(yaml.safe_dump({"schema_type": "dataframe", "coerce": False, "columns": {
+        "sales": {"dtype": "float64", "nullable": True,
+                  "checks": {"greater_than_or_equal_to": 0}}}}), encoding="utf-8")
+    pq.write_table(pa.table({"firm_id": ["F01", "F01", "F02", "F02"], "year": [2001, 2002] * 2,
+                             "sales": pa.array([10.0, float("nan"), None, 3.0], pa.float64())}),
+                   tmp_path / "nan.parquet")
+    read = read_frame(tmp_path / "nan.parquet", None, ["firm_id"], "year")
+    assert isinstance(read["sales"].dtype, pd.ArrowDtype)
+    assert check_contract(read, load_contract(contract)) == []
