@@ -125,9 +125,10 @@ def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "t
         uniques.dtype
     ):
         stripped = pd.Series(np.asarray(uniques, dtype=object)).astype(str).str.strip()
-        blank = (stripped == "").to_numpy()
+        # blank strings, and NaN written as text, are missing keys as a null or a stored NaN
+        # is, not parse failures
+        blank = ((stripped == "") | stripped.str.fullmatch(r"[-+]?[nN][aA][nN]")).to_numpy()
         if blank.any():
-            # blank strings are missing keys, not parse failures
             missing = missing | np.isin(codes, np.flatnonzero(blank))
     else:
         blank = np.zeros(len(uniques), dtype=bool)

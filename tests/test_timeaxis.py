@@ -268,3 +268,10 @@ def test_two_spellings_of_one_date_are_one_moment():
 def test_two_dates_in_one_period_are_two_moments():
     axis = axis_of(["2021-01-31", "2021-01-15", "2021-02-28", "2021-03-31"])
     assert axis.ordinal[0] == axis.ordinal[1] and axis.instant[0] != axis.instant[1]
+
+
+def test_nan_text_is_a_missing_time_value_as_a_stored_nan_is():
+    text = axis_of(["2001", "nan", "2002", "NaN"])
+    stored = axis_of([2001.0, np.nan, 2002.0, np.nan])
+    assert text.missing.tolist() == stored.missing.tolist() == [False, True, False, True]
+    assert text.name == stored.name == "year"
