@@ -66,6 +66,9 @@ _MAGIC = (
     (b"ARROW1", "an Arrow IPC file", _COLUMNAR_ADVICE),
 )
 _CONTROL = re.compile(r"[\x00-\x08\x0b\x0c\x0e-\x1f]")
+# how JSON, XML and HTML begin (a CSV header may start "[id]", never '[{' or '<!')
+_MARKUP_START = re.compile(
+    r'^\s*(\{|\[\s*($|[\[{"\d-])|<[!?]|<(?i:html|head|body|table|div|svg|feed|rss)\b)')
 # names shown from a header that is not what it should be
 _EXCERPT = 40
 
@@ -197,7 +200,7 @@ def _csv_header(path: Path, delimiter: str | None) -> tuple[list[str], str]:
         _refuse_binary(path, raw)
     if not line.strip():
         raise InputError(f"{path}: the first line is blank, expected a header")
-    if line.lstrip()[:1] in ("{", "[", "<"):
+    if _MARKUP_START.match(line):
         # JSON, XML or HTML saved under a .csv name: its first line is not a list of names
         raise InputError(f"{path}: the first line does not look like CSV column names (it begins "
                          f"{_excerpt(line.strip())!r}, like JSON, XML or HTML); the file must be "
@@ -273,9 +276,9 @@ def read_frame(
     Arrow keep their stored types, with two exceptions so that nothing is
     lost on the way into pandas: a true/false column with nulls (CSV
     ``true``/``false`` texts too) becomes pandas' nullable ``boolean``
-    rather than objects, and a float variable holding NaN as well as nulls
-    keeps Arrow's float type (``double[pyarrow]``), where NaN is a value
-    apart from null, so the audit can report NaN on its own.  Raises
+    rather than objects, and a float variable holding NaN keeps Arrow's
+    float type (``double[pyarrow]``), where NaN is a value apart from null,
+    so the audit can report NaN on its own.  Raises
     ``InputError`` before reading when the run would not fit in memory
     (see ``limits.check_memory``).
     """
@@ -363,6 +366,9 @@ def _arrow_csv(
         if "Empty CSV file" in text:
             raise InputError(f"{path}: no data rows, only a header") from None
         raise InputError(f"{path}: cannot parse as CSV: {_short(err)}") from None
+    finally:
+        if source is not path:
+            source.close()
     # Arrow reads a column holding bytes that are not UTF-8 as binary; pandas would
     # then fail on it far from here, so say where the bad bytes are instead
     if any(pa.types.is_binary(t) or pa.types.is_large_binary(t) for t in table.schema.types):
