@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from panelprep.checks.context import _to_float
+from panelprep.checks.context import to_float
 from panelprep.errors import InputError
 from panelprep.index import PanelIndex
 
@@ -96,7 +96,7 @@ def add_shifts(
             raise InputError(f"--{shift.kind} {shift.variable!r}: no such column")
         if shift.name in frame.columns:
             raise InputError(f"--{shift.kind} would create {shift.name!r}, which already exists")
-        values, problem = _to_float(frame[shift.variable], shift.variable, decimal_comma,
+        values, problem = to_float(frame[shift.variable], shift.variable, decimal_comma,
                                     tuple(missing_tokens))
         if problem is not None and len(problem.rows):
             shown = ", ".join(repr(v) for v in problem.values[:3])

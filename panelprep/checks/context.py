@@ -94,7 +94,7 @@ class AuditContext:
         values = np.empty((n, k), dtype=np.float64, order="F")
         bad: dict[str, NonNumeric] = {}
         for j, name in enumerate(self.variables):
-            values[:, j], problem = _to_float(
+            values[:, j], problem = to_float(
                 self.frame[name], name, self.decimal_comma, self.missing_tokens
             )
             if problem is not None:
@@ -256,7 +256,7 @@ def _plain(value: object) -> object:
     return str(value)
 
 
-def _to_float(
+def to_float(
     values: pd.Series, name: str, decimal_comma: bool, missing_tokens: tuple[str, ...]
 ) -> tuple[np.ndarray, NonNumeric | None]:
     """Numeric view of a column; text that is not a number becomes NaN and is reported.
