@@ -154,8 +154,10 @@ def _nan_as_null(frame: pd.DataFrame) -> pd.DataFrame:
              if isinstance(dtype, pd.ArrowDtype) and pd.api.types.is_float_dtype(dtype)]
     if not arrow:
         return frame
-    return frame.assign(**{name: frame[name].to_numpy(dtype=np.float64, na_value=np.nan)
-                           for name in arrow})
+    out = frame.copy()
+    for name in arrow:
+        out[name] = frame[name].to_numpy(dtype=np.float64, na_value=np.nan)
+    return out
 
 
 def check_contract(

@@ -144,7 +144,8 @@ class AuditContext:
             if instant is not None:
                 # the time value as the moment it denotes: 2021-01-31 and 2021-01-31T00:00:00
                 # on otherwise identical rows are an exact repeat, not a conflict
-                subset = subset.assign(**{self.index.time: instant[candidates]})
+                subset = subset.copy()
+                subset[self.index.time] = instant[candidates]
             repeat[candidates] = subset.duplicated(keep="first").to_numpy()
         remaining = candidates[~repeat[candidates]]
         cell_left = self.index.cell[remaining]
