@@ -106,18 +106,32 @@ def normalise_ids(frame: pd.DataFrame, entity: list[str], how: str) -> tuple[pd.
 
 
 def window_removal(index: PanelIndex, window: tuple[str | None, str | None]) -> Removal | None:
-    """Rows outside the inclusive window [first, last] of period labels."""
+    """Rows outside the inclusive window [first, last] of period labels.
+
+    A window whose first period comes after its last, or that holds no
+    period of the data, is a bad option (``InputError``), not an empty panel.
+    """
     first, last = window
     if not first and not last:
         return None
     ordinal = index.axis.ordinal
     outside = np.zeros(index.n_rows, dtype=bool)
+    bounds = {}
     for label, side in ((first, "first"), (last, "last")):
         if not label:
             continue
-        bound = _period_ordinal(index, label, side)
-        outside |= (ordinal < bound) if side == "first" else (ordinal > bound)
-    outside &= ~index.axis.missing
+        bounds[side] = _period_ordinal(index, label, side)
+        outside |= (ordinal < bounds[side]) if side == "first" else (ordinal > bounds[side])
+    shown = f"--window {first or ''},{last or ''} (clean.window)"
+    if len(bounds) == 2 and first != last and bounds["first"] > bounds["last"]:
+        raise InputError(f"{shown}: the first period {first} comes after the last {last}; "
+                         "give the earlier period first")
+    timed = ~index.axis.missing
+    if timed.any() and not (timed & ~outside).any():
+        span = index.axis.label([int(ordinal[timed].min()), int(ordinal[timed].max())])
+        raise InputError(f"{shown}: no row lies inside the window; the data's periods run "
+                         f"from {span[0]} to {span[1]}, choose the window within that span")
+    outside &= timed
     return Removal(outside, "outside-window", f"keep periods {first or '...'} to {last or '...'}")
 
 

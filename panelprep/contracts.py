@@ -143,6 +143,23 @@ def _line(node: yaml.Node | None, key: Hashable) -> int:
     return node.start_mark.line + 1 if node is not None else 1
 
 
+def _nan_as_null(frame: pd.DataFrame) -> pd.DataFrame:
+    """``frame`` with Arrow float columns as float64, so a stored NaN is null to the contract.
+
+    ``io.read_frame`` keeps a Parquet float column holding NaN in Arrow's
+    type, where NaN is not null; the panel reads NaN as missing, and so does
+    the contract (as it does for the text ``nan`` in a CSV).
+    """
+    arrow = [name for name, dtype in frame.dtypes.items()
+             if isinstance(dtype, pd.ArrowDtype) and pd.api.types.is_float_dtype(dtype)]
+    if not arrow:
+        return frame
+    out = frame.copy()
+    for name in arrow:
+        out[name] = frame[name].to_numpy(dtype=np.float64, na_value=np.nan)
+    return out
+
+
 def check_contract(
     frame: pd.DataFrame, schema: pa.DataFrameSchema, where: str = "input"
 ) -> list[Finding]:
@@ -174,7 +191,7 @@ def check_contract(
     InputError only when the schema itself cannot be applied.
     """
     try:
-        schema.validate(frame, lazy=True)
+        schema.validate(_nan_as_null(frame), lazy=True)
     except pandera.errors.SchemaErrors as err:
         cases = err.failure_cases
     except pandera.errors.SchemaError as err:

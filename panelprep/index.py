@@ -128,6 +128,7 @@ class PanelIndex:
                 missing=self.axis.missing[rows],
                 off_grid=self.axis.off_grid[rows],
                 inferred=self.axis.inferred,
+                instant=None if self.axis.instant is None else self.axis.instant[rows],
             ),
             first_period=self.first_period + low,
             n_periods=high - low + 1,

@@ -10,10 +10,12 @@ import codecs
 import csv
 import glob
 import hashlib
+import lzma
 import os
 import re
 import secrets
 import shutil
+import stat
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -44,6 +46,31 @@ _DELIMITERS = (",", ";", "\t", "|")
 # whole numbers, also as written by tools that store years as floats ("1935.0")
 _INTEGER_TEXT = re.compile(r"^\s*-?\d{1,18}(?:\.0*)?\s*$")
 _LEADING_ZERO = re.compile(r"^\s*-?0\d")
+# compressed CSV read by the file's last suffix (Arrow detects the first four, Python reads xz)
+CSV_COMPRESSIONS = (".gz", ".bz2", ".zst", ".lz4", ".xz")
+# the first bytes of files that are not CSV text, to say what a file is instead of "not UTF-8"
+_SUFFIX_ADVICE = ("compressed CSV is read from files named .csv" + ", .csv".join(CSV_COMPRESSIONS)
+                  + "; rename it so its last suffix says how it is compressed, or decompress it")
+_ARCHIVE_ADVICE = ("archives are not read; unpack it (compressed CSV is read from .csv"
+                   + ", .csv".join(CSV_COMPRESSIONS) + " files)")
+_COLUMNAR_ADVICE = "name it .parquet or .feather, or pass --input-format"
+_MAGIC = (
+    (b"\x1f\x8b", "gzip-compressed", _SUFFIX_ADVICE),
+    (b"BZh", "bzip2-compressed", _SUFFIX_ADVICE),
+    (b"\xfd7zXZ\x00", "xz-compressed", _SUFFIX_ADVICE),
+    (b"\x28\xb5\x2f\xfd", "zstd-compressed", _SUFFIX_ADVICE),
+    (b"\x04\x22\x4d\x18", "lz4-compressed", _SUFFIX_ADVICE),
+    (b"PK\x03\x04", "a zip archive", _ARCHIVE_ADVICE),
+    (b"7z\xbc\xaf\x27\x1c", "a 7z archive", _ARCHIVE_ADVICE),
+    (b"PAR1", "a Parquet file", _COLUMNAR_ADVICE),
+    (b"ARROW1", "an Arrow IPC file", _COLUMNAR_ADVICE),
+)
+_CONTROL = re.compile(r"[\x00-\x08\x0b\x0c\x0e-\x1f]")
+# how JSON, XML and HTML begin (a CSV header may start "[id]", never '[{' or '<!')
+_MARKUP_START = re.compile(
+    r'^\s*(\{|\[\s*($|[\[{"\d-])|<[!?]|<(?i:html|head|body|table|div|svg|feed|rss)\b)')
+# names shown from a header that is not what it should be
+_EXCERPT = 40
 
 
 @dataclass(frozen=True)
@@ -89,12 +116,31 @@ def detect_format(path: Path, given: str | None = None) -> str:
     )
 
 
+def shown_path(path: Path | str) -> str:
+    """A path as written in a message: bytes that are not UTF-8 as escapes (``b\\xffd.csv``)."""
+    return os.fsencode(path).decode("utf-8", errors="backslashreplace")
+
+
 def check_readable(path: Path) -> None:
-    """Fail with one line when ``path`` is not a readable, non-empty file."""
+    """Fail with one line when ``path`` is not a readable, non-empty regular file.
+
+    A file name that is not UTF-8 is refused too: the name is written into
+    every report and output file, which are UTF-8.
+    """
+    name = shown_path(path)
+    if name != str(path):
+        raise InputError(f"{name}: the file name is not UTF-8 text, so it cannot be written "
+                         "into the reports; rename the file (or link to it under a UTF-8 name)")
     if not path.exists():
         raise InputError(f"{path}: no such file")
     if path.is_dir():
         raise InputError(f"{path}: is a directory, expected a data file")
+    mode = path.stat().st_mode
+    if not stat.S_ISREG(mode):
+        kind = ("a named pipe" if stat.S_ISFIFO(mode) else "a socket" if stat.S_ISSOCK(mode)
+                else "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode) else "a special file")
+        raise InputError(f"{path}: is {kind}, not a regular file; the data is read more than "
+                         "once (header, columns, checksum), so save it to a file and pass that")
     if not os.access(path, os.R_OK):
         raise InputError(f"{path}: not readable (permission denied)")
     if path.stat().st_size == 0:
@@ -117,15 +163,26 @@ def sniff_delimiter(header_line: str) -> str:
     return best if counts[best] > 0 else ","
 
 
+def _text_stream(path: Path) -> pa.NativeFile:
+    """The file's bytes, decompressed by its last suffix (see ``CSV_COMPRESSIONS``)."""
+    if path.suffix.lower() == ".xz":
+        # Arrow has no xz codec; Python's lzma reads it
+        return pa.PythonFile(lzma.open(path, "rb"), mode="r")
+    return pa.input_stream(str(path), compression="detect")
+
+
 def _first_line(path: Path) -> bytes:
-    """The header line's bytes, decompressed by extension (``.gz``, ``.bz2``) as Arrow reads it."""
+    """The header line's bytes, decompressed by extension (``.gz``, ``.xz``) as the data is read."""
     head = b""
-    with pa.input_stream(str(path), compression="detect") as handle:
-        while b"\n" not in head and b"\r" not in head:
-            block = handle.read(1 << 16)
-            if not block:
-                break
-            head += block
+    try:
+        with _text_stream(path) as handle:
+            while b"\n" not in head and b"\r" not in head:
+                block = handle.read(1 << 16)
+                if not block:
+                    break
+                head += block
+    except (lzma.LZMAError, EOFError) as err:
+        raise InputError(f"{path}: cannot decompress as xz: {_short(err)}") from None
     # Arrow ends a line at \n, \r\n or a lone \r; so does the header
     ends = [i for i in (head.find(b"\n"), head.find(b"\r")) if i >= 0]
     return head[: min(ends)] if ends else head
@@ -136,11 +193,31 @@ def _csv_header(path: Path, delimiter: str | None) -> tuple[list[str], str]:
     try:
         line = raw.decode("utf-8-sig")
     except UnicodeDecodeError:
+        _refuse_binary(path, raw)
         raise InputError(_not_utf8(path)) from None
+    if _CONTROL.search(line):
+        # a Parquet footer or a short archive can decode as text; control bytes give it away
+        _refuse_binary(path, raw)
     if not line.strip():
         raise InputError(f"{path}: the first line is blank, expected a header")
+    if _MARKUP_START.match(line):
+        # JSON, XML or HTML saved under a .csv name: its first line is not a list of names
+        raise InputError(f"{path}: the first line does not look like CSV column names (it begins "
+                         f"{_excerpt(line.strip())!r}, like JSON, XML or HTML); the file must be "
+                         "CSV with a header line, Parquet or Arrow")
     delimiter = delimiter or sniff_delimiter(line)
     return [n.strip() for n in _split_header(path, line, delimiter)], delimiter
+
+
+def _refuse_binary(path: Path, head: bytes) -> None:
+    """Name what a compressed, archived or columnar file is, read as CSV text."""
+    for magic, kind, advice in _MAGIC:
+        if head.startswith(magic):
+            raise InputError(f"{path}: is {kind}, not CSV text; {advice}")
+
+
+def _excerpt(text: str, width: int = _EXCERPT) -> str:
+    return text if len(text) <= width else text[: width - 1] + "\u2026"
 
 
 def _split_header(path: Path, line: str, delimiter: str) -> list[str]:
@@ -165,9 +242,12 @@ def column_names(path: Path, options: ReadOptions = DEFAULT_READ) -> list[str]:
         raise
     except (pa.ArrowException, OSError, ValueError) as err:
         raise InputError(f"{path}: cannot read as {fmt}: {_short(err)}") from None
-    duplicated = sorted({n for n in names if names.count(n) > 1})
+    counts = pd.Series(names, dtype=object).value_counts()
+    duplicated = sorted(counts.index[counts > 1])
     if duplicated:
-        raise ColumnError(f"{path}: duplicate column names {duplicated}")
+        shown = [_excerpt(str(n)) for n in duplicated[:5]]
+        more = f" and {len(duplicated) - 5} more" if len(duplicated) > 5 else ""
+        raise ColumnError(f"{path}: duplicate column names {shown}{more}")
     return names
 
 
@@ -193,8 +273,14 @@ def read_frame(
     CSV entity columns are read as text; a CSV time column is read as text
     and turned into integers only when every value is a whole number, so
     dates and period labels round-trip to the same strings.  Parquet and
-    Arrow keep their stored types.  Raises ``InputError`` before reading
-    when the run would not fit in memory (see ``limits.check_memory``).
+    Arrow keep their stored types, with two exceptions so that nothing is
+    lost on the way into pandas: a true/false column with nulls (CSV
+    ``true``/``false`` texts too) becomes pandas' nullable ``boolean``
+    rather than objects, and a float variable holding NaN keeps Arrow's
+    float type (``double[pyarrow]``), where NaN is a value apart from null,
+    so the audit can report NaN on its own.  Raises
+    ``InputError`` before reading when the run would not fit in memory
+    (see ``limits.check_memory``).
     """
     names = column_names(path, options)
     wanted = names if columns is None else columns
@@ -216,6 +302,15 @@ def read_frame(
     except (pa.ArrowException, OSError, ValueError) as err:
         raise InputError(f"{path}: cannot read as {fmt}: {_short(err)}") from None
     frame = table.to_pandas()
+    keys = {*entity, time}
+    for name, column in zip(table.column_names, table.columns):
+        if name in keys or not column.null_count and not pa.types.is_floating(column.type):
+            continue
+        if pa.types.is_boolean(column.type):
+            frame[name] = column.to_pandas(types_mapper={pa.bool_(): pd.BooleanDtype()}.get)
+        elif pa.types.is_floating(column.type) and pc.any(pc.is_nan(column)).as_py():
+            # pandas turns null into NaN; a stored NaN is reported apart (values-nan-missing)
+            frame[name] = pd.Series(pd.arrays.ArrowExtensionArray(column), index=frame.index)
     if fmt == "csv" and time in frame.columns:
         frame[time] = integer_text_to_int(frame[time])
     return frame[wanted]
@@ -258,9 +353,12 @@ def _arrow_csv(
     )
     parse = pacsv.ParseOptions(delimiter=delimiter, newlines_in_values=False)
     read = pacsv.ReadOptions(block_size=1 << 24)
+    source = _text_stream(path) if path.suffix.lower() == ".xz" else path
     try:
-        table = pacsv.read_csv(path, read_options=read, parse_options=parse,
+        table = pacsv.read_csv(source, read_options=read, parse_options=parse,
                                convert_options=convert)
+    except (lzma.LZMAError, EOFError) as err:
+        raise InputError(f"{path}: cannot decompress as xz: {_short(err)}") from None
     except pa.ArrowInvalid as err:
         text = str(err)
         if "invalid UTF8" in text:
@@ -268,6 +366,9 @@ def _arrow_csv(
         if "Empty CSV file" in text:
             raise InputError(f"{path}: no data rows, only a header") from None
         raise InputError(f"{path}: cannot parse as CSV: {_short(err)}") from None
+    finally:
+        if source is not path:
+            source.close()
     # Arrow reads a column holding bytes that are not UTF-8 as binary; pandas would
     # then fail on it far from here, so say where the bad bytes are instead
     if any(pa.types.is_binary(t) or pa.types.is_large_binary(t) for t in table.schema.types):
@@ -279,7 +380,7 @@ def _not_utf8(path: Path) -> str:
     """One line naming the first byte of ``path`` that is not UTF-8 text, by line number."""
     decoder = codecs.getincrementaldecoder("utf-8")()
     line, offset = 1, 0
-    with pa.input_stream(str(path), compression="detect") as handle:
+    with _text_stream(path) as handle:
         while block := handle.read(1 << 20):
             if offset == 0 and block[:2] in (codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE):
                 return f"{path}: is UTF-16 text, not UTF-8; save the file as UTF-8"

@@ -14,6 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from panelprep.checks.context import to_float
 from panelprep.errors import InputError
 from panelprep.index import PanelIndex
 
@@ -76,8 +77,17 @@ def shifted_values(index: PanelIndex, values: np.ndarray, k: int) -> np.ndarray:
     return out
 
 
-def add_shifts(frame: pd.DataFrame, index: PanelIndex, shifts: list[Shift]) -> pd.DataFrame:
-    """A copy of ``frame`` with one new float column per shift."""
+def add_shifts(
+    frame: pd.DataFrame, index: PanelIndex, shifts: list[Shift], decimal_comma: bool = False,
+    missing_tokens: tuple[str, ...] = (),
+) -> pd.DataFrame:
+    """A copy of ``frame`` with one new float column per shift.
+
+    The variable is read as the audit reads it: declared ``missing_tokens``,
+    NaN and empty fields are missing, ``decimal_comma`` applies; any other
+    text in it stops the run (``InputError``) rather than becoming a missing
+    lag unreported.
+    """
     if not shifts:
         return frame
     out = frame.copy()
@@ -86,10 +96,14 @@ def add_shifts(frame: pd.DataFrame, index: PanelIndex, shifts: list[Shift]) -> p
             raise InputError(f"--{shift.kind} {shift.variable!r}: no such column")
         if shift.name in frame.columns:
             raise InputError(f"--{shift.kind} would create {shift.name!r}, which already exists")
-        try:
-            values = pd.to_numeric(frame[shift.variable]).to_numpy(dtype=np.float64, na_value=np.nan)
-        except (ValueError, TypeError):
-            raise InputError(f"--{shift.kind} {shift.variable!r}: the column is not numeric") from None
+        values, problem = to_float(frame[shift.variable], shift.variable, decimal_comma,
+                                    tuple(missing_tokens))
+        if problem is not None and len(problem.rows):
+            shown = ", ".join(repr(v) for v in problem.values[:3])
+            raise InputError(
+                f"--{shift.kind} {shift.variable!r}: {len(problem.rows):,} value(s) of the column "
+                f"are not numbers (e.g. {shown}); declare texts that mean missing with "
+                "--missing-token, or use --decimal-comma if ',' is the decimal mark")
         if shift.kind == "lag":
             out[shift.name] = shifted_values(index, values, shift.k)
         elif shift.kind == "lead":

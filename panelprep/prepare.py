@@ -174,7 +174,8 @@ def prepare_frame(
             flow.frame, removal = merge_means(flow.frame, flow.index, ctx.values, ctx.variables)
             flow.apply(removal)
     if options.shifts:
-        flow.frame = add_shifts(flow.frame, flow.index, options.shifts)
+        flow.frame = add_shifts(flow.frame, flow.index, options.shifts,
+                                read_options.decimal_comma, read_options.missing_tokens)
     # after the lags, so a lag at the window's first period may reach before it
     flow.apply(window_removal(flow.index, policies.window))
 

@@ -29,10 +29,17 @@ FREQUENCIES = ("year", "quarter", "month", "week", "day", "int")
 _PATTERNS: dict[str, re.Pattern[str]] = {
     # whole numbers, also as written by tools that store years as floats ("1935.0")
     "int": re.compile(r"^\s*-?\d{1,9}(?:\.0*)?\s*$"),
-    "quarter": re.compile(r"^\s*(\d{4})\s*[-_ ]?[Qq]([1-4])\s*$"),
+    # any digit after the Q, so 2021Q5 is a quarter label with no such quarter
+    "quarter": re.compile(r"^\s*(\d{4})\s*[-_ ]?[Qq](\d{1,2})\s*$"),
     "month": re.compile(r"^\s*(\d{4})(?:-|/|M|m)(\d{1,2})\s*$"),
     "week": re.compile(r"^\s*(\d{4})-?W(\d{2})\s*$"),
 }
+
+# a number with a decimal fraction (2000.5, 2021.1): never a period, a date or a month
+_FRACTION = re.compile(r"^\s*[-+]?\d*\.\d*[1-9]\d*\s*$")
+_WAYS = ("a time value with a decimal fraction is read neither as a date nor as a month or "
+         "quarter; write whole-number periods (2001), dates (2001-06-30) or labels like "
+         "2001Q3, 2001-03, 2001-W07")
 
 # a UTC offset (Z, +01:00, -0500) written after a time of day
 _UTC_OFFSET = re.compile(r"^(?P<wall>.*\d{2}:\d{2}(?::\d{2}(?:\.\d+)?)?)\s*(?:Z|[+-]\d{2}(?::?\d{2})?)$")
@@ -64,6 +71,12 @@ class TimeAxis:
         Rows whose value is not on the grid (placed in the containing period).
     inferred : bool
         Whether ``freq`` was inferred rather than given.
+    instant : ndarray of int64, shape (n,), or None
+        One code per distinct moment the time values denote, so rows that
+        spell the same moment differently (``2021-01-31`` and
+        ``2021-01-31T00:00:00``, ``2001`` and ``2001.0``) share a code and
+        two moments inside one period (an off-grid date) do not; meaningless
+        where ``missing``.  Exact repeats are judged on it, not on the text.
     """
 
     freq: str
@@ -73,6 +86,7 @@ class TimeAxis:
     missing: np.ndarray
     off_grid: np.ndarray
     inferred: bool
+    instant: np.ndarray | None = None
 
     @property
     def name(self) -> str:
@@ -111,23 +125,26 @@ def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "t
         uniques.dtype
     ):
         stripped = pd.Series(np.asarray(uniques, dtype=object)).astype(str).str.strip()
-        blank = (stripped == "").to_numpy()
+        # blank strings, and NaN written as text, are missing keys as a null or a stored NaN
+        # is, not parse failures
+        blank = ((stripped == "") | stripped.str.fullmatch(r"[-+]?[nN][aA][nN]")).to_numpy()
         if blank.any():
-            # blank strings are missing keys, not parse failures
             missing = missing | np.isin(codes, np.flatnonzero(blank))
     else:
         blank = np.zeros(len(uniques), dtype=bool)
 
-    _, uniq_ord, uniq_off, step, base, found_freq = _parse_uniques(
+    _, uniq_ord, uniq_off, step, base, found_freq, uniq_instant = _parse_uniques(
         uniques, blank, freq, codes, column
     )
     safe = np.where(codes < 0, 0, codes)
     if len(uniq_ord) == 0:
         ordinal = np.zeros(len(codes), dtype=np.int64)
         off = np.zeros(len(codes), dtype=bool)
+        instant = np.zeros(len(codes), dtype=np.int64)
     else:
         ordinal = uniq_ord[safe]
         off = uniq_off[safe] & ~missing
+        instant = pd.factorize(uniq_instant)[0].astype(np.int64)[safe]
     return TimeAxis(
         freq=found_freq,
         step=step,
@@ -136,6 +153,7 @@ def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "t
         missing=missing,
         off_grid=off,
         inferred=freq is None,
+        instant=instant,
     )
 
 
@@ -148,11 +166,19 @@ def _first_row(codes: np.ndarray, unique_position: int) -> int:
     return int(np.flatnonzero(codes == unique_position)[0]) + 1
 
 
+def _nanoseconds(stamps: pd.DatetimeIndex) -> np.ndarray:
+    return stamps.values.astype("datetime64[ns]").astype(np.int64)
+
+
 def _parse_uniques(uniques, blank, freq, codes, column):
-    """Return (kind, ordinals, off_grid, step, base, freq) for distinct values."""
+    """Return (kind, ordinals, off_grid, step, base, freq, instants) for distinct values.
+
+    ``instants`` are int64 keys equal for values that denote the same moment.
+    """
     n = len(uniques)
     if n == 0 or blank.all():
-        return "empty", np.zeros(n, np.int64), np.zeros(n, bool), 1, 0, freq or "int"
+        return ("empty", np.zeros(n, np.int64), np.zeros(n, bool), 1, 0, freq or "int",
+                np.zeros(n, np.int64))
     if pd.api.types.is_bool_dtype(uniques.dtype):
         raise TimeParseError(f"time column {column!r} holds true/false values, not periods")
     if pd.api.types.is_numeric_dtype(uniques.dtype):
@@ -162,7 +188,7 @@ def _parse_uniques(uniques, blank, freq, codes, column):
             k = int(np.flatnonzero(bad)[0])
             raise TimeParseError(
                 f"time column {column!r}: value {_shown(uniques[k])} at row {_first_row(codes, k)} "
-                "is not a whole-number period"
+                f"is not a whole-number period: {_WAYS}"
             )
         # integers are taken as stored (through float64 two large ones could merge);
         # a float period must be a whole number float64 holds exactly
@@ -177,14 +203,14 @@ def _parse_uniques(uniques, blank, freq, codes, column):
         whole = (np.asarray(uniques, dtype=np.int64)
                  if pd.api.types.is_integer_dtype(uniques.dtype) else nums.astype(np.int64))
         rows = np.bincount(codes[codes >= 0], minlength=n)
-        return ("int", *_integer_grid(whole, freq, column, rows))
+        return ("int", *_integer_grid(whole, freq, column, rows), whole)
     if pd.api.types.is_datetime64_any_dtype(uniques.dtype):
         stamps = pd.DatetimeIndex(uniques)
         if stamps.tz is not None:
             # the period is the calendar date as recorded: converting to UTC first would
             # put midnight, New Year's Day in Berlin into the previous day and year
             stamps = stamps.tz_localize(None)
-        return ("date", *_date_grid(stamps, freq, column))
+        return ("date", *_date_grid(stamps, freq, column), _nanoseconds(stamps))
     return _parse_strings(uniques, blank, freq, codes, column)
 
 
@@ -238,6 +264,14 @@ def _integer_step(values: np.ndarray, rows: np.ndarray) -> int:
 
 def _parse_strings(uniques, blank, freq, codes, column):
     text = pd.Series(np.asarray(uniques, dtype=object)).astype(str)
+    fraction = text.str.fullmatch(_FRACTION.pattern).to_numpy() & ~blank
+    if fraction.any():
+        # pandas would read 2000.5 as a date in May and 2021.1 as a month: refuse instead
+        k = int(np.flatnonzero(fraction)[0])
+        raise TimeParseError(
+            f"time column {column!r}: value {text[k]!r} at row {_first_row(codes, k)} "
+            f"is not a whole-number period: {_WAYS}"
+        )
     for kind in ("int", "quarter", "month", "week"):
         matched = text.str.fullmatch(_PATTERNS[kind].pattern).to_numpy() | blank
         if matched.all():
@@ -270,7 +304,7 @@ def _string_grid(kind, text, blank, freq, codes, column):
         full_ord = np.zeros(n, np.int64)
         full_off = np.zeros(n, bool)
         full_ord[~blank], full_off[~blank] = ordinal, off
-        return "int", full_ord, full_off, step, base, found
+        return "int", full_ord, full_off, step, base, found, nums
     if freq is not None and freq != kind:
         k = int(np.flatnonzero(~blank)[0])
         raise TimeParseError(
@@ -290,6 +324,13 @@ def _string_grid(kind, text, blank, freq, codes, column):
             )
         ordinal = year * 12 + sub - 1
     elif kind == "quarter":
+        bad = ((sub < 1) | (sub > 4)) & ~blank
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            raise TimeParseError(
+                f"time column {column!r}: value {text[k]!r} at row {_first_row(codes, k)} "
+                "has no such quarter (quarters are Q1 to Q4)"
+            )
         ordinal = year * 4 + sub - 1
     else:
         bad = ((sub < 1) | (sub > 53)) & ~blank
@@ -305,7 +346,8 @@ def _string_grid(kind, text, blank, freq, codes, column):
         )
         days = (monday.values.astype("datetime64[D]").astype(np.int64))
         ordinal = (days + _EPOCH_WEEKDAY) // 7
-    return kind, ordinal.astype(np.int64), np.zeros(n, bool), 1, 0, kind
+    ordinal = ordinal.astype(np.int64)
+    return kind, ordinal, np.zeros(n, bool), 1, 0, kind, ordinal
 
 
 def _date_strings(text, blank, freq, codes, column):
@@ -325,7 +367,7 @@ def _date_strings(text, blank, freq, codes, column):
         stamps = stamps.tz_localize(None)
     stamps = stamps.where(~blank, stamps[~blank][0])
     ordinal, off, step, base, found = _date_grid(stamps, freq, column)
-    return "date", ordinal, off, step, base, found
+    return "date", ordinal, off, step, base, found, np.where(blank, 0, _nanoseconds(stamps))
 
 
 def _date_grid(stamps: pd.DatetimeIndex, freq: str | None, column: str):
@@ -348,8 +390,11 @@ def _date_grid(stamps: pd.DatetimeIndex, freq: str | None, column: str):
         "week": weekday,
         "day": np.zeros(len(days), np.int64),
     }
+    # two spellings of one moment (2021-01-31, 2021-01-31T00:00:00) are one date, not two
+    # votes: inference and the grid's phase count each moment once
+    moments = np.unique(_nanoseconds(stamps), return_index=True)[1]
     if freq is None:
-        freq = _infer_date_freq(phases)
+        freq = _infer_date_freq({name: phase[moments] for name, phase in phases.items()})
     if freq == "year":
         ordinal = year
     elif freq == "quarter":
@@ -363,7 +408,7 @@ def _date_grid(stamps: pd.DatetimeIndex, freq: str | None, column: str):
     else:
         ordinal = days
     phase = phases[freq]
-    off = (phase != _mode(phase)) | (time_of_day != _mode(time_of_day))
+    off = (phase != _mode(phase[moments])) | (time_of_day != _mode(time_of_day[moments]))
     return ordinal.astype(np.int64), off, 1, 0, freq
 
 

@@ -36,6 +36,7 @@ DEFAULT_SEVERITY = {
     "entity-single-obs": "warning",
     "values-not-numeric": "error",
     "values-declared-missing": "info",
+    "values-nan-missing": "warning",
     "values-missing": "info",
     "sample-new-singletons": "warning",
     "var-fixed-within": "warning",

@@ -40,6 +40,7 @@ BROKEN = {
     "entity-single-obs": ("singletons.csv", ()),
     "values-not-numeric": ("non_numeric.csv", ()),
     "values-declared-missing": ("non_numeric.csv", ("n/a", "-")),
+    "values-nan-missing": ("messages/nan_values.csv", ()),
     "values-missing": ("missing_values.csv", ()),
     "sample-new-singletons": ("missing_values.csv", ()),
     "var-fixed-within": ("time_invariant.csv", ()),

@@ -231,3 +231,21 @@ def test_never_raises_on_any_data(firm_year, data, n):
     findings = check_contract(frame, firm_year)
     assert all(f.id == FINDING_ID and f.count >= 1 for f in findings)
     json.dumps([f.to_dict() for f in findings], allow_nan=False)
+
+
+def test_nan_stored_in_parquet_is_null_to_the_contract(tmp_path):
+    # read_frame keeps a Parquet float column holding NaN in Arrow's type, where NaN is not
+    # null; a contract that does not coerce must still see it as missing, as the audit does
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    contract = tmp_path / "plain.yaml"
+    contract.write_text(yaml.safe_dump({"schema_type": "dataframe", "coerce": False, "columns": {
+        "sales": {"dtype": "float64", "nullable": True,
+                  "checks": {"greater_than_or_equal_to": 0}}}}), encoding="utf-8")
+    pq.write_table(pa.table({"firm_id": ["F01", "F01", "F02", "F02"], "year": [2001, 2002] * 2,
+                             "sales": pa.array([10.0, float("nan"), None, 3.0], pa.float64())}),
+                   tmp_path / "nan.parquet")
+    read = read_frame(tmp_path / "nan.parquet", None, ["firm_id"], "year")
+    assert isinstance(read["sales"].dtype, pd.ArrowDtype)
+    assert check_contract(read, load_contract(contract)) == []

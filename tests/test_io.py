@@ -183,15 +183,18 @@ def test_float_years_written_by_pandas_read_as_years(tmp_path):
             from_frame.variables[name]["sd_within"], rel=1e-12)
 
 
-def test_nan_and_inf_texts_are_reported_not_read_as_numbers(tmp_path):
+def test_inf_text_is_not_a_number_and_nan_text_is_missing_reported_apart(tmp_path):
     path = write(tmp_path, "p.csv", "id,year,x\na,1,1.0\na,2,inf\nb,1,NaN\nb,2,3\nb,3,\n")
     report = audit_file(path, "id", "year")
     finding = report.finding("values-not-numeric")
-    assert sorted(e["value"] for e in finding.examples) == ["NaN", "inf"]
-    # the empty field is the only missing value that needs no declaration
+    assert [e["value"] for e in finding.examples] == ["inf"]
+    nan = report.finding("values-nan-missing")
+    assert (nan.count, nan.examples) == (1, [{"column": "x", "row": 3}])
+    # the empty field needs no declaration and no finding of its own
     assert report.finding("values-missing").details["per_variable"] == {"x": 3}
     declared = audit_file(path, "id", "year", options=ReadOptions(missing_tokens=("NaN", "inf")))
     assert declared.finding("values-not-numeric") is None
+    assert declared.finding("values-nan-missing") is None
     assert declared.finding("values-declared-missing").count == 2
 
 
@@ -223,3 +226,38 @@ def test_ragged_csv_is_an_input_error(tmp_path):
     path = write(tmp_path, "p.csv", "id,year,x\na,2001,1\na,2002,2,9\n")
     with pytest.raises(InputError, match="cannot parse as CSV"):
         read_frame(path, None, ["id"], "year")
+
+
+def test_bracketed_column_names_are_a_csv_header(tmp_path):
+    path = tmp_path / "brackets.csv"
+    path.write_text("[firm],[year],[sales]\na,2001,1\n", encoding="utf-8")
+    assert column_names(path) == ["[firm]", "[year]", "[sales]"]
+
+
+@pytest.mark.parametrize("first", ['[{"firm": "a", "year": 2001}]', "[", '{"rows": []}',
+                                   "<!DOCTYPE html>", "<html lang=en>", '<?xml version="1.0"?>'])
+def test_json_xml_and_html_under_a_csv_name_are_named(tmp_path, first):
+    path = tmp_path / "notes.csv"
+    path.write_text(first + "\n" + "x" * 2000 + "\n", encoding="utf-8")
+    with pytest.raises(InputError, match="does not look like CSV column names") as err:
+        column_names(path)
+    assert len(str(err.value)) < 300
+
+
+def test_many_duplicate_names_give_a_short_message(tmp_path):
+    path = tmp_path / "wide.csv"
+    names = [f"column_with_a_rather_long_name_{i % 40:02d}_" + "z" * 30 for i in range(400)]
+    path.write_text(",".join(names) + "\n" + ",".join("1" * 400) + "\n", encoding="utf-8")
+    with pytest.raises(ColumnError, match="duplicate column names .* and 35 more") as err:
+        column_names(path)
+    assert len(str(err.value)) < 400
+
+
+def test_xz_csv_reads_like_the_plain_csv(tmp_path):
+    import lzma
+
+    (tmp_path / "panel.csv").write_text(PANEL, encoding="utf-8")
+    (tmp_path / "panel.csv.xz").write_bytes(lzma.compress(PANEL.encode()))
+    plain = read_frame(tmp_path / "panel.csv", None, ["firm_id"], "year")
+    packed = read_frame(tmp_path / "panel.csv.xz", None, ["firm_id"], "year")
+    pd.testing.assert_frame_equal(plain, packed)

@@ -165,5 +165,5 @@ def test_add_shifts_refuses_bad_columns():
         add_shifts(frame, index, [Shift("missing", 1, "lag")])
     with pytest.raises(InputError, match="already exists"):
         add_shifts(frame, index, [Shift("x", 1, "lag")])
-    with pytest.raises(InputError, match="not numeric"):
+    with pytest.raises(InputError, match="are not numbers"):
         add_shifts(frame, index, [Shift("label", 1, "lag")])

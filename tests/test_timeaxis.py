@@ -234,3 +234,44 @@ def test_missing_and_blank_values_are_missing_not_errors():
 def test_true_false_is_not_a_period():
     with pytest.raises(TimeParseError, match="true/false"):
         axis_of([True, False])
+
+
+@pytest.mark.parametrize("values", [
+    ["2000.5", "2001.5", "2002.5", "2003.5"],        # pandas reads these as dates in May
+    ["2021.1", "2021.2", "2021.3", "2021.4", "2022.1"],  # and these as months
+    ["2001.0", "2002.0", "2002.25"],
+])
+@pytest.mark.parametrize("freq", [None, "month", "quarter", "day"])
+def test_decimal_fractions_are_never_dates_or_months(values, freq):
+    with pytest.raises(TimeParseError, match=r"'20\d\d\.\d+' at row \d is not a whole-number"):
+        axis_of(values, freq)
+
+
+def test_whole_number_texts_with_point_zero_stay_whole_numbers():
+    axis = axis_of(["2001.0", "2002.", "2003"])
+    assert axis.name == "year" and axis.label(axis.ordinal) == ["2001", "2002", "2003"]
+
+
+@pytest.mark.parametrize("label, row", [("2021Q5", 2), ("2021Q0", 2), ("2021 Q9", 2)])
+def test_no_such_quarter_names_row_and_value(label, row):
+    with pytest.raises(TimeParseError, match=rf"'{label}' at row {row} has no such quarter"):
+        axis_of(["2021Q4", label, "2022Q1"])
+
+
+def test_two_spellings_of_one_date_are_one_moment():
+    axis = axis_of(["2021-01-31", "2021-01-31T00:00:00", "2021-02-28", "2021-03-31"])
+    # counted once, the three month ends make a monthly grid with nothing off it
+    assert axis.name == "month" and not axis.off_grid.any()
+    assert axis.instant[0] == axis.instant[1] != axis.instant[2]
+
+
+def test_two_dates_in_one_period_are_two_moments():
+    axis = axis_of(["2021-01-31", "2021-01-15", "2021-02-28", "2021-03-31"])
+    assert axis.ordinal[0] == axis.ordinal[1] and axis.instant[0] != axis.instant[1]
+
+
+def test_nan_text_is_a_missing_time_value_as_a_stored_nan_is():
+    text = axis_of(["2001", "nan", "2002", "NaN"])
+    stored = axis_of([2001.0, np.nan, 2002.0, np.nan])
+    assert text.missing.tolist() == stored.missing.tolist() == [False, True, False, True]
+    assert text.name == stored.name == "year"

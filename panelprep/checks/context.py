@@ -32,6 +32,8 @@ from panelprep.variation import variation_table
 # every whole number below 2^53 in magnitude is exact in float64; from there on some are not
 _EXACT_INTEGER = 2.0**53
 _NUMBER = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
+# NaN as text, as Python, numpy and pandas write it (nan, NaN, -nan)
+_NAN_TEXT = re.compile(r"^\s*[-+]?[nN][aA][nN]\s*$")
 
 
 @dataclass(frozen=True)
@@ -58,12 +60,19 @@ class Thresholds:
 
 @dataclass(frozen=True)
 class NonNumeric:
-    """Text found in a variable that should be numeric."""
+    """Text found in a variable that should be numeric, and values read as missing.
+
+    ``rows`` are the positions of values that are not numbers;
+    ``read_as_missing`` counts declared missing tokens; ``nan_rows`` are the
+    positions of NaN values read as missing (the text ``nan`` in CSV, a NaN
+    stored in a Parquet or Arrow float column).
+    """
 
     column: str
     rows: np.ndarray
     values: list[str]
     read_as_missing: int
+    nan_rows: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
 
 
 @dataclass(eq=False)
@@ -83,7 +92,7 @@ class AuditContext:
         values = np.empty((n, k), dtype=np.float64, order="F")
         bad: dict[str, NonNumeric] = {}
         for j, name in enumerate(self.variables):
-            values[:, j], problem = _to_float(
+            values[:, j], problem = to_float(
                 self.frame[name], name, self.decimal_comma, self.missing_tokens
             )
             if problem is not None:
@@ -129,6 +138,12 @@ class AuditContext:
             # count is the same whether the file was read whole or only in part
             columns = [*self.index.entity, self.index.time, *self.variables]
             subset = self.frame[columns].iloc[candidates]
+            instant = self.index.axis.instant
+            if instant is not None:
+                # the time value as the moment it denotes: 2021-01-31 and 2021-01-31T00:00:00
+                # on otherwise identical rows are an exact repeat, not a conflict
+                subset = subset.copy()
+                subset[self.index.time] = instant[candidates]
             repeat[candidates] = subset.duplicated(keep="first").to_numpy()
         remaining = candidates[~repeat[candidates]]
         cell_left = self.index.cell[remaining]
@@ -240,7 +255,7 @@ def _plain(value: object) -> object:
     return str(value)
 
 
-def _to_float(
+def to_float(
     values: pd.Series, name: str, decimal_comma: bool, missing_tokens: tuple[str, ...]
 ) -> tuple[np.ndarray, NonNumeric | None]:
     """Numeric view of a column; text that is not a number becomes NaN and is reported.
@@ -250,22 +265,29 @@ def _to_float(
     magnitude is usable: second moments are taken on centred, scaled columns
     (``_scale.standardise``).  Declared missing
     tokens that are numbers (``-999``) also apply to a column already stored
-    as numbers.
+    as numbers.  NaN is missing, and reported apart from the empty field:
+    the text ``nan`` (any case, a sign allowed) and a NaN that a column
+    keeps apart from its nulls (``double[pyarrow]``, as ``io.read_frame``
+    reads a Parquet float column holding NaN).  In a plain float64 column
+    NaN is how pandas writes missing, so it is simply missing there.
+    Booleans are 0 and 1 (nulls missing).
     """
     if pd.api.types.is_bool_dtype(values.dtype):
-        return values.astype(np.float64).to_numpy(), None
+        return values.to_numpy(dtype=np.float64, na_value=np.nan), None
     if pd.api.types.is_numeric_dtype(values.dtype):
         out = values.to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
         token_missing = np.isin(out, _numeric_tokens(missing_tokens, decimal_comma))
+        nan = np.isnan(out) & values.notna().to_numpy()
         unusable = np.isinf(out)
         unusable |= _inexact_integers(values, out)
         bad_rows = np.flatnonzero(unusable)
-        if len(bad_rows) == 0 and not token_missing.any():
+        if len(bad_rows) == 0 and not token_missing.any() and not nan.any():
             return out, None
         out[token_missing | unusable] = np.nan
         shown = list(dict.fromkeys(str(v) for v in values.iloc[bad_rows[:200]]))[:10]
         return out, NonNumeric(
-            column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum())
+            column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum()),
+            nan_rows=np.flatnonzero(nan),
         )
     text = values.astype("str")
     present = values.notna().to_numpy()
@@ -274,6 +296,8 @@ def _to_float(
         stripped = stripped.str.replace(",", ".", regex=False)
     is_number = stripped.str.fullmatch(_NUMBER.pattern).fillna(False).to_numpy(dtype=bool)
     token_missing = text.str.strip().isin(list(missing_tokens)).to_numpy() & present
+    nan = stripped.str.fullmatch(_NAN_TEXT.pattern).fillna(False).to_numpy(dtype=bool)
+    nan = nan & present & ~token_missing
     blank = (stripped == "").to_numpy() & present
     out = np.full(len(values), np.nan)
     out[is_number] = stripped[is_number].astype(np.float64).to_numpy()
@@ -281,12 +305,13 @@ def _to_float(
     # "1e400" reads as infinity: unusable, not a number
     is_number &= ~np.isinf(out)
     out[token_missing | ~is_number] = np.nan
-    bad_rows = np.flatnonzero(present & ~is_number & ~token_missing & ~blank)
-    if len(bad_rows) == 0 and not token_missing.any():
+    bad_rows = np.flatnonzero(present & ~is_number & ~token_missing & ~blank & ~nan)
+    if len(bad_rows) == 0 and not token_missing.any() and not nan.any():
         return out, None
     shown = list(dict.fromkeys(text.iloc[bad_rows[:200]].tolist()))[:10]
     return out, NonNumeric(
-        column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum())
+        column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum()),
+        nan_rows=np.flatnonzero(nan),
     )
 
 

@@ -39,7 +39,7 @@ def not_numeric(ctx: AuditContext, self: Check):
 
 _LONG_INTEGER = re.compile(r"^\s*[-+]?\d{16,}\s*$")
 _COMMA_NUMBER = re.compile(r"^\s*[-+]?\d*,\d+\s*$")
-_NOT_FINITE = re.compile(r"^\s*[-+]?(inf|infinity|nan)\s*$", re.IGNORECASE)
+_NOT_FINITE = re.compile(r"^\s*[-+]?(inf|infinity)\s*$", re.IGNORECASE)
 
 
 def _beyond_float(value: str) -> bool:
@@ -55,7 +55,7 @@ def _hints(values: list[str], decimal_comma: bool) -> list[str]:
     if any(_LONG_INTEGER.match(v) for v in values):
         hints.append("whole numbers beyond 2^53 cannot be held exactly as float64")
     if any(_NOT_FINITE.match(v) for v in values):
-        hints.append("infinite and NaN values are not usable numbers")
+        hints.append("infinite values are not usable numbers")
     elif any(_beyond_float(v) for v in values):
         hints.append("magnitudes beyond about 1.8e308 do not fit float64: rescale")
     if not decimal_comma and any(_COMMA_NUMBER.match(v) for v in values):
@@ -76,6 +76,27 @@ def declared_missing(ctx: AuditContext, self: Check):
         "were read as missing",
         [{"column": name, "rows": count} for name, count in hits.items()],
         {"per_variable": hits},
+    )
+
+
+@check("values-nan-missing", "warning",
+       "NaN values (the text nan in CSV, NaN stored in a Parquet or Arrow float column) "
+       "read as missing")
+def nan_missing(ctx: AuditContext, self: Check):
+    hits = {name: p.nan_rows for name, p in ctx.non_numeric.items() if len(p.nan_rows)}
+    if not hits:
+        return None
+    total = sum(len(rows) for rows in hits.values())
+    examples = [{"column": name, "row": int(row) + 1}
+                for name, rows in hits.items() for row in rows[:MAX_EXAMPLES]][:MAX_EXAMPLES]
+    names = ", ".join(f"{name} ({len(rows)})" for name, rows in hits.items())
+    return self.finding(
+        total,
+        f"{total} NaN value(s) read as missing in {names}; NaN is often the result of a failed "
+        "computation (0/0) upstream rather than a value never observed: check where it comes "
+        "from (--severity values-nan-missing=info when NaN is how the source writes missing)",
+        examples,
+        {"per_variable": {name: len(rows) for name, rows in hits.items()}},
     )
 
 
@@ -176,6 +197,7 @@ def period_invariant(ctx: AuditContext, self: Check):
 CHECKS = [
     not_numeric,
     declared_missing,
+    nan_missing,
     missing_values,
     new_singletons,
     time_invariant,
