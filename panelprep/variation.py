@@ -83,7 +83,7 @@ def within_measures(row: dict) -> dict[str, float | None]:
       ``var-thin-within`` check compares with ``Thresholds.low_within_ratio``;
     * ``within_variance_share`` = sd_within^2 / (sd_within^2 + sd_between^2),
       the share of the variance that lies within entities (between share =
-      1 - within share).
+      1 - within variance share).
 
     Each is None when an SD it needs is missing, or when its denominator is
     zero up to 1e-12 times the variable's largest absolute value.

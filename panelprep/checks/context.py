@@ -42,7 +42,7 @@ class Thresholds:
     """Tunable limits of the checks.
 
     low_within_ratio : a variable is reported as thin within entities when
-        within SD / overall SD is below this (default 0.05).
+        its within SD ratio (within SD / overall SD) is below this (default 0.05).
     constant_rtol : a group counts as constant in a variable when the root
         mean square deviation from its mean is at most this times the
         variable's largest absolute value (default 1e-9).
