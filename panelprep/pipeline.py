@@ -20,7 +20,14 @@ from panelprep._version import __version__
 from panelprep.checks import CHECKS, SAMPLE_CHECKS, AuditContext, Thresholds
 from panelprep.checks.context import looks_numeric
 from panelprep.errors import ColumnError, InputError
-from panelprep.findings import SEVERITIES, SKIPPED_COLUMNS_ID, Finding, apply_severities, gate
+from panelprep.findings import (
+    SEVERITIES,
+    SKIPPED_COLUMNS_ID,
+    Finding,
+    apply_severities,
+    gate,
+    severity_rank,
+)
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
@@ -77,7 +84,9 @@ class AuditReport:
     policies: list[str] = field(default_factory=list)
 
     def finding(self, finding_id: str) -> Finding | None:
-        return next((f for f in self.findings if f.id == finding_id), None)
+        """The finding with this id that counts (one resolved by a policy only when alone)."""
+        found = [f for f in self.findings if f.id == finding_id]
+        return next((f for f in found if f.resolved_by is None), found[0] if found else None)
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -224,11 +233,13 @@ def judge_final_sample(
     depend on the sample (``SAMPLE_CHECKS``) run again on the context
     narrowed after each stage (shared arrays, no per-entity loops):
 
-    * a finding of the estimation sample that is gone after a stage, and
-      stays gone, is kept, marked ``resolved_by`` that stage's policy, and
-      no longer counts for the gate;
-    * any other sample-dependent finding is replaced by its value on the
-      final sample, and one that appears only there is added;
+    * a finding of the estimation sample that is gone after a stage, or
+      there at a lower severity (``panel-shape`` is always there), and stays
+      so, is kept (after the others), marked ``resolved_by`` that stage's
+      policy, and no longer counts for the gate;
+    * every sample-dependent finding of the final sample is there with its
+      values on the final sample, whether the estimation sample had it or
+      not, and counts;
     * findings about the rows read (keys, repeats, values) stay as they are.
 
     ``panel``, ``variables``, the verdict and ``context`` are those of the
@@ -244,20 +255,28 @@ def judge_final_sample(
         found = [c.run(ctx) for c in SAMPLE_CHECKS]
         seen.append({f.id: f for f in apply_severities([f for f in found if f], severities)})
     final = seen[-1]
-    findings = []
+
+    def eased(finding: Finding, found: dict[str, Finding]) -> bool:
+        """Gone from a stage's findings, or there at a lower severity."""
+        later = found.get(finding.id)
+        return later is None or severity_rank(later.severity) < severity_rank(finding.severity)
+
+    findings, resolved = [], []
     for finding in report.findings:
         if finding.id not in on_sample:
             findings.append(finding)
-        elif finding.id in final:
+            continue
+        if finding.id in final:
             findings.append(final[finding.id])
-        else:
-            # the first stage from which the finding stays gone resolved it
-            gone = len(seen)
-            while gone > 0 and finding.id not in seen[gone - 1]:
-                gone -= 1
-            findings.append(replace(finding, resolved_by=stages[gone][0]))
+        if eased(finding, final):
+            # the first stage from which the finding stays eased resolved it
+            stage = len(seen)
+            while stage > 0 and eased(finding, seen[stage - 1]):
+                stage -= 1
+            resolved.append(replace(finding, resolved_by=stages[stage][0]))
     known = {f.id for f in report.findings}
-    findings += [f for f_id, f in final.items() if f_id not in known]
+    # resolved findings last, so a look-up by id finds the one that counts first
+    findings += [f for f_id, f in final.items() if f_id not in known] + resolved
     context = contexts[-1]
     return AuditReport(
         verdict=gate(findings, report.fail_on), fail_on=report.fail_on, findings=findings,

@@ -328,3 +328,24 @@ def test_each_resolved_finding_names_the_stage_that_resolved_it():
     assert judged.panel["entities"] == 1 and judged.panel["rows"] == 4
     assert judged.to_dict()["samples"]["policies"] == ["first", "second"]
     assert judged.verdict == "pass"
+
+
+def test_a_warning_a_policy_eased_is_kept_resolved_beside_the_final_finding():
+    # fixtures/hostile/mistyped_date.csv: one day typed centuries off stretches the day grid
+    # to 182,628 periods (a panel-shape warning); without that row the grid is 10 days
+    from panelprep.pipeline import judge_final_sample
+
+    frame = pd.read_csv(FIXTURES / "hostile" / "mistyped_date.csv", dtype={"firm_id": str})
+    report = panelprep.audit(frame, "firm_id", "day", vars="sales,capital", freq="day")
+    assert report.finding("panel-shape").severity == "warning"
+    typed_off = (frame["day"].str[:4].astype(int) < 2000).to_numpy()
+    assert typed_off.sum() == 1
+    judged = judge_final_sample(report, [("clean.balance = largest-block",
+                                          report.context.sample & ~typed_off)])
+    shapes = [f for f in judged.findings if f.id == "panel-shape"]
+    assert [(f.severity, f.resolved_by) for f in shapes] == [
+        ("info", None), ("warning", "clean.balance = largest-block")]
+    assert "182,628 day periods" in shapes[1].message
+    assert judged.finding("panel-shape") is shapes[0]
+    assert judged.panel["periods"] == 10
+    assert judged.to_dict()["findings"][-1]["resolved_by"] == "clean.balance = largest-block"

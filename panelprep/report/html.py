@@ -472,10 +472,10 @@ def _findings(summary: dict[str, Any]) -> str:
     counts = "".join(f'<div class="count {s}"><b>{n}</b>{s}</div>' for s, n in tally.items())
     if resolved:
         counts += f'<div class="count resolved"><b>{resolved}</b>resolved by a policy</div>'
-    name, definition = sample_words(summary, "findings")
+    _, definition = sample_words(summary, "findings")
     lead = (f"Worst first. The gate fails on {_e(summary.get('fail_on'))} and above. Checks of "
-            f"the sample describe the {_e(name)} sample ({_e(definition)}); checks of keys and "
-            "values describe the rows read.")
+            f"the sample describe {_e(definition)}; checks of keys and values describe the rows "
+            "read.")
     if not found:
         return _section("findings", "Findings",
                         f'<div class="counts">{counts}</div><p class="empty">No findings.</p>',
@@ -502,14 +502,15 @@ def _findings(summary: dict[str, Any]) -> str:
 
 def _panel(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
     panel = summary.get("panel") or {}
-    shape = next((f for f in summary.get("findings") or [] if f.get("id") == "panel-shape"), None)
+    shape = next((f for f in summary.get("findings") or [] if f.get("id") == "panel-shape"
+                  and not f.get("resolved_by")), None)
     details = (shape or {}).get("details") or {}
     span = (f" ({_e(details.get('first_period'))} to {_e(details.get('last_period'))})"
             if details.get("first_period") is not None else "")
     obs = panel.get("obs_per_entity") or {}
     name, definition = sample_words(summary, "panel")
     rows = [
-        ("sample described", f"{_e(name)}: {_e(definition)}"),
+        ("sample described", _e(definition)),
         (f"rows in the {_e(name)} sample",
          f"{_num(panel.get('rows'))} of {_num(panel.get('rows_read'))} read"),
         ("entities", _num(panel.get("entities"))),
@@ -541,7 +542,7 @@ def _panel(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
         body += _figure("picture-obs", _obs_svg(obs_pic),
                         "<b>Rows per entity.</b> How many entities have each number of rows in "
                         "the sample.")
-    return _section("panel", "The panel", body, f"The {_e(name)} sample: {_e(definition)}.")
+    return _section("panel", "The panel", body, f"{_e(definition[:1].upper() + definition[1:])}.")
 
 
 def _variation(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
@@ -575,10 +576,10 @@ def _variation(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
                         "variation inside entities over time and variation across entity means. "
                         "A variable with little within variation is poorly identified by a "
                         "within (fixed-effects) fit.")
-    name, definition = sample_words(summary, "variables")
+    _, definition = sample_words(summary, "variables")
     return _section("variation", "Variation", body,
                     "Spread of each variable overall, between entities and within entities, "
-                    f"on the {_e(name)} sample ({_e(definition)}).")
+                    f"on {_e(definition)}.")
 
 
 def _components(summary: dict[str, Any], pictures: dict[str, Any]) -> str:

@@ -38,7 +38,8 @@ def _table(rows: list[list[str]], right: set[int] = frozenset()) -> list[str]:
 def audit_lines(report: dict[str, Any]) -> list[str]:
     """The audit part of a report (``AuditReport.to_dict()``) as lines of text."""
     keys, panel, source = report["keys"], report["panel"], report["input"]
-    shape = next((f for f in report["findings"] if f["id"] == "panel-shape"), None)
+    shape = next((f for f in report["findings"]
+                  if f["id"] == "panel-shape" and not f.get("resolved_by")), None)
     details = shape.get("details", {}) if shape else {}
     freq = keys["freq"] + (", inferred" if keys.get("freq_inferred") else ", given")
     lines = [
