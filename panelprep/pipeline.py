@@ -56,7 +56,7 @@ def sample_definition(sample: str, policies: Sequence[str] = ()) -> str:
     if sample == ESTIMATION_SAMPLE:
         return f"the estimation sample: {_ESTIMATION_DEFINITION}"
     after = (f"after the post-audit policies {', '.join(policies)}" if policies
-             else "no post-audit policy removed rows")
+             else "(no post-audit policy removed rows)")
     return f"the final sample: the estimation sample {after}; the rows the data files hold"
 
 
