@@ -28,7 +28,7 @@ Keys
 | `contract.schema` | path | none | pandera YAML contract checked before the panel checks |
 | `contract.validate_outputs` | bool | `false` | also check the written data files against the contract |
 | `checks.fail_on` | `error`, `warning` | `error` | lowest severity that fails the gate |
-| `checks.low_within_ratio` | number in [0, 1] | `0.05` | within SD / overall SD below this is reported as thin |
+| `checks.low_within_ratio` | number in [0, 1] | `0.05` | within SD ratio (within SD / overall SD) below this is reported as thin |
 | `checks.constant_rtol` | number in (0, 1) | `1e-09` | constancy tolerance, relative to the variable's largest absolute value |
 | `checks.severity` | table of finding id = `info`, `warning`, `error` | `{}` | severity per finding id, replacing the default |
 | `clean.duplicates` | `fail`, `drop-exact`, `keep-first`, `keep-last`, `mean` | `fail` | what to do with repeated (entity, time) keys |
@@ -396,7 +396,7 @@ _KEYS: dict[str, dict[str, _Key]] = {
         "fail_on": _Key("`error`, `warning`", _choice(FAIL_ON),
                         "lowest severity that fails the gate"),
         "low_within_ratio": _Key("number in [0, 1]", _number(0.0, 1.0, False),
-                                 "within SD / overall SD below this is reported as thin"),
+                                 "within SD ratio (within SD / overall SD) below this is reported as thin"),
         "constant_rtol": _Key("number in (0, 1)", _number(0.0, 1.0, True),
                               "constancy tolerance, relative to the variable's largest "
                               "absolute value"),

@@ -18,14 +18,15 @@ import numpy as np
 from panelprep._groups import group_counts
 from panelprep.checks.context import AuditContext
 from panelprep.index import PanelIndex
+from panelprep.variation import within_measures
 
 MAX_ENTITIES = 200
 MAX_PERIODS = 240
 
 SHARE_DEFINITION = (
-    "within share = sd_within^2 / (sd_within^2 + sd_between^2), from the variation table "
-    "(sd_within with denominator n - N, sd_between the ddof-1 SD of the N entity means); "
-    "between share = 1 - within share"
+    "within variance share = sd_within^2 / (sd_within^2 + sd_between^2), from the variation "
+    "table (sd_within with denominator n - N, sd_between the ddof-1 SD of the N entity means); "
+    "between share = 1 - within variance share"
 )
 THETA_DEFINITION = "theta_i = 1 - sqrt(s2_e / (T_i s2_u + s2_e)), one value per entity"
 
@@ -153,24 +154,18 @@ def _distribution(per_entity: np.ndarray) -> dict[str, list[int]]:
 
 
 def _shares(variation: dict[str, dict]) -> dict[str, dict[str, float | None]]:
-    """Within and between share per variable (``SHARE_DEFINITION``); None when undefined.
+    """Within variance share and between share per variable; None when undefined.
 
-    Undefined means a missing SD, or both SDs zero up to a tolerance of
+    The share is ``variation.within_measures``'s ``within_variance_share``
+    (``SHARE_DEFINITION``), the number the variation table shows under that
+    name; undefined means a missing SD, or both SDs zero up to a tolerance of
     1e-12 times the variable's largest absolute value (squared).
     """
     out: dict[str, dict[str, float | None]] = {}
     for name, row in variation.items():
-        within, between = row.get("sd_within"), row.get("sd_between")
-        scale = max(abs(row.get("min") or 0.0), abs(row.get("max") or 0.0))
-        if within is None or between is None:
-            out[name] = {"within": None, "between": None}
-            continue
-        total = within**2 + between**2
-        if total <= (1e-12 * scale) ** 2:
-            out[name] = {"within": None, "between": None}
-            continue
-        share = min(max(within**2 / total, 0.0), 1.0)
-        out[name] = {"within": share, "between": 1.0 - share}
+        share = within_measures(row)["within_variance_share"]
+        out[name] = ({"within": None, "between": None} if share is None
+                     else {"within": share, "between": 1.0 - share})
     return out
 
 

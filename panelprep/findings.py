@@ -36,6 +36,10 @@ class Finding:
     message : one line for a person.
     examples : at most ``MAX_EXAMPLES`` dicts naming where.
     details : anything else a report may show (JSON-serialisable).
+    resolved_by : the cleaning policy that removed what was found (e.g.
+        ``clean.singletons = drop``), or None.  A resolved finding is kept
+        in the report, describes the sample before that policy, and does
+        not count for the gate.
     """
 
     id: str
@@ -44,6 +48,7 @@ class Finding:
     message: str
     examples: list[dict[str, Any]] = field(default_factory=list)
     details: dict[str, Any] = field(default_factory=dict)
+    resolved_by: str | None = None
 
     def __post_init__(self) -> None:
         if self.severity not in SEVERITIES:
@@ -61,6 +66,8 @@ class Finding:
         }
         if self.details:
             out["details"] = self.details
+        if self.resolved_by is not None:
+            out["resolved_by"] = self.resolved_by
         return out
 
 
@@ -75,7 +82,8 @@ def apply_severities(findings: list[Finding], overrides: dict[str, str]) -> list
 
 
 def gate(findings: list[Finding], fail_on: str = "error") -> str:
-    """``fail`` when any finding is at or above ``fail_on``, else ``pass``."""
+    """``fail`` when any finding not resolved by a policy is at or above ``fail_on``, else ``pass``."""
     threshold = severity_rank(fail_on)
-    failed = any(severity_rank(f.severity) >= threshold for f in findings)
+    failed = any(severity_rank(f.severity) >= threshold for f in findings
+                 if f.resolved_by is None)
     return "fail" if failed else "pass"

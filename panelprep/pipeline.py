@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import sys
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -17,10 +17,17 @@ import numpy as np
 import pandas as pd
 
 from panelprep._version import __version__
-from panelprep.checks import CHECKS, AuditContext, Thresholds
+from panelprep.checks import CHECKS, SAMPLE_CHECKS, AuditContext, Thresholds
 from panelprep.checks.context import looks_numeric
 from panelprep.errors import ColumnError, InputError
-from panelprep.findings import SEVERITIES, SKIPPED_COLUMNS_ID, Finding, apply_severities, gate
+from panelprep.findings import (
+    SEVERITIES,
+    SKIPPED_COLUMNS_ID,
+    Finding,
+    apply_severities,
+    gate,
+    severity_rank,
+)
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
@@ -38,13 +45,31 @@ def _silent(_: str) -> None:
     return None
 
 
+# the samples a report's blocks can describe
+ESTIMATION_SAMPLE = "estimation"
+FINAL_SAMPLE = "final"
+_ESTIMATION_DEFINITION = "keyed rows, exact repeats collapsed, every selected variable present"
+
+
+def sample_definition(sample: str, policies: Sequence[str] = ()) -> str:
+    """One line saying what rows a sample name stands for."""
+    if sample == ESTIMATION_SAMPLE:
+        return f"the estimation sample: {_ESTIMATION_DEFINITION}"
+    after = (f"after the post-audit policies {', '.join(policies)}" if policies
+             else "(no post-audit policy removed rows)")
+    return f"the final sample: the estimation sample {after}; the rows the data files hold"
+
+
 @dataclass(eq=False)
 class AuditReport:
     """What an audit found, with the verdict of the gate.
 
     ``to_dict()`` is the JSON report; ``context`` keeps the shared arrays so
     that a following preparation step reuses the index instead of
-    rebuilding it.
+    rebuilding it.  ``sample`` names the sample that ``panel``,
+    ``variables`` and the sample-dependent findings describe: the
+    ``estimation`` sample of an audit, or the ``final`` sample of a
+    preparation (after the post-audit ``policies`` that removed rows).
     """
 
     verdict: str
@@ -55,9 +80,13 @@ class AuditReport:
     panel: dict[str, Any]
     variables: dict[str, dict]
     context: AuditContext = field(repr=False)
+    sample: str = ESTIMATION_SAMPLE
+    policies: list[str] = field(default_factory=list)
 
     def finding(self, finding_id: str) -> Finding | None:
-        return next((f for f in self.findings if f.id == finding_id), None)
+        """The finding with this id that counts (one resolved by a policy only when alone)."""
+        found = [f for f in self.findings if f.id == finding_id]
+        return next((f for f in found if f.resolved_by is None), found[0] if found else None)
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -69,6 +98,13 @@ class AuditReport:
             "panel": self.panel,
             "findings": [f.to_dict() for f in self.findings],
             "variables": self.variables,
+            "samples": {
+                "panel": self.sample,
+                "findings": self.sample,
+                "variables": self.sample,
+                "definition": sample_definition(self.sample, self.policies),
+                "policies": list(self.policies),
+            },
         }
 
 
@@ -181,6 +217,72 @@ def audit(
         panel=_panel_summary(context),
         variables=context.variation,
         context=context,
+    )
+
+
+def judge_final_sample(
+    report: AuditReport,
+    stages: Sequence[tuple[str, np.ndarray]],
+    severities: dict[str, str] | None = None,
+) -> AuditReport:
+    """The audit judged again on the sample left after the post-audit policies.
+
+    ``stages`` lists, in the order they ran, each post-audit policy that
+    removed rows (a label such as ``clean.singletons = drop``) with the
+    sample it left, a row mask over the audited frame.  The checks that
+    depend on the sample (``SAMPLE_CHECKS``) run again on the context
+    narrowed after each stage (shared arrays, no per-entity loops):
+
+    * a finding of the estimation sample that is gone after a stage, or
+      there at a lower severity (``panel-shape`` is always there), and stays
+      so, is kept (after the others), marked ``resolved_by`` that stage's
+      policy, and no longer counts for the gate;
+    * every sample-dependent finding of the final sample is there with its
+      values on the final sample, whether the estimation sample had it or
+      not, and counts;
+    * findings about the rows read (keys, repeats, values) stay as they are.
+
+    ``panel``, ``variables``, the verdict and ``context`` are those of the
+    final sample.  With no stage, the estimation sample is the final one.
+    """
+    if not stages:
+        return replace(report, sample=FINAL_SAMPLE, policies=[])
+    severities = severities or {}
+    contexts = [report.context.narrowed(mask) for _, mask in stages]
+    on_sample = {c.id for c in SAMPLE_CHECKS}
+    seen = []
+    for ctx in contexts:
+        found = [c.run(ctx) for c in SAMPLE_CHECKS]
+        seen.append({f.id: f for f in apply_severities([f for f in found if f], severities)})
+    final = seen[-1]
+
+    def eased(finding: Finding, found: dict[str, Finding]) -> bool:
+        """Gone from a stage's findings, or there at a lower severity."""
+        later = found.get(finding.id)
+        return later is None or severity_rank(later.severity) < severity_rank(finding.severity)
+
+    findings, resolved = [], []
+    for finding in report.findings:
+        if finding.id not in on_sample:
+            findings.append(finding)
+            continue
+        if finding.id in final:
+            findings.append(final[finding.id])
+        if eased(finding, final):
+            # the first stage from which the finding stays eased resolved it
+            stage = len(seen)
+            while stage > 0 and eased(finding, seen[stage - 1]):
+                stage -= 1
+            resolved.append(replace(finding, resolved_by=stages[stage][0]))
+    known = {f.id for f in report.findings}
+    # resolved findings last, so a look-up by id finds the one that counts first
+    findings += [f for f_id, f in final.items() if f_id not in known] + resolved
+    context = contexts[-1]
+    return AuditReport(
+        verdict=gate(findings, report.fail_on), fail_on=report.fail_on, findings=findings,
+        keys=report.keys, input=report.input, panel=_panel_summary(context),
+        variables=context.variation, context=context, sample=FINAL_SAMPLE,
+        policies=[label for label, _ in stages],
     )
 
 

@@ -50,7 +50,15 @@ from panelprep.io import (
 )
 from panelprep.lags import Shift, add_shifts, parse_shifts
 from panelprep.ledger import Ledger, StepRecord, require_rows
-from panelprep.pipeline import AuditReport, Progress, _silent, audit, load, split_names
+from panelprep.pipeline import (
+    AuditReport,
+    Progress,
+    _silent,
+    audit,
+    judge_final_sample,
+    load,
+    split_names,
+)
 from panelprep.transforms import TRANSFORMS
 
 DEFAULT_TRANSFORMS = ("within", "between", "quasi")
@@ -190,6 +198,27 @@ def prepare_frame(
         missing_tokens=read_options.missing_tokens, input_info=input_info,
         index=flow.index, progress=progress, prior_findings=contract_findings,
     )
+    audited = report.context
+    progress("building the estimation sample")
+    flow.drop(~audited.keyed, "key-missing", "drop rows without a full key")
+    flow.drop(audited.repeat, "exact-repeat", "collapse exact repeated rows")
+    flow.drop(~audited.complete, "listwise-missing",
+              f"listwise deletion over {', '.join(options.variables)}")
+    # the post-audit policies, each with the sample it leaves, so that the
+    # audit is judged on the rows the files will hold
+    stages: list[tuple[str, np.ndarray]] = []
+    if policies.balance != "keep":
+        flow.narrow(balance_removal(flow.index, flow.alive, policies.balance, policies.window),
+                    stages, f"clean.balance = {policies.balance}")
+    if policies.singletons == "drop":
+        flow.narrow(singleton_removal(flow.index, flow.alive, "twoway" in options.transforms),
+                    stages, "clean.singletons = drop")
+    listwise = _listwise_summary(audited)
+    if flow.alive.any():
+        # an emptied sample keeps the estimation sample's report: it fails the
+        # gate, or is refused below
+        report = judge_final_sample(report, stages, severities)
+    del audited
     ctx = report.context
     summary = report.to_dict()
     if report.verdict == "fail":
@@ -198,14 +227,6 @@ def prepare_frame(
         summary["cautions"] = [_gate_caution(report)]
         return Preparation(report, flow.ledger, None, None, summary)
 
-    progress("building the estimation sample")
-    flow.drop(~ctx.keyed, "key-missing", "drop rows without a full key")
-    flow.drop(ctx.repeat, "exact-repeat", "collapse exact repeated rows")
-    flow.drop(~ctx.complete, "listwise-missing",
-              f"listwise deletion over {', '.join(options.variables)}")
-    flow.narrow(balance_removal(flow.index, flow.alive, policies.balance, policies.window))
-    if policies.singletons == "drop":
-        flow.narrow(singleton_removal(flow.index, flow.alive, "twoway" in options.transforms))
     if len(ctx.conflicting_cells):
         raise InputError(
             "conflicting duplicate keys remain but the gate let them through; "
@@ -215,13 +236,11 @@ def prepare_frame(
     require_rows(int(sample.sum()), "cleaning")
     flow.ledger.verify(int(sample.sum()))
 
-    sample_ix = flow.index.subset(sample)
+    # the context is the final sample's (judge_final_sample): its index and block are the files'
+    sample_ix = ctx.sample_index
     codes = sample_ix.entity_codes
     counts = group_counts(codes, sample_ix.n_entities)
-    if np.array_equal(sample, ctx.sample):
-        values = ctx.sample_values
-    else:
-        values = np.asfortranarray(ctx.values[sample])
+    values = ctx.sample_values
     ctx.release_values()
     y, X = values[:, 0], values[:, 1:]
 
@@ -244,7 +263,8 @@ def prepare_frame(
                                    where="output clean")
     summary["findings"] = [f.to_dict() for f in findings]
     summary["verdict"] = gate(findings, options.fail_on)
-    summary["sample"] = _sample_summary(ctx, sample_ix, options)
+    summary["sample"] = {"rows": len(codes), "entities": int(sample_ix.n_entities), **listwise,
+                         "y": options.y, "x": options.x}
     summary["steps"] = [s.to_dict() for s in flow.ledger.story]
     summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
     summary["components"] = components.to_dict()
@@ -347,17 +367,14 @@ class OutputTables:
         return _with_columns(self._key_table.filter(pa.array(multi)), names, block)
 
 
-def _sample_summary(ctx: AuditContext, sample_ix: PanelIndex, options: PrepareOptions) -> dict:
+def _listwise_summary(ctx: AuditContext) -> dict:
+    """What listwise deletion removed from the audited (estimation-sample) context."""
     codes, n = ctx.index.entity_codes, ctx.index.n_entities
     before = group_counts(codes[ctx.base], n) > 0
     after = group_counts(codes[ctx.sample], n) > 0
     return {
-        "rows": len(sample_ix.entity_codes),
-        "entities": int(sample_ix.n_entities),
         "listwise_rows_removed": int((~ctx.complete & ctx.base).sum()),
         "listwise_entities_removed": int((before & ~after).sum()),
-        "y": options.y,
-        "x": options.x,
     }
 
 
@@ -396,10 +413,12 @@ class _Flow:
         self.origin = self.origin[keep]
         self.index = self.index.subset(keep)
 
-    def narrow(self, removal: Removal | None) -> None:
-        """After the audit: a policy's removal narrows ``alive``."""
+    def narrow(self, removal: Removal | None, stages: list[tuple[str, np.ndarray]],
+               policy: str) -> None:
+        """After the audit: a policy's removal narrows ``alive``; ``stages`` gets (policy, alive)."""
         if removal is not None:
             self.drop(removal.mask, removal.reason, removal.step)
+            stages.append((policy, self.alive))
 
     def drop(self, removed: np.ndarray, reason: str, step: str) -> None:
         """Narrow ``alive`` (all rows at first) by ``removed``, recording the rows."""
@@ -433,8 +452,8 @@ def _with_columns(keys: pa.Table, names: list[str], block: np.ndarray) -> pa.Tab
 
 
 def _gate_caution(report: AuditReport) -> str:
-    worst = [f.id for f in report.findings if f.severity in ("error",) or
-             (report.fail_on == "warning" and f.severity == "warning")]
+    worst = [f.id for f in report.findings if f.resolved_by is None and (
+             f.severity == "error" or (report.fail_on == "warning" and f.severity == "warning"))]
     return (f"the gate failed ({', '.join(dict.fromkeys(worst))}); no data files were written. "
             "Fix the input, or state a cleaning policy, and run again.")
 

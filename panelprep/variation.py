@@ -87,3 +87,34 @@ def variation_table(
 def _empty_row() -> dict:
     keys = ("mean", "sd_overall", "sd_between", "sd_within", "min", "max", "varying_share")
     return {"n": 0, **dict.fromkeys(keys), "time_invariant": False, "period_invariant": False}
+
+
+def within_measures(row: dict) -> dict[str, float | None]:
+    """The two within quantities of a variation row, each under its own name.
+
+    * ``within_sd_ratio`` = sd_within / sd_overall, the ratio the
+      ``var-thin-within`` check compares with ``Thresholds.low_within_ratio``;
+    * ``within_variance_share`` = sd_within^2 / (sd_within^2 + sd_between^2),
+      the share of the variance that lies within entities (between share =
+      1 - within variance share).
+
+    Each is None when an SD it needs is missing, or when its denominator is
+    zero up to 1e-12 times the variable's largest absolute value.
+    """
+    within, between, overall = row.get("sd_within"), row.get("sd_between"), row.get("sd_overall")
+    tiny = 1e-12 * max(abs(row.get("min") or 0.0), abs(row.get("max") or 0.0))
+    ratio = share = None
+    if within is not None and overall is not None and overall > tiny:
+        ratio = within / overall
+    if within is not None and between is not None:
+        total = within**2 + between**2
+        if total > tiny**2:
+            share = min(max(within**2 / total, 0.0), 1.0)
+    return {"within_sd_ratio": ratio, "within_variance_share": share}
+
+
+def with_within_measures(table: dict[str, dict]) -> dict[str, dict]:
+    """A variation table with ``within_measures`` added to every row (in place)."""
+    for row in table.values():
+        row.update(within_measures(row))
+    return table

@@ -366,7 +366,7 @@ def test_thin_within_variable_matches_hand_share():
     # within SD / overall SD squared = share * (n - 1) / (n - N) with our ddofs;
     # the hand share (within SS / total SS) is 0.16 / 200000.16 (fixtures/EXPECTED.md)
     n, n_entities = spec["estimation_rows"], spec["estimation_entities"]
-    ratio = finding.examples[0]["within_to_overall"]
+    ratio = finding.examples[0]["within_sd_ratio"]
     share = 0.16 / 200000.16
     assert ratio**2 * (n - n_entities) / (n - 1) == pytest.approx(share, rel=1e-6)
     assert spec["low_within"]["capital"] == pytest.approx(share, rel=1e-3)

@@ -27,7 +27,7 @@ import pandas as pd
 from panelprep._groups import group_counts, segment_bounds
 from panelprep.index import PanelIndex
 from panelprep.limits import GRID_PERIODS
-from panelprep.variation import variation_table
+from panelprep.variation import variation_table, with_within_measures
 
 # every whole number below 2^53 in magnitude is exact in float64; from there on some are not
 _EXACT_INTEGER = 2.0**53
@@ -41,7 +41,7 @@ class Thresholds:
     """Tunable limits of the checks.
 
     low_within_ratio : a variable is reported as thin within entities when
-        within SD / overall SD is below this (default 0.05).
+        its within SD ratio (within SD / overall SD) is below this (default 0.05).
     constant_rtol : a group counts as constant in a variable when the root
         mean square deviation from its mean is at most this times the
         variable's largest absolute deviation from its overall mean
@@ -111,6 +111,24 @@ class AuditContext:
         The sample's own block and every mask stay.
         """
         self.__dict__.pop("_numeric", None)
+
+    def narrowed(self, keep: np.ndarray) -> AuditContext:
+        """The same audit on a smaller estimation sample: ``sample & keep``.
+
+        What describes the rows read (the numeric block, repeats, conflicting
+        keys, ``base``, ``complete``) is shared, not recomputed; what depends
+        on the sample (its index, cells, gaps, counts, variation) is derived
+        afresh, lazily, from the narrowed mask.  Used to judge the audit on
+        the sample left after the post-audit cleaning policies.
+        """
+        out = AuditContext(self.frame, self.index, self.variables, self.thresholds,
+                           self.decimal_comma, self.missing_tokens)
+        shared = {"_duplicates": self._duplicates, "base": self.base, "complete": self.complete,
+                  "sample": self.sample & keep}
+        if "_numeric" in self.__dict__:
+            shared["_numeric"] = self._numeric
+        out.__dict__.update(shared)
+        return out
 
     @property
     def non_numeric(self) -> dict[str, NonNumeric]:
@@ -227,10 +245,10 @@ class AuditContext:
 
     @cached_property
     def variation(self) -> dict[str, dict]:
-        """The variation table of the estimation sample (see ``variation_table``)."""
-        return variation_table(
+        """The variation table of the estimation sample (``variation_table``, ``within_measures``)."""
+        return with_within_measures(variation_table(
             self.sample_index, self.sample_values, self.variables, self.thresholds.constant_rtol
-        )
+        ))
 
     def row_key(self, rows: np.ndarray) -> list[dict[str, object]]:
         """Example dicts (row counted from 1, entity, time) for frame positions."""

@@ -156,3 +156,5 @@ def singletons(ctx: AuditContext, self: Check):
 
 
 CHECKS = [time_gaps, off_grid, balance, singletons]
+# the checks whose findings depend on which rows the estimation sample holds
+SAMPLE_CHECKS = [time_gaps, balance, singletons]

@@ -161,22 +161,22 @@ def time_invariant(ctx: AuditContext, self: Check):
     )
 
 
-@check("var-thin-within", "info", "variables whose within SD is small next to their overall SD")
+@check("var-thin-within", "info", "variables whose within SD ratio (within SD / overall SD) is small")
 def low_within(ctx: AuditContext, self: Check):
     limit = ctx.thresholds.low_within_ratio
     thin = []
     for name, row in ctx.variation.items():
-        if row["time_invariant"] or not row["sd_overall"] or row["sd_within"] is None:
+        ratio = row["within_sd_ratio"]
+        if row["time_invariant"] or ratio is None:
             continue
-        ratio = row["sd_within"] / row["sd_overall"]
         if ratio < limit:
-            thin.append({"variable": name, "within_to_overall": ratio})
+            thin.append({"variable": name, "within_sd_ratio": ratio})
     if not thin:
         return None
     return self.finding(
         len(thin),
-        f"{len(thin)} variable(s) vary little within entities (within SD / overall SD "
-        f"< {limit:g}); within estimates of their slopes will be imprecise",
+        f"{len(thin)} variable(s) vary little within entities (within SD ratio = within SD / "
+        f"overall SD < {limit:g}); within estimates of their slopes will be imprecise",
         thin,
     )
 
@@ -204,3 +204,5 @@ CHECKS = [
     low_within,
     period_invariant,
 ]
+# the checks whose findings depend on which rows the estimation sample holds
+SAMPLE_CHECKS = [new_singletons, time_invariant, low_within, period_invariant]

@@ -23,6 +23,7 @@ from pathlib import Path
 from typing import Any
 
 from panelprep.findings import SEVERITIES
+from panelprep.report import WITHIN_SD_RATIO, WITHIN_VARIANCE_SHARE, resolved_note, sample_words
 
 # Our palette: paper background, ink text, a deep teal for what is there and
 # copper for its counterpart (between variation), plus one hue per severity.
@@ -112,6 +113,7 @@ table.kv th {{ width: 38%; text-transform: none; letter-spacing: 0; font-size: 1
 .count.error b {{ color: var(--error); }}
 .count.warning b {{ color: var(--warning); }}
 .count.info b {{ color: var(--info); }}
+.count.resolved b {{ color: var(--pass); }}
 details summary {{ cursor: pointer; color: var(--teal); font-size: 13px; }}
 details ul {{ margin: 4px 0 0; padding-left: 18px; font-size: 13px; color: var(--muted); }}
 .flow {{ display: flex; flex-wrap: wrap; align-items: stretch; gap: 12px; margin: 10px 0 6px; }}
@@ -165,6 +167,10 @@ def _num(value: Any, digits: int = 4) -> str:
 
 def _pct(share: float | None) -> str:
     return "–" if share is None else f"{100 * share:.1f}%"
+
+
+def _ratio(ratio: float | None) -> str:
+    return "–" if ratio is None else f"{ratio:.3f}"
 
 
 def _table(header: list[str], rows: list[list[str]], numeric: set[int] = frozenset(),
@@ -227,8 +233,8 @@ def _share_svg(share: dict[str, Any]) -> str:
     from panelprep.report import svg
 
     return svg.shares(share["variables"], _palette(), "share",
-                      "Within and between share of variance", "within entities",
-                      "between entities")
+                      f"{WITHIN_VARIANCE_SHARE} and between share per variable",
+                      "within entities", "between entities")
 
 
 def _theta_svg(theta: dict[str, Any]) -> str:
@@ -311,19 +317,32 @@ def _story(summary: dict[str, Any]) -> str:
 
 
 def _findings(summary: dict[str, Any]) -> str:
+    # resolved findings last: they no longer count for the gate
     found = sorted(summary.get("findings") or [],
-                   key=lambda f: -SEVERITIES.index(f["severity"]) if f.get("severity") in SEVERITIES
-                   else 0)
-    tally = {s: sum(1 for f in found if f.get("severity") == s) for s in reversed(SEVERITIES)}
+                   key=lambda f: (bool(f.get("resolved_by")),
+                                  -SEVERITIES.index(f["severity"]) if f.get("severity") in SEVERITIES
+                                  else 0))
+    tally = {s: sum(1 for f in found if f.get("severity") == s and not f.get("resolved_by"))
+             for s in reversed(SEVERITIES)}
+    resolved = sum(1 for f in found if f.get("resolved_by"))
     counts = "".join(f'<div class="count {s}"><b>{n}</b>{s}</div>' for s, n in tally.items())
+    if resolved:
+        counts += f'<div class="count resolved"><b>{resolved}</b>resolved by a policy</div>'
+    _, definition = sample_words(summary, "findings")
+    lead = (f"Worst first. The gate fails on {_e(summary.get('fail_on'))} and above. Checks of "
+            f"the sample describe {_e(definition)}; checks of keys and values describe the rows "
+            "read.")
     if not found:
         return _section("findings", "Findings",
-                        f'<div class="counts">{counts}</div><p class="empty">No findings.</p>')
+                        f'<div class="counts">{counts}</div><p class="empty">No findings.</p>',
+                        lead)
     rows = []
     for f in found:
         severity = f.get("severity", "info")
         examples = f.get("examples") or []
         cell = _e(f.get("message"))
+        if f.get("resolved_by"):
+            cell += f'<p class="note resolved">{_e(resolved_note(f))}.</p>'
         if examples:
             items = "".join(
                 "<li>" + ", ".join(f"{_e(k)} <code>{_e(v)}</code>" for k, v in ex.items()) + "</li>"
@@ -334,19 +353,21 @@ def _findings(summary: dict[str, Any]) -> str:
                      f"<code>{_e(f.get('id'))}</code>", _num(f.get("count")), cell])
     body = f'<div class="counts">{counts}</div>' + _table(
         ["severity", "finding", "count", "what was found"], rows, numeric={2})
-    return _section("findings", "Findings", body,
-                    f"Worst first. The gate fails on {_e(summary.get('fail_on'))} and above.")
+    return _section("findings", "Findings", body, lead)
 
 
 def _panel(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
     panel = summary.get("panel") or {}
-    shape = next((f for f in summary.get("findings") or [] if f.get("id") == "panel-shape"), None)
+    shape = next((f for f in summary.get("findings") or [] if f.get("id") == "panel-shape"
+                  and not f.get("resolved_by")), None)
     details = (shape or {}).get("details") or {}
     span = (f" ({_e(details.get('first_period'))} to {_e(details.get('last_period'))})"
             if details.get("first_period") is not None else "")
     obs = panel.get("obs_per_entity") or {}
+    name, definition = sample_words(summary, "panel")
     rows = [
-        ("rows in the audited sample",
+        ("sample described", _e(definition)),
+        (f"rows in the {_e(name)} sample",
          f"{_num(panel.get('rows'))} of {_num(panel.get('rows_read'))} read"),
         ("entities", _num(panel.get("entities"))),
         ("periods", _num(panel.get("periods")) + span),
@@ -377,14 +398,11 @@ def _panel(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
         body += _figure("picture-obs", _obs_svg(obs_pic),
                         "<b>Rows per entity.</b> How many entities have each number of rows in "
                         "the sample.")
-    return _section("panel", "The panel", body,
-                    "The audited sample: keyed rows, exact repeats collapsed, every selected "
-                    "variable present.")
+    return _section("panel", "The panel", body, f"{_e(definition[:1].upper() + definition[1:])}.")
 
 
 def _variation(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
     variables = summary.get("variables") or {}
-    share = ((pictures.get("share") or {}).get("variables")) or {}
     rows = []
     for name, v in variables.items():
         flags = [label for key, label in (("time_invariant", "constant within entities"),
@@ -393,26 +411,31 @@ def _variation(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
         rows.append([
             f"<code>{_e(name)}</code>", _num(v.get("n")), _num(v.get("mean")), _num(v.get("min")),
             _num(v.get("max")), _num(v.get("sd_overall")), _num(v.get("sd_between")),
-            _num(v.get("sd_within")), _pct((share.get(name) or {}).get("within")),
-            _pct(v.get("varying_share")), _e("; ".join(flags)),
+            _num(v.get("sd_within")), _ratio(v.get("within_sd_ratio")),
+            _pct(v.get("within_variance_share")), _pct(v.get("varying_share")),
+            _e("; ".join(flags)),
         ])
     if rows:
         body = _table(["variable", "n", "mean", "min", "max", "sd overall", "sd between",
-                       "sd within", "within share", "entities varying", "flags"], rows,
-                      numeric=set(range(1, 10)))
+                       "sd within", WITHIN_SD_RATIO, WITHIN_VARIANCE_SHARE, "entities varying",
+                       "flags"], rows, numeric=set(range(1, 11)))
     else:
         body = '<p class="empty">No numeric variables were selected.</p>'
     body += ('<p class="note">SDs: overall with ddof 1; between over the entity means with ddof 1; '
              "within from deviations from entity means over n − N. "
+             f"{WITHIN_SD_RATIO} = sd within / sd overall (the var-thin-within check compares it "
+             "with its threshold). "
              f"{_e((pictures.get('share') or {}).get('definition', ''))}.</p>")
     if pictures.get("share") is not None:
         body += _figure("picture-share", _share_svg(pictures["share"]),
-                        "<b>Within and between.</b> How each variable's variance splits into "
+                        f"<b>{WITHIN_VARIANCE_SHARE.capitalize()}.</b> How each variable's variance splits into "
                         "variation inside entities over time and variation across entity means. "
                         "A variable with little within variation is poorly identified by a "
                         "within (fixed-effects) fit.")
+    _, definition = sample_words(summary, "variables")
     return _section("variation", "Variation", body,
-                    "Spread of each variable overall, between entities and within entities.")
+                    "Spread of each variable overall, between entities and within entities, "
+                    f"on {_e(definition)}.")
 
 
 def _components(summary: dict[str, Any], pictures: dict[str, Any]) -> str:

@@ -11,6 +11,7 @@ from typing import Any
 
 from panelprep.checks.shape import ABSENT, PRESENT
 from panelprep.findings import severity_rank
+from panelprep.report import WITHIN_SD_RATIO, WITHIN_VARIANCE_SHARE, resolved_note, sample_words
 
 
 def _num(value: Any, digits: int = 4) -> str:
@@ -37,7 +38,8 @@ def _table(rows: list[list[str]], right: set[int] = frozenset()) -> list[str]:
 def audit_lines(report: dict[str, Any]) -> list[str]:
     """The audit part of a report (``AuditReport.to_dict()``) as lines of text."""
     keys, panel, source = report["keys"], report["panel"], report["input"]
-    shape = next((f for f in report["findings"] if f["id"] == "panel-shape"), None)
+    shape = next((f for f in report["findings"]
+                  if f["id"] == "panel-shape" and not f.get("resolved_by")), None)
     details = shape.get("details", {}) if shape else {}
     freq = keys["freq"] + (", inferred" if keys.get("freq_inferred") else ", given")
     lines = [
@@ -46,7 +48,7 @@ def audit_lines(report: dict[str, Any]) -> list[str]:
         + (f"  sha256 {source['sha256'][:16]}…" if source.get("sha256") else ""),
         f"key:     {' + '.join(keys['entity'])} over {keys['time']} ({freq})",
         "",
-        "Panel (estimation sample: keyed rows, exact repeats collapsed, all variables present)",
+        f"Panel ({sample_words(report, 'panel')[1]})",
     ]
     span = (f"{details.get('first_period')} to {details.get('last_period')}"
             if details.get("first_period") else "-")
@@ -67,24 +69,31 @@ def audit_lines(report: dict[str, Any]) -> list[str]:
         lines += ["", f"Presence over time ({PRESENT} observed, {ABSENT} absent), most common first"]
         lines += _table([[p["pattern"], f"{p['entities']:,} entities", f"{100 * p['share']:.1f}%"]
                          for p in patterns], right={1, 2})
-    lines += ["", "Findings (worst first)"]
-    found = sorted(report["findings"], key=lambda f: -severity_rank(f["severity"]))
+    lines += ["", (f"Findings (worst first; sample checks on the {sample_words(report, 'findings')[0]} "
+                   "sample, key and value checks on the rows read)")]
+    # resolved findings last: they no longer count for the gate
+    found = sorted(report["findings"],
+                   key=lambda f: (bool(f.get("resolved_by")), -severity_rank(f["severity"])))
     if found:
-        lines += _table([[f["severity"].upper(), f["id"], f"{f['count']:,}", f["message"]]
+        lines += _table([[f["severity"].upper(), f["id"], f"{f['count']:,}",
+                          f["message"] + (f" [{resolved_note(f)}]" if f.get("resolved_by") else "")]
                          for f in found], right={2})
     else:
         lines.append("  none")
-    lines += ["", ("Variation (estimation sample; SDs: overall ddof 1, between over entity means "
-              "ddof 1, within with n - N)")]
+    lines += ["", (f"Variation ({sample_words(report, 'variables')[0]} sample; SDs: overall ddof 1, "
+                   "between over entity means ddof 1, within with n - N; "
+                   f"{WITHIN_SD_RATIO} = sd within / sd overall, {WITHIN_VARIANCE_SHARE} = "
+                   "sd within^2 / (sd within^2 + sd between^2))")]
     header = ["variable", "n", "mean", "min", "max", "sd overall", "sd between", "sd within",
-              "within share", "entities varying"]
+              WITHIN_SD_RATIO, WITHIN_VARIANCE_SHARE, "entities varying"]
     rows = [header]
     for name, v in report["variables"].items():
-        share = (v["sd_within"] / v["sd_overall"]) if v.get("sd_within") is not None and v.get("sd_overall") else None
+        ratio, share = v.get("within_sd_ratio"), v.get("within_variance_share")
         rows.append([
             name, _num(v["n"]), _num(v["mean"]), _num(v["min"]), _num(v["max"]), _num(v["sd_overall"]),
             _num(v["sd_between"]), _num(v["sd_within"]),
-            "-" if share is None else f"{share:.3f}",
+            "-" if ratio is None else f"{ratio:.3f}",
+            "-" if share is None else f"{100 * share:.1f}%",
             "-" if v["varying_share"] is None else f"{100 * v['varying_share']:.0f}%",
         ])
     if len(rows) > 1:
