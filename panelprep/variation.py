@@ -98,18 +98,21 @@ def within_measures(row: dict) -> dict[str, float | None]:
       the share of the variance that lies within entities (between share =
       1 - within variance share).
 
-    Each is None when an SD it needs is missing, or when its denominator is
-    zero up to 1e-12 times the variable's largest absolute value.
+    Each is None when an SD it needs is missing or its denominator is zero.
+    The SDs come from centred, scaled columns (see ``variation_table``), so a
+    constant column has exactly zero spread and no threshold on the level is
+    needed; both quantities are computed on SDs divided by the larger one, so
+    they neither overflow nor underflow at any magnitude.
     """
     within, between, overall = row.get("sd_within"), row.get("sd_between"), row.get("sd_overall")
-    tiny = 1e-12 * max(abs(row.get("min") or 0.0), abs(row.get("max") or 0.0))
     ratio = share = None
-    if within is not None and overall is not None and overall > tiny:
+    if within is not None and overall is not None and overall > 0:
         ratio = within / overall
     if within is not None and between is not None:
-        total = within**2 + between**2
-        if total > tiny**2:
-            share = min(max(within**2 / total, 0.0), 1.0)
+        largest = max(within, between)
+        if largest > 0:
+            w, b = within / largest, between / largest
+            share = min(max(w * w / (w * w + b * b), 0.0), 1.0)
     return {"within_sd_ratio": ratio, "within_variance_share": share}
 
 
