@@ -10,14 +10,18 @@ from __future__ import annotations
 import json
 import sys
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
 import typer
 
-from panelprep import pipeline
 from panelprep.errors import InputError
-from panelprep.io import ReadOptions
-from panelprep.report.text import audit_lines, components_lines
+
+if TYPE_CHECKING:
+    from panelprep.io import ReadOptions
+
+# Nothing heavy is imported at start-up (pandas, pyarrow, numpy, scipy come in
+# with the command that needs them), so --help, --version and a failing
+# argument check answer at once.
 
 EXIT_PASS, EXIT_FAIL, EXIT_UNUSABLE = 0, 1, 2
 
@@ -25,6 +29,8 @@ app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
     pretty_exceptions_enable=False,
+    # plain help: rendering it with rich costs about 0.3 s of start-up
+    rich_markup_mode=None,
     help="Audit, clean and transform entity-by-period panels before any model is fitted.",
 )
 
@@ -60,6 +66,9 @@ def root(
 
 
 def _read_options(input_format, delimiter, decimal_comma, missing_token) -> ReadOptions:
+    from panelprep import pipeline
+    from panelprep.io import ReadOptions
+
     if delimiter == "\\t":
         delimiter = "\t"
     return ReadOptions(
@@ -92,6 +101,8 @@ def audit_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Check a panel's structure and gate on what is found."""
+    from panelprep import pipeline
+    from panelprep.report.text import audit_lines
     try:
         result = pipeline.audit_file(
             data, entity, time, vars,
@@ -143,6 +154,7 @@ def prepare_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Clean, audit, then write estimation-ready files with provenance into --out."""
+    from panelprep import pipeline
     from panelprep.config import RunFile, load_run_file
     from panelprep.prepare import run_from_file
 
@@ -174,6 +186,7 @@ def demo_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Write an invented demo panel with planted defects and prepare it from a run file."""
+    from panelprep import pipeline
     from panelprep.demo import run_demo
 
     try:
@@ -235,6 +248,7 @@ def draft_command(
 
 
 def _print_preparation(summary: dict, out: Path) -> None:
+    from panelprep.report.text import audit_lines, components_lines
     typer.echo("\n".join(audit_lines(summary)))
     if summary.get("components"):
         typer.echo("")
@@ -261,7 +275,9 @@ def components_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Print only the variance components of the estimation sample."""
+    from panelprep import pipeline
     from panelprep.prepare import estimate_file_components
+    from panelprep.report.text import components_lines
 
     try:
         found = estimate_file_components(
