@@ -383,7 +383,7 @@ class VarianceComponents:
                     "variance-beyond-float-range",
                     "info",
                     f"{' and '.join(lost)} in the response's squared units lie outside what "
-                    f"float64 holds (sigma_u = {self.sigma_entity_:.6g}, sigma_e = "
+                    f"float64 holds (entity SD {self.sigma_entity_:.6g}, idiosyncratic SD "
                     f"{self.sigma_idiosyncratic_:.6g}); theta and the transforms are exact, "
                     "the variances are reported as null: rescale the response to see them",
                 )

@@ -833,18 +833,18 @@ def collect_evidence(
     # powers of two keeps squares of values near 1e-300 or 1e300 in range
     shared: dict = {}
     sample = _sample_of(y, X, entity_codes, counts, shared)
-    sigma_u = getattr(components, "sigma_entity_", None)
-    sigma_e = getattr(components, "sigma_idiosyncratic_", None)
-    if sigma_u is None or sigma_e is None:
-        sigma_u = math.sqrt(float(components.sigma2_entity_))
-        sigma_e = math.sqrt(float(components.sigma2_idiosyncratic_))
+    sd_entity = getattr(components, "sigma_entity_", None)
+    sd_idiosyncratic = getattr(components, "sigma_idiosyncratic_", None)
+    if sd_entity is None or sd_idiosyncratic is None:
+        sd_entity = math.sqrt(float(components.sigma2_entity_))
+        sd_idiosyncratic = math.sqrt(float(components.sigma2_idiosyncratic_))
     out: dict[str, Any] = dict(_pooled_lm(sample))
     # both correlated-effects tests run on the same quasi-demeaned regression
     out["mundlak"] = mundlak_test(
         y, X, entity_codes, counts, components.theta_, names, cluster=True, _cache=shared
     )
-    out["hausman"] = _hausman(sample, (sigma_u / sample.unit) ** 2,
-                              (sigma_e / sample.unit) ** 2, components.theta_, names, shared)
+    out["hausman"] = _hausman(sample, (sd_entity / sample.unit) ** 2,
+                              (sd_idiosyncratic / sample.unit) ** 2, components.theta_, names, shared)
     out["reading"] = read_evidence(out)
     out["caution"] = CAUTION
     return out
