@@ -68,3 +68,42 @@ def test_cross_product_route_drops_noise_and_collinear_columns(monkeypatch):
                       scale=np.array([1.0, 1.0, 1.0, 1.0]))
     assert fit.rank == 2 and "noise" in fit.dropped
     assert np.isfinite(fit.coef).all() and np.isfinite(fit.xtx_inv).all()
+
+
+def test_ols_from_r_equals_lstsq_on_the_rows():
+    """A fit from any R with R'R = [X, y]'[X, y] equals least squares on the rows.
+
+    Reference: numpy.linalg.lstsq on the rows; R here from numpy.linalg.qr.
+    """
+    from panelprep._linalg import ols_from_r
+
+    rng = np.random.default_rng(5)
+    X = rng.normal(size=(400, 3)) + [2.0, -1.0, 0.5]
+    y = X @ [1.0, 0.5, -2.0] + rng.normal(size=400)
+    r = np.linalg.qr(np.column_stack([X, y]), mode="r")
+    fit = ols_from_r(r, 400)
+    coef, ssr, _, _ = np.linalg.lstsq(X, y, rcond=None)
+    np.testing.assert_allclose(fit.coef, coef, rtol=1e-12)
+    assert fit.ssr == pytest.approx(float(ssr[0]), rel=1e-10)
+    np.testing.assert_allclose(fit.xtx_inv, np.linalg.inv(X.T @ X), rtol=1e-10)
+    # a column repeated is dropped, as ols on the rows drops it
+    r2 = np.linalg.qr(np.column_stack([X, X[:, 0], y]), mode="r")
+    assert ols_from_r(r2, 400).rank == 3
+
+
+def test_entity_moments_factor_the_within_cross_product():
+    """R'R of the moments equals the within block's cross product (pandas groupby demeaning)."""
+    import pandas as pd
+
+    from panelprep._moments import entity_moments
+
+    rng = np.random.default_rng(6)
+    codes = rng.integers(0, 30, 500)
+    X = rng.normal(size=(500, 2))
+    y = rng.normal(size=500)
+    counts = np.bincount(codes, minlength=30)
+    mom = entity_moments(X, y, codes, counts)
+    frame = pd.DataFrame(np.column_stack([X, y])).assign(g=codes)
+    within = (frame.drop(columns="g") - frame.groupby("g").transform("mean")).to_numpy()
+    np.testing.assert_allclose(mom.r_within.T @ mom.r_within, within.T @ within, atol=1e-9)
+    np.testing.assert_allclose(mom.within_ss, (within**2).sum(axis=0), rtol=1e-12)
