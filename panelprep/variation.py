@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from panelprep._groups import compact_codes, group_counts, group_means, group_sums
+from panelprep._groups import compact_codes, group_counts, group_sums
 from panelprep._scale import standardise
 from panelprep.index import PanelIndex
 
@@ -42,41 +42,43 @@ def variation_table(
     n, n_entities = values.shape[0], index.n_entities
     if n == 0:
         return {name: _empty_row() for name in names}
-    raw = values
-    standard = standardise(raw)
-    values = standard.z
     counts = group_counts(codes, n_entities)
-    means = group_means(codes, values, counts)
-    # one (n, k) buffer, reused: squared deviations from entity, then period, means
-    squares = np.subtract(values, means[codes], order="F")
-    np.square(squares, out=squares)
-    entity_ss = group_sums(codes, squares, n_entities)
-    within_ss = entity_ss.sum(axis=0)
+    inv_counts = 1.0 / np.maximum(counts, 1)
     period, n_periods = compact_codes(index.period_codes, index.n_periods)
     period_counts = group_counts(period, n_periods)
-    np.subtract(values, group_means(period, values, period_counts)[period], out=squares)
-    np.square(squares, out=squares)
-    period_ss = group_sums(period, squares, n_periods)
-    del squares
+    inv_period = 1.0 / np.maximum(period_counts, 1)
     multi = counts >= 2
     multi_period = period_counts >= 2
+    # one column at a time, into two n-vectors reused: no (n, k) copy of the block
+    col = np.empty(n)
+    squares = np.empty(n)
     out: dict[str, dict] = {}
     for j, name in enumerate(names):
-        col = values[:, j]
-        unit = float(standard.scale[j])
+        raw = values[:, j]
+        standard = standardise(raw)
+        col[:] = standard.z[:, 0]
+        unit, centre = float(standard.scale[0]), float(standard.centre[0])
+        means = group_sums(codes, col, n_entities) * inv_counts
+        np.subtract(col, means.take(codes), out=squares)
+        np.square(squares, out=squares)
+        entity_ss = group_sums(codes, squares, n_entities)
+        period_means = group_sums(period, col, n_periods) * inv_period
+        np.subtract(col, period_means.take(period), out=squares)
+        np.square(squares, out=squares)
+        period_ss = group_sums(period, squares, n_periods)
         scale = max(float(np.abs(col).max()), np.finfo(float).tiny)
         tol = (constant_rtol * scale) ** 2
-        varying = entity_ss[:, j] > tol * counts
-        period_varying = period_ss[:, j] > tol * period_counts
+        varying = entity_ss > tol * counts
+        period_varying = period_ss > tol * period_counts
         out[name] = {
             "n": int(n),
-            "mean": float(standard.centre[j] + unit * col.mean()),
+            "mean": float(centre + unit * col.mean()),
             "sd_overall": float(col.std(ddof=1) * unit) if n > 1 else None,
-            "sd_between": float(means[:, j].std(ddof=1) * unit) if n_entities > 1 else None,
-            "sd_within": (float(np.sqrt(within_ss[j] / (n - n_entities)) * unit)
+            "sd_between": float(means.std(ddof=1) * unit) if n_entities > 1 else None,
+            "sd_within": (float(np.sqrt(entity_ss.sum() / (n - n_entities)) * unit)
                           if n > n_entities else None),
-            "min": float(raw[:, j].min()),
-            "max": float(raw[:, j].max()),
+            "min": float(raw.min()),
+            "max": float(raw.max()),
             "varying_share": float(varying[multi].mean()) if multi.any() else None,
             "time_invariant": bool(multi.any() and not varying[multi].any()),
             "period_invariant": bool(multi_period.any() and not period_varying[multi_period].any()),
