@@ -32,7 +32,15 @@ def conflicting_keys(ctx: AuditContext, self: Check):
         return None
     rows_in_conflict = np.flatnonzero(np.isin(ctx.index.cell, cells) & ctx.base)
     first_rows = rows_in_conflict[np.unique(ctx.index.cell[rows_in_conflict], return_index=True)[1]]
-    examples = ctx.row_key(np.sort(first_rows)[:MAX_EXAMPLES])
+    shown = np.sort(first_rows)[:MAX_EXAMPLES]
+    # every keyed row of each shown key, in file order: the example says which rows clash
+    shown_cells = ctx.index.cell[shown]
+    with_key = np.flatnonzero(np.isin(ctx.index.cell, shown_cells) & ctx.keyed)
+    examples = []
+    for example, cell in zip(ctx.row_key(shown), shown_cells):
+        rows = ctx.input_rows(with_key[ctx.index.cell[with_key] == cell])
+        examples.append({"rows": [int(r) for r in rows],
+                         **{k: v for k, v in example.items() if k != "row"}})
     return self.finding(
         len(cells),
         f"{len(cells)} key(s) appear on rows with differing values ({len(rows_in_conflict)} rows)",
