@@ -285,7 +285,7 @@ def prepare_frame(
         progress("evidence on the entity effect")
         summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x)
     summary["transforms"] = outputs.info
-    summary["cautions"] = _cautions(outputs.info, components, sample_ix)
+    summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
     if summary["verdict"] == "fail":
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
@@ -548,7 +548,8 @@ def _gate_caution(report: AuditReport) -> str:
             "Fix the input, or state a cleaning policy, and run again.")
 
 
-def _cautions(info: dict, components: VarianceComponents, index: PanelIndex) -> list[str]:
+def _cautions(info: dict, components: VarianceComponents, index: PanelIndex,
+              names: AddedNames) -> list[str]:
     out = []
     if "within" in info:
         absorbed = info["within"]["entities_absorbed"]
@@ -564,8 +565,16 @@ def _cautions(info: dict, components: VarianceComponents, index: PanelIndex) -> 
         )
     if "quasi" in info:
         out.append(
-            "OLS on the quasi file gives random-effects (feasible GLS) slopes; keep the const "
-            "column as the regressor for the intercept and fit without an added constant."
+            "OLS on the quasi file gives random-effects (feasible GLS) slopes; keep the "
+            f"{names.intercept} column as the regressor for the intercept and fit without an "
+            "added constant."
+        )
+    if info:
+        out.append(
+            "Each file holds only the regressors OLS can estimate on it: a regressor the "
+            "transform wiped out or made collinear is left out of that file and listed under "
+            "transforms.<file>.regressors_left_out; the file's column roles are in its "
+            "metadata and in files[].columns."
         )
     out.append(
         "Errors may be serially correlated within entities: cluster standard errors by entity "

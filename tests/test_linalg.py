@@ -68,3 +68,18 @@ def test_cross_product_route_drops_noise_and_collinear_columns(monkeypatch):
                       scale=np.array([1.0, 1.0, 1.0, 1.0]))
     assert fit.rank == 2 and "noise" in fit.dropped
     assert np.isfinite(fit.coef).all() and np.isfinite(fit.xtx_inv).all()
+
+
+@pytest.mark.parametrize("rows", [500, _linalg.GRAM_MIN_ROWS + 10])
+def test_independent_columns_keeps_earlier_columns_and_agrees_with_numpy_rank(rows):
+    # columns: a, b, a + 2b (dependent on the two before it), rounding noise, c, 3c - b
+    rng = np.random.default_rng(3)
+    a, b, c = (rng.normal(size=rows) for _ in range(3))
+    noise = rng.normal(size=rows) * 1e-17
+    columns = [a, b, a + 2 * b, noise, c, 3 * c - b]
+    kept, negligible = _linalg.independent_columns(columns, np.ones(len(columns)))
+    assert kept.tolist() == [True, True, False, False, True, False]
+    assert negligible.tolist() == [False, False, False, True, False, False]
+    # numpy's SVD rank of the kept columns and of all of them (another route)
+    design = np.column_stack(columns)
+    assert np.linalg.matrix_rank(design[:, kept]) == kept.sum() == np.linalg.matrix_rank(design)
