@@ -87,7 +87,13 @@ def _jobs(root: Path) -> dict[str, list]:
     windowed = pd.read_csv(FIXTURES / "missing_keys.csv", dtype=str)
     windowed = _write(root / "windowed.csv", windowed)
     keys = ("-e", "firm_id", "-t", "year", "--y", "sales")
+    odd = _panel(["capital", "staff"])
+    odd["founded"] = 1990 + odd["firm_id"].str[1:].astype(int)  # fixed per firm
+    odd["inputs"] = odd["capital"] + odd["staff"]  # an exact sum of two regressors before it
+    odd = _write(root / "odd.csv", odd)
     return {
+        "odd-csv": ["prepare", odd, *keys, "--x", "capital,founded,staff,inputs", *ALL,
+                    "--format", "csv"],
         "common": ["prepare", common, *keys, "--x", "const,theta,n_obs,input_row", *ALL],
         "clash": ["prepare", ours, *keys, "--x", f"capital,{N.intercept},{N.entity_rows}", *ALL],
         "renamed": ["prepare", "--config", renamed],
@@ -332,3 +338,31 @@ def test_every_row_level_file_traces_rows_back_to_the_input(runs):
     dropped = pd.read_parquet(out / "dropped.parquet")
     # rows read = kept + dropped, each input row exactly once (counted from 1)
     assert sorted([*clean[N.row], *dropped[N.row]]) == list(range(1, len(data) + 1))
+
+
+def test_csv_outputs_list_roles_and_left_out_regressors_in_diagnostics(runs):
+    run = runs["odd-csv"]
+    assert run.returncode == 0, run.stderr
+    diagnostics = json.loads((run.out / "diagnostics.json").read_text(encoding="utf-8"))
+    listed = {f["name"]: f["columns"] for f in diagnostics["files"]}
+    left = {name: [(r["name"], r["reason"]) for r in info["regressors_left_out"]]
+            for name, info in diagnostics["transforms"].items()}
+    # by construction: founded is fixed per firm, inputs = capital + staff exactly
+    assert left == {
+        "within": [("founded", "no-within-variation"), ("inputs", "collinear")],
+        "twoway": [("founded", "no-twoway-variation"), ("inputs", "collinear")],
+        "between": [("inputs", "collinear")],
+        "quasi": [("inputs", "collinear")],
+    }
+    for name in ("clean", "within", "between", "quasi", "twoway"):
+        table = pd.read_csv(run.out / f"{name}.csv")
+        assert [c["name"] for c in listed[f"{name}.csv"]] == list(table.columns), name
+        roles = {c["name"]: c["role"] for c in listed[f"{name}.csv"]}
+        design = [c for c, r in roles.items() if r in ("regressor", "intercept")]
+        X = table[design].to_numpy(dtype=float)
+        if name == "between":
+            X = np.column_stack([np.ones(len(X)), X])
+        if name != "clean":  # clean keeps every variable as read
+            # numpy's SVD rank, another route than panelprep's
+            assert np.linalg.matrix_rank(X) == X.shape[1], name
+    assert "inputs" in pd.read_csv(run.out / "clean.csv").columns
