@@ -110,6 +110,10 @@ def _jobs(root: Path) -> dict[str, list]:
                       "--x", "capital,staff", "--duplicates", "keep-last"],
         "demo-audit": ["audit", root / "firms.csv", "-e", "firm_id", "-t", "year",
                        "--vars", "sales,capital,staff", "--report", root / "demo-audit.json"],
+        "repeat-audit": ["audit", FIXTURES / "exact_duplicates.csv", "-e", "firm_id", "-t",
+                         "year", "--report", root / "repeat.json"],
+        "drop-exact": ["prepare", FIXTURES / "exact_duplicates.csv", *keys, "--x", "capital",
+                       "--duplicates", "drop-exact"],
         "windowed": ["prepare", windowed, *keys, "--x", "capital,staff",
                      "--window", "2020,"],
     }
@@ -366,3 +370,16 @@ def test_csv_outputs_list_roles_and_left_out_regressors_in_diagnostics(runs):
             # numpy's SVD rank, another route than panelprep's
             assert np.linalg.matrix_rank(X) == X.shape[1], name
     assert "inputs" in pd.read_csv(run.out / "clean.csv").columns
+
+
+def test_repeat_examples_match_the_dropped_and_clean_files(runs):
+    assert runs["repeat-audit"].returncode == 1
+    report = json.loads((runs["root"] / "repeat.json").read_text(encoding="utf-8"))
+    repeated = next(f for f in report["findings"] if f["id"] == "row-repeated")
+    run = runs["drop-exact"]
+    assert run.returncode == 0, run.stderr
+    dropped = pd.read_parquet(run.out / "dropped.parquet")
+    clean = pd.read_parquet(run.out / "clean.parquet")
+    # drop-exact removes the later copies and keeps the rows they repeat
+    assert sorted(dropped[N.row]) == sorted(e["row"] for e in repeated["examples"])
+    assert {e["repeats_row"] for e in repeated["examples"]} <= set(clean[N.row])

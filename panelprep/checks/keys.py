@@ -54,11 +54,31 @@ def exact_repeats(ctx: AuditContext, self: Check):
     rows = np.flatnonzero(ctx.repeat)
     if len(rows) == 0:
         return None
+    shown = rows[:MAX_EXAMPLES]
+    examples = []
+    for example, row, original in zip(ctx.row_key(shown), shown, _originals(ctx, shown)):
+        first = {} if original is None else {"repeats_row": int(ctx.input_rows([original])[0])}
+        examples.append({"row": example["row"], **first,
+                         **{k: v for k, v in example.items() if k != "row"}})
     return self.finding(
         len(rows),
         f"{len(rows)} row(s) repeat an earlier row exactly; they are collapsed for all counts",
-        ctx.row_key(rows[:MAX_EXAMPLES]),
+        examples,
     )
+
+
+def _originals(ctx: AuditContext, repeats: np.ndarray) -> list[int | None]:
+    """For each shown repeated row, the first earlier row it repeats (a few rows only)."""
+    columns = [*ctx.index.entity, ctx.index.time, *ctx.variables]
+    out = []
+    for row in repeats:
+        same_key = np.flatnonzero(ctx.index.cell[: row] == ctx.index.cell[row])
+        earlier = ctx.frame[columns].iloc[same_key]
+        target = ctx.frame[columns].iloc[int(row)]
+        equal = (earlier == target) | (earlier.isna() & target.isna())
+        hits = np.flatnonzero(equal.all(axis=1).to_numpy())
+        out.append(int(same_key[hits[0]]) if len(hits) else None)
+    return out
 
 
 @check("entity-id-lookalike", "warning", "entity ids that differ only by case or outer spaces")
