@@ -373,7 +373,7 @@ def test_csv_outputs_list_roles_and_left_out_regressors_in_diagnostics(runs):
 
 
 def test_repeat_examples_match_the_dropped_and_clean_files(runs):
-    assert runs["repeat-audit"].returncode == 1
+    assert runs["repeat-audit"].returncode == 0  # a repeat is a warning in the audit
     report = json.loads((runs["root"] / "repeat.json").read_text(encoding="utf-8"))
     repeated = next(f for f in report["findings"] if f["id"] == "row-repeated")
     run = runs["drop-exact"]
