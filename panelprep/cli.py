@@ -220,7 +220,8 @@ def _names_map(text: str | None) -> dict[str, str]:
         key, sep, name = item.partition("=")
         if not sep or not key.strip():
             raise InputError(f"--names {item!r} must be key=name, keys as in the run file's "
-                             "[names] section (row, intercept, theta, entity_rows, reason, step)")
+                             "[names] section (row, intercept, theta, entity_rows, reason, "
+                             "step, lag, lead, diff)")
         out[f"names.{key.strip()}"] = name.strip()
     return out
 
