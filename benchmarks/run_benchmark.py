@@ -335,9 +335,12 @@ def _ours_summary(spec: Spec, prep) -> dict:
     comp = prep.summary.get("components") or {}
     out = {"verdict": prep.verdict, "sigma2_entity": comp.get("sigma2_entity"),
            "sigma2_idiosyncratic": comp.get("sigma2_idiosyncratic")}
+    from panelprep.names import DEFAULT_NAMES
+
     quasi = prep.tables.get("quasi")
     if quasi is not None:
-        out.update(_probe_quasi(spec, quasi[spec.y].to_numpy(), quasi["theta"].to_numpy()))
+        theta = quasi[DEFAULT_NAMES.theta].to_numpy()
+        out.update(_probe_quasi(spec, quasi[spec.y].to_numpy(), theta))
     return out
 
 

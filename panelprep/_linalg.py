@@ -409,3 +409,83 @@ def sandwich(
         n_factor = (n - 1) / (n - r) if n > r else 1.0
         cov = cov * (g_factor * n_factor)
     return (cov + cov.T) / 2.0
+
+
+def independent_columns(
+    columns: Sequence[np.ndarray], scale: np.ndarray, rtol: float | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Which columns, taken in order, add a direction the earlier kept ones lack.
+
+    Parameters
+    ----------
+    columns : sequence of k float64 arrays (n,)
+        The columns of a design, in the order of preference (a column is
+        left out in favour of the earlier ones it depends on).  They are read
+        block by block of rows; no (n, k) copy is made.
+    scale : array (k,)
+        Reference magnitude of each column (the norm of the untransformed
+        column), as in :func:`ols`; 0 or non-finite means 1.
+    rtol : float, optional
+        Relative tolerance; default as in :func:`ols` (with the same floor
+        on the cross-product route).
+
+    Returns
+    -------
+    kept : bool (k,)
+        Column j's part orthogonal to the kept columns before it has a norm
+        above ``rtol * max(largest scaled column norm, 1)``.  Computed by
+        Gram-Schmidt on a k x k matrix with the columns' inner products (the
+        R of a tall-skinny QR, or a root of the cross products from
+        ``GRAM_MIN_ROWS`` rows on), so the cost is one pass over the rows.
+    negligible : bool (k,)
+        Columns whose own scaled norm is below the same bound: nothing of
+        the column is left (a transform wiped it out), as opposed to a
+        column that is a combination of others.
+    """
+    k = len(columns)
+    n = len(columns[0]) if k else 0
+    kept = np.zeros(k, dtype=bool)
+    negligible = np.zeros(k, dtype=bool)
+    if n == 0 or k == 0:
+        return kept, negligible
+    s = np.asarray(scale, dtype=np.float64).reshape(k).copy()
+    s[~(np.isfinite(s) & (s > 0))] = 1.0
+    rtol = default_rtol(n, k) if rtol is None else float(rtol)
+    gram_route = n >= GRAM_MIN_ROWS
+    if gram_route:
+        rtol = max(rtol, GRAM_RTOL_FLOOR)
+    gram = np.zeros((k, k))
+    factors = []
+    for start in range(0, n, QR_BLOCK_ROWS):
+        stop = min(start + QR_BLOCK_ROWS, n)
+        block = np.empty((stop - start, k), order="F")
+        for j, column in enumerate(columns):
+            np.divide(column[start:stop], s[j], out=block[:, j])
+        if gram_route:
+            gram += block.T @ block
+        else:
+            r = scipy.linalg.qr(block, mode="r", overwrite_a=True, check_finite=False)[0]
+            factors.append(r[: min(stop - start, k)])
+    if gram_route:
+        values, vectors = np.linalg.eigh(gram)
+        inner = np.sqrt(np.clip(values, 0.0, None))[:, None] * vectors.T
+    else:
+        stacked = np.vstack(factors)
+        inner = (scipy.linalg.qr(stacked, mode="r", check_finite=False)[0]
+                 if len(factors) > 1 else stacked)
+    # the columns of ``inner`` have the inner products of the scaled columns;
+    # Gram-Schmidt over them, skipping a column that adds nothing, so a
+    # dependent column's rounding noise never becomes a direction
+    norms = np.linalg.norm(inner, axis=0)
+    bound = rtol * max(float(norms.max()), 1.0)
+    basis = np.zeros((inner.shape[0], 0))
+    for j in range(k):
+        v = inner[:, j].copy()
+        for _ in range(2):  # twice is enough (Kahan-Parlett)
+            v -= basis @ (basis.T @ v)
+        left = float(np.linalg.norm(v))
+        if left > bound:
+            kept[j] = True
+            basis = np.column_stack([basis, v / left])
+    negligible = norms <= bound
+    return kept, negligible

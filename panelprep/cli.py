@@ -145,6 +145,7 @@ def prepare_command(
     lead: Annotated[str | None, typer.Option("--lead", help="Leads as var:k,... creating var_leadk.")] = None,
     diff: Annotated[str | None, typer.Option("--diff", help="Differences as var[:k],... creating var_diffk.")] = None,
     severity: Annotated[str | None, typer.Option("--severity", help="Severity per finding id, e.g. period-holes=error,entity-single-obs=info.")] = None,
+    names: Annotated[str | None, typer.Option("--names", help="Rename the columns panelprep adds (run-file [names] keys), e.g. row=src_row,theta=re_theta.")] = None,
     freq: FreqOpt = None,
     fail_on: Annotated[str | None, typer.Option("--fail-on", help="Lowest severity that fails the gate: error (default) or warning.")] = None,
     input_format: FormatOpt = None,
@@ -171,6 +172,7 @@ def prepare_command(
         "output.format": output_format, "output.force": force, "output.evidence": evidence,
     }
     try:
+        overrides.update(_names_map(names))
         run = load_run_file(config, overrides) if config else RunFile().merged(overrides)
         result = run_from_file(run, progress=pipeline.stderr_progress(quiet))
     except InputError as err:
@@ -219,6 +221,21 @@ def _severity_map(text: str | None) -> dict[str, str] | None:
         if not sep:
             raise InputError(f"--severity {item!r} must be finding-id=level")
         out[finding_id.strip()] = level.strip()
+    return out
+
+
+def _names_map(text: str | None) -> dict[str, str]:
+    """``--names row=src_row,theta=t`` -> ``{"names.row": "src_row", ...}``."""
+    if not text:
+        return {}
+    out = {}
+    for item in text.split(","):
+        key, sep, name = item.partition("=")
+        if not sep or not key.strip():
+            raise InputError(f"--names {item!r} must be key=name, keys as in the run file's "
+                             "[names] section (row, intercept, theta, entity_rows, reason, "
+                             "step, lag, lead, diff)")
+        out[f"names.{key.strip()}"] = name.strip()
     return out
 
 

@@ -45,6 +45,15 @@ Keys
 | `output.format` | `parquet`, `csv` | `parquet` | format of the data files |
 | `output.force` | bool | `false` | replace a non-empty output folder |
 | `output.evidence` | bool | `true` | compute the entity-effect and correlated-effects tests |
+| `names.row` | text | `pp_row` | column of every row-level file holding each row's input row (from 1) |
+| `names.intercept` | text | `pp_intercept` | quasi file: the 1 - theta column that stands in for the constant |
+| `names.theta` | text | `pp_theta` | quasi file: theta of the row's entity |
+| `names.entity_rows` | text | `pp_rows` | between file: rows of each entity in the sample |
+| `names.reason` | text | `pp_reason` | dropped file: why the row was removed |
+| `names.step` | text | `pp_step` | dropped file: the step that removed the row |
+| `names.lag` | template | `{var}_lag{k}` | name of a derived lag, from {var} and {k} |
+| `names.lead` | template | `{var}_lead{k}` | name of a derived lead, from {var} and {k} |
+| `names.diff` | template | `{var}_diff{k}` | name of a derived difference, from {var} and {k} |
 
 Errors are ``InputError`` with one line naming the file, the line, the key
 and what is allowed.
@@ -89,6 +98,7 @@ from panelprep.io import (
     read_frame,
     sniff_delimiter,
 )
+from panelprep.names import DEFAULT_NAMES, AddedNames
 from panelprep.timeaxis import FREQUENCIES, build_time_axis
 from panelprep.transforms import TRANSFORMS
 
@@ -180,6 +190,21 @@ class OutputSection:
     evidence: bool = True
 
 
+@dataclass
+class NamesSection:
+    """``[names]``: names of the columns panelprep adds (see ``panelprep.names``)."""
+
+    row: str = DEFAULT_NAMES.row
+    intercept: str = DEFAULT_NAMES.intercept
+    theta: str = DEFAULT_NAMES.theta
+    entity_rows: str = DEFAULT_NAMES.entity_rows
+    reason: str = DEFAULT_NAMES.reason
+    step: str = DEFAULT_NAMES.step
+    lag: str = DEFAULT_NAMES.lag
+    lead: str = DEFAULT_NAMES.lead
+    diff: str = DEFAULT_NAMES.diff
+
+
 _SECTIONS: dict[str, type] = {
     "input": InputSection,
     "panel": PanelSection,
@@ -189,6 +214,7 @@ _SECTIONS: dict[str, type] = {
     "clean": CleanSection,
     "derive": DeriveSection,
     "output": OutputSection,
+    "names": NamesSection,
 }
 REQUIRED = ("input.path", "panel.entity", "panel.time", "model.y", "model.x", "output.dir")
 _PATH_KEYS = ("input.path", "contract.schema", "output.dir")
@@ -293,6 +319,26 @@ def _choices(allowed: tuple[str, ...]) -> Callable[[Any, bool], list[str]]:
         return list(items)
 
     return parse
+
+
+def _column_name(value: Any, cli: bool) -> str:
+    if not isinstance(value, str) or not value.strip() or value != value.strip():
+        raise _Bad("a column name (non-empty text without surrounding spaces)")
+    if "{" in value or "}" in value:
+        raise _Bad("a column name without braces")
+    return value
+
+
+def _template(value: Any, cli: bool) -> str:
+    what = 'a name template holding {var} and {k}, e.g. "{var}_L{k}"'
+    if not isinstance(value, str) or value != value.strip() or "{var}" not in value \
+            or "{k}" not in value:
+        raise _Bad(what)
+    try:
+        value.format(var="x", k=1)
+    except (KeyError, IndexError, ValueError):
+        raise _Bad(what) from None
+    return value
 
 
 def _char(value: Any, cli: bool) -> str:
@@ -432,6 +478,20 @@ _KEYS: dict[str, dict[str, _Key]] = {
         "evidence": _Key("bool", _bool,
                          "compute the entity-effect and correlated-effects tests"),
     },
+    "names": {
+        "row": _Key("text", _column_name,
+                    "column of every row-level file holding each row's input row (from 1)"),
+        "intercept": _Key("text", _column_name,
+                          "quasi file: the 1 - theta column that stands in for the constant"),
+        "theta": _Key("text", _column_name, "quasi file: theta of the row's entity"),
+        "entity_rows": _Key("text", _column_name,
+                            "between file: rows of each entity in the sample"),
+        "reason": _Key("text", _column_name, "dropped file: why the row was removed"),
+        "step": _Key("text", _column_name, "dropped file: the step that removed the row"),
+        "lag": _Key("template", _template, "name of a derived lag, from {var} and {k}"),
+        "lead": _Key("template", _template, "name of a derived lead, from {var} and {k}"),
+        "diff": _Key("template", _template, "name of a derived difference, from {var} and {k}"),
+    },
 }
 
 # Defaults shown in the key table where the value itself says little.
@@ -472,7 +532,7 @@ class RunFile:
 
     Attributes
     ----------
-    input, panel, model, contract, checks, clean, derive, output :
+    input, panel, model, contract, checks, clean, derive, output, names :
         the sections (see the module docstring for every key and default).
     source : the run file read, or None when built in code.
     lines : line of each ``section.key`` in the file, for messages about
@@ -487,6 +547,7 @@ class RunFile:
     clean: CleanSection = field(default_factory=CleanSection)
     derive: DeriveSection = field(default_factory=DeriveSection)
     output: OutputSection = field(default_factory=OutputSection)
+    names: NamesSection = field(default_factory=NamesSection)
     source: Path | None = None
     lines: dict[str, int] = field(default_factory=dict, compare=False, repr=False)
 
@@ -569,6 +630,10 @@ class RunFile:
             decimal_comma=self.input.decimal_comma,
             missing_tokens=tuple(self.input.missing_tokens),
         )
+
+    def added_names(self) -> AddedNames:
+        """The names of the columns panelprep adds, as ``panelprep.names.AddedNames``."""
+        return AddedNames(**{k: getattr(self.names, k) for k in _KEYS["names"]})
 
     def thresholds(self) -> Thresholds:
         """The limits of the checks, as ``panelprep.checks.Thresholds``."""

@@ -17,25 +17,40 @@ import pandas as pd
 from panelprep.checks.context import to_float
 from panelprep.errors import InputError
 from panelprep.index import PanelIndex
+from panelprep.names import DEFAULT_NAMES, AddedNames
 
 KINDS = ("lag", "lead", "diff")
 
 
 @dataclass(frozen=True)
 class Shift:
-    """One derived column: ``kind`` of ``variable`` at distance ``k`` periods."""
+    """One derived column: ``kind`` of ``variable`` at distance ``k`` periods.
+
+    Its name comes from the ``kind`` template of ``names`` (``sales_lag1``
+    by default).
+    """
 
     variable: str
     k: int
     kind: str
+    names: AddedNames = DEFAULT_NAMES
 
     @property
     def name(self) -> str:
-        return f"{self.variable}_{self.kind}{self.k}"
+        return self.names.derived(self.kind, self.variable, self.k)
+
+    @property
+    def option(self) -> str:
+        """How the user asked for it, for messages: ``--lag sales:1``."""
+        return f"--{self.kind} {self.variable}:{self.k}"
 
 
-def parse_shifts(kind: str, specs: list[str] | str | None) -> list[Shift]:
-    """``"sales:1,sales:2"`` -> shifts; a bare ``var`` means distance 1."""
+def parse_shifts(kind: str, specs: list[str] | str | None,
+                 names: AddedNames = DEFAULT_NAMES) -> list[Shift]:
+    """``"sales:1,sales:2"`` -> shifts; a bare ``var`` means distance 1.
+
+    ``names`` gives the template of the derived columns' names.
+    """
     if kind not in KINDS:
         raise ValueError(kind)
     if specs is None:
@@ -52,7 +67,7 @@ def parse_shifts(kind: str, specs: list[str] | str | None) -> list[Shift]:
             raise InputError(f"--{kind} {item!r}: distance must be a whole number") from None
         if k < 1:
             raise InputError(f"--{kind} {item!r}: distance must be at least 1")
-        out.append(Shift(name.strip(), k, kind))
+        out.append(Shift(name.strip(), k, kind, names))
     return out
 
 

@@ -1,7 +1,9 @@
 """The drop ledger and the story of a preparation.
 
-Every row removed from the input is recorded once, with its 0-based row
-number in the input file, the step that removed it and a reason id.  The
+Every row removed from the input is recorded once, with its row in the
+input file, the step that removed it and a reason id.  Rows are held as
+0-based positions and written as the project's row numbers (data rows
+counted from 1, ``panelprep.names``).  The
 invariant ``rows read = rows kept + rows in the ledger`` is checked before
 anything is written.
 """
@@ -14,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from panelprep.errors import InputError
+from panelprep.names import DEFAULT_NAMES, AddedNames
 
 
 @dataclass
@@ -78,8 +81,13 @@ class Ledger:
             if len(np.unique(every)) != len(every):
                 raise RuntimeError("drop ledger records a row twice")
 
-    def to_frame(self, frame: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
-        """One row per dropped input row: row, key columns, reason, step."""
+    def to_frame(self, frame: pd.DataFrame, keys: list[str],
+                 names: AddedNames = DEFAULT_NAMES) -> pd.DataFrame:
+        """One row per dropped input row: input row (from 1), key columns, reason, step.
+
+        The added columns take their names from ``names`` (``row``,
+        ``reason``, ``step``).
+        """
         if self._rows:
             rows = np.concatenate(self._rows)
             reasons = np.repeat(self._reasons, [len(r) for r in self._rows])
@@ -88,9 +96,9 @@ class Ledger:
             rows = np.zeros(0, dtype=np.int64)
             reasons = steps = np.zeros(0, dtype=object)
         out = frame[keys].iloc[rows].reset_index(drop=True)
-        out.insert(0, "input_row", rows)
-        out["reason"] = pd.Series(reasons, dtype="str")
-        out["step"] = pd.Series(steps, dtype="str")
+        out.insert(0, names.row, rows + 1)
+        out[names.reason] = pd.Series(reasons, dtype="str")
+        out[names.step] = pd.Series(steps, dtype="str")
         return out
 
 

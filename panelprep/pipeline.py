@@ -148,6 +148,7 @@ def audit(
     index: PanelIndex | None = None,
     progress: Progress = _silent,
     prior_findings: Sequence[Finding] = (),
+    origin: np.ndarray | None = None,
 ) -> AuditReport:
     """Run every structural check on a panel held in a DataFrame.
 
@@ -164,6 +165,8 @@ def audit(
     index : a ``PanelIndex`` already built for ``frame`` (reused, not rebuilt).
     prior_findings : findings of earlier steps (a schema contract) that the
         gate judges together with the checks'.
+    origin : 0-based input position of each row of ``frame``, when earlier
+        steps removed rows; examples then name the rows of the input file.
 
     Returns
     -------
@@ -194,6 +197,7 @@ def audit(
         thresholds=thresholds or Thresholds(),
         decimal_comma=decimal_comma,
         missing_tokens=tuple(missing_tokens),
+        origin=origin,
     )
     findings: list[Finding] = list(prior_findings)
     if chosen is None:

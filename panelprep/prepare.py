@@ -21,6 +21,7 @@ import pyarrow as pa
 
 from panelprep import transforms
 from panelprep._groups import group_counts
+from panelprep._linalg import independent_columns
 from panelprep._version import __version__
 from panelprep.checks import AuditContext, Thresholds
 from panelprep.clean import (
@@ -45,11 +46,23 @@ from panelprep.io import (
     OUTPUT_FORMATS,
     OutputFolder,
     ReadOptions,
+    column_names,
     sha256_file,
     write_table,
 )
 from panelprep.lags import Shift, add_shifts, parse_shifts
 from panelprep.ledger import Ledger, StepRecord, require_rows
+from panelprep.names import (
+    ROLE_AUXILIARY,
+    ROLE_INTERCEPT,
+    ROLE_KEY,
+    ROLE_REGRESSOR,
+    ROLE_RESPONSE,
+    ROLE_WEIGHT,
+    ROW_CONVENTION,
+    AddedNames,
+    check_added_names,
+)
 from panelprep.pipeline import (
     AuditReport,
     Progress,
@@ -85,9 +98,11 @@ class PrepareOptions:
     contract: Any = None
     validate_outputs: bool = False
     evidence: bool = True
+    names: AddedNames = field(default_factory=AddedNames)
 
     def validate(self) -> None:
         self.policies.validate()
+        self.names.validate()
         unknown = [t for t in self.transforms if t not in TRANSFORMS]
         if unknown:
             raise InputError(f"--transform {unknown} not among {', '.join(TRANSFORMS)}")
@@ -103,6 +118,15 @@ class PrepareOptions:
     @property
     def variables(self) -> list[str]:
         return [self.y, *self.x]
+
+    def check_names(self, input_columns: Sequence[str], source: str) -> None:
+        """Refuse added or derived columns that share a name with another column.
+
+        Runs on the header's names before the data is read (see
+        ``panelprep.names.check_added_names``).
+        """
+        check_added_names(list(input_columns), self.names, self.transforms,
+                          [(s.name, s.option, s.kind) for s in self.shifts], source)
 
     @property
     def columns_to_read(self) -> list[str]:
@@ -150,14 +174,19 @@ def prepare_frame(
     input_info: dict[str, Any] | None = None,
     read_options: ReadOptions = DEFAULT_READ,
     progress: Progress = _silent,
+    check_names: bool = True,
 ) -> Preparation:
     """Clean, audit and transform a panel held in memory; nothing is written.
 
     Returns a ``Preparation`` whose ``tables`` hold ``clean``, each requested
     transform and ``dropped`` (the ledger), and whose ``summary`` is the
     diagnostics document.  When the gate fails, ``tables`` is empty.
+    ``check_names`` refuses added columns whose names the frame already uses
+    (off only where no table is built).
     """
     options.validate()
+    if check_names:
+        options.check_names(list(frame.columns), "the data")
     policies = options.policies
     flow = _Flow(frame, Ledger(rows_read=len(frame)))
     contract_findings = []
@@ -197,6 +226,7 @@ def prepare_frame(
         severities=severities, decimal_comma=read_options.decimal_comma,
         missing_tokens=read_options.missing_tokens, input_info=input_info,
         index=flow.index, progress=progress, prior_findings=contract_findings,
+        origin=flow.origin,
     )
     audited = report.context
     progress("building the estimation sample")
@@ -250,7 +280,7 @@ def prepare_frame(
     outputs = OutputTables(
         keys=keys.reset_index(drop=True), index=sample_ix, values=values, counts=counts,
         theta=components.theta_, options=options, ledger=flow.ledger, raw=frame,
-        progress=progress,
+        rows=flow.origin[np.flatnonzero(sample)] + 1, progress=progress,
     )
 
     # a severity given for a components finding counts like one given for a check
@@ -259,8 +289,12 @@ def prepare_frame(
     if options.validate_outputs and options.contract is not None:
         from panelprep.contracts import check_contract
 
-        findings += check_contract(outputs.build("clean"), options.contract,
-                                   where="output clean")
+        # checked as written less the row column, indexed by input row so
+        # examples name rows of the input
+        clean = outputs.build("clean")
+        clean = clean.drop(columns=[options.names.row]).set_index(
+            pd.Index(clean[options.names.row], name=None))
+        findings += check_contract(clean, options.contract, where="output clean")
     summary["findings"] = [f.to_dict() for f in findings]
     summary["verdict"] = gate(findings, options.fail_on)
     summary["sample"] = {"rows": len(codes), "entities": int(sample_ix.n_entities), **listwise,
@@ -272,7 +306,7 @@ def prepare_frame(
         progress("evidence on the entity effect")
         summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x)
     summary["transforms"] = outputs.info
-    summary["cautions"] = _cautions(outputs.info, components, sample_ix)
+    summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
     if summary["verdict"] == "fail":
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
@@ -291,13 +325,25 @@ def _context(flow: _Flow, options: PrepareOptions, read_options: ReadOptions) ->
                         missing_tokens=read_options.missing_tokens)
 
 
+# Why a regressor is left out of a transformed file.
+_LEFT_OUT = {
+    "no-within-variation": "constant within every entity: the within transform leaves zeros",
+    "no-twoway-variation": "explained by entity and period effects: the two-way transform "
+                           "leaves zeros",
+    "collinear": "a linear combination of the columns before it in this file "
+                 "(with the constant or intercept column where the file has one)",
+}
+
+
 @dataclass(eq=False)
 class OutputTables:
     """Builds the clean table, each transform and the ledger table on demand.
 
     ``info`` says what each transform did; it is known before building,
-    except the two-way transform's iterations and precision, which are added
-    when that table is built.
+    except what building finds: the two-way transform's iterations and
+    precision, and the regressors each transform leaves out
+    (``regressors_left_out``).  ``columns`` holds each built table's columns
+    with their roles (``panelprep.names``).
     """
 
     keys: pd.DataFrame
@@ -308,8 +354,10 @@ class OutputTables:
     options: PrepareOptions
     ledger: Ledger
     raw: pd.DataFrame
+    rows: np.ndarray
     progress: Progress = _silent
     info: dict[str, Any] = field(init=False)
+    columns: dict[str, list[dict[str, str]]] = field(init=False)
 
     def __post_init__(self) -> None:
         multi_rows = int((self.counts[self.index.entity_codes] > 1).sum())
@@ -323,6 +371,7 @@ class OutputTables:
             "twoway": {"rows": multi_rows, "singletons_dropped": singletons},
         }
         self.info = {name: plan[name] for name in self.options.transforms}
+        self.columns = {}
 
     @property
     def names(self) -> list[str]:
@@ -334,37 +383,93 @@ class OutputTables:
 
     @cached_property
     def _key_table(self) -> pa.Table:
-        return pa.Table.from_pandas(self.keys, preserve_index=False)
+        rows = pa.table({self.options.names.row: pa.array(self.rows, type=pa.int64())})
+        keys = pa.Table.from_pandas(self.keys, preserve_index=False)
+        return pa.Table.from_arrays([*rows.columns, *keys.columns],
+                                    names=[*rows.column_names, *keys.column_names])
 
     def arrow(self, name: str) -> pa.Table:
         """One output table as an Arrow table: key columns, then numpy columns without a copy."""
+        table = self._arrow(name)
+        self.columns[name] = self._roles(table.column_names)
+        return table
+
+    def _roles(self, columns: list[str]) -> list[dict[str, str]]:
+        opts, added = self.options, self.options.names
+        roles = {**{c: ROLE_KEY for c in [*opts.entity, opts.time]}, opts.y: ROLE_RESPONSE,
+                 **{c: ROLE_REGRESSOR for c in opts.x}, added.intercept: ROLE_INTERCEPT,
+                 added.entity_rows: ROLE_WEIGHT}
+        return [{"name": c, "role": roles.get(c, ROLE_AUXILIARY)} for c in columns]
+
+    def _arrow(self, name: str) -> pa.Table:
         codes, names, values = self.index.entity_codes, self.options.variables, self.values
+        added = self.options.names
         if name == "clean":
             return _with_columns(self._key_table, names, values)
         if name == "dropped":
-            frame = self.ledger.to_frame(self.raw, [*self.options.entity, self.options.time])
+            frame = self.ledger.to_frame(self.raw, [*self.options.entity, self.options.time],
+                                         added)
             return pa.Table.from_pandas(frame, preserve_index=False)
         self.progress(f"transform {name}")
         multi = self.counts[codes] > 1
         if name == "within":
             block = transforms.within(values, codes, self.counts)[multi]
-            return _with_columns(self._key_table.filter(pa.array(multi)), names, block)
+            kept = self._regressors(name, block, values, multi, "no-within-variation")
+            return _with_columns(self._key_table.filter(pa.array(multi)), names, block, kept)
         if name == "between":
             labels = pa.Table.from_pandas(self.index.entity_labels, preserve_index=False)
-            table = _with_columns(labels, names, transforms.between(values, codes, self.counts))
-            return table.append_column("n_obs", pa.array(self.counts))
+            block = transforms.between(values, codes, self.counts)
+            ones = np.ones(len(block))
+            kept = self._regressors(name, block, None, None, "collinear", first=ones)
+            table = _with_columns(labels, names, block, kept)
+            return table.append_column(added.entity_rows, pa.array(self.counts))
         if name == "quasi":
             block = transforms.quasi(values, codes, self.counts, self.theta)
-            table = _with_columns(self._key_table, names, block)
-            table = table.append_column("const", pa.array(1.0 - self.theta[codes]))
-            return table.append_column("theta", pa.array(self.theta[codes]))
+            intercept = 1.0 - self.theta[codes]
+            kept = self._regressors(name, block, values, None, "collinear", first=intercept)
+            table = _with_columns(self._key_table, names, block, kept)
+            table = table.append_column(added.intercept, pa.array(intercept))
+            return table.append_column(added.theta, pa.array(self.theta[codes]))
         sub = self.index.subset(multi)
         block, result = transforms.twoway(
             values[multi], sub.entity_codes, sub.period_codes, sub.n_entities, sub.n_periods,
             tol=self.options.twoway_tol,
         )
         self.info["twoway"].update(asdict(result))
-        return _with_columns(self._key_table.filter(pa.array(multi)), names, block)
+        kept = self._regressors(name, block, values, multi, "no-twoway-variation")
+        return _with_columns(self._key_table.filter(pa.array(multi)), names, block, kept)
+
+    def _regressors(self, name: str, block: np.ndarray, raw: np.ndarray | None,
+                    rows: np.ndarray | None, wiped: str,
+                    first: np.ndarray | None = None) -> np.ndarray:
+        """Which columns of ``block`` (y, then x) the file keeps; the rest are recorded.
+
+        A regressor is left out when the transform left nothing of it
+        (``wiped``, judged against the norm of the untransformed column on
+        the same rows) or when it is a combination of the columns before it
+        (``first``, the constant or intercept column, then the earlier
+        regressors), so OLS on every regressor column is well defined.
+        """
+        k = block.shape[1] - 1
+        columns = [block[:, j] for j in range(1, k + 1)]
+        if raw is None:
+            scale = np.linalg.norm(block[:, 1:], axis=0)
+        else:
+            scale = np.array([np.sqrt(np.square(raw[:, j] if rows is None else raw[rows, j]).sum())
+                              for j in range(1, k + 1)])
+        if first is not None:
+            columns.insert(0, first)
+            scale = np.concatenate([[np.sqrt(len(first))], scale])
+        independent, negligible = independent_columns(columns, scale)
+        if first is not None:
+            independent, negligible = independent[1:], negligible[1:]
+        left_out = []
+        for j in np.flatnonzero(~independent):
+            reason = wiped if negligible[j] and raw is not None else "collinear"
+            left_out.append({"name": self.options.x[j], "reason": reason,
+                             "why": _LEFT_OUT[reason]})
+        self.info[name]["regressors_left_out"] = left_out
+        return np.concatenate([[True], independent])
 
 
 def _listwise_summary(ctx: AuditContext) -> dict:
@@ -444,11 +549,16 @@ class _Flow:
         ))
 
 
-def _with_columns(keys: pa.Table, names: list[str], block: np.ndarray) -> pa.Table:
-    """Key columns followed by one column per name from a (rows, names) block."""
+def _with_columns(keys: pa.Table, names: list[str], block: np.ndarray,
+                  kept: np.ndarray | None = None) -> pa.Table:
+    """Key columns followed by one column per name from a (rows, names) block.
+
+    ``kept`` leaves out the columns it marks False.
+    """
     block = np.asfortranarray(block)
-    arrays = [*keys.columns, *(pa.array(block[:, j]) for j in range(len(names)))]
-    return pa.Table.from_arrays(arrays, names=[*keys.column_names, *names])
+    chosen = range(len(names)) if kept is None else np.flatnonzero(kept)
+    arrays = [*keys.columns, *(pa.array(block[:, j]) for j in chosen)]
+    return pa.Table.from_arrays(arrays, names=[*keys.column_names, *(names[j] for j in chosen)])
 
 
 def _gate_caution(report: AuditReport) -> str:
@@ -458,7 +568,8 @@ def _gate_caution(report: AuditReport) -> str:
             "Fix the input, or state a cleaning policy, and run again.")
 
 
-def _cautions(info: dict, components: VarianceComponents, index: PanelIndex) -> list[str]:
+def _cautions(info: dict, components: VarianceComponents, index: PanelIndex,
+              names: AddedNames) -> list[str]:
     out = []
     if "within" in info:
         absorbed = info["within"]["entities_absorbed"]
@@ -474,8 +585,16 @@ def _cautions(info: dict, components: VarianceComponents, index: PanelIndex) -> 
         )
     if "quasi" in info:
         out.append(
-            "OLS on the quasi file gives random-effects (feasible GLS) slopes; keep the const "
-            "column as the regressor for the intercept and fit without an added constant."
+            "OLS on the quasi file gives random-effects (feasible GLS) slopes; keep the "
+            f"{names.intercept} column as the regressor for the intercept and fit without an "
+            "added constant."
+        )
+    if info:
+        out.append(
+            "Each file holds only the regressors OLS can estimate on it: a regressor the "
+            "transform wiped out or made collinear is left out of that file and listed under "
+            "transforms.<file>.regressors_left_out; the file's column roles are in its "
+            "metadata and in files[].columns."
         )
     out.append(
         "Errors may be serially correlated within entities: cluster standard errors by entity "
@@ -538,6 +657,8 @@ def run_preparation(
     ``force`` can never delete them.
     """
     options.validate()
+    # before the folder and before any data is read: the header names suffice
+    options.check_names(column_names(Path(data), read_options), str(data))
     folder = OutputFolder(Path(out), [Path(data), *map(Path, keep)], force=force)
     try:
         progress(f"reading {data}")
@@ -572,16 +693,19 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
     for name in prep.outputs.names if prep.outputs is not None else []:
         # built, written and freed one at a time: peak memory holds one table
         table = prep.tables[name] if "tables" in prep.__dict__ else prep.outputs.arrow(name)
+        columns = prep.outputs.columns[name]
         fmt = "parquet" if name == "dropped" else options.output_format
         path = folder.path(f"{name}.{'parquet' if name == 'dropped' else suffix}")
         progress(f"writing {path.name}")
         meta = {"panelprep": json.dumps({**base_meta, "file": name,
                                          "transform": name if name in TRANSFORMS else None,
                                          "transform_info": prep.summary.get("transforms", {}).get(name),
-                                         "theta": (prep.summary.get("components") or {}).get("theta")},
+                                         "theta": (prep.summary.get("components") or {}).get("theta"),
+                                         "columns": columns, "rows_counted": ROW_CONVENTION},
                                         sort_keys=True, allow_nan=False)}
         write_table(table, path, fmt, meta)
-        files.append({"name": path.name, "rows": len(table), "sha256": sha256_file(path)})
+        files.append({"name": path.name, "rows": len(table), "sha256": sha256_file(path),
+                      "columns": columns})
         del table
     prep.summary["files"] = files
     text = json.dumps(prep.summary, indent=2, ensure_ascii=False, allow_nan=False)
@@ -614,6 +738,7 @@ def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
         from panelprep.contracts import load_contract
 
         contract = load_contract(run.contract.schema)
+    names = run.added_names()
     options = PrepareOptions(
         entity=list(run.panel.entity), time=run.panel.time, y=run.model.y, x=list(run.model.x),
         freq=run.panel.freq, transforms=list(run.output.transforms), method=run.output.method,
@@ -623,10 +748,11 @@ def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
             duplicates=run.clean.duplicates, normalise_ids=run.clean.normalise_ids,
             singletons=run.clean.singletons, balance=run.clean.balance, window=run.clean.window,
         ),
-        shifts=[*parse_shifts("lag", run.derive.lag), *parse_shifts("lead", run.derive.lead),
-                *parse_shifts("diff", run.derive.diff)],
+        shifts=[*parse_shifts("lag", run.derive.lag, names),
+                *parse_shifts("lead", run.derive.lead, names),
+                *parse_shifts("diff", run.derive.diff, names)],
         contract=contract, validate_outputs=run.contract.validate_outputs,
-        evidence=run.output.evidence,
+        evidence=run.output.evidence, names=names,
     )
     return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
                            force=run.output.force, progress=progress,
@@ -647,4 +773,4 @@ def estimate_file_components(
                              evidence=False)
     options.validate()
     frame, info = load(data, options.entity, time, options.columns_to_read, read_options)
-    return prepare_frame(frame, options, info, read_options, progress)
+    return prepare_frame(frame, options, info, read_options, progress, check_names=False)

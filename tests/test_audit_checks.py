@@ -177,6 +177,8 @@ def test_exact_repeats_point_at_the_later_copies():
     finding = run("exact_duplicates.csv").finding("row-repeated")
     assert [(e["row"], e["firm_id"], e["year"]) for e in finding.examples] == [
         (3, "00101", 2021), (14, "00101", 2021), (15, "00103", 2023)]
+    # and each names the row it repeats, counted the same way
+    assert [e["repeats_row"] for e in finding.examples] == [2, 2, 13]
 
 
 @pytest.mark.parametrize("name", NAMES)

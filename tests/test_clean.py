@@ -21,6 +21,7 @@ from hypothesis import strategies as st
 from panelprep.clean import Policies, balance_removal, singleton_removal, window_removal
 from panelprep.index import build_index
 from panelprep.io import ReadOptions
+from panelprep.names import DEFAULT_NAMES as N
 from panelprep.pipeline import load
 from panelprep.prepare import PrepareOptions, prepare_frame
 
@@ -40,6 +41,9 @@ def _dropped(frame: pd.DataFrame, prep, time: str = "year") -> pd.DataFrame:
     table = prep.tables.get("dropped")
     if table is None:
         table = prep.ledger.to_frame(frame, ["firm_id", time])
+    # the file numbers rows from 1; the hand counts below are 0-based positions
+    table = table.rename(columns={N.reason: "reason", N.step: "step"})
+    table.insert(0, "input_row", table.pop(N.row) - 1)
     return table.sort_values("input_row").reset_index(drop=True)
 
 

@@ -468,3 +468,36 @@ def test_starter_uses_a_given_head_and_refuses_too_few_columns(tmp_path):
     run = load_run_file(write(tmp_path, starter_run_file(data, frame_head=head)))
     assert (run.panel.entity, run.panel.time, run.model.y, run.model.x) == (
         ["unit"], "t", "v", ["w"])
+
+
+# --- [names]: the columns panelprep adds -------------------------------------------------
+
+
+def test_names_section_renames_added_columns_and_templates(tmp_path):
+    text = MINIMAL + '\n[names]\nrow = "src_row"\ntheta = "re_theta"\nlag = "{var}_L{k}"\n'
+    run = load_run_file(write(tmp_path, text))
+    names = run.added_names()
+    assert (names.row, names.theta, names.intercept) == ("src_row", "re_theta", "pp_intercept")
+    assert names.derived("lag", "sales", 2) == "sales_L2"
+    # the canonical form keeps them
+    again = load_run_file(write(tmp_path, run.to_toml(tmp_path), "again.toml"))
+    assert again.added_names() == names
+
+
+@pytest.mark.parametrize(("line_text", "fragment"), [
+    ('row = ""', "names.row must be a column name"),
+    ('theta = "a{b}"', "names.theta must be a column name without braces"),
+    ('lag = "{var}_lag"', "names.lag must be a name template holding {var} and {k}"),
+    ('diff = "{var}_{k}_{z}"', "names.diff must be a name template"),
+])
+def test_bad_names_are_errors_with_their_line(tmp_path, line_text, fragment):
+    text = MINIMAL + "\n[names]\n" + line_text + "\n"
+    message = error_of(write(tmp_path, text))
+    assert fragment in message, message
+    assert f":{line_of(text, line_text)}:" in message, message
+
+
+def test_starter_run_file_shows_the_names_section(tmp_path):
+    text = starter_run_file(FIXTURES / "gaps.csv", run_dir=tmp_path)
+    assert "[names]" in text and '# intercept = "pp_intercept"' in text
+    load_run_file(write(tmp_path, text))

@@ -24,6 +24,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import panelprep.report.html
+from panelprep.names import DEFAULT_NAMES as N
 from panelprep.prepare import prepare
 
 # these transforms write the key columns; between writes the ids only
@@ -129,7 +130,7 @@ def test_random_ids_and_periods_come_back_from_every_file(tmp_path_factory, case
     between = read_back(root / "out" / f"between{suffix}")
     assert sorted(between["firm"]) == sorted(ids)
     dropped = read_back(root / "out" / "dropped.parquet")
-    assert len(dropped) == 0 and list(dropped.columns)[:3] == ["input_row", "firm", "when"]
+    assert len(dropped) == 0 and list(dropped.columns)[:3] == [N.row, "firm", "when"]
 
 
 TRICKY_IDS = ["00123", "0123", "123", "A 1", "a 1", "A  1", " A1", "A1 ", "a,b", 'say "hi"',

@@ -17,6 +17,7 @@ from hypothesis import strategies as st
 
 from panelprep.clean import BALANCE, DUPLICATES, NORMALISE, SINGLETONS, Policies
 from panelprep.errors import InputError
+from panelprep.names import DEFAULT_NAMES as N
 from panelprep.prepare import TRANSFORMS, PrepareOptions, prepare_frame
 
 
@@ -124,9 +125,17 @@ def test_every_input_row_is_kept_or_in_the_ledger_once(seed, defects, policy, tr
     else:
         event("gate failed")
         dropped = prep.ledger.to_frame(frame, key)
-    rows = dropped["input_row"].to_numpy()
+    rows = dropped[N.row].to_numpy() - 1  # the file counts data rows from 1
     assert len(np.unique(rows)) == len(rows)
     assert ((rows >= 0) & (rows < len(frame))).all()
     source = frame[key].iloc[rows].reset_index(drop=True)
     pd.testing.assert_frame_equal(dropped[key], source)
-    assert dropped["reason"].notna().all() and dropped["step"].notna().all()
+    assert dropped[N.reason].notna().all() and dropped[N.step].notna().all()
+    if prep.tables:
+        # each input row is in clean or in the ledger, once, under the same numbering
+        kept = prep.tables["clean"][N.row].to_numpy() - 1
+        assert sorted([*kept, *rows]) == list(range(len(frame)))
+        if policy.normalise_ids == "none" and policy.duplicates != "mean":
+            kept_keys = frame[key].iloc[kept].reset_index(drop=True)
+            pd.testing.assert_frame_equal(prep.tables["clean"][key], kept_keys,
+                                          check_dtype=False)

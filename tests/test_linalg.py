@@ -107,3 +107,18 @@ def test_entity_moments_factor_the_within_cross_product():
     within = (frame.drop(columns="g") - frame.groupby("g").transform("mean")).to_numpy()
     np.testing.assert_allclose(mom.r_within.T @ mom.r_within, within.T @ within, atol=1e-9)
     np.testing.assert_allclose(mom.within_ss, (within**2).sum(axis=0), rtol=1e-12)
+
+
+@pytest.mark.parametrize("rows", [500, _linalg.GRAM_MIN_ROWS + 10])
+def test_independent_columns_keeps_earlier_columns_and_agrees_with_numpy_rank(rows):
+    # columns: a, b, a + 2b (dependent on the two before it), rounding noise, c, 3c - b
+    rng = np.random.default_rng(3)
+    a, b, c = (rng.normal(size=rows) for _ in range(3))
+    noise = rng.normal(size=rows) * 1e-17
+    columns = [a, b, a + 2 * b, noise, c, 3 * c - b]
+    kept, negligible = _linalg.independent_columns(columns, np.ones(len(columns)))
+    assert kept.tolist() == [True, True, False, False, True, False]
+    assert negligible.tolist() == [False, False, False, True, False, False]
+    # numpy's SVD rank of the kept columns and of all of them (another route)
+    design = np.column_stack(columns)
+    assert np.linalg.matrix_rank(design[:, kept]) == kept.sum() == np.linalg.matrix_rank(design)

@@ -33,6 +33,7 @@ from typer.testing import CliRunner
 import panelprep
 from panelprep._version import __version__
 from panelprep.cli import app
+from panelprep.names import DEFAULT_NAMES as N
 from panelprep.prepare import PrepareOptions, prepare, prepare_frame
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
@@ -135,7 +136,7 @@ def test_swamy_arora_equals_the_balanced_textbook_formulas(grunfeld_csv, diagnos
 
 def test_quasi_file_gives_the_random_effects_slopes(grunfeld_run, grunfeld_csv, diagnostics):
     quasi = pd.read_parquet(grunfeld_run / "quasi.parquet")
-    coef = _lstsq(quasi, "invest", ["value", "capital", "const"])
+    coef = _lstsq(quasi, "invest", ["value", "capital", N.intercept])
     # Baltagi, Table 2.1 random effects (values from memory): 0.1098, 0.3081, const -57.83
     np.testing.assert_allclose(coef[:2], [0.1098, 0.3081], atol=5e-5)
     assert coef[2] == pytest.approx(-57.83, abs=5e-3)
@@ -235,7 +236,7 @@ def test_prepare_frame_in_memory(grunfeld_csv):
     prep = prepare_frame(frame, PrepareOptions(entity=["firm"], time="year", y="invest",
                                                x=["value", "capital"]))
     assert set(prep.tables) == {"clean", "within", "between", "quasi", "dropped"}
-    coef = _lstsq(prep.tables["quasi"], "invest", ["value", "capital", "const"])
+    coef = _lstsq(prep.tables["quasi"], "invest", ["value", "capital", N.intercept])
     # Baltagi, Table 2.1 random effects (values from memory)
     np.testing.assert_allclose(coef[:2], [0.1098, 0.3081], atol=5e-5)
     assert coef[2] == pytest.approx(-57.83, abs=5e-3)
@@ -328,7 +329,7 @@ def test_time_invariant_regressor_stays_in_quasi_and_leaves_the_within_regressio
     text = (out / "diagnostics.txt").read_text(encoding="utf-8")
     assert any("founded" in line and "within" in line for line in text.splitlines())
     quasi = pd.read_parquet(out / "quasi.parquet")
-    theta = quasi["theta"].to_numpy()
+    theta = quasi[N.theta].to_numpy()
     clean = pd.read_parquet(out / "clean.parquet")
     # founded survives quasi-demeaning as (1 - theta) x founded, one value per firm
     np.testing.assert_allclose(quasi["founded"], (1 - theta) * clean["founded"], rtol=1e-12)
@@ -428,7 +429,7 @@ def test_lagged_regressor_through_the_flow(grunfeld_csv, tmp_path):
     dropped = pd.read_parquet(tmp_path / "out" / "dropped.parquet")
     # 1935 has no earlier year: one row per firm leaves by listwise deletion
     assert len(clean) == 190 and len(dropped) == 10
-    assert set(dropped["year"]) == {1935} and set(dropped["reason"]) == {"listwise-missing"}
+    assert set(dropped["year"]) == {1935} and set(dropped[N.reason]) == {"listwise-missing"}
     merged = clean.merge(_grunfeld_lagged(grunfeld_csv), on=["firm", "year"], suffixes=("", "_ref"))
     np.testing.assert_array_equal(merged["value_lag1"], merged["value_lag1_ref"])
 
@@ -449,21 +450,21 @@ def test_window_keeps_lags_that_reach_before_it(grunfeld_csv, tmp_path):
 
 
 def test_cleaning_policies_from_the_command_line(tmp_path):
-    # conflicting_duplicates.csv with keep-last: rows 5, 6 (00102/2020) and 17 (00104/2022)
-    # give way to the later rows 13 and 18 (hand count, see test_clean.py)
+    # conflicting_duplicates.csv with keep-last: rows 6, 7 (00102/2020) and 18 (00104/2022)
+    # give way to the later rows 14 and 19 (hand count, see test_clean.py; rows from 1 here)
     out = tmp_path / "dup"
     result = invoke("prepare", FIXTURES / "conflicting_duplicates.csv", "--entity", "firm_id",
                     "--time", "year", "--y", "sales", "--x", "capital,staff", "--out", out,
                     "--duplicates", "keep-last")
     assert result.exit_code == 0, result.output
     dropped = pd.read_parquet(out / "dropped.parquet")
-    assert sorted(dropped["input_row"]) == [5, 6, 17]
-    # singletons.csv with --singletons drop: rows 8, 9 and 12 are the three one-row firms
+    assert sorted(dropped[N.row]) == [6, 7, 18]
+    # singletons.csv with --singletons drop: rows 9, 10 and 13 are the three one-row firms
     out = tmp_path / "single"
     result = invoke("prepare", FIXTURES / "singletons.csv", "--entity", "firm_id", "--time",
                     "year", "--y", "sales", "--x", "capital", "--out", out,
                     "--singletons", "drop")
     assert result.exit_code == 0, result.output
     dropped = pd.read_parquet(out / "dropped.parquet")
-    assert sorted(dropped["input_row"]) == [8, 9, 12]
+    assert sorted(dropped[N.row]) == [9, 10, 13]
     assert len(pd.read_parquet(out / "clean.parquet")) == 10

@@ -85,6 +85,13 @@ class AuditContext:
     thresholds: Thresholds = field(default_factory=Thresholds)
     decimal_comma: bool = False
     missing_tokens: tuple[str, ...] = ()
+    # 0-based input position of each frame row, when earlier steps removed rows
+    origin: np.ndarray | None = None
+
+    def input_rows(self, rows: np.ndarray) -> np.ndarray:
+        """Row numbers in the input (data rows from 1) of frame positions ``rows``."""
+        rows = np.asarray(rows, dtype=np.int64)
+        return (rows if self.origin is None else self.origin[rows]) + 1
 
     @cached_property
     def _numeric(self) -> tuple[np.ndarray, dict[str, NonNumeric]]:
@@ -122,7 +129,7 @@ class AuditContext:
         the sample left after the post-audit cleaning policies.
         """
         out = AuditContext(self.frame, self.index, self.variables, self.thresholds,
-                           self.decimal_comma, self.missing_tokens)
+                           self.decimal_comma, self.missing_tokens, origin=self.origin)
         shared = {"_duplicates": self._duplicates, "base": self.base, "complete": self.complete,
                   "sample": self.sample & keep}
         if "_numeric" in self.__dict__:
@@ -251,11 +258,11 @@ class AuditContext:
         ))
 
     def row_key(self, rows: np.ndarray) -> list[dict[str, object]]:
-        """Example dicts (row counted from 1, entity, time) for frame positions."""
+        """Example dicts (input row counted from 1, entity, time) for frame positions."""
         rows = np.asarray(rows, dtype=np.int64)
         out = []
-        for row in rows:
-            example: dict[str, object] = {"row": int(row) + 1}
+        for row, number in zip(rows, self.input_rows(rows)):
+            example: dict[str, object] = {"row": int(number)}
             for column in [*self.index.entity, self.index.time]:
                 value = self.frame[column].iloc[int(row)]
                 example[column] = None if pd.isna(value) else _plain(value)

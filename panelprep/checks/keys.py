@@ -32,7 +32,15 @@ def conflicting_keys(ctx: AuditContext, self: Check):
         return None
     rows_in_conflict = np.flatnonzero(np.isin(ctx.index.cell, cells) & ctx.base)
     first_rows = rows_in_conflict[np.unique(ctx.index.cell[rows_in_conflict], return_index=True)[1]]
-    examples = ctx.row_key(np.sort(first_rows)[:MAX_EXAMPLES])
+    shown = np.sort(first_rows)[:MAX_EXAMPLES]
+    # every keyed row of each shown key, in file order: the example says which rows clash
+    shown_cells = ctx.index.cell[shown]
+    with_key = np.flatnonzero(np.isin(ctx.index.cell, shown_cells) & ctx.keyed)
+    examples = []
+    for example, cell in zip(ctx.row_key(shown), shown_cells):
+        rows = ctx.input_rows(with_key[ctx.index.cell[with_key] == cell])
+        examples.append({"rows": [int(r) for r in rows],
+                         **{k: v for k, v in example.items() if k != "row"}})
     return self.finding(
         len(cells),
         f"{len(cells)} key(s) appear on rows with differing values ({len(rows_in_conflict)} rows)",
@@ -46,11 +54,31 @@ def exact_repeats(ctx: AuditContext, self: Check):
     rows = np.flatnonzero(ctx.repeat)
     if len(rows) == 0:
         return None
+    shown = rows[:MAX_EXAMPLES]
+    examples = []
+    for example, row, original in zip(ctx.row_key(shown), shown, _originals(ctx, shown)):
+        first = {} if original is None else {"repeats_row": int(ctx.input_rows([original])[0])}
+        examples.append({"row": example["row"], **first,
+                         **{k: v for k, v in example.items() if k != "row"}})
     return self.finding(
         len(rows),
         f"{len(rows)} row(s) repeat an earlier row exactly; they are collapsed for all counts",
-        ctx.row_key(rows[:MAX_EXAMPLES]),
+        examples,
     )
+
+
+def _originals(ctx: AuditContext, repeats: np.ndarray) -> list[int | None]:
+    """For each shown repeated row, the first earlier row it repeats (a few rows only)."""
+    columns = [*ctx.index.entity, ctx.index.time, *ctx.variables]
+    out = []
+    for row in repeats:
+        same_key = np.flatnonzero(ctx.index.cell[: row] == ctx.index.cell[row])
+        earlier = ctx.frame[columns].iloc[same_key]
+        target = ctx.frame[columns].iloc[int(row)]
+        equal = (earlier == target) | (earlier.isna() & target.isna())
+        hits = np.flatnonzero(equal.all(axis=1).to_numpy())
+        out.append(int(same_key[hits[0]]) if len(hits) else None)
+    return out
 
 
 @check("entity-id-lookalike", "warning", "entity ids that differ only by case or outer spaces")

@@ -23,7 +23,7 @@ def not_numeric(ctx: AuditContext, self: Check):
     examples = []
     for name, problem in bad.items():
         for row in problem.rows[:MAX_EXAMPLES]:
-            examples.append({"column": name, "row": int(row) + 1,
+            examples.append({"column": name, "row": int(ctx.input_rows([row])[0]),
                              "value": str(ctx.frame[name].iloc[int(row)])})
     details = {name: {"rows": len(p.rows), "values": p.values} for name, p in bad.items()}
     names = ", ".join(f"{n} ({len(p.rows)})" for n, p in bad.items())

@@ -509,8 +509,10 @@ def _files(summary: dict[str, Any]) -> str:
     built = summary.get("transforms") or {}
     if built:
         rows = [[f"<code>{_e(name)}</code>", _num(info.get("rows")),
-                 _e(", ".join(f"{k.replace('_', ' ')} {_num(v)}" for k, v in info.items()
-                              if k != "rows"))]
+                 _e(", ".join([*(f"{k.replace('_', ' ')} {_num(v)}" for k, v in info.items()
+                                 if k not in ("rows", "regressors_left_out")),
+                               *(f"left out: {r['name']} ({r['why']})"
+                                 for r in info.get("regressors_left_out") or [])]))]
                 for name, info in built.items()]
         body += "<h3>Transforms built</h3>" + _table(["transform", "rows", "details"], rows,
                                                      numeric={1})

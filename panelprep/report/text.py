@@ -144,8 +144,11 @@ def preparation_lines(summary: dict[str, Any]) -> list[str]:
     if summary.get("transforms"):
         lines += ["", "Files built"]
         for name, info in summary["transforms"].items():
-            extra = ", ".join(f"{k} {v}" for k, v in info.items() if k != "rows")
+            extra = ", ".join(f"{k} {v}" for k, v in info.items()
+                              if k not in ("rows", "regressors_left_out"))
             lines.append(f"  {name}: {info['rows']:,} rows" + (f" ({extra})" if extra else ""))
+            lines += [f"    left out of {name}: {r['name']} ({r['why']})"
+                      for r in info.get("regressors_left_out") or []]
     if summary.get("evidence"):
         lines += ["", "Evidence on the choice of estimator (not a verdict)"]
         lines += [f"  {line}" for line in summary["evidence"].get("reading", [])]
