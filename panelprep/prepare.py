@@ -22,6 +22,7 @@ import pyarrow as pa
 from panelprep import transforms
 from panelprep._groups import group_counts
 from panelprep._linalg import independent_columns
+from panelprep._scale import standardise
 from panelprep._version import __version__
 from panelprep.checks import AuditContext, Thresholds
 from panelprep.clean import (
@@ -452,11 +453,11 @@ class OutputTables:
         """
         k = block.shape[1] - 1
         columns = [block[:, j] for j in range(1, k + 1)]
-        if raw is None:
-            scale = np.linalg.norm(block[:, 1:], axis=0)
-        else:
-            scale = np.array([np.sqrt(np.square(raw[:, j] if rows is None else raw[rows, j]).sum())
-                              for j in range(1, k + 1)])
+        # reference sizes about the column's mean, taken on scaled values: a
+        # level (x + 1e9) or a magnitude (1e200) must not change the decision
+        source = block if raw is None else raw
+        scale = np.array([_centred_norm(source[:, j] if raw is None or rows is None
+                                        else source[rows, j]) for j in range(1, k + 1)])
         if first is not None:
             columns.insert(0, first)
             scale = np.concatenate([[np.sqrt(len(first))], scale])
@@ -470,6 +471,12 @@ class OutputTables:
                              "why": _LEFT_OUT[reason]})
         self.info[name]["regressors_left_out"] = left_out
         return np.concatenate([[True], independent])
+
+
+def _centred_norm(column: np.ndarray) -> float:
+    """``||x - mean(x)||`` without overflow or underflow (see ``_scale.standardise``)."""
+    standard = standardise(column)
+    return float(standard.scale[0] * np.linalg.norm(standard.z[:, 0]))
 
 
 def _listwise_summary(ctx: AuditContext) -> dict:
