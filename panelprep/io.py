@@ -526,29 +526,37 @@ def check_output_folder(target: Path, inputs: Sequence[Path], force: bool = Fals
         raise InputError(f"{target}: cannot use as an output folder: "
                          f"{err.strerror or _short(err)}") from None
     if problem:
-        raise InputError(f"{target}: {problem}")
+        reason, hint = problem
+        raise InputError(f"{target}: {reason}{hint}")
 
 
-def _unacceptable(path: Path, force: bool, replaceable: frozenset[str]) -> str | None:
-    """Why what ``path`` names may not be replaced by an output folder (None: it may)."""
+def _unacceptable(path: Path, force: bool,
+                  replaceable: frozenset[str]) -> tuple[str, str] | None:
+    """Why what ``path`` names may not be replaced by an output folder, and what to do.
+
+    None when it may: nothing there, an empty folder, any folder under
+    ``force``, or one holding only names in ``replaceable`` (a link counts
+    as the folder it points to; replacing it removes the link itself).
+    """
     try:
         found = os.lstat(path)
     except FileNotFoundError:
         return None
-    if stat.S_ISLNK(found.st_mode):
-        # replacing a link removes the link itself, never what it points to
-        return None if path.exists() else "is a broken symbolic link"
-    if not stat.S_ISDIR(found.st_mode):
-        return "exists and is not a folder"
+    if stat.S_ISLNK(found.st_mode) and not path.exists():
+        return "is a broken symbolic link", ""
+    # a link is judged by the folder it points to, though only the link is ever replaced
+    if not path.is_dir():
+        return "exists and is not a folder", ""
     names = set(os.listdir(path))
     if not names or force:
         return None
     if replaceable:
         if names <= replaceable:
             return None
-        return (f"folder exists and holds files other than a failed run's "
-                f"{', '.join(sorted(replaceable))}; move them, or name another folder (--failed-out)")
-    return "folder exists and is not empty (use --force to replace it)"
+        reason = ("folder exists and holds files other than a failed run's "
+                  + ", ".join(sorted(replaceable)))
+        return reason, "; move them, or name another folder (--failed-out)"
+    return "folder exists and is not empty", " (use --force to replace it)"
 
 
 class OutputFolder:
@@ -586,6 +594,7 @@ class OutputFolder:
             self.temp = _fresh_folder(parent)
         except OSError as err:
             raise InputError(f"{self.target}: cannot create output: {err.strerror}") from None
+        self._own = _own_identity(self.temp)
 
     def path(self, name: str) -> Path:
         return self.temp / name
@@ -612,48 +621,87 @@ class OutputFolder:
             self._committed = True
             _written.append(self.target)
 
-    def _problem(self, path: Path) -> str | None:
+    def _appeared(self, path: Path) -> InputError | None:
+        """The error for what was found at the target when it may not be replaced."""
         problem = _unacceptable(path, self.force, self.replaceable)
         # the folders holding the inputs, as they were when the run started and as they are
         guarded = self._guarded.union(*(_lineage(source) for source in self.inputs))
         if problem is None and not path.is_symlink() and _identity(path) in guarded:
-            problem = "holds one of the run's inputs"
-        return problem
+            problem = "it holds one of the run's inputs", ""
+        if problem is None:
+            return None
+        reason, hint = problem
+        return InputError(f"{self.target}: target appeared during the run ({reason}); it was "
+                          f"left as it was and nothing was written{hint}")
 
     def _swap_in(self) -> None:
-        for _ in range(10):
+        for _ in range(20):
             try:
                 _rename(self.temp, self.target, _RENAME_NOREPLACE)
                 return
             except FileExistsError:
                 pass
-            try:
-                _rename(self.temp, self.target, _RENAME_EXCHANGE)
-            except FileNotFoundError:
-                continue  # it went away again: try the plain rename once more
-            # self.temp now names what was at the target
-            problem = self._problem(self.temp)
-            if problem is not None:
-                try:
-                    _rename(self.temp, self.target, _RENAME_EXCHANGE)
-                except (OSError, _NoAtomicRename):
-                    self._committed = True  # self.temp is not ours now: never remove it
-                    raise InputError(f"{self.target}: another run's folder appeared there and "
-                                     f"could not be put back; it is at {self.temp}") from None
-                raise InputError(f"{self.target}: target appeared during the run and {problem}; "
-                                 "it was left as it was and nothing was written")
-            old, self.temp = self.temp, self.target
-            _discard(old)
-            return
+            if self.force or self._replaceable_now():
+                if self._exchange():
+                    return
+            else:
+                self._clear_empty()
         raise InputError(f"{self.target}: kept changing while the output was put in place; "
                          "nothing was written, run again")
 
+    def _replaceable_now(self) -> bool:
+        """Whether the target is a folder holding only names this folder may replace."""
+        try:
+            names = set(os.listdir(self.target))
+        except OSError:
+            return False
+        return bool(self.replaceable) and bool(names) and names <= self.replaceable
+
+    def _clear_empty(self) -> None:
+        """Without force: remove an empty folder (or a link to one) at the target, else refuse.
+
+        Both removals fail on anything else put there meanwhile (``rmdir`` on
+        a folder that is not empty, ``unlink`` on a folder), so what another
+        run committed is never removed; the next round judges it again.
+        """
+        try:
+            found = os.lstat(self.target)
+        except FileNotFoundError:
+            return
+        error = self._appeared(self.target)
+        if error is not None:
+            raise error
+        with contextlib.suppress(OSError):
+            if stat.S_ISLNK(found.st_mode):
+                os.unlink(self.target)
+            else:
+                os.rmdir(self.target)
+
+    def _exchange(self) -> bool:
+        """Under force: swap the new folder and what is at the target in one step."""
+        try:
+            _rename(self.temp, self.target, _RENAME_EXCHANGE)
+        except FileNotFoundError:
+            return False  # it went away again: try the plain rename once more
+        # self.temp now names what was at the target
+        error = self._appeared(self.temp)
+        if error is not None:
+            try:
+                _rename(self.temp, self.target, _RENAME_EXCHANGE)
+            except (OSError, _NoAtomicRename):
+                self._committed = True  # self.temp is not ours now: never remove it
+                raise InputError(f"{self.target}: what appeared there during the run could "
+                                 f"not be put back; it is at {self.temp}") from None
+            raise error
+        old, self.temp = self.temp, self.target
+        _discard(old)
+        return True
+
     def _commit_locked(self) -> None:
         with _parent_lock(self.temp.parent):
-            problem = self._problem(self.target)
+            problem = self._appeared(self.target)
             if problem is not None:
-                raise InputError(f"{self.target}: target appeared during the run and {problem}; "
-                                 "it was left as it was and nothing was written")
+                raise problem
             old = None
             if os.path.lexists(self.target):
                 old = _fresh_name(self.temp.parent)
@@ -668,7 +716,8 @@ class OutputFolder:
                 _discard(old)
 
     def abandon(self) -> None:
-        if not self._committed and self.temp.exists():
+        """Remove the temporary folder, only if it is still this run's own (by identity)."""
+        if not self._committed and _own_identity(self.temp) == self._own:
             _remove_tree(self.temp)
 
 
@@ -735,6 +784,15 @@ def _signals_held():
         yield
     finally:
         signal.pthread_sigmask(signal.SIG_SETMASK, before)
+
+
+def _own_identity(path: Path) -> tuple[int, int] | None:
+    """(device, inode) of ``path`` itself, not following a link."""
+    try:
+        found = os.lstat(path)
+    except OSError:
+        return None
+    return found.st_dev, found.st_ino
 
 
 def _discard(path: Path) -> None:
