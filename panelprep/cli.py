@@ -8,6 +8,7 @@ traceback).
 from __future__ import annotations
 
 import json
+import os
 import sys
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
@@ -24,6 +25,7 @@ if TYPE_CHECKING:
 # argument check answer at once.
 
 EXIT_PASS, EXIT_FAIL, EXIT_UNUSABLE = 0, 1, 2
+EXIT_INTERRUPTED = 130  # 128 + SIGINT, as shells report a run stopped by Ctrl-C
 
 app = typer.Typer(
     add_completion=False,
@@ -104,6 +106,7 @@ def audit_command(
     from panelprep import pipeline
     from panelprep.report.text import audit_lines
     try:
+        _check_reports([report, report_html], data)
         result = pipeline.audit_file(
             data, entity, time, vars,
             options=_read_options(input_format, delimiter, decimal_comma, missing_token),
@@ -130,6 +133,7 @@ def prepare_command(
     y: Annotated[str | None, typer.Option("--y", help="Dependent variable.")] = None,
     x: Annotated[str | None, typer.Option("--x", help="Regressors, comma-separated (may name lags, e.g. sales_lag1).")] = None,
     out: Annotated[Path | None, typer.Option("--out", "-o", help="Output folder.")] = None,
+    failed_out: Annotated[Path | None, typer.Option("--failed-out", help="Folder for the diagnostics when the gate fails (default: OUT.failed beside --out); --out is then left as it was.")] = None,
     transform: Annotated[str | None, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway (default within,between,quasi).")] = None,
     method: Annotated[str | None, typer.Option("--method", help="Variance components: swamy-arora (default), wallace-hussain, amemiya or nerlove.")] = None,
     output_format: Annotated[str | None, typer.Option("--format", help="Data files as parquet (default) or csv.")] = None,
@@ -168,7 +172,7 @@ def prepare_command(
         "clean.duplicates": duplicates, "clean.normalise_ids": normalise_ids,
         "clean.singletons": singletons, "clean.balance": balance, "clean.window": window,
         "derive.lag": lag, "derive.lead": lead, "derive.diff": diff,
-        "output.dir": out, "output.transforms": transform, "output.method": method,
+        "output.dir": out, "output.failed_dir": failed_out, "output.transforms": transform, "output.method": method,
         "output.format": output_format, "output.force": force, "output.evidence": evidence,
     }
     try:
@@ -177,7 +181,7 @@ def prepare_command(
         result = run_from_file(run, progress=pipeline.stderr_progress(quiet))
     except InputError as err:
         _unusable(str(err))
-    _print_preparation(result.summary, run.output.dir)
+    _print_preparation(result, run.output.dir)
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 
@@ -195,7 +199,6 @@ def demo_command(
         result, planted = run_demo(folder, force=force, progress=pipeline.stderr_progress(quiet))
     except InputError as err:
         _unusable(str(err))
-    summary = result.summary
     typer.echo(f"demo data (invented firms, not real companies): {folder / 'firms.csv'}, "
                f"{planted['rows']:,} rows, {planted['firms']} firms, 2005-2024")
     typer.echo(f"  planted: {planted['exact_duplicate_rows']} repeated rows, "
@@ -205,9 +208,9 @@ def demo_command(
                f"{sum(planted['missing_cells'].values())} missing cells")
     typer.echo(f"run file: {folder / 'run.toml'}")
     typer.echo("")
-    _print_preparation(summary, folder / "out")
+    _print_preparation(result, folder / "out")
     typer.echo("")
-    typer.echo(f"read {folder / 'out' / 'diagnostics.txt'} top to bottom; rerun with: "
+    typer.echo(f"read {result.written_to / 'diagnostics.txt'} top to bottom; rerun with: "
                f"panelprep prepare --config {folder / 'run.toml'} --force")
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
@@ -247,32 +250,48 @@ def draft_command(
 ) -> None:
     """Write a commented starter run file for DATA, with guessed keys marked."""
     from panelprep.config import starter_run_file
+    from panelprep.io import parent_folder, refuse_input_clash, write_file
 
     try:
+        if out is not None:
+            # before anything is read or written: the run file may never be the data
+            refuse_input_clash(out, [data], "the run file")
+            parent_folder(out)
         text = starter_run_file(data, run_dir=None if out is None else out.resolve().parent)
         if out is None:
             typer.echo(text, nl=False)
             return
-        if out.exists() and not force:
+        if os.path.lexists(out) and not force:
             raise InputError(f"{out}: exists (use --force to overwrite)")
-        if out.resolve() == data.resolve():
-            raise InputError(f"{out}: would overwrite the data file")
-        out.write_text(text, encoding="utf-8")
+        write_file(out, text, [data], "the run file")
     except InputError as err:
         _unusable(str(err))
     typer.echo(f"wrote {out}; check the lines marked 'guessed', then run: "
                f"panelprep prepare --config {out}", err=True)
 
 
-def _print_preparation(summary: dict, out: Path) -> None:
+def _print_preparation(result, out: Path) -> None:
     from panelprep.report.text import audit_lines, components_lines
+
+    summary = result.summary
     typer.echo("\n".join(audit_lines(summary)))
     if summary.get("components"):
         typer.echo("")
         typer.echo("\n".join(components_lines(summary["components"])))
     typer.echo("")
     names = ", ".join(f["name"] for f in summary.get("files", [])) or "diagnostics only"
-    typer.echo(f"written to {out}: {names}, diagnostics.json, diagnostics.txt, report.html")
+    typer.echo(f"written to {result.written_to}: {names}, diagnostics.json, diagnostics.txt, "
+               "report.html")
+    if result.verdict == "fail":
+        failing = ", ".join(dict.fromkeys(f["id"] for f in summary["findings"]
+                                          if _fails(f["severity"], summary)))
+        typer.echo(f"panelprep: the gate failed ({failing}); {out} was left as it was; the "
+                   f"diagnostics are in {result.written_to}", err=True)
+
+
+def _fails(severity: str, summary: dict) -> bool:
+    levels = ("error", "warning") if summary.get("fail_on") == "warning" else ("error",)
+    return severity in levels
 
 
 @app.command("components")
@@ -325,29 +344,28 @@ def components_command(
         raise typer.Exit(EXIT_FAIL)
 
 
+def _check_reports(paths: list[Path | None], source: Path) -> None:
+    """Before the audit runs: no report may be the input, nor go into a folder that is not one."""
+    from panelprep.io import parent_folder, refuse_input_clash
+
+    for path in paths:
+        if path is not None:
+            refuse_input_clash(path, [source], "the report")
+            parent_folder(path)
+
+
 def _write_html(path: Path, document: dict, result, source: Path) -> None:
     from panelprep.figures import picture_data
     from panelprep.report.html import write_html
 
-    if path.resolve() == Path(source).resolve():
-        raise InputError(f"{path}: the HTML report would overwrite the input file")
-    try:
-        write_html(path, document, picture_data(result.context))
-    except OSError as err:
-        raise InputError(f"{path}: cannot write the HTML report: {err.strerror}") from None
+    write_html(path, document, picture_data(result.context), inputs=[source])
 
 
 def _write_json(path: Path, document: dict, source: Path) -> None:
-    if path.resolve() == Path(source).resolve():
-        raise InputError(f"{path}: the report would overwrite the input file")
+    from panelprep.io import write_file
+
     text = json.dumps(document, indent=2, ensure_ascii=False, allow_nan=False)
-    tmp = path.with_name(path.name + ".partial")
-    try:
-        tmp.write_text(text + "\n", encoding="utf-8")
-        tmp.replace(path)
-    except OSError as err:
-        tmp.unlink(missing_ok=True)
-        raise InputError(f"{path}: cannot write the report: {err.strerror}") from None
+    write_file(path, text + "\n", [source], "the report")
 
 
 def main() -> None:
@@ -367,4 +385,19 @@ def main() -> None:
         message = " ".join(str(err).split())
         typer.echo(f"panelprep: error: internal failure: {type(err).__name__}: {message}", err=True)
         sys.exit(EXIT_UNUSABLE)
+    if code == EXIT_INTERRUPTED:
+        # typer turns Ctrl-C into exit 130 (no command exits so itself)
+        typer.echo(f"panelprep: {_interrupted()}", err=True)
     sys.exit(code or 0)
+
+
+def _interrupted() -> str:
+    """What an interrupted run left, truthfully: what was put in place before Ctrl-C, if any."""
+    if "panelprep.io" not in sys.modules:
+        return "interrupted; nothing was written"
+    from panelprep.io import written_paths
+
+    done = written_paths()
+    if not done:
+        return "interrupted; nothing was written"
+    return (f"interrupted after writing {', '.join(map(str, done))}; nothing else was written")

@@ -40,6 +40,7 @@ Keys
 | `derive.lead` | list of `var:k` | `[]` | gap-aware leads, k periods ahead |
 | `derive.diff` | list of `var` or `var:k` | `[]` | gap-aware differences x(t) - x(t-k), k = 1 when absent |
 | `output.dir` | path | *required* | output folder; a relative path is read from the run file's folder |
+| `output.failed_dir` | path | `DIR.failed` beside `output.dir` | folder for a failed gate's diagnostics, replacing an earlier failed run's (output.dir is left as it was); a relative path is read from the run file's folder |
 | `output.transforms` | list among `within`, `between`, `quasi`, `twoway` | `["within", "between", "quasi"]` | transformed files to write |
 | `output.method` | `swamy-arora`, `wallace-hussain`, `amemiya`, `nerlove` | `swamy-arora` | variance components for theta |
 | `output.format` | `parquet`, `csv` | `parquet` | format of the data files |
@@ -183,6 +184,7 @@ class OutputSection:
     """``[output]``: what to write and where."""
 
     dir: Path | None = None
+    failed_dir: Path | None = None
     transforms: list[str] = field(default_factory=lambda: ["within", "between", "quasi"])
     method: str = "swamy-arora"
     format: str = "parquet"
@@ -217,7 +219,7 @@ _SECTIONS: dict[str, type] = {
     "names": NamesSection,
 }
 REQUIRED = ("input.path", "panel.entity", "panel.time", "model.y", "model.x", "output.dir")
-_PATH_KEYS = ("input.path", "contract.schema", "output.dir")
+_PATH_KEYS = ("input.path", "contract.schema", "output.dir", "output.failed_dir")
 
 
 class _Bad(Exception):
@@ -469,6 +471,10 @@ _KEYS: dict[str, dict[str, _Key]] = {
     "output": {
         "dir": _Key("path", _path,
                     "output folder; a relative path is read from this file's folder"),
+        "failed_dir": _Key("path", _path,
+                           "folder for a failed gate's diagnostics, replacing an earlier "
+                           "failed run's (output.dir is left as it was); a relative path is "
+                           "read from this file's folder"),
         "transforms": _Key("list among " + ", ".join(f"`{t}`" for t in TRANSFORMS),
                            _choices(TRANSFORMS), "transformed files to write"),
         "method": _Key(", ".join(f"`{m}`" for m in METHODS), _choice(METHODS),
@@ -500,6 +506,7 @@ _TABLE_DEFAULTS = {
     "input.delimiter": "sniffed",
     "panel.freq": "inferred",
     "contract.schema": "none",
+    "output.failed_dir": "`DIR.failed` beside `output.dir`",
 }
 
 
@@ -875,6 +882,7 @@ _EXAMPLES = {
     "model.y": "sales",
     "model.x": ["capital"],
     "output.dir": "prepared",
+    "output.failed_dir": "prepared.failed",
     "contract.schema": "schemas/firm_year.yaml",
     "checks.severity": {"period-holes": "error"},
 }

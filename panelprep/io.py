@@ -7,7 +7,10 @@ are read as text from CSV so that ``00123`` stays ``00123``.
 from __future__ import annotations
 
 import codecs
+import contextlib
 import csv
+import ctypes
+import errno
 import glob
 import hashlib
 import lzma
@@ -15,7 +18,11 @@ import os
 import re
 import secrets
 import shutil
+import signal
 import stat
+import sys
+import threading
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -470,87 +477,440 @@ def write_table(
                          f"{err.strerror or _short(err)}") from None
 
 
+# --- writing without ever losing or overwriting what is there ------------------------------
+#
+# Everything panelprep writes (a report, a run file, an output folder) is made first under a
+# hidden name of its own beside the destination, then renamed into place.  That name is short
+# and bounded whatever the destination is called, so a legal long name stays legal; it is
+# created exclusively, so it can never be an existing file, least of all an input.  Every
+# destination is checked against every file the run reads by file identity (device and inode,
+# through links), not by name, before anything is written and again just before the rename.
+
+TEMP_PREFIX = ".panelprep-partial-"
+# what a failed gate writes; a failed-run folder holding only these may be replaced
+DIAGNOSTIC_FILES = frozenset({"diagnostics.json", "diagnostics.txt", "report.html"})
+
+_written: list[Path] = []
+
+
+def written_paths() -> list[Path]:
+    """What this process has put in place so far (files and folders), oldest first.
+
+    The command line reads it to say truthfully what an interrupted run left.
+    """
+    return list(_written)
+
+
+def _identity(path: str | os.PathLike[str]) -> tuple[int, int] | None:
+    """(device, inode) of what ``path`` names, following links; None when there is nothing."""
+    try:
+        found = os.stat(path)
+    except (OSError, ValueError):
+        return None
+    return found.st_dev, found.st_ino
+
+
+def _lineage(path: Path) -> set[tuple[int, int]]:
+    """Identities of ``path`` and of every folder holding it (after resolving links)."""
+    resolved = Path(path).resolve()
+    found = {_identity(p) for p in (Path(path), resolved, *resolved.parents)}
+    found.discard(None)
+    return found
+
+
+def refuse_input_clash(path: Path, inputs: Sequence[Path], what: str) -> None:
+    """Refuse to write ``what`` at ``path`` when it is one of ``inputs``.
+
+    The same file under another name (a hard link, a symbolic link, a bind
+    mount) counts: files are compared by device and inode, and by their
+    resolved paths.
+    """
+    path = Path(path)
+    mine = _identity(path)
+    for source in inputs:
+        same = mine is not None and mine == _identity(source)
+        if same or path.resolve() == Path(source).resolve():
+            raise InputError(f"{path}: {what} would overwrite the input {source} "
+                             "(the same file); choose another path")
+
+
+def _holds(folder: Path, source: Path) -> bool:
+    """Whether ``folder`` is ``source`` or a folder above it, by identity or by path."""
+    folder_abs, source_abs = folder.resolve(), Path(source).resolve()
+    if folder_abs == source_abs or folder_abs in source_abs.parents:
+        return True
+    mine = _identity(folder)
+    return mine is not None and mine in _lineage(Path(source))
+
+
+def parent_folder(path: Path) -> Path:
+    """The folder ``path`` goes into, as named; one line when it is missing or a file."""
+    parent = Path(path).absolute().parent
+    if parent.is_dir():
+        return parent
+    above = parent
+    while not above.exists() and above != above.parent:
+        above = above.parent
+    if above.exists() and not above.is_dir():
+        raise InputError(f"{path}: {above} is a file, not a folder")
+    raise InputError(f"{path}: parent folder {parent} does not exist")
+
+
+def _fresh_name(parent: Path) -> Path:
+    return parent / f"{TEMP_PREFIX}{os.getpid()}-{secrets.token_hex(4)}"
+
+
+def write_file(path: str | Path, content: str | bytes, inputs: Sequence[Path] = (),
+               what: str = "the file") -> Path:
+    """Write ``content`` (text as UTF-8) to ``path`` atomically; return the path.
+
+    The bytes go to a new hidden file beside ``path`` (created exclusively,
+    with the usual permissions), which replaces ``path`` only once complete.
+    ``path`` may not be one of ``inputs`` (see ``refuse_input_clash``); a
+    failing write is an ``InputError`` naming the file and the reason, and
+    leaves nothing behind.
+    """
+    path = Path(path)
+    payload = content.encode("utf-8") if isinstance(content, str) else content
+    refuse_input_clash(path, inputs, what)
+    parent = parent_folder(path)
+    _remove_abandoned(parent)
+    try:
+        while True:
+            tmp = _fresh_name(parent)
+            try:
+                handle = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_CLOEXEC, 0o666)
+            except FileExistsError:
+                continue
+            break
+    except OSError as err:
+        raise InputError(f"{path}: cannot write {what}: {err.strerror or _short(err)}") from None
+    try:
+        with os.fdopen(handle, "wb") as stream:
+            stream.write(payload)
+        # a link to an input made while the file was written is caught here
+        refuse_input_clash(path, inputs, what)
+        os.replace(tmp, path)
+    except OSError as err:
+        tmp.unlink(missing_ok=True)
+        raise InputError(f"{path}: cannot write {what}: {err.strerror or _short(err)}") from None
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    _written.append(path)
+    return path
+
+
+def check_output_folder(target: Path, inputs: Sequence[Path], force: bool = False,
+                        replaceable: frozenset[str] = frozenset(),
+                        protect: Sequence[Path] = ()) -> None:
+    """Refuse, with one line, an output folder that may not be written.
+
+    Refused: a ``target`` that is or holds one of ``inputs`` (even with
+    ``force``), one that is, holds or lies inside a folder in ``protect``,
+    a broken link, a file, and a non-empty folder unless ``force`` or it
+    holds only names in ``replaceable``.
+    """
+    target = Path(target)
+    parent_folder(target)
+    try:
+        for source in inputs:
+            if _holds(target, Path(source)):
+                raise InputError(f"{target}: output folder equals or contains the input {source}")
+        for other in protect:
+            if _holds(target, Path(other)) or _holds(Path(other), target):
+                raise InputError(f"{target}: may not be, hold or lie inside the output folder "
+                                 f"{other}; name a folder beside it")
+        problem = _unacceptable(target, force, replaceable)
+    except OSError as err:
+        raise InputError(f"{target}: cannot use as an output folder: "
+                         f"{err.strerror or _short(err)}") from None
+    if problem:
+        reason, hint = problem
+        raise InputError(f"{target}: {reason}{hint}")
+
+
+def _unacceptable(path: Path, force: bool,
+                  replaceable: frozenset[str]) -> tuple[str, str] | None:
+    """Why what ``path`` names may not be replaced by an output folder, and what to do.
+
+    None when it may: nothing there, an empty folder, any folder under
+    ``force``, or one holding only names in ``replaceable`` (a link counts
+    as the folder it points to; replacing it removes the link itself).
+    """
+    try:
+        found = os.lstat(path)
+    except FileNotFoundError:
+        return None
+    if stat.S_ISLNK(found.st_mode) and not path.exists():
+        return "is a broken symbolic link", ""
+    # a link is judged by the folder it points to, though only the link is ever replaced
+    if not path.is_dir():
+        return "exists and is not a folder", ""
+    names = set(os.listdir(path))
+    if not names or force:
+        return None
+    if replaceable:
+        if names <= replaceable:
+            return None
+        reason = ("folder exists and holds files other than a failed run's "
+                  + ", ".join(sorted(replaceable)))
+        return reason, "; move them, or name another folder (--failed-out)"
+    return "folder exists and is not empty", " (use --force to replace it)"
+
+
 class OutputFolder:
     """A folder that appears complete or not at all.
 
     Files are written into a hidden temporary folder beside ``target``
-    (``.NAME.partial-PID-XXXX``); on ``commit`` it is renamed into place (an
-    existing ``target`` is moved aside first and removed only after the
-    rename succeeded).  If anything fails before ``commit``, the temporary
-    folder is removed and ``target`` is left as it was.  A run killed
-    outright leaves its temporary folder behind; the next run for the same
-    target removes those whose process is gone.
+    (``.panelprep-partial-PID-XXXXXXXX``, whatever ``target`` is called);
+    ``commit`` renames it into place in one step that never replaces what
+    another run put there meanwhile (see ``commit``).  If anything fails
+    before ``commit``, ``abandon`` removes the temporary folder and
+    ``target`` is left as it was.  A run killed outright leaves its
+    temporary folder behind; the next run writing into the same parent
+    folder removes those whose process is gone.
 
-    Refused up front: a ``target`` that is or contains one of ``inputs``, a
-    ``target`` that is a file, and a non-empty ``target`` unless ``force``.
+    Refused up front (``check_output_folder``): a ``target`` that is or
+    contains one of ``inputs``, one related to a folder in ``protect``, a
+    ``target`` that is a file, and a non-empty ``target`` unless ``force``
+    or it holds only names in ``replaceable``.
     """
 
-    def __init__(self, target: Path, inputs: list[Path], force: bool = False) -> None:
+    def __init__(self, target: Path, inputs: Sequence[Path], force: bool = False,
+                 replaceable: frozenset[str] = frozenset(), protect: Sequence[Path] = ()) -> None:
         self.target = Path(target)
+        self.inputs = [Path(p) for p in inputs]
         self.force = force
-        target_abs = self.target.resolve()
-        for source in inputs:
-            source_abs = Path(source).resolve()
-            if source_abs == target_abs or target_abs in source_abs.parents:
-                raise InputError(f"{self.target}: output folder equals or contains the input {source}")
-        self._refuse_existing()
+        self.replaceable = frozenset(replaceable)
+        self._committed = False
+        self._guarded = set().union(*(_lineage(source) for source in self.inputs))
+        check_output_folder(self.target, self.inputs, force, self.replaceable, protect)
         # beside the target as named (not where a symbolic link leads), so the final
         # rename stays within one folder
-        parent = self.target.absolute().parent
-        if not parent.is_dir():
-            raise InputError(f"{self.target}: parent folder {parent} does not exist")
+        parent = parent_folder(self.target)
         _remove_abandoned(parent, self.target.name)
         try:
-            self.temp = _fresh_folder(parent, f".{self.target.name}.partial-{os.getpid()}-")
+            self.temp = _fresh_folder(parent)
         except OSError as err:
             raise InputError(f"{self.target}: cannot create output: {err.strerror}") from None
-
-    def _refuse_existing(self) -> None:
-        if self.target.is_symlink() and not self.target.exists():
-            raise InputError(f"{self.target}: is a broken symbolic link")
-        if self.target.exists():
-            if not self.target.is_dir():
-                raise InputError(f"{self.target}: exists and is not a folder")
-            if any(self.target.iterdir()) and not self.force:
-                raise InputError(f"{self.target}: folder exists and is not empty (use --force to replace it)")
+        self._own = _own_identity(self.temp)
 
     def path(self, name: str) -> Path:
         return self.temp / name
 
     def commit(self) -> None:
-        # whatever appeared at the target while the run worked is judged again
-        self._refuse_existing()
-        old = None
-        if self.target.exists() or self.target.is_symlink():
-            old = _fresh_folder(self.temp.parent, f".{self.target.name}.old-{os.getpid()}-")
-            old.rmdir()
-            self.target.rename(old)
-        try:
-            self.temp.rename(self.target)
-        except OSError:
-            if old is not None:
-                old.rename(self.target)
-            raise
-        if old is not None:
-            # a symbolic link moved aside is removed itself, never what it points to
-            if old.is_symlink():
-                old.unlink()
+        """Rename the temporary folder into place.
+
+        Where the system offers it (Linux ``renameat2``), the rename never
+        replaces anything: if something appeared at ``target`` meanwhile,
+        the two are swapped in one step, what was there is judged, and it
+        is swapped straight back (an ``InputError`` saying it appeared)
+        unless it may be replaced, in which case it is removed.  There is
+        never a moment without a folder at ``target`` once there was one.
+        Elsewhere the check and the rename run under a lock file in the
+        parent folder (``.panelprep-commit.lock``), so two panelprep runs
+        cannot interleave.  Interrupts are held back until the commit is
+        done.
+        """
+        with _signals_held():
+            try:
+                self._swap_in()
+            except _NoAtomicRename:
+                self._commit_locked()
+            self._committed = True
+            _written.append(self.target)
+
+    def _appeared(self, path: Path) -> InputError | None:
+        """The error for what was found at the target when it may not be replaced."""
+        problem = _unacceptable(path, self.force, self.replaceable)
+        # the folders holding the inputs, as they were when the run started and as they are
+        guarded = self._guarded.union(*(_lineage(source) for source in self.inputs))
+        if problem is None and not path.is_symlink() and _identity(path) in guarded:
+            problem = "it holds one of the run's inputs", ""
+        if problem is None:
+            return None
+        reason, hint = problem
+        return InputError(f"{self.target}: target appeared during the run ({reason}); it was "
+                          f"left as it was and nothing was written{hint}")
+
+    def _swap_in(self) -> None:
+        for _ in range(20):
+            try:
+                _rename(self.temp, self.target, _RENAME_NOREPLACE)
+                return
+            except FileExistsError:
+                pass
+            if self.force or self._replaceable_now():
+                if self._exchange():
+                    return
             else:
-                _remove_tree(old)
+                self._clear_empty()
+        raise InputError(f"{self.target}: kept changing while the output was put in place; "
+                         "nothing was written, run again")
+
+    def _replaceable_now(self) -> bool:
+        """Whether the target is a folder holding only names this folder may replace."""
+        try:
+            names = set(os.listdir(self.target))
+        except OSError:
+            return False
+        return bool(self.replaceable) and bool(names) and names <= self.replaceable
+
+    def _clear_empty(self) -> None:
+        """Without force: remove an empty folder (or a link to one) at the target, else refuse.
+
+        Both removals fail on anything else put there meanwhile (``rmdir`` on
+        a folder that is not empty, ``unlink`` on a folder), so what another
+        run committed is never removed; the next round judges it again.
+        """
+        try:
+            found = os.lstat(self.target)
+        except FileNotFoundError:
+            return
+        error = self._appeared(self.target)
+        if error is not None:
+            raise error
+        with contextlib.suppress(OSError):
+            if stat.S_ISLNK(found.st_mode):
+                os.unlink(self.target)
+            else:
+                os.rmdir(self.target)
+
+    def _exchange(self) -> bool:
+        """Under force: swap the new folder and what is at the target in one step."""
+        try:
+            _rename(self.temp, self.target, _RENAME_EXCHANGE)
+        except FileNotFoundError:
+            return False  # it went away again: try the plain rename once more
+        # self.temp now names what was at the target
+        error = self._appeared(self.temp)
+        if error is not None:
+            try:
+                _rename(self.temp, self.target, _RENAME_EXCHANGE)
+            except (OSError, _NoAtomicRename):
+                self._committed = True  # self.temp is not ours now: never remove it
+                raise InputError(f"{self.target}: what appeared there during the run could "
+                                 f"not be put back; it is at {self.temp}") from None
+            raise error
+        old, self.temp = self.temp, self.target
+        _discard(old)
+        return True
+
+    def _commit_locked(self) -> None:
+        with _parent_lock(self.temp.parent):
+            problem = self._appeared(self.target)
+            if problem is not None:
+                raise problem
+            old = None
+            if os.path.lexists(self.target):
+                old = _fresh_name(self.temp.parent)
+                os.rename(self.target, old)
+            try:
+                os.rename(self.temp, self.target)
+            except OSError:
+                if old is not None:
+                    os.rename(old, self.target)
+                raise
+            if old is not None:
+                _discard(old)
 
     def abandon(self) -> None:
-        if self.temp.exists():
+        """Remove the temporary folder, only if it is still this run's own (by identity)."""
+        if not self._committed and _own_identity(self.temp) == self._own:
             _remove_tree(self.temp)
 
 
-def _fresh_folder(parent: Path, prefix: str) -> Path:
-    """A new folder ``parent/prefix<random>``, made with the usual permissions (umask).
+# Linux renameat2 flags (linux/fs.h)
+_RENAME_NOREPLACE, _RENAME_EXCHANGE = 1, 2
+_AT_FDCWD = -100
+
+
+class _NoAtomicRename(Exception):
+    """The system or the file system offers no rename-without-replace."""
+
+
+def _load_renameat2():
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        function = ctypes.CDLL(None, use_errno=True).renameat2
+    except (OSError, AttributeError):
+        return None
+    function.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p,
+                         ctypes.c_uint]
+    function.restype = ctypes.c_int
+    return function
+
+
+_renameat2 = _load_renameat2()
+
+
+def _rename(source: Path, target: Path, flags: int) -> None:
+    """``renameat2(source, target, flags)``; ``_NoAtomicRename`` where it is not offered."""
+    if _renameat2 is None:
+        raise _NoAtomicRename
+    if _renameat2(_AT_FDCWD, os.fsencode(source), _AT_FDCWD, os.fsencode(target), flags) == 0:
+        return
+    code = ctypes.get_errno()
+    if code in (errno.ENOSYS, errno.EINVAL, errno.EOPNOTSUPP, errno.ENOTSUP):
+        raise _NoAtomicRename
+    raise OSError(code, os.strerror(code), str(target))
+
+
+@contextlib.contextmanager
+def _parent_lock(parent: Path):
+    """An exclusive lock on ``parent/.panelprep-commit.lock`` (the file stays, empty)."""
+    import fcntl
+
+    handle = os.open(parent / ".panelprep-commit.lock", os.O_RDWR | os.O_CREAT | os.O_CLOEXEC,
+                     0o666)
+    try:
+        fcntl.flock(handle, fcntl.LOCK_EX)
+        yield
+    finally:
+        os.close(handle)
+
+
+@contextlib.contextmanager
+def _signals_held():
+    """Hold Ctrl-C and SIGTERM back for a few renames (main thread only)."""
+    if threading.current_thread() is not threading.main_thread() or not hasattr(
+            signal, "pthread_sigmask"):
+        yield
+        return
+    before = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT, signal.SIGTERM})
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, before)
+
+
+def _own_identity(path: Path) -> tuple[int, int] | None:
+    """(device, inode) of ``path`` itself, not following a link."""
+    try:
+        found = os.lstat(path)
+    except OSError:
+        return None
+    return found.st_dev, found.st_ino
+
+
+def _discard(path: Path) -> None:
+    """Remove what was moved aside: a link itself (never what it points to), or a folder."""
+    if path.is_symlink() or path.is_file():
+        path.unlink(missing_ok=True)
+    else:
+        _remove_tree(path)
+
+
+def _fresh_folder(parent: Path) -> Path:
+    """A new hidden folder in ``parent``, made with the usual permissions (umask).
 
     ``tempfile.mkdtemp`` would make it private (0700), and the output
     folder it becomes would stay so.
     """
     while True:
-        folder = parent / f"{prefix}{secrets.token_hex(4)}"
+        folder = _fresh_name(parent)
         try:
             folder.mkdir()
         except FileExistsError:
@@ -558,12 +918,20 @@ def _fresh_folder(parent: Path, prefix: str) -> Path:
         return folder
 
 
-def _remove_abandoned(parent: Path, name: str) -> None:
-    """Remove temporary folders for ``name`` left by runs whose process has ended."""
-    for folder in parent.glob(f".{glob.escape(name)}.partial-*"):
-        pid = folder.name[len(name) + len(".partial-") + 1:].split("-")[0]
-        if pid.isdigit() and not _process_alive(int(pid)) and folder.is_dir():
-            _remove_tree(folder)
+def _remove_abandoned(parent: Path, name: str | None = None) -> None:
+    """Remove temporary files and folders left in ``parent`` by runs whose process has ended.
+
+    With ``name``, also those earlier versions named after the target
+    (``.NAME.partial-PID-XXXX``).
+    """
+    found = [(p, p.name[len(TEMP_PREFIX):]) for p in parent.glob(f"{TEMP_PREFIX}*")]
+    if name:
+        legacy = f".{name}.partial-"
+        found += [(p, p.name[len(legacy):]) for p in parent.glob(f"{glob.escape(legacy)}*")]
+    for path, rest in found:
+        pid = rest.split("-")[0]
+        if pid.isdigit() and not _process_alive(int(pid)):
+            _discard(path)
 
 
 def _process_alive(pid: int) -> bool:

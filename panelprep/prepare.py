@@ -9,6 +9,7 @@ steps (rows and entities before and after) goes into both diagnostics files.
 from __future__ import annotations
 
 import json
+import os
 from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
 from functools import cached_property
@@ -44,9 +45,11 @@ from panelprep.findings import Finding, apply_severities, gate
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
+    DIAGNOSTIC_FILES,
     OUTPUT_FORMATS,
     OutputFolder,
     ReadOptions,
+    check_output_folder,
     column_names,
     sha256_file,
     write_table,
@@ -152,6 +155,7 @@ class Preparation:
     outputs: OutputTables | None
     summary: dict[str, Any]
     sample_index: PanelIndex | None = None
+    written_to: Path | None = None
 
     @cached_property
     def tables(self) -> dict[str, pd.DataFrame]:
@@ -628,14 +632,16 @@ def prepare(
     force: bool = False,
     read_options: ReadOptions = DEFAULT_READ,
     progress: Progress = _silent,
+    failed_out: str | Path | None = None,
     **options: Any,
 ) -> Preparation:
     """Read ``data``, prepare it, and write every output into ``out``.
 
     Keyword ``options`` are the remaining fields of ``PrepareOptions``
     (``freq``, ``fail_on``, ``policies``, ``shifts``, ``severities``, ...).
-    Returns the ``Preparation``; ``verdict == "fail"`` means the gate failed
-    and only the diagnostics were written.
+    Returns the ``Preparation``; ``verdict == "fail"`` means the gate failed:
+    ``out`` was left as it was and only the diagnostics were written, into
+    ``failed_out`` (default ``OUT.failed`` beside ``out``).
 
     Examples
     --------
@@ -649,35 +655,72 @@ def prepare(
         transforms=split_names(transforms) or [], method=method,
         output_format=output_format, **options,
     )
-    return run_preparation(data, out, settings, read_options, force, progress)
+    return run_preparation(data, out, settings, read_options, force, progress,
+                           failed_out=failed_out)
+
+
+def failed_folder(out: str | Path) -> Path:
+    """Where a run into ``out`` puts its diagnostics when the gate fails: ``OUT.failed`` beside it."""
+    out = Path(out).absolute()
+    return out.with_name(f"{out.name}.failed")
 
 
 def run_preparation(
     data: str | Path, out: str | Path, options: PrepareOptions,
     read_options: ReadOptions = DEFAULT_READ, force: bool = False, progress: Progress = _silent,
-    keep: Sequence[str | Path] = (),
+    keep: Sequence[str | Path] = (), failed_out: str | Path | None = None,
 ) -> Preparation:
     """Read, prepare and write into a folder that appears complete or not at all.
 
     ``keep`` names other files the run reads (the run file, the contract):
     like ``data``, an output folder that is or holds one is refused, so
-    ``force`` can never delete them.
+    ``force`` can never delete them.  When the gate fails, ``out`` is left
+    exactly as it was and the diagnostics go to ``failed_out`` (default
+    ``failed_folder(out)``), which replaces an earlier failed run's folder
+    there; ``Preparation.written_to`` says which folder was written.
     """
     options.validate()
     # before the folder and before any data is read: the header names suffice
     options.check_names(column_names(Path(data), read_options), str(data))
-    folder = OutputFolder(Path(out), [Path(data), *map(Path, keep)], force=force)
+    inputs = [Path(data), *map(Path, keep)]
+    out = Path(out)
+    failed = failed_folder(out) if failed_out is None else Path(failed_out)
+    folder = OutputFolder(out, inputs, force=force)
     try:
+        if failed_out is not None or _name_fits(failed):
+            # a default name too long for the file system is reported only if the gate fails
+            check_output_folder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
         progress(f"reading {data}")
         frame, info = load(data, options.entity, options.time, options.columns_to_read,
                            read_options)
         prep = prepare_frame(frame, options, info, read_options, progress)
+        if prep.verdict == "fail":
+            # a failed gate never replaces or empties the output folder
+            folder.abandon()
+            folder = _failed_output(failed, inputs, out, failed_out is None)
         write_outputs(prep, folder, options, progress)
         folder.commit()
     except BaseException:
         folder.abandon()
         raise
+    prep.written_to = folder.target
     return prep
+
+
+def _name_fits(path: Path) -> bool:
+    try:
+        limit = os.pathconf(path.parent, "PC_NAME_MAX")
+    except (OSError, ValueError):
+        limit = 255
+    return len(os.fsencode(path.name)) <= limit
+
+
+def _failed_output(failed: Path, inputs: list[Path], out: Path, default: bool) -> OutputFolder:
+    if default and not _name_fits(failed):
+        raise InputError(f"the gate failed and {out} was left as it was, but its diagnostics "
+                         f"cannot go to {failed.name[:40]}...: the name is too long; name a "
+                         "folder with --failed-out (output.failed_dir)")
+    return OutputFolder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
 
 
 def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptions,
@@ -763,7 +806,8 @@ def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
     )
     return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
                            force=run.output.force, progress=progress,
-                           keep=[p for p in (run.source, run.contract.schema) if p is not None])
+                           keep=[p for p in (run.source, run.contract.schema) if p is not None],
+                           failed_out=run.output.failed_dir)
 
 
 def estimate_file_components(

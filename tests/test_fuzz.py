@@ -27,6 +27,7 @@ from panelprep.clean import Policies
 from panelprep.cli import app
 from panelprep.components import METHODS
 from panelprep.errors import InputError
+from panelprep.io import TEMP_PREFIX
 from panelprep.lags import parse_shifts
 from panelprep.pipeline import audit
 from panelprep.prepare import PrepareOptions, prepare_frame
@@ -302,10 +303,15 @@ def test_preparation_of_generated_csv_bytes(tmp_path, data, transform, output_fo
         "prepare", str(path), "-e", "id", "-t", "year", "--y", "y", "--x", "x", "--out", str(out),
         "--force", "--transform", transform, "--format", output_format, "--quiet",
         "--duplicates", "keep-first"])
-    check_cli_run(result, out / "diagnostics.json" if result.exit_code != 2 else None)
+    # a failed gate leaves --out alone and writes its diagnostics beside it, to OUT.failed
+    written = {0: out, 1: tmp_path / "out.failed"}.get(result.exit_code)
+    check_cli_run(result, None if written is None else written / "diagnostics.json")
+    if result.exit_code == 1:
+        assert not out.exists() or (out / "clean.parquet").exists() or (
+            out / "clean.csv").exists(), "a failed gate touched the output folder"
     if result.exit_code == 2:
         assert not out.exists() or not any(out.iterdir()) or (out / "diagnostics.json").exists()
-    assert not list(tmp_path.glob(".out.partial-*")), "a temporary folder was left behind"
+    assert not list(tmp_path.glob(f"{TEMP_PREFIX}*")), "a temporary folder was left behind"
     assert path.read_bytes() == data
 
 

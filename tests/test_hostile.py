@@ -30,6 +30,7 @@ from typer.testing import CliRunner
 
 import panelprep
 from panelprep.cli import app
+from panelprep.io import TEMP_PREFIX
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 HOSTILE = FIXTURES / "hostile"
@@ -302,10 +303,15 @@ def test_prepare(name, tmp_path, runner_env):
     assert result.exception is None or isinstance(result.exception, SystemExit), result.exception
     assert result.exit_code == entry.prepare, (result.stdout, result.stderr)
     assert not list(tmp_path.glob(".out.*")), "a temporary folder was left behind"
+    assert not list(tmp_path.glob(f"{TEMP_PREFIX}*")), "a temporary folder was left behind"
     if entry.prepare == 2:
         _check_unusable(result.stderr, entry.words)
         assert not out.exists()
     else:
+        # a failed gate leaves --out alone and writes its diagnostics to OUT.failed
+        if entry.prepare == 1:
+            assert not out.exists()
+            out = tmp_path / "out.failed"
         written = {p.name for p in out.iterdir()}
         if entry.prepare == 1:
             assert written == DIAGNOSTICS

@@ -252,8 +252,10 @@ def test_gate_failure_writes_only_diagnostics(tmp_path):
     result = invoke("prepare", FIXTURES / "conflicting_duplicates.csv", "--entity", "firm_id",
                     "--time", "year", "--y", "sales", "--x", "capital,staff", "--out", out)
     assert result.exit_code == 1, result.output
-    assert {p.name for p in out.iterdir()} == DIAGNOSTICS
-    summary = json.loads((out / "diagnostics.json").read_text(encoding="utf-8"))
+    assert not out.exists()
+    failed = tmp_path / "out.failed"
+    assert {p.name for p in failed.iterdir()} == DIAGNOSTICS
+    summary = json.loads((failed / "diagnostics.json").read_text(encoding="utf-8"))
     assert summary["verdict"] == "fail"
     assert "key-conflict" in {f["id"] for f in summary["findings"]}
 

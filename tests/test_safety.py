@@ -28,7 +28,7 @@ import panelprep.report.html
 from panelprep import limits
 from panelprep.cli import app
 from panelprep.errors import InputError
-from panelprep.io import OutputFolder, read_frame
+from panelprep.io import TEMP_PREFIX, OutputFolder, read_frame
 from panelprep.prepare import prepare
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
@@ -59,7 +59,9 @@ def earlier(tmp_path, data) -> Path:
 
 
 def leftovers(parent: Path) -> list[str]:
-    return sorted(p.name for p in parent.iterdir() if p.name.startswith(".out."))
+    """Hidden temporary files and folders in ``parent`` (ours, or named after ``out`` as before)."""
+    return sorted(p.name for p in parent.iterdir()
+                  if p.name.startswith((TEMP_PREFIX, ".out.")))
 
 
 # --- a run that fails at the end leaves the earlier output as it was -----------------------
@@ -157,7 +159,7 @@ def test_a_killed_run_leaves_the_earlier_folder_and_its_leftover_is_cleared(tmp_
     assert done.returncode == -9, done.stderr
     assert snapshot(earlier) == before
     left = leftovers(tmp_path)
-    assert len(left) == 1 and left[0].startswith(".out.partial-")
+    assert len(left) == 1 and left[0].startswith(TEMP_PREFIX)
     # the next run for the same folder removes what the dead process left
     prepare(data, earlier, force=True, **KEYS)
     assert leftovers(tmp_path) == []
@@ -165,7 +167,7 @@ def test_a_killed_run_leaves_the_earlier_folder_and_its_leftover_is_cleared(tmp_
 
 
 def test_a_leftover_of_a_live_process_is_not_touched(tmp_path):
-    mine = tmp_path / f".out.partial-{os.getpid()}-keep"
+    mine = tmp_path / f"{TEMP_PREFIX}{os.getpid()}-keep"
     mine.mkdir()
     folder = OutputFolder(tmp_path / "out", [])
     folder.abandon()

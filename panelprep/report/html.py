@@ -19,10 +19,12 @@ from __future__ import annotations
 import html
 import math
 import os
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
 from panelprep.findings import SEVERITIES
+from panelprep.io import write_file
 from panelprep.report import WITHIN_SD_RATIO, WITHIN_VARIANCE_SHARE, resolved_note, sample_words
 
 # Our palette: paper background, ink text, a deep teal for what is there and
@@ -582,14 +584,10 @@ def render_html(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
 
 
 def write_html(path: str | os.PathLike[str], summary: dict[str, Any],
-               pictures: dict[str, Any]) -> Path:
-    """Write ``render_html(summary, pictures)`` to ``path`` atomically (UTF-8); returns the path."""
-    path = Path(path)
-    tmp = path.with_name(path.name + ".partial")
-    try:
-        tmp.write_text(render_html(summary, pictures), encoding="utf-8")
-        tmp.replace(path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    return path
+               pictures: dict[str, Any], inputs: Sequence[Path] = ()) -> Path:
+    """Write ``render_html(summary, pictures)`` to ``path`` atomically (UTF-8); returns the path.
+
+    ``path`` may not be one of ``inputs`` (compared by file identity); see
+    ``panelprep.io.write_file``.
+    """
+    return write_file(Path(path), render_html(summary, pictures), inputs, "the HTML report")
