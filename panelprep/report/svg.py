@@ -39,6 +39,8 @@ class Canvas:
     width: float
     height: float
     parts: list[str] = field(default_factory=list)
+    # cells that tile the plane: no anti-aliased seams between neighbours
+    crisp: bool = False
 
     def rect(self, x: float, y: float, w: float, h: float, fill: str, extra: str = "") -> None:
         self.parts.append(f'<rect x="{x:.2f}" y="{y:.2f}" width="{max(w, 0):.2f}" '
@@ -59,7 +61,8 @@ class Canvas:
         head = (f'<svg xmlns="http://www.w3.org/2000/svg" role="img" '
                 f'aria-labelledby="{name}-title" viewBox="0 0 {self.width:.0f} {self.height:.0f}" '
                 f'width="100%" preserveAspectRatio="xMinYMin meet" '
-                f'font-family="{escape(FONT, quote=True)}">')
+                f'font-family="{escape(FONT, quote=True)}"'
+                + (' shape-rendering="crispEdges">' if self.crisp else ">"))
         return "".join([head, f'<title id="{name}-title">{escape(title)}</title>',
                         *self.parts, "</svg>"])
 
@@ -95,7 +98,7 @@ def presence(data: dict[str, Any], palette: Palette, name: str, title: str) -> s
     cell_h = 14.0 if labelled else max(1.0, min(3.0, 420.0 / max(rows, 1)))
     plot_w = 900.0 - left - 12
     plot_h = max(cell_h * rows, 40.0)
-    canvas = Canvas(900.0, 10 + plot_h + bottom)
+    canvas = Canvas(900.0, 10 + plot_h + bottom, crisp=True)
     if rows == 0 or columns == 0:
         _empty(canvas, "no rows in the sample", palette)
         return canvas.render(name, title)
