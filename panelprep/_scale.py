@@ -72,7 +72,7 @@ def standardise(values: np.ndarray) -> Standardised:
 
     Notes
     -----
-    Two passes per column: ``v = x / 2^a`` with ``2^a >= max |x|`` (exact),
+    Two passes per column: ``v = x / 2^a`` with ``max |x| / 2 < 2^a <= max |x|`` (exact),
     ``m = mean(v)``, ``w = v - m``; then ``z = w / 2^b`` with ``2^b`` the power
     of two nearest the root mean square of ``w`` (ddof 0).  ``centre =
     2^a m`` and ``scale = 2^(a + b)``.  A column of one repeated value has
@@ -91,9 +91,10 @@ def standardise(values: np.ndarray) -> Standardised:
     if n == 0:
         return Standardised(np.zeros((0, k), order="F"), np.zeros(k), np.ones(k))
     largest = np.abs(block).max(axis=0)
-    # a power of two at least the largest magnitude: |v| <= 1, so no sum overflows
+    # a power of two within a factor 2 of the largest magnitude: |v| < 2, so no
+    # sum overflows (2^exponent itself overflows for values near the largest float)
     _, exponent = np.frexp(np.where(largest > 0, largest, 1.0))
-    first = np.ldexp(1.0, exponent)
+    first = np.ldexp(1.0, exponent - 1)
     z = np.divide(block, first, order="F")
     mean = z.mean(axis=0)
     z -= mean

@@ -47,7 +47,9 @@ class Run:
 
     @property
     def summary(self) -> dict:
-        return json.loads((self.out / "diagnostics.json").read_text(encoding="utf-8"))
+        # a failed gate leaves --out alone and writes its diagnostics beside it
+        folder = self.out if self.returncode == 0 else self.out.with_name(self.out.name + ".failed")
+        return json.loads((folder / "diagnostics.json").read_text(encoding="utf-8"))
 
     def finding(self, finding_id: str) -> dict | None:
         return next((f for f in self.summary["findings"] if f["id"] == finding_id), None)

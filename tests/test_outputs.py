@@ -270,7 +270,9 @@ def test_examples_after_a_pre_audit_step_name_rows_of_the_input(runs):
     # the window drops rows before the audit; missing keys must still point at input rows
     run = runs["windowed"]
     assert run.returncode == 1, run.stderr
-    diagnostics = json.loads((run.out / "diagnostics.json").read_text(encoding="utf-8"))
+    # a failed gate writes its diagnostics beside --out, never into it
+    failed = run.out.with_name(run.out.name + ".failed")
+    diagnostics = json.loads((failed / "diagnostics.json").read_text(encoding="utf-8"))
     finding = next(f for f in diagnostics["findings"] if f["id"] == "key-missing")
     data = pd.read_csv(runs["root"] / "windowed.csv", dtype=str)
     for example in finding["examples"]:
