@@ -65,3 +65,16 @@ def compact_codes(codes: np.ndarray, n_groups: int) -> tuple[np.ndarray, int]:
         return codes, n_groups
     present, compact = np.unique(codes, return_inverse=True)
     return compact.reshape(-1).astype(np.int64, copy=False), len(present)
+
+
+def select_rows(block: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """The rows of a 2-D ``block`` where ``mask`` holds, Fortran-ordered.
+
+    One ``np.compress`` per column straight into the result, which is about
+    three times faster than boolean indexing followed by a change of memory
+    order (two full copies) on a column-major block.
+    """
+    out = np.empty((int(np.count_nonzero(mask)), block.shape[1]), order="F")
+    for j in range(block.shape[1]):
+        np.compress(mask, block[:, j], out=out[:, j])
+    return out

@@ -24,7 +24,7 @@ from functools import cached_property
 import numpy as np
 import pandas as pd
 
-from panelprep._groups import group_counts, segment_bounds
+from panelprep._groups import group_counts, segment_bounds, select_rows
 from panelprep.index import PanelIndex
 from panelprep.limits import GRID_PERIODS
 from panelprep.variation import variation_table, with_within_measures
@@ -204,7 +204,7 @@ class AuditContext:
 
     @cached_property
     def sample_values(self) -> np.ndarray:
-        return np.asfortranarray(self.values[self.sample])
+        return select_rows(self.values, self.sample)
 
     @cached_property
     def sample_counts(self) -> np.ndarray:
