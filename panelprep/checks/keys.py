@@ -67,16 +67,21 @@ def exact_repeats(ctx: AuditContext, self: Check):
     )
 
 
+_MISSING_MARK = "\x00missing"
+
+
 def _originals(ctx: AuditContext, repeats: np.ndarray) -> list[int | None]:
     """For each shown repeated row, the first earlier row it repeats (a few rows only)."""
     columns = [*ctx.index.entity, ctx.index.time, *ctx.variables]
     out = []
     for row in repeats:
         same_key = np.flatnonzero(ctx.index.cell[: row] == ctx.index.cell[row])
-        earlier = ctx.frame[columns].iloc[same_key]
-        target = ctx.frame[columns].iloc[int(row)]
-        equal = (earlier == target) | (earlier.isna() & target.isna())
-        hits = np.flatnonzero(equal.all(axis=1).to_numpy())
+        # compared as text, missing as its own mark: a row of mixed types holding
+        # pd.NA cannot be compared value by value (NA has no truth value)
+        earlier = ctx.frame[columns].iloc[same_key].astype("string").fillna(_MISSING_MARK)
+        target = ctx.frame[columns].iloc[int(row)].astype("string").fillna(_MISSING_MARK)
+        equal = earlier.eq(target, axis=1)
+        hits = np.flatnonzero(equal.all(axis=1).to_numpy(dtype=bool))
         out.append(int(same_key[hits[0]]) if len(hits) else None)
     return out
 
