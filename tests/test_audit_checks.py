@@ -525,6 +525,8 @@ def test_repeats_of_rows_holding_pandas_na_name_the_row_they_repeat():
     """Rows 1 and 3 are identical with <NA> in a nullable integer column (found by fuzzing)."""
     frame = pd.DataFrame({"id": ["0"] * 3, "t": ["2019Q1"] * 3, "y": [0, 0, 0],
                           "x": pd.array([pd.NA, 0, pd.NA], dtype="Int64")})
-    report = panelprep.audit(frame, "id", "t", ["y", "x"])
+    from panelprep import audit
+
+    report = audit(frame, "id", "t", ["y", "x"])
     repeated = next(f for f in report.to_dict()["findings"] if f["id"] == "row-repeated")
     assert [(e["row"], e["repeats_row"]) for e in repeated["examples"]] == [(3, 1)]
