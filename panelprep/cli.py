@@ -185,6 +185,60 @@ def prepare_command(
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 
+@app.command("compare")
+def compare_command(
+    old: Annotated[Path, typer.Argument(help="The earlier vintage: CSV, Parquet or Arrow/Feather file.")],
+    new: Annotated[Path, typer.Argument(help="The later vintage of the same panel.")],
+    entity: EntityOpt,
+    time: TimeOpt,
+    vars: Annotated[str | None, typer.Option("--vars", help="Variables to compare, comma-separated (default: every numeric non-key column both hold).")] = None,
+    freq: FreqOpt = None,
+    rtol: Annotated[float, typer.Option("--rtol", help="Relative tolerance: a cell is restated when |new - old| > atol + rtol * |old|.")] = 1e-9,
+    atol: Annotated[float, typer.Option("--atol", help="Absolute tolerance (e.g. half the last digit the vendor rounds to).")] = 0.0,
+    max_restated_share: Annotated[float | None, typer.Option("--max-restated-share", help="A variable restated in more than this share of its cells is an error (default: no limit).")] = None,
+    out: Annotated[Path | None, typer.Option("--out", "-o", help="Write restated.parquet, comparison.json, comparison.txt and comparison.html into this folder.")] = None,
+    force: Annotated[bool, typer.Option("--force", help="Replace a non-empty --out folder.")] = False,
+    severity: Annotated[str | None, typer.Option("--severity", help="Severity per finding id, e.g. vintage-rows-added=warning.")] = None,
+    fail_on: FailOpt = "error",
+    input_format: FormatOpt = None,
+    delimiter: DelimOpt = None,
+    decimal_comma: DecimalOpt = False,
+    missing_token: TokenOpt = None,
+    quiet: QuietOpt = False,
+) -> None:
+    """Compare two vintages of a panel: what entered, what left, what was restated."""
+    from panelprep import pipeline
+    from panelprep.compare import CompareOptions, compare_files, write_comparison
+    from panelprep.io import OutputFolder
+    from panelprep.report.comparison import comparison_lines
+
+    try:
+        options = CompareOptions(rtol=rtol, atol=atol, max_restated_share=max_restated_share,
+                                 fail_on=fail_on, severities=_severity_map(severity) or {})
+        options.validate()
+        folder = OutputFolder(out, [old, new], force=force) if out is not None else None
+        try:
+            result = compare_files(
+                old, new, pipeline.split_names(entity) or [], time, pipeline.split_names(vars),
+                read_options=_read_options(input_format, delimiter, decimal_comma, missing_token),
+                progress=pipeline.stderr_progress(quiet), freq=freq, options=options,
+            )
+            if folder is not None:
+                write_comparison(result, folder)
+                folder.commit()
+        except BaseException:
+            if folder is not None:
+                folder.abandon()
+            raise
+    except InputError as err:
+        _unusable(str(err))
+    typer.echo("\n".join(comparison_lines(result.to_dict())))
+    if out is not None:
+        typer.echo(f"written to {out}: restated.parquet ({result.n_changed:,} changed cells), "
+                   "comparison.json, comparison.txt, comparison.html")
+    raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
+
+
 @app.command("demo")
 def demo_command(
     folder: Annotated[Path, typer.Argument(help="Folder for the demo data, run file and outputs.")] = Path("panelprep-demo"),

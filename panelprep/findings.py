@@ -17,6 +17,16 @@ CONTRACT_FINDING_ID = "contract-check-failed"
 # emitted by the audit itself when it picks the variables to check
 SKIPPED_COLUMNS_ID = "columns-not-checked"
 MAX_EXAMPLES = 10
+# emitted by panelprep.compare (two vintages side by side); named here so the run
+# file can set their severities without importing the comparison
+COMPARE_FINDING_IDS = (
+    "vintage-key-repeated", "vintage-key-missing", "vintage-columns-changed",
+    "vintage-type-changed", "vintage-periods-gone", "vintage-periods-new",
+    "vintage-entities-gone", "vintage-entities-new", "vintage-rows-removed",
+    "vintage-rows-added", "vintage-entity-rekeyed", "vintage-values-restated",
+    "vintage-restated-over-limit", "vintage-unit-changed", "vintage-values-now-missing",
+    "vintage-values-filled", "vintage-shape-changed",
+)
 
 
 def severity_rank(severity: str) -> int:
