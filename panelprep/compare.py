@@ -114,6 +114,18 @@ class CompareOptions:
 
 
 @dataclass(frozen=True)
+class PreviousVintage:
+    """The previous vintage a preparation compares its input with (run file ``[compare]``).
+
+    ``vars`` None compares the model's variables read from the file.
+    """
+
+    path: Path
+    vars: list[str] | None = None
+    options: CompareOptions = field(default_factory=CompareOptions)
+
+
+@dataclass(frozen=True)
 class _Side:
     """One vintage reduced to its distinct cells (ascending), first row per cell."""
 
@@ -148,6 +160,11 @@ class Comparison:
 
     def to_dict(self) -> dict[str, Any]:
         return self.document
+
+    def report(self) -> dict[str, Any]:
+        """The document without its own gate, for a report whose findings already hold these."""
+        return {k: v for k, v in self.document.items()
+                if k not in ("tool", "verdict", "fail_on", "findings")}
 
     def restated_table(self) -> pa.Table:
         c = self._cells

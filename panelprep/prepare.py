@@ -11,7 +11,7 @@ from __future__ import annotations
 import json
 import os
 from collections.abc import Sequence
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from functools import cached_property
 from pathlib import Path
 from typing import Any
@@ -103,6 +103,8 @@ class PrepareOptions:
     validate_outputs: bool = False
     evidence: bool = True
     names: AddedNames = field(default_factory=AddedNames)
+    # the previous vintage to compare the input with (compare.PreviousVintage), or None
+    previous: Any = None
 
     def validate(self) -> None:
         self.policies.validate()
@@ -156,6 +158,8 @@ class Preparation:
     summary: dict[str, Any]
     sample_index: PanelIndex | None = None
     written_to: Path | None = None
+    # the input against its previous vintage (compare.Comparison), when one was given
+    comparison: Any = None
 
     @cached_property
     def tables(self) -> dict[str, pd.DataFrame]:
@@ -180,6 +184,7 @@ def prepare_frame(
     read_options: ReadOptions = DEFAULT_READ,
     progress: Progress = _silent,
     check_names: bool = True,
+    comparison: Any = None,
 ) -> Preparation:
     """Clean, audit and transform a panel held in memory; nothing is written.
 
@@ -187,7 +192,9 @@ def prepare_frame(
     transform and ``dropped`` (the ledger), and whose ``summary`` is the
     diagnostics document.  When the gate fails, ``tables`` is empty.
     ``check_names`` refuses added columns whose names the frame already uses
-    (off only where no table is built).
+    (off only where no table is built).  ``comparison`` (a
+    ``compare.Comparison`` of this frame against its previous vintage) adds
+    its findings to the gate and its report to the summary (``comparison``).
     """
     options.validate()
     if check_names:
@@ -200,6 +207,8 @@ def prepare_frame(
 
         progress("checking the schema contract")
         contract_findings = check_contract(frame, options.contract, where="input")
+    if comparison is not None:
+        contract_findings += comparison.findings
 
     if policies.normalise_ids != "none":
         before = _distinct_entities(flow.frame, options.entity)
@@ -256,11 +265,13 @@ def prepare_frame(
     del audited
     ctx = report.context
     summary = report.to_dict()
+    if comparison is not None:
+        summary["comparison"] = comparison.report()
     if report.verdict == "fail":
         summary["steps"] = [s.to_dict() for s in flow.ledger.story]
         summary["files"] = []
         summary["cautions"] = [_gate_caution(report)]
-        return Preparation(report, flow.ledger, None, None, summary)
+        return Preparation(report, flow.ledger, None, None, summary, comparison=comparison)
 
     if len(ctx.conflicting_cells):
         raise InputError(
@@ -314,7 +325,8 @@ def prepare_frame(
     summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
     if summary["verdict"] == "fail":
         outputs = None
-    return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
+    return Preparation(report, flow.ledger, components, outputs, summary, sample_ix,
+                       comparison=comparison)
 
 
 def _distinct_entities(frame: pd.DataFrame, entity: list[str]) -> int:
@@ -682,7 +694,8 @@ def run_preparation(
     options.validate()
     # before the folder and before any data is read: the header names suffice
     options.check_names(column_names(Path(data), read_options), str(data))
-    inputs = [Path(data), *map(Path, keep)]
+    previous = options.previous
+    inputs = [Path(data), *map(Path, keep), *([Path(previous.path)] if previous else [])]
     out = Path(out)
     failed = failed_folder(out) if failed_out is None else Path(failed_out)
     folder = OutputFolder(out, inputs, force=force)
@@ -693,7 +706,10 @@ def run_preparation(
         progress(f"reading {data}")
         frame, info = load(data, options.entity, options.time, options.columns_to_read,
                            read_options)
-        prep = prepare_frame(frame, options, info, read_options, progress)
+        comparison = None if previous is None else _compare_previous(
+            frame, info, options, read_options, progress)
+        prep = prepare_frame(frame, options, info, read_options, progress,
+                             comparison=comparison)
         if prep.verdict == "fail":
             # a failed gate never replaces or empties the output folder
             folder.abandon()
@@ -705,6 +721,29 @@ def run_preparation(
         raise
     prep.written_to = folder.target
     return prep
+
+
+def _compare_previous(frame: pd.DataFrame, info: dict[str, Any], options: PrepareOptions,
+                      read_options: ReadOptions, progress: Progress):
+    """The input against the previous vintage ``options.previous`` (read with the same options)."""
+    from panelprep.compare import compare_frames
+
+    previous = options.previous
+    wanted = previous.vars or [v for v in options.columns_to_read if v in frame.columns]
+    absent = [v for v in wanted if v not in frame.columns]
+    if absent:
+        raise InputError(f"compare.vars {absent} are not read from {info['path']}; compare "
+                         "only variables the run reads (model.y, model.x, lag sources)")
+    held = column_names(Path(previous.path), read_options)
+    progress(f"reading the previous vintage {previous.path}")
+    old, old_info = load(previous.path, options.entity, options.time,
+                         [v for v in wanted if v in held], read_options)
+    # severities come from the run's checks.severity, applied with the audit's
+    compare_options = replace(previous.options, fail_on=options.fail_on, severities={})
+    return compare_frames(old, frame, options.entity, options.time, wanted, freq=options.freq,
+                          options=compare_options, old_info=old_info, new_info=info,
+                          decimal_comma=read_options.decimal_comma,
+                          missing_tokens=read_options.missing_tokens, progress=progress)
 
 
 def _name_fits(path: Path) -> bool:
@@ -757,12 +796,34 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
         files.append({"name": path.name, "rows": len(table), "sha256": sha256_file(path),
                       "columns": columns})
         del table
+    if prep.comparison is not None and prep.outputs is not None:
+        files.append(_write_restated(prep, folder, base_meta, progress))
     prep.summary["files"] = files
     text = json.dumps(prep.summary, indent=2, ensure_ascii=False, allow_nan=False)
     _write_text(folder.path("diagnostics.json"), text + "\n")
     _write_text(folder.path("diagnostics.txt"), "\n".join(preparation_lines(prep.summary)) + "\n")
     progress("writing report.html")
     _write_text(folder.path("report.html"), render_html(prep.summary, pictures_of(prep)))
+
+
+def _write_restated(prep: Preparation, folder: OutputFolder, base_meta: dict[str, Any],
+                    progress: Progress) -> dict[str, Any]:
+    """restated.parquet: every cell of the input that differs from the previous vintage."""
+    from panelprep.compare import RESTATED_COLUMNS
+
+    path = folder.path("restated.parquet")
+    progress(f"writing {path.name}")
+    table = prep.comparison.restated_table()
+    keys = {*prep.outputs.options.entity, prep.outputs.options.time}
+    columns = [{"name": c, "role": ROLE_KEY if c in keys else ROLE_AUXILIARY}
+               for c in table.column_names]
+    meta = {"panelprep": json.dumps({**base_meta, "file": "restated", "columns": columns,
+                                     "restated_columns": RESTATED_COLUMNS,
+                                     "previous_sha256": prep.summary["comparison"]["old"].get(
+                                         "sha256")}, sort_keys=True, allow_nan=False)}
+    write_table(table, path, "parquet", meta)
+    return {"name": path.name, "rows": len(table), "sha256": sha256_file(path),
+            "columns": columns}
 
 
 def _write_text(path: Path, text: str) -> None:
@@ -802,12 +863,23 @@ def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
                 *parse_shifts("lead", run.derive.lead, names),
                 *parse_shifts("diff", run.derive.diff, names)],
         contract=contract, validate_outputs=run.contract.validate_outputs,
-        evidence=run.output.evidence, names=names,
+        evidence=run.output.evidence, names=names, previous=_previous_vintage(run),
     )
     return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
                            force=run.output.force, progress=progress,
                            keep=[p for p in (run.source, run.contract.schema) if p is not None],
                            failed_out=run.output.failed_dir)
+
+
+def _previous_vintage(run: RunFile):
+    if run.compare.previous is None:
+        return None
+    from panelprep.compare import CompareOptions, PreviousVintage
+
+    options = CompareOptions(rtol=run.compare.rtol, atol=run.compare.atol,
+                             max_restated_share=run.compare.max_restated_share)
+    return PreviousVintage(path=Path(run.compare.previous), vars=run.compare.vars,
+                           options=options)
 
 
 def estimate_file_components(

@@ -41,15 +41,31 @@ def _where(change: dict[str, Any] | None) -> str:
 
 
 def comparison_lines(doc: dict[str, Any]) -> list[str]:
-    """The comparison (``Comparison.to_dict()``) as lines of text."""
-    keys, rows, ents = doc["keys"], doc["rows"], doc["entities"]
-    tol = doc["tolerance"]
+    """The comparison (``Comparison.to_dict()``) as lines of text: verdict, body, findings."""
+    keys = doc["keys"]
     freq = keys["freq"] + (", inferred" if keys.get("freq_inferred") else ", given")
     lines = [
         f"verdict: {doc['verdict'].upper()}  (the gate fails on {doc['fail_on']} and above)",
+        f"key:     {' + '.join(keys['entity'])} over {keys['time']} ({freq})",
+        *comparison_body(doc),
+        "",
+        "Findings (worst first)",
+    ]
+    found = sorted(doc["findings"], key=lambda f: -severity_rank(f["severity"]))
+    if found:
+        lines += plain._table([[f["severity"].upper(), f["id"], f"{f['count']:,}", f["message"]]
+                               for f in found], right={2})
+    else:
+        lines.append("  none: the vintages agree on every key and compared value")
+    return lines
+
+
+def comparison_body(doc: dict[str, Any]) -> list[str]:
+    """The comparison's tables as lines of text (``Comparison.report()`` suffices)."""
+    rows, ents, tol = doc["rows"], doc["entities"], doc["tolerance"]
+    lines = [
         f"old:     {_source(doc['old'])}",
         f"new:     {_source(doc['new'])}",
-        f"key:     {' + '.join(keys['entity'])} over {keys['time']} ({freq})",
         f"rule:    a cell is restated when |new - old| > {tol['atol']:g} + {tol['rtol']:g} x |old|"
         + (f"; at most {100 * tol['max_restated_share']:g}% of a variable's cells"
            if tol.get("max_restated_share") is not None else ""),
@@ -111,13 +127,6 @@ def comparison_lines(doc: dict[str, Any]) -> list[str]:
                               + [[u["variable"], f"{u['scope']} {u['where']}",
                                   f"x{u['factor']:g}", f"{u['cells']:,}", f"{u['compared']:,}"]
                                  for u in doc["unit_changes"]], right={2, 3, 4})
-    lines += ["", "Findings (worst first)"]
-    found = sorted(doc["findings"], key=lambda f: -severity_rank(f["severity"]))
-    if found:
-        lines += plain._table([[f["severity"].upper(), f["id"], f"{f['count']:,}", f["message"]]
-                               for f in found], right={2})
-    else:
-        lines.append("  none: the vintages agree on every key and compared value")
     return lines
 
 

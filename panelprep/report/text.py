@@ -139,6 +139,11 @@ def preparation_lines(summary: dict[str, Any]) -> list[str]:
         lines.append(f"  rows dropped in all: {dropped.get('rows', 0):,} "
                      f"({', '.join(f'{k}: {v:,}' for k, v in dropped.get('by_reason', {}).items()) or 'none'});"
                      " each is listed in dropped.parquet")
+    if summary.get("comparison"):
+        from panelprep.report.comparison import comparison_body
+
+        lines += ["", "Against the previous vintage (findings vintage-* above)"]
+        lines += [f"  {line}" if line else "" for line in comparison_body(summary["comparison"])]
     if summary.get("components"):
         lines += [""] + components_lines(summary["components"])
     if summary.get("transforms"):
