@@ -321,9 +321,8 @@ def _rekeys(gone_cells: tuple[np.ndarray, np.ndarray, np.ndarray, list[np.ndarra
     h_new, ok_new = _history_hash(new_cells[2], new_cells[3])
     left = pd.DataFrame({"h": h_old[ok_old], "old": gone_cells[1][ok_old]})
     right = pd.DataFrame({"h": h_new[ok_new], "new": new_cells[1][ok_new]})
-    for side in (left, right):
-        common = side["h"].map(side["h"].value_counts())
-        side.drop(side.index[common.to_numpy() > _COMMON_CELL], inplace=True)
+    left, right = (side[side["h"].map(side["h"].value_counts()).to_numpy() <= _COMMON_CELL]
+                   for side in (left, right))
     pairs = left.merge(right, on="h").groupby(["old", "new"], sort=True).size()
     pairs = pairs[pairs >= options.min_rekey_periods].rename("matched").reset_index()
     if pairs.empty:
@@ -416,7 +415,10 @@ def compare_frames(
              for c in [*keys, *names]}
     type_changes = [{"column": c, "old": a, "new": b} for c, (a, b) in kinds.items()
                     if a != b and "empty" not in (a, b)]
-    compared = [v for v in names if "number" in kinds[v] or "true/false" in kinds[v]]
+    # values are compared where both vintages hold numbers (or true/false); a column that
+    # turned to text is a type change, not every cell restated
+    compared = [v for v in names if all(k in ("number", "true/false", "empty") for k in kinds[v])
+                and kinds[v] != ("empty", "empty")]
 
     say(f"indexing {len(old):,} + {len(new):,} rows on ({', '.join(entity)}) x {time}")
     index = build_index(_stack_keys(old, new, keys), entity, time, freq)
