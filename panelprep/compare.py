@@ -476,7 +476,7 @@ def compare_frames(
         new_values.append(new_all[b.rows[new_at]])
         o, n = old_all[pair_old], new_all[pair_new]
         del old_all, new_all
-        summary, kind, units, shares = _compare_variable(
+        summary, hit, kind, units, shares = _compare_variable(
             name, o, n, pair_entity, pair_period, index, labels, options)
         variables[name] = summary
         unit_changes += units
@@ -484,12 +484,11 @@ def compare_frames(
         for key, label in (("restated", "restated"), ("unit", "unit_change_cells"),
                            ("now_missing", "became_missing"), ("filled", "filled_in")):
             totals[key] += summary[label]
-        hit = np.flatnonzero(kind >= 0)
         changed["row"].append(pair_new[hit])
         changed["variable"].append(np.full(len(hit), j, dtype=np.int64))
         changed["old"].append(o[hit])
         changed["new"].append(n[hit])
-        changed["kind"].append(kind[hit])
+        changed["kind"].append(kind)
 
     say("looking for re-keyed entities")
     pairs = _rekeys((gone_at, ent_a[gone_at], per_a[gone_at], gone_values),
@@ -563,88 +562,104 @@ def compare_frames(
 def _compare_variable(
     name: str, o: np.ndarray, n: np.ndarray, pair_entity: np.ndarray, pair_period: np.ndarray,
     index, labels: list[str], options: CompareOptions,
-) -> tuple[dict[str, Any], np.ndarray, list[dict[str, Any]], list[float | None]]:
-    """One variable on the paired cells: its summary, each cell's kind of change
-    (an index into ``CHANGE_KINDS``, -1 unchanged), its unit changes and its
-    restated share per period (None where no cell was compared)."""
-    n_ent, n_per = index.n_entities, index.n_periods
-    unit_changes: list[dict[str, Any]] = []
+) -> tuple[dict[str, Any], np.ndarray, np.ndarray, list[dict[str, Any]], list[float | None]]:
+    """One variable on the paired cells ``o`` (old) and ``n`` (new).
+
+    Returns its summary, the positions of the changed cells with their kind
+    (an index into ``CHANGE_KINDS``), its unit changes, and its restated
+    share per period (None where no cell was compared).  Full-length passes
+    are few; everything about the size of a change runs on the restated
+    cells alone.
+    """
+    n_per = index.n_periods
     o_there, n_there = ~np.isnan(o), ~np.isnan(n)
     both = o_there & n_there
-    diff = np.where(both, np.abs(n - o), 0.0)
-    restated = both & (diff > options.atol + options.rtol * np.abs(np.where(both, o, 0.0)))
-    now_missing = o_there & ~n_there
-    filled = ~o_there & n_there
-    # unit changes: new / old one power of ten (not 1) for most of a group's cells
-    ratio_ok = restated & (o != 0) & (n != 0) & (np.sign(o) == np.sign(n))
+    with np.errstate(invalid="ignore"):
+        # NaN compares false: a cell missing on either side is never restated
+        restated_at = np.flatnonzero(np.abs(n - o) > options.atol + options.rtol * np.abs(o))
+    now_missing_at = np.flatnonzero(o_there & ~n_there)
+    filled_at = np.flatnonzero(~o_there & n_there)
+    old_r, new_r = o[restated_at], n[restated_at]
+    diff = np.abs(new_r - old_r)
+    ent_r, per_r = pair_entity[restated_at], pair_period[restated_at]
     with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = np.where(ratio_ok, n / np.where(ratio_ok, o, 1.0), 1.0)
-        power = np.rint(np.log10(np.abs(ratio))).astype(np.int64)
-        near = np.abs(np.abs(ratio) / 10.0 ** power.astype(np.float64) - 1.0) <= _UNIT_RATIO_TOL
-    candidate = ratio_ok & (power != 0) & near
-    ratio_base = both & (o != 0)
-    comp_ent = np.bincount(pair_entity[ratio_base], minlength=n_ent)
-    comp_per = np.bincount(pair_period[ratio_base], minlength=n_per)
-    ent_power, ent_cells = _unit_groups(pair_entity, power, candidate, comp_ent, options)
-    per_power, per_cells = _unit_groups(pair_period, power, candidate, comp_per, options)
-    unit = candidate & (((ent_power[pair_entity] != 0) & (power == ent_power[pair_entity]))
-                        | ((per_power[pair_period] != 0) & (power == per_power[pair_period])))
-    for scope, flagged, pw, cells in (("entity", np.flatnonzero(ent_power), ent_power,
-                                       ent_cells),
-                                      ("period", np.flatnonzero(per_power), per_power,
-                                       per_cells)):
-        where = (index.entity_key(flagged) if scope == "entity"
-                 else [labels[p] for p in flagged])
-        total = comp_ent if scope == "entity" else comp_per
-        unit_changes += [{"variable": name, "scope": scope, "where": w,
-                          "factor": float(10.0 ** int(pw[g])), "cells": int(cells[g]),
-                          "compared": int(total[g])} for w, g in zip(where, flagged)]
+        relative = np.where(old_r != 0, diff / np.abs(old_r), -np.inf)
+    unit, unit_changes = _unit_cells(name, old_r, new_r, ent_r, per_r, both & (o != 0),
+                                     pair_entity, pair_period, index, labels, options)
 
     compared_pp = np.bincount(pair_period[both], minlength=n_per)
-    restated_pp = np.bincount(pair_period[restated], minlength=n_per)
-    relative = np.where(restated & (o != 0), diff / np.abs(np.where(o != 0, o, 1.0)), -np.inf)
-    abs_best, abs_at = _segment_best(pair_period[restated], diff[restated], n_per)
-    rel_best, _ = _segment_best(pair_period[restated], relative[restated], n_per)
-    n_both = int(both.sum())
-    n_restated = int(restated.sum())
+    restated_pp = np.bincount(per_r, minlength=n_per)
+    abs_best, abs_at = _segment_best(per_r, diff, n_per)
+    rel_best, _ = _segment_best(per_r, relative, n_per)
+    n_both = int(compared_pp.sum())
 
     def largest(score: np.ndarray) -> dict[str, Any] | None:
-        if n_restated == 0 or not np.isfinite(score).any():
+        if len(score) == 0 or not np.isfinite(score).any():
             return None
         i = int(np.argmax(score))
-        return {"change": float(score[i]), "old": float(o[i]), "new": float(n[i]),
-                "entity": index.entity_key([pair_entity[i]])[0],
-                "period": labels[pair_period[i]]}
+        return {"change": float(score[i]), "old": float(old_r[i]), "new": float(new_r[i]),
+                "entity": index.entity_key([ent_r[i]])[0], "period": labels[per_r[i]]}
 
-    by_period = []
-    for p in np.flatnonzero(compared_pp):
-        by_period.append({
-            "period": labels[p], "compared": int(compared_pp[p]),
-            "restated": int(restated_pp[p]),
-            "share": float(restated_pp[p] / compared_pp[p]),
-            "largest_abs_change": float(abs_best[p]) if abs_at[p] >= 0 else None,
-            "largest_rel_change": (float(rel_best[p]) if abs_at[p] >= 0
-                                   and np.isfinite(rel_best[p]) else None),
-        })
+    by_period = [{
+        "period": labels[p], "compared": int(compared_pp[p]), "restated": int(restated_pp[p]),
+        "share": float(restated_pp[p] / compared_pp[p]),
+        "largest_abs_change": float(abs_best[p]) if abs_at[p] >= 0 else None,
+        "largest_rel_change": (float(rel_best[p]) if abs_at[p] >= 0
+                               and np.isfinite(rel_best[p]) else None),
+    } for p in np.flatnonzero(compared_pp)]
     shares = [None if compared_pp[p] == 0 else float(restated_pp[p] / compared_pp[p])
               for p in range(n_per)]
     summary = {
         "compared": n_both,
-        "restated": n_restated,
-        "restated_share": float(n_restated / n_both) if n_both else None,
+        "restated": len(restated_at),
+        "restated_share": float(len(restated_at) / n_both) if n_both else None,
         "unit_change_cells": int(unit.sum()),
-        "became_missing": int(now_missing.sum()),
-        "filled_in": int(filled.sum()),
-        "largest_abs_change": largest(np.where(restated, diff, -np.inf)),
+        "became_missing": len(now_missing_at),
+        "filled_in": len(filled_at),
+        "largest_abs_change": largest(diff),
         "largest_rel_change": largest(relative),
         "by_period": by_period,
     }
-    kind = np.full(len(o), -1, dtype=np.int8)
-    kind[restated] = CHANGE_KINDS.index(RESTATED)
-    kind[unit] = CHANGE_KINDS.index(UNIT)
-    kind[now_missing] = CHANGE_KINDS.index(NOW_MISSING)
-    kind[filled] = CHANGE_KINDS.index(FILLED)
-    return summary, kind, unit_changes, shares
+    kind_r = np.where(unit, CHANGE_KINDS.index(UNIT), CHANGE_KINDS.index(RESTATED))
+    at = np.concatenate([restated_at, now_missing_at, filled_at])
+    kind = np.concatenate([kind_r, np.full(len(now_missing_at), CHANGE_KINDS.index(NOW_MISSING)),
+                           np.full(len(filled_at), CHANGE_KINDS.index(FILLED))]).astype(np.int8)
+    return summary, at, kind, unit_changes, shares
+
+
+def _unit_cells(
+    name: str, old_r: np.ndarray, new_r: np.ndarray, ent_r: np.ndarray, per_r: np.ndarray,
+    ratio_base: np.ndarray, pair_entity: np.ndarray, pair_period: np.ndarray, index,
+    labels: list[str], options: CompareOptions,
+) -> tuple[np.ndarray, list[dict[str, Any]]]:
+    """Which restated cells moved by a group's power of ten, and the groups (entities, periods).
+
+    A group (an entity or a period) has a likely unit change when most of its
+    cells with an old value other than zero (``ratio_base``) are old times one
+    power of ten other than 1 (``_unit_groups``).
+    """
+    usable = (old_r != 0) & (new_r != 0) & (np.sign(old_r) == np.sign(new_r))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.abs(np.where(usable, new_r / np.where(usable, old_r, 1.0), 1.0))
+        power = np.rint(np.log10(ratio)).astype(np.int64)
+        near = np.abs(ratio / 10.0 ** power.astype(np.float64) - 1.0) <= _UNIT_RATIO_TOL
+    candidate = usable & (power != 0) & near
+    if not candidate.any():
+        return candidate, []
+    out: list[dict[str, Any]] = []
+    unit = np.zeros(len(old_r), dtype=bool)
+    for scope, group, every in (("entity", ent_r, pair_entity), ("period", per_r, pair_period)):
+        size = index.n_entities if scope == "entity" else index.n_periods
+        compared = np.bincount(every[ratio_base], minlength=size)
+        powers, cells = _unit_groups(group, power, candidate, compared, options)
+        unit |= candidate & (powers[group] != 0) & (power == powers[group])
+        flagged = np.flatnonzero(powers)
+        where = (index.entity_key(flagged) if scope == "entity"
+                 else [labels[p] for p in flagged])
+        out += [{"variable": name, "scope": scope, "where": w,
+                 "factor": float(10.0 ** int(powers[g])), "cells": int(cells[g]),
+                 "compared": int(compared[g])} for w, g in zip(where, flagged)]
+    return unit, out
 
 
 def _findings(doc: dict[str, Any], options: CompareOptions) -> list[Finding]:
