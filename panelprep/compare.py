@@ -46,6 +46,8 @@ from panelprep.findings import (
     gate,
 )
 from panelprep.index import build_index
+from panelprep.io import DEFAULT_READ, ReadOptions, column_names, write_table
+from panelprep.pipeline import load
 
 # kinds of change, as written in the ``pp_change`` column of restated.parquet
 RESTATED, UNIT, NOW_MISSING, FILLED = "restated", "unit-change", "became-missing", "filled-in"
@@ -199,9 +201,14 @@ def _column_kind(values: pd.Series, decimal_comma: bool) -> str:
         return "number"
     if pd.api.types.is_datetime64_any_dtype(dtype):
         return "date"
-    if values.isna().all():
-        return "empty"
-    return "number" if looks_numeric(values, decimal_comma) else "text"
+    # text is judged on its first values (as the audit judges 10,000 of them): a long id
+    # column costs no full pass
+    head = values.iloc[:50_000]
+    if head.isna().all():
+        if values.isna().all():
+            return "empty"
+        head = values
+    return "number" if looks_numeric(head, decimal_comma) else "text"
 
 
 def _stack_keys(old: pd.DataFrame, new: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
@@ -767,14 +774,11 @@ def compare_files(
     entity: str | Sequence[str],
     time: str,
     vars: Sequence[str] | None = None,
-    read_options=None,
+    read_options: ReadOptions | None = None,
     progress=None,
     **kwargs: Any,
 ) -> Comparison:
     """Read two vintages (only the columns needed when ``vars`` is given) and compare them."""
-    from panelprep.io import DEFAULT_READ
-    from panelprep.pipeline import load
-
     read_options = read_options or DEFAULT_READ
     say = progress or (lambda _: None)
     entity = [entity] if isinstance(entity, str) else list(entity)
@@ -790,10 +794,8 @@ def compare_files(
                           missing_tokens=read_options.missing_tokens, progress=progress, **kwargs)
 
 
-def _present(path: Path, wanted: list[str], read_options) -> list[str]:
+def _present(path: Path, wanted: list[str], read_options: ReadOptions) -> list[str]:
     """The variables of ``wanted`` this file holds (a vintage may lack one: it is a finding)."""
-    from panelprep.io import column_names
-
     names = set(column_names(path, read_options))
     return [v for v in wanted if v in names]
 
@@ -806,7 +808,6 @@ def write_comparison(result: Comparison, folder) -> None:
     """restated.parquet, comparison.json, comparison.txt and comparison.html into an ``OutputFolder``."""
     import json
 
-    from panelprep.io import write_table
     from panelprep.report.comparison import comparison_lines, render_comparison_html
 
     doc = result.to_dict()
