@@ -266,6 +266,10 @@ def demo_command(
     typer.echo("")
     typer.echo(f"read {result.written_to / 'diagnostics.txt'} top to bottom; rerun with: "
                f"panelprep prepare --config {folder / 'run.toml'} --force")
+    vintages = folder / "vintages"
+    typer.echo(f"two deliveries of the panel, the later one revised: panelprep compare "
+               f"{vintages / 'firms_2023.csv'} {vintages / 'firms_2024.csv'} "
+               "--entity firm_id --time year")
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 

@@ -418,3 +418,41 @@ def test_run_file_severity_applies_to_comparison_findings(vintage_files):
                    '[compare]\nprevious = "old.csv"\n')
     done = _run("prepare", "--config", "run.toml", cwd=vintage_files)
     assert done.returncode == 1 and "vintage-unit-changed" in done.stderr
+
+
+# ------------------------------------------------------------------ the demo pair
+
+
+def test_demo_vintages_are_found_as_planted():
+    from panelprep.demo import make_demo_vintages
+
+    old, new, planted = make_demo_vintages()
+    result = compare_frames(old, new, "firm_id", "year")
+    doc = result.to_dict()
+    assert doc["periods"] == {"gone": planted["periods_gone"], "appeared": planted["periods_new"]}
+    assert doc["rows"]["removed"] == planted["rows_removed"]
+    assert doc["rows"]["added"] == planted["rows_added"]
+    assert doc["entities"]["gone"] == planted["entities_gone"]
+    assert doc["entities"]["appeared"] == planted["entities_new"]
+    for name in ("sales", "capital", "staff"):
+        got = doc["variables"][name]
+        assert got["restated"] == planted["restated"][name], name
+        assert got["became_missing"] == planted["became_missing"][name], name
+        assert got["filled_in"] == planted["filled_in"][name], name
+    assert doc["variables"]["capital"]["unit_change_cells"] == planted["unit_change_cells"]
+    assert [u["where"] for u in doc["unit_changes"]] == planted["unit_firms"]
+    assert [[r["old_entity"], r["new_entity"]] for r in doc["rekeyed"]] == planted["rekeyed"]
+    # the planted counts agree with a plain pandas merge of the two deliveries
+    ref = _pandas_counts(old, new, ["firm_id", "year"], ["sales", "capital", "staff"], 1e-9, 0.0)
+    assert (ref["removed"], ref["added"]) == (planted["rows_removed"], planted["rows_added"])
+    assert ref["sales"]["restated"] == planted["restated"]["sales"]
+
+
+def test_the_demo_writes_both_vintages(tmp_path):
+    done = _run("demo", str(tmp_path / "demo"), "-q", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    assert "panelprep compare" in done.stdout
+    folder = tmp_path / "demo" / "vintages"
+    compared = _run("compare", str(folder / "firms_2023.csv"), str(folder / "firms_2024.csv"),
+                    "--entity", "firm_id", "--time", "year", "-q", cwd=tmp_path)
+    assert compared.returncode == 0 and "F900024" in compared.stdout
