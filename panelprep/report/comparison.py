@@ -17,7 +17,7 @@ from panelprep.report import text as plain
 from panelprep.report.svg import Canvas, Palette, _short
 
 # shares at or above this are drawn in the darkest shade
-_FULL_SHADE = 0.5
+_FULL_SHADE = 0.25
 _MOST_PERIODS_SHOWN = 40
 
 
@@ -130,6 +130,11 @@ def comparison_body(doc: dict[str, Any]) -> list[str]:
     return lines
 
 
+def _shade(share: float) -> float:
+    """Opacity of a restated share: a square-root scale, so that 1 % is plainly not 0 %."""
+    return 0.25 + 0.75 * math.sqrt(min(share / _FULL_SHADE, 1.0))
+
+
 def restated_grid(picture: dict[str, Any], palette: Palette, name: str, title: str) -> str:
     """Variables (rows) by periods (columns), each cell shaded by its restated share.
 
@@ -158,10 +163,8 @@ def restated_grid(picture: dict[str, Any], palette: Palette, name: str, title: s
             if share <= 0:
                 canvas.rect(left + c * cell_w, y, cell_w, cell_h - 2, palette.absent)
                 continue
-            # a restated share is never drawn fainter than a fifth of the full shade
-            strength = 0.2 + 0.8 * min(share / _FULL_SHADE, 1.0)
             canvas.rect(left + c * cell_w, y, cell_w, cell_h - 2, palette.accent,
-                        f' fill-opacity="{strength:.3f}"')
+                        f' fill-opacity="{_shade(share):.3f}"')
     step = max(1, math.ceil(columns / 14))
     base = top + cell_h * rows + 14
     for c in range(0, columns, step):
@@ -174,10 +177,9 @@ def restated_grid(picture: dict[str, Any], palette: Palette, name: str, title: s
     legend = canvas.height - 14
     canvas.rect(left, legend - 10, 12, 12, palette.absent)
     canvas.text(left + 18, legend, "nothing restated", palette.ink, size=10)
-    for i, share in enumerate((0.05, 0.25, _FULL_SHADE)):
+    for i, share in enumerate((0.01, 0.05, _FULL_SHADE)):
         x = left + 140 + i * 120
-        canvas.rect(x, legend - 10, 12, 12, palette.accent,
-                    f' fill-opacity="{0.2 + 0.8 * min(share / _FULL_SHADE, 1.0):.3f}"')
+        canvas.rect(x, legend - 10, 12, 12, palette.accent, f' fill-opacity="{_shade(share):.3f}"')
         canvas.text(x + 18, legend, f"{100 * share:g}%" + (" or more" if share == _FULL_SHADE
                                                           else ""), palette.ink, size=10)
     canvas.text(left + 520, legend, "blank: nothing to compare", palette.muted, size=10)
