@@ -62,6 +62,8 @@ _HASH_BITS = 17
 # a hashed cell shared by more entities than this says nothing about identity (zeros)
 _COMMON_CELL = 50
 _SHOWN = 10
+# the picture of restated shares has at most this many period columns
+_PICTURE_COLUMNS = 120
 
 
 @dataclass(frozen=True)
@@ -346,12 +348,15 @@ def _rekeys(gone_cells: tuple[np.ndarray, np.ndarray, np.ndarray, list[np.ndarra
     return pairs.sort_values("old").reset_index(drop=True).astype(np.int64)
 
 
-def _plain(value: Any) -> Any:
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, np.floating):
-        return None if not np.isfinite(value) else float(value)
-    return value
+def _picture_columns(labels: list[str]) -> list[str]:
+    """Labels of the picture's columns: each period, or ``first to last`` of each run of periods."""
+    n = len(labels)
+    if n <= _PICTURE_COLUMNS:
+        return list(labels)
+    column = np.arange(n) * _PICTURE_COLUMNS // n
+    starts = np.flatnonzero(np.diff(column, prepend=-1))
+    ends = np.append(starts[1:], n) - 1
+    return [f"{labels[a]} to {labels[b]}" for a, b in zip(starts, ends)]
 
 
 def compare_frames(
@@ -546,8 +551,7 @@ def compare_frames(
         "changed_cells": {"restated": totals["restated"], "unit_change": totals["unit"],
                           "became_missing": totals["now_missing"],
                           "filled_in": totals["filled"]},
-        "picture": {"variables": compared,
-                    "periods": [labels[p] for p in range(n_per)],
+        "picture": {"variables": compared, "periods": _picture_columns(labels),
                     "share": share_grid},
     }
     findings = _findings(document, options)
@@ -614,8 +618,11 @@ def _compare_variable(
         "largest_rel_change": (float(rel_best[p]) if abs_at[p] >= 0
                                and np.isfinite(rel_best[p]) else None),
     } for p in np.flatnonzero(compared_pp)]
-    shares = [None if compared_pp[p] == 0 else float(restated_pp[p] / compared_pp[p])
-              for p in range(n_per)]
+    # the picture's columns: every period, or contiguous runs of them on a long grid
+    column = np.arange(n_per) * min(n_per, _PICTURE_COLUMNS) // max(n_per, 1)
+    compared_col = np.bincount(column, weights=compared_pp, minlength=min(n_per, _PICTURE_COLUMNS))
+    restated_col = np.bincount(column, weights=restated_pp, minlength=len(compared_col))
+    shares = [None if c == 0 else float(r / c) for c, r in zip(compared_col, restated_col)]
     summary = {
         "compared": n_both,
         "restated": len(restated_at),
@@ -682,11 +689,11 @@ def _findings(doc: dict[str, Any], options: CompareOptions) -> list[Finding]:
 
     for side in ("old", "new"):
         add("vintage-key-repeated", "warning", rows[f"{side}_repeated_keys"],
-            f"{rows[f'{side}_repeated_keys']:,} rows of the {side} vintage repeat an (entity, "
+            f"{rows[f'{side}_repeated_keys']:,} row(s) of the {side} vintage repeat an (entity, "
             "time) key; each key is compared on its first row",
             details={"vintage": side})
         add("vintage-key-missing", "info", rows[f"{side}_without_key"],
-            f"{rows[f'{side}_without_key']:,} rows of the {side} vintage lack a full key and "
+            f"{rows[f'{side}_without_key']:,} row(s) of the {side} vintage lack a full key and "
             "are not compared", details={"vintage": side})
     add("vintage-columns-changed", "warning" if doc["columns"]["only_old"] else "info",
         len(doc["columns"]["only_old"]) + len(doc["columns"]["only_new"]),
@@ -705,11 +712,11 @@ def _findings(doc: dict[str, Any], options: CompareOptions) -> list[Finding]:
         f"{len(pers['appeared'])} period(s) new in this vintage: "
         + ", ".join(pers["appeared"][:_SHOWN]), [{"period": p} for p in pers["appeared"]])
     add("vintage-entities-gone", "warning", ents["gone"],
-        f"{ents['gone']:,} entities of the old vintage are not in the new"
+        f"{ents['gone']:,} entit(ies) of the old vintage are not in the new"
         + (f" ({len(rekeyed)} of them look re-keyed, see vintage-entity-rekeyed)" if rekeyed
            else ""), [{"entity": e} for e in ents["gone_examples"]])
     add("vintage-entities-new", "info", ents["appeared"],
-        f"{ents['appeared']:,} entities are new in this vintage",
+        f"{ents['appeared']:,} entit(ies) are new in this vintage",
         [{"entity": e} for e in ents["appeared_examples"]])
     changed = [p for p in doc["by_period"] if p["removed"]]
     add("vintage-rows-removed", "warning", rows["removed"],
@@ -721,7 +728,7 @@ def _findings(doc: dict[str, Any], options: CompareOptions) -> list[Finding]:
         f"{rows['added']:,} (entity, period) rows are new in this vintage, in {len(grown)} "
         "period(s)", [{"period": p["period"], "rows": p["added"]} for p in grown])
     add("vintage-entity-rekeyed", "warning", len(rekeyed),
-        f"{len(rekeyed)} entities gone from the old vintage match a new entity's history over "
+        f"{len(rekeyed)} entit(ies) gone from the old vintage match a new entity's history over "
         "the periods both hold (likely re-keyed)", rekeyed)
     restated = {v: s for v, s in doc["variables"].items() if s["restated"]}
     total = sum(s["restated"] for s in restated.values())

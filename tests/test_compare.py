@@ -456,3 +456,38 @@ def test_the_demo_writes_both_vintages(tmp_path):
     compared = _run("compare", str(folder / "firms_2023.csv"), str(folder / "firms_2024.csv"),
                     "--entity", "firm_id", "--time", "year", "-q", cwd=tmp_path)
     assert compared.returncode == 0 and "F900024" in compared.stdout
+
+
+def test_prepare_takes_the_previous_vintage_from_the_command_line(vintage_files):
+    done = _run("prepare", "new.parquet", "-e", "firm", "-t", "year", "--y", "sales",
+                "--x", "capital", "--out", "out", "--previous", "old.csv", cwd=vintage_files)
+    assert done.returncode == 0, done.stderr
+    assert (vintage_files / "out" / "restated.parquet").exists()
+    (vintage_files / "run.toml").write_text(
+        '[input]\npath = "new.parquet"\n[panel]\nentity = "firm"\ntime = "year"\n'
+        '[model]\ny = "sales"\nx = ["capital"]\n[output]\ndir = "out2"\n'
+        '[compare]\nprevious = "old.csv"\nvars = ["profit"]\n')
+    refused = _run("prepare", "--config", "run.toml", cwd=vintage_files)
+    assert refused.returncode == 2 and "compare.vars" in refused.stderr
+    assert not (vintage_files / "out2").exists()
+
+
+def test_two_column_keys_align():
+    old, new = planted_pair()
+    old = old.assign(country="AA")
+    new = new.assign(country="AA")
+    result = compare_frames(old, new, ["country", "firm"], "year")
+    assert result.to_dict()["rows"]["removed"] == 40
+    assert result.to_dict()["rekeyed"][0]["old_entity"] == "AA/E07"
+    assert list(result.restated_frame().columns[:3]) == ["country", "firm", "year"]
+
+
+def test_a_long_grid_is_drawn_in_runs_of_periods():
+    days = pd.date_range("2000-01-01", periods=1000, freq="D").strftime("%Y-%m-%d")
+    old = pd.DataFrame({"id": "a", "day": days, "v": np.arange(1000.0)})
+    new = old.assign(v=np.where(np.arange(1000) % 4 == 0, old["v"] + 1, old["v"]))
+    picture = compare_frames(old, new, "id", "day").to_dict()["picture"]
+    assert len(picture["periods"]) == len(picture["share"][0]) == 120
+    assert picture["periods"][0] == "2000-01-01 to 2000-01-09"
+    # 1000 days in 120 runs of 8 or 9; every fourth day restated
+    assert sum(picture["share"][0]) / 120 == pytest.approx(0.25, abs=0.02)
