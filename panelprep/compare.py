@@ -425,6 +425,11 @@ def compare_frames(
 
     kinds = {c: (_column_kind(old[c], decimal_comma), _column_kind(new[c], decimal_comma))
              for c in [*keys, *names]}
+    time_kinds = kinds[time]
+    if time_kinds[0] != time_kinds[1] and "empty" not in time_kinds:
+        raise InputError(f"time column {time!r} holds {time_kinds[0]} values in the old vintage "
+                         f"and {time_kinds[1]} values in the new; the two cannot be aligned on "
+                         "one period grid (deliver both in the same form)")
     type_changes = [{"column": c, "old": a, "new": b} for c, (a, b) in kinds.items()
                     if a != b and "empty" not in (a, b)]
     # values are compared where both vintages hold numbers (or true/false); a column that

@@ -307,6 +307,7 @@ def test_integer_and_text_ids_align():
     old["firm"] = old["firm"].str[1:].astype(int) + 1000
     new = old.copy()
     new["firm"] = new["firm"].astype(str)
+    new["year"] = new["year"].astype(str)
     result = compare_frames(old, new, "firm", "year")
     assert result.to_dict()["rows"]["both"] == 200
     assert finding(result, "vintage-entities-gone") is None
@@ -320,6 +321,9 @@ def test_bad_options_are_refused():
         compare_frames(old, old, "firm", "year", options=CompareOptions(max_restated_share=2))
     with pytest.raises(InputError, match="not found"):
         compare_frames(old, old.drop(columns=["year"]), "firm", "year")
+    dated = old.assign(year=pd.to_datetime(old["year"].astype(str) + "-12-31"))
+    with pytest.raises(InputError, match="time column 'year' holds number values"):
+        compare_frames(old, dated, "firm", "year")
     with pytest.raises(InputError, match="neither vintage"):
         compare_frames(old, old, "firm", "year", ["profit"])
 
