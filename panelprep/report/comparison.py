@@ -14,7 +14,7 @@ from typing import Any
 
 from panelprep.findings import severity_rank
 from panelprep.report import text as plain
-from panelprep.report.svg import Canvas, Palette, _short
+from panelprep.report.svg import Canvas, Palette, _short, period_axis
 
 # shares at or above this are drawn in the darkest shade
 _FULL_SHADE = 0.25
@@ -165,15 +165,7 @@ def restated_grid(picture: dict[str, Any], palette: Palette, name: str, title: s
                 continue
             canvas.rect(left + c * cell_w, y, cell_w, cell_h - 2, palette.accent,
                         f' fill-opacity="{_shade(share):.3f}"')
-    step = max(1, math.ceil(columns / 14))
-    base = top + cell_h * rows + 14
-    for c in range(0, columns, step):
-        x = left + (c + 0.5) * cell_w
-        if tilt:
-            canvas.text(x, base, _short(periods[c], 14), palette.muted, size=10, anchor="end",
-                        extra=f' transform="rotate(-40 {x:.2f} {base:.2f})"')
-        else:
-            canvas.text(x, base, periods[c], palette.muted, size=10, anchor="middle")
+    period_axis(canvas, periods, left, cell_w, top + cell_h * rows + 14, palette)
     legend = canvas.height - 14
     canvas.rect(left, legend - 10, 12, 12, palette.absent)
     canvas.text(left + 18, legend, "nothing restated", palette.ink, size=10)

@@ -87,6 +87,20 @@ def _empty(canvas: Canvas, message: str, palette: Palette) -> None:
     canvas.text(canvas.width / 2, canvas.height / 2, message, palette.muted, anchor="middle")
 
 
+def period_axis(canvas: Canvas, periods: list[str], left: float, cell_w: float, base: float,
+                palette: Palette) -> None:
+    """At most 14 period labels under columns of width ``cell_w``, tilted when over 8 columns."""
+    columns = len(periods)
+    step = max(1, math.ceil(columns / 14))
+    for c in range(0, columns, step):
+        x = left + (c + 0.5) * cell_w
+        if columns > 8:
+            canvas.text(x, base, _short(periods[c], 14), palette.muted, size=10, anchor="end",
+                        extra=f' transform="rotate(-40 {x:.2f} {base:.2f})"')
+        else:
+            canvas.text(x, base, periods[c], palette.muted, size=10, anchor="middle")
+
+
 def presence(data: dict[str, Any], palette: Palette, name: str, title: str) -> str:
     """Entities (rows, key order) by periods (columns): filled where observed."""
     entities, periods = list(data["entities"]), list(data["periods"])
@@ -122,15 +136,7 @@ def presence(data: dict[str, Any], palette: Palette, name: str, title: str) -> s
         middle = top + cell_h * rows / 2
         canvas.text(12, middle, f"{rows:,} entities, key order top to bottom", palette.muted,
                     size=10, anchor="middle", extra=f' transform="rotate(-90 12 {middle:.2f})"')
-    step = max(1, math.ceil(columns / 14))
-    base = top + cell_h * rows + 14
-    for c in range(0, columns, step):
-        x = left + (c + 0.5) * cell_w
-        if tilt:
-            canvas.text(x, base, _short(periods[c], 14), palette.muted, size=10, anchor="end",
-                        extra=f' transform="rotate(-40 {x:.2f} {base:.2f})"')
-        else:
-            canvas.text(x, base, periods[c], palette.muted, size=10, anchor="middle")
+    period_axis(canvas, periods, left, cell_w, top + cell_h * rows + 14, palette)
     canvas.text(left + plot_w / 2, canvas.height - 6, "period", palette.ink, anchor="middle")
     return canvas.render(name, title)
 
