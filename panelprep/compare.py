@@ -314,30 +314,30 @@ def _history_hash(period: np.ndarray, values: list[np.ndarray]) -> tuple[np.ndar
     return hashed, usable
 
 
-def _rekeys(gone_cells: tuple[np.ndarray, np.ndarray, np.ndarray, list[np.ndarray]],
-            new_cells: tuple[np.ndarray, np.ndarray, np.ndarray, list[np.ndarray]],
+def _rekeys(gone_cells: tuple[np.ndarray, np.ndarray, list[np.ndarray]],
+            new_cells: tuple[np.ndarray, np.ndarray, list[np.ndarray]],
             options: CompareOptions) -> pd.DataFrame:
     """Pairs (old entity, new entity, periods matched, periods both hold) that look re-keyed.
 
-    ``*_cells`` are (cell positions, entity codes, period codes, value
-    columns) of the cells of gone and of new entities.  Cells are joined on
-    their history hash; hashes shared by many cells are dropped first.
+    ``*_cells`` are (entity codes, period codes, value columns) of the cells
+    of gone and of new entities.  Cells are joined on their history hash;
+    hashes shared by many cells are dropped first.
     """
     empty = pd.DataFrame({"old": [], "new": [], "matched": [], "overlap": []}, dtype=np.int64)
-    if len(gone_cells[1]) == 0 or len(new_cells[1]) == 0 or not gone_cells[3]:
+    if len(gone_cells[0]) == 0 or len(new_cells[0]) == 0 or not gone_cells[2]:
         return empty
-    h_old, ok_old = _history_hash(gone_cells[2], gone_cells[3])
-    h_new, ok_new = _history_hash(new_cells[2], new_cells[3])
-    left = pd.DataFrame({"h": h_old[ok_old], "old": gone_cells[1][ok_old]})
-    right = pd.DataFrame({"h": h_new[ok_new], "new": new_cells[1][ok_new]})
+    h_old, ok_old = _history_hash(gone_cells[1], gone_cells[2])
+    h_new, ok_new = _history_hash(new_cells[1], new_cells[2])
+    left = pd.DataFrame({"h": h_old[ok_old], "old": gone_cells[0][ok_old]})
+    right = pd.DataFrame({"h": h_new[ok_new], "new": new_cells[0][ok_new]})
     left, right = (side[side["h"].map(side["h"].value_counts()).to_numpy() <= _COMMON_CELL]
                    for side in (left, right))
     pairs = left.merge(right, on="h").groupby(["old", "new"], sort=True).size()
     pairs = pairs[pairs >= options.min_rekey_periods].rename("matched").reset_index()
     if pairs.empty:
         return empty
-    old_periods = pd.DataFrame({"old": gone_cells[1], "p": gone_cells[2]})
-    new_periods = pd.DataFrame({"new": new_cells[1], "p": new_cells[2]})
+    old_periods = pd.DataFrame({"old": gone_cells[0], "p": gone_cells[1]})
+    new_periods = pd.DataFrame({"new": new_cells[0], "p": new_cells[1]})
     both = (pairs[["old", "new"]].merge(old_periods, on="old").merge(new_periods, on=["new", "p"])
             .groupby(["old", "new"], sort=True).size().rename("overlap").reset_index())
     pairs = pairs.merge(both, on=["old", "new"])
@@ -508,8 +508,8 @@ def compare_frames(
         changed["kind"].append(kind)
 
     say("looking for re-keyed entities")
-    pairs = _rekeys((gone_at, ent_a[gone_at], per_a[gone_at], gone_values),
-                    (new_at, ent_b[new_at], per_b[new_at], new_values), options)
+    pairs = _rekeys((ent_a[gone_at], per_a[gone_at], gone_values),
+                    (ent_b[new_at], per_b[new_at], new_values), options)
     rekeyed = [{"old_entity": o_key, "new_entity": n_key, "periods_matched": int(m),
                 "periods_both": int(v)}
                for o_key, n_key, m, v in zip(index.entity_key(pairs["old"].to_numpy()),
@@ -667,11 +667,23 @@ def _unit_cells(
         return candidate, []
     out: list[dict[str, Any]] = []
     unit = np.zeros(len(old_r), dtype=bool)
-    for scope, group, every in (("entity", ent_r, pair_entity), ("period", per_r, pair_period)):
+    found = {}
+    for scope, group, every in (("period", per_r, pair_period), ("entity", ent_r, pair_entity)):
         size = index.n_entities if scope == "entity" else index.n_periods
         compared = np.bincount(every[ratio_base], minlength=size)
         powers, cells = _unit_groups(group, power, candidate, compared, options)
         unit |= candidate & (powers[group] != 0) & (power == powers[group])
+        found[scope] = (compared, powers, cells)
+    compared, powers, cells = found["period"]
+    flagged = np.flatnonzero(powers)
+    if len(flagged) > 1 and len(np.unique(powers[flagged])) == 1 and np.array_equal(
+            flagged, np.flatnonzero(compared)):
+        # every period in one new unit: one change of the whole variable
+        return unit, [{"variable": name, "scope": "variable", "where": "every period",
+                       "factor": float(10.0 ** int(powers[flagged[0]])),
+                       "cells": int(cells.sum()), "compared": int(compared.sum())}]
+    for scope in ("entity", "period"):
+        compared, powers, cells = found[scope]
         flagged = np.flatnonzero(powers)
         where = (index.entity_key(flagged) if scope == "entity"
                  else [labels[p] for p in flagged])

@@ -495,3 +495,14 @@ def test_a_long_grid_is_drawn_in_runs_of_periods():
     assert picture["periods"][0] == "2000-01-01 to 2000-01-09"
     # 1000 days in 120 runs of 8 or 9; every fourth day restated
     assert sum(picture["share"][0]) / 120 == pytest.approx(0.25, abs=0.02)
+
+
+def test_a_whole_variable_in_a_new_unit_is_one_change():
+    old = old_panel()
+    new = old.assign(sales=old["sales"] / 1000)
+    result = compare_frames(old, new, "firm", "year")
+    assert result.to_dict()["unit_changes"] == [
+        {"variable": "sales", "scope": "variable", "where": "every period", "factor": 0.001,
+         "cells": 200, "compared": 200}]
+    assert finding(result, "vintage-unit-changed").count == 1
+    assert result.to_dict()["variables"]["sales"]["unit_change_cells"] == 200
