@@ -18,6 +18,9 @@ import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
+from conftest import examples
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from panelprep.compare import CompareOptions, compare_frames
 from panelprep.errors import InputError
@@ -506,3 +509,34 @@ def test_a_whole_variable_in_a_new_unit_is_one_change():
          "cells": 200, "compared": 200}]
     assert finding(result, "vintage-unit-changed").count == 1
     assert result.to_dict()["variables"]["sales"]["unit_change_cells"] == 200
+
+
+# ------------------------------------------------------------------ property: any pair
+
+
+@st.composite
+def vintage_pairs(draw):
+    """Two small vintages over a few firms and years: repeats, missing values, any overlap."""
+    rows = st.tuples(st.sampled_from(["a", "b", "c", "d"]), st.integers(1, 6),
+                     st.one_of(st.none(), st.sampled_from([0.0, 1.0, 2.5, 10.0, -3.0, 1000.0])))
+    old = pd.DataFrame(draw(st.lists(rows, min_size=1, max_size=30)), columns=["f", "t", "v"])
+    new = pd.DataFrame(draw(st.lists(rows, min_size=1, max_size=30)), columns=["f", "t", "v"])
+    return old.astype({"v": float}), new.astype({"v": float})
+
+
+@settings(max_examples=examples(60), deadline=None)
+@given(vintage_pairs(), st.sampled_from([(1e-9, 0.0), (0.0, 1.5)]))
+def test_any_pair_counts_as_a_pandas_merge_does(pair, tolerance):
+    old, new = pair
+    rtol, atol = tolerance
+    result = compare_frames(old, new, "f", "t", ["v"], options=CompareOptions(rtol=rtol, atol=atol))
+    doc = result.to_dict()
+    # reference: pandas.merge of the first row per key, as in _pandas_counts
+    ref = _pandas_counts(old, new, ["f", "t"], ["v"], rtol, atol)
+    assert (doc["rows"]["removed"], doc["rows"]["added"], doc["rows"]["both"]) == (
+        ref["removed"], ref["added"], ref["both"])
+    for key in ("compared", "restated", "became_missing", "filled_in"):
+        assert doc["variables"]["v"][key] == ref["v"][key], key
+    assert (doc["entities"]["gone"], doc["entities"]["appeared"]) == (ref["gone"],
+                                                                      ref["appeared"])
+    assert result.n_changed == len(result.restated_frame())
