@@ -81,6 +81,17 @@ def _read_options(input_format, delimiter, decimal_comma, missing_token) -> Read
     )
 
 
+def _check_data(path: Path | None) -> None:
+    """Refuse a missing or unreadable data file before the flow's heavy imports."""
+    from panelprep._paths import check_readable
+
+    if path is not None:
+        try:
+            check_readable(path)
+        except InputError as err:
+            _unusable(str(err))
+
+
 def _unusable(message: str) -> None:
     typer.echo(f"panelprep: error: {message}", err=True)
     raise typer.Exit(EXIT_UNUSABLE)
@@ -103,6 +114,7 @@ def audit_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Check a panel's structure and gate on what is found."""
+    _check_data(data)
     from panelprep import pipeline
     from panelprep.report.text import audit_lines
     try:
@@ -159,6 +171,7 @@ def prepare_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Clean, audit, then write estimation-ready files with provenance into --out."""
+    _check_data(data)
     from panelprep import pipeline
     from panelprep.config import RunFile, load_run_file
     from panelprep.prepare import run_from_file
@@ -311,6 +324,7 @@ def components_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Print only the variance components of the estimation sample."""
+    _check_data(data)
     from panelprep import pipeline
     from panelprep.prepare import estimate_file_components
     from panelprep.report.text import components_lines
