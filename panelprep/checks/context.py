@@ -46,15 +46,12 @@ class Thresholds:
         mean square deviation from its mean is at most this times the
         variable's largest absolute deviation from its overall mean
         (default 1e-9).
-    max_pattern_periods : presence patterns are summarised only for grids of
-        at most this many periods.
     max_grid_periods : a grid of more periods is reported as most likely
         mistyped (default ``limits.GRID_PERIODS``, 100,000).
     """
 
     low_within_ratio: float = 0.05
     constant_rtol: float = 1e-9
-    max_pattern_periods: int = 512
     max_grid_periods: int = GRID_PERIODS
 
 
