@@ -40,7 +40,7 @@ from panelprep.components import METHODS, VarianceComponents
 from panelprep.config import RunFile
 from panelprep.errors import InputError
 from panelprep.evidence import collect_evidence
-from panelprep.figures import picture_data
+from panelprep.figures import missing_picture, picture_data
 from panelprep.findings import Finding, apply_severities, gate
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
@@ -775,10 +775,12 @@ def _write_text(path: Path, text: str) -> None:
 
 def pictures_of(prep: Preparation) -> dict[str, Any]:
     """The data behind the report's pictures, on the sample the files were written from."""
+    # missing cells describe the rows read: the audit kept them before the block was released
+    missing = missing_picture(prep.audit.context)
     if prep.sample_index is not None and prep.components is not None:
         return picture_data(prep.sample_index, theta=prep.components.theta_,
-                            variation=prep.summary["variables"])
-    return picture_data(prep.audit.context)
+                            variation=prep.summary["variables"], missing=missing)
+    return picture_data(prep.audit.context, missing=missing)
 
 
 def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:

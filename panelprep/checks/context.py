@@ -129,8 +129,9 @@ class AuditContext:
                            self.decimal_comma, self.missing_tokens, origin=self.origin)
         shared = {"_duplicates": self._duplicates, "base": self.base, "complete": self.complete,
                   "sample": self.sample & keep}
-        if "_numeric" in self.__dict__:
-            shared["_numeric"] = self._numeric
+        for name in ("_numeric", "missing_by_period"):
+            if name in self.__dict__:
+                shared[name] = self.__dict__[name]
         out.__dict__.update(shared)
         return out
 
@@ -240,6 +241,24 @@ class AuditContext:
             per_entity = np.concatenate(([0], width))
             longest[entity[starts]] = np.maximum.reduceat(per_entity, starts)
         return holes, longest, missing
+
+    @cached_property
+    def missing_by_period(self) -> tuple[np.ndarray, np.ndarray]:
+        """Keyed rows (exact repeats collapsed) per period of the full grid, and per period
+        the missing cells of each selected variable: (rows (P,), missing (P, k)).
+
+        Taken once from the numeric block, so it survives ``release_values``;
+        ``narrowed`` contexts share it (it describes the rows read).
+        """
+        n_periods = max(self.index.n_periods, 1)
+        period = self.index.period_codes[self.base]
+        rows = np.bincount(period, minlength=n_periods)
+        missing = np.zeros((n_periods, len(self.variables)), dtype=np.int64)
+        block = self.values
+        for j in range(len(self.variables)):
+            absent = np.isnan(block[:, j])[self.base]
+            missing[:, j] = np.bincount(period[absent], minlength=n_periods)
+        return rows, missing
 
     @cached_property
     def periods_per_entity(self) -> np.ndarray:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 # One label per quantity, the same in the text log and the HTML page; the
@@ -127,3 +128,59 @@ def transform_details(info: dict[str, Any]) -> list[str]:
         else:
             out.append(f"{key.replace('_', ' ')} {value}")
     return out
+
+
+def _decimals(scale: float, significant: int = 4) -> int | None:
+    """Decimals giving a value of this scale ``significant`` digits; None: powers of ten."""
+    if scale == 0 or not math.isfinite(scale):
+        return 2
+    if scale >= 1e7 or scale < 1e-4:
+        return None
+    return min(max(significant - 1 - math.floor(math.log10(scale)), 0), 6)
+
+
+def _value(value: float | None, decimals: int | None, whole: bool = False) -> str:
+    """A value of the data: no thousands separators (a year stays 2018), fixed decimals."""
+    if value is None:
+        return "-"
+    if not math.isfinite(value):
+        return str(value)
+    if whole and value == round(value) and abs(value) < 1e15:
+        return f"{value:.0f}"
+    if decimals is None:
+        return f"{value:.3e}"
+    return f"{value:.{decimals}f}"
+
+
+def align_point(cells: list[str]) -> list[str]:
+    """Cells padded with spaces so their decimal points (or ends, for whole numbers) line up."""
+    def parts(cell: str) -> tuple[str, str]:
+        if cell[:1].isdigit() or (cell[:1] == "-" and cell[1:2].isdigit()):
+            mantissa, dot, rest = cell.partition(".")
+            return mantissa, dot + rest
+        return cell, ""
+
+    split = [parts(c) for c in cells]
+    left = max((len(a) for a, _ in split), default=0)
+    right = max((len(b) for _, b in split), default=0)
+    return [a.rjust(left) + b.ljust(right) for a, b in split]
+
+
+def describe_cells(variables: dict[str, dict]) -> list[list[str]]:
+    """Mean, sd, smallest and largest of each variable, as aligned text cells.
+
+    Each variable gets the decimals that give its sd (or, with no spread, its
+    largest magnitude) four significant digits; the smallest and largest of a
+    whole-valued variable are whole numbers.  No thousands separators: a
+    year or a code reads as written.  Each column is then padded so the
+    decimal points line up.
+    """
+    rows = []
+    for v in variables.values():
+        scale = v.get("sd_overall") or max(abs(v.get("min") or 0), abs(v.get("max") or 0))
+        places = _decimals(scale)
+        whole = all(x is None or x == round(x) for x in (v.get("min"), v.get("max")))
+        rows.append([_value(v.get("mean"), places), _value(v.get("sd_overall"), places),
+                     _value(v.get("min"), places, whole), _value(v.get("max"), places, whole)])
+    columns = [align_point([row[j] for row in rows]) for j in range(4)]
+    return [[column[i] for column in columns] for i in range(len(rows))]

@@ -19,6 +19,8 @@ from panelprep.report import (
     BETWEEN_VARIANCE_SHARE,
     WITHIN_SD_RATIO,
     WITHIN_VARIANCE_SHARE,
+    align_point,
+    describe_cells,
     failing_ids,
     hint_for,
     resolved_note,
@@ -43,42 +45,6 @@ def _num(value: Any, digits: int = 4) -> str:
     if value != 0 and (abs(value) >= 1e7 or abs(value) < 1e-3):
         return f"{value:.{digits}g}"
     return f"{value:.{digits}f}".rstrip("0").rstrip(".")
-
-
-def _decimals(scale: float, significant: int = 4) -> int | None:
-    """Decimals that give a value of this scale ``significant`` digits; None: use powers of ten."""
-    if scale == 0 or not math.isfinite(scale):
-        return 2
-    if scale >= 1e7 or scale < 1e-4:
-        return None
-    return min(max(significant - 1 - math.floor(math.log10(scale)), 0), 6)
-
-
-def _value(value: float | None, decimals: int | None, whole: bool = False) -> str:
-    """A value of the data: no thousands separators (a year stays 2018), fixed decimals."""
-    if value is None:
-        return "-"
-    if not math.isfinite(value):
-        return str(value)
-    if whole and value == round(value) and abs(value) < 1e15:
-        return f"{value:.0f}"
-    if decimals is None:
-        return f"{value:.3e}"
-    return f"{value:.{decimals}f}"
-
-
-def _align_point(cells: list[str]) -> list[str]:
-    """Cells padded so their decimal points (or ends, for whole numbers) line up."""
-    def parts(cell: str) -> tuple[str, str]:
-        if cell[:1].isdigit() or cell[:1] == "-" and cell[1:2].isdigit():
-            mantissa, dot, rest = cell.partition(".")
-            return mantissa, dot + rest
-        return cell, ""
-
-    split = [parts(c) for c in cells]
-    left = max((len(a) for a, _ in split), default=0)
-    right = max((len(b) for _, b in split), default=0)
-    return [a.rjust(left) + b.ljust(right) for a, b in split]
 
 
 def _table(rows: list[list[str]], right: set[int] = frozenset()) -> list[str]:
@@ -158,17 +124,8 @@ def variable_lines(report: dict[str, Any]) -> list[str]:
     variables = report["variables"]
     if not variables:
         return [f"Variables ({sample} sample)", "  no numeric variables selected"]
-    described: list[list[str]] = []
-    for name, v in variables.items():
-        scale = v["sd_overall"] or max(abs(v["min"] or 0), abs(v["max"] or 0))
-        places = _decimals(scale)
-        whole = all(x is None or x == round(x) for x in (v["min"], v["max"]))
-        described.append([name, f"{v['n']:,}", _value(v["mean"], places),
-                          _value(v["sd_overall"], places), _value(v["min"], places, whole),
-                          _value(v["max"], places, whole)])
-    columns = [_align_point([row[j] for row in described]) for j in range(2, 6)]
-    for i, row in enumerate(described):
-        row[2:6] = [column[i] for column in columns]
+    described = [[name, f"{v['n']:,}", *cells]
+                 for (name, v), cells in zip(variables.items(), describe_cells(variables))]
     lines = [f"Variables ({sample} sample; sd with ddof 1)"]
     lines += _table([["variable", "rows", "mean", "sd", "smallest", "largest"], *described],
                     right={1, 2, 3, 4, 5})
@@ -264,7 +221,7 @@ def components_lines(components: dict[str, Any]) -> list[str]:
              ["row within entity (s2_e)", _num(s2e, 6),
               _num(components.get("sigma_idiosyncratic"), 6)]]
     for j in (1, 2):
-        column = _align_point([row[j] for row in level[1:]])
+        column = align_point([row[j] for row in level[1:]])
         for row, cell in zip(level[1:], column):
             row[j] = cell
     lines += _table(level, right={1, 2})
