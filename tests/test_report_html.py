@@ -116,6 +116,29 @@ def test_preparation_page_has_every_section_and_picture(prep_page):
     assert "These tests are evidence, not a verdict" in text
 
 
+def test_our_own_tables_and_words_replace_the_old_layouts(prep_page):
+    page = _parse(prep_page)
+    for tid in ("table-spells", "table-bands", "table-describe", "table-where", "table-theta"):
+        assert tid in page.ids, tid
+    text = " ".join(page.text)
+    for gone in ("Most common presence patterns", "entity effect variance",
+                 "entity share s2_u", "sd overall", "■"):
+        assert gone not in text, gone
+    for words in ("before entry", "hole inside the span", "after exit", "observed",
+                  "Where the variation lies", "Where the error variance sits",
+                  "share of the error variance at entity level"):
+        assert words in text, words
+    # the closing line of the text log stands in the page's header too
+    assert re.search(r"PASS: \d+ errors?, \d+ warnings?, \d+ notes?; exit 0", text)
+
+
+def test_a_failing_finding_names_what_addresses_it():
+    summary, pictures = _preparation("conflicting_duplicates.csv")
+    text = " ".join(_parse(render_html(summary, pictures)).text)
+    assert "Fails the gate. What addresses it: --duplicates keep-first, keep-last or mean" in text
+    assert "FAIL: 1 error (key-conflict)" in text and "; exit 1" in text
+
+
 def test_audit_page_has_only_the_audit_sections(audit_page):
     page = _parse(audit_page)
     for sid in (*AUDIT_SECTIONS, *AUDIT_PICTURES):

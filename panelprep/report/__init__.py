@@ -184,3 +184,15 @@ def describe_cells(variables: dict[str, dict]) -> list[list[str]]:
                      _value(v.get("min"), places, whole), _value(v.get("max"), places, whole)])
     columns = [align_point([row[j] for row in rows]) for j in range(4)]
     return [[column[i] for column in columns] for i in range(len(rows))]
+
+
+def runs_words(runs: dict[str, int], most: int = 3) -> str:
+    """Entities by number of observed runs, the first ``most`` counts apart, the rest together."""
+    items = sorted((int(k), v) for k, v in runs.items())
+    parts = [f"{k:,} run{'' if k == 1 else 's'}: {v:,} entit{'y' if v == 1 else 'ies'}"
+             for k, v in items[:most]]
+    rest = items[most:]
+    if rest:
+        total = sum(v for _, v in rest)
+        parts.append(f"{rest[0][0]:,} or more runs: {total:,} entit{'y' if total == 1 else 'ies'}")
+    return ", ".join(parts)

@@ -36,6 +36,7 @@ from panelprep.report import (
     failing_ids,
     hint_for,
     resolved_note,
+    runs_words,
     sample_words,
     spell_words,
     transform_details,
@@ -485,9 +486,7 @@ def _coverage(details: dict[str, Any]) -> str:
                     for sp in cover["spells"]], numeric={0, 1}, tid="table-spells")
     runs = cover.get("runs") or {}
     if runs:
-        body += ('<p class="note">Observed in ' + ", ".join(
-            f"{plural(int(k), 'run')}: {plural(v, 'entity')}" for k, v in runs.items())
-            + ".</p>")
+        body += f'<p class="note">Observed in {_e(runs_words(runs))}.</p>'
     bands = cover.get("bands") or []
     if bands:
         rows = []

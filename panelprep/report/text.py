@@ -24,6 +24,7 @@ from panelprep.report import (
     failing_ids,
     hint_for,
     resolved_note,
+    runs_words,
     sample_words,
     spell_words,
     transform_details,
@@ -76,8 +77,7 @@ def coverage_lines(details: dict[str, Any], periods: int, entities: int) -> list
     lines += ["  " + line for line in _table(rows, right={0, 1})]
     runs = cover.get("runs") or {}
     if runs:
-        lines.append("  observed in " + ", ".join(
-            f"{plural(int(k), 'run')}: {plural(v, 'entity')}" for k, v in runs.items()))
+        lines.append("  observed in " + runs_words(runs))
     bands = cover.get("bands") or []
     if bands:
         width = bands[0]["periods"]
