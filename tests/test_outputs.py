@@ -344,10 +344,12 @@ def test_the_intercept_column_says_what_it_is_and_the_readme_fit_runs(runs):
     assert (quasi[N.intercept] == 1 - quasi[N.theta]).all()
     # the README's regression on the quasi file, run as written on the demo's output
     readme = (Path(__file__).resolve().parent.parent / "README.md").read_text(encoding="utf-8")
-    block = next(b for b in re.findall(r"```python\n(.*?)```", readme, re.S) if "lstsq" in b)
+    block = next(b for b in re.findall(r"```python\n(.*?)```", readme, re.DOTALL)
+                 if "lstsq" in b)
     names = {"__name__": "readme"}
-    exec(block.replace('"prepared/quasi.parquet"', repr(str(out / "quasi.parquet")))
-         .replace('"capital", "staff"', '"capital", "staff", "capital_lag1", "founded"'), names)
+    code = (block.replace('"prepared/quasi.parquet"', repr(str(out / "quasi.parquet")))
+            .replace('"capital", "staff"', '"capital", "staff", "capital_lag1", "founded"'))
+    exec(code, names)  # noqa: S102 - the README's own lines, as a user would run them
     import statsmodels.api as sm
 
     # statsmodels OLS on the same columns and no added constant gives the same coefficients
