@@ -136,10 +136,7 @@ def picture_data(
     shown = position[entity] >= 0 if len(entity) else np.zeros(0, dtype=bool)
     states[position[entity[shown]], period[shown] // block] = PRESENT
     starts = np.arange(n_columns, dtype=np.int64) * block
-    labels = index.period_labels(starts) if n_columns else []
-    if block > 1:
-        ends = index.period_labels(np.minimum(starts + block - 1, n_periods - 1))
-        labels = [a if a == b else f"{a}–{b}" for a, b in zip(labels, ends)]
+    labels = _column_labels(index, starts, block, n_periods)
     present_by_period = np.bincount(period, minlength=n_periods) if n_periods else np.zeros(0)
     cut = starts if n_columns else np.zeros(0, dtype=np.int64)
     has = periods_per_entity > 0
@@ -193,6 +190,17 @@ def picture_data(
     return out
 
 
+def _column_labels(index: PanelIndex, starts: np.ndarray, block: int, n_periods: int) -> list[str]:
+    """The label of each column of periods: its period, or "first–last" of its block."""
+    if len(starts) == 0:
+        return []
+    labels = index.period_labels(starts)
+    if block == 1:
+        return labels
+    ends = index.period_labels(np.minimum(starts + block - 1, n_periods - 1))
+    return [a if a == b else f"{a}–{b}" for a, b in zip(labels, ends)]
+
+
 def _distribution(per_entity: np.ndarray) -> dict[str, list[int]]:
     """Distinct values of a per-entity count and how many entities have each."""
     values, counts = np.unique(per_entity, return_counts=True)
@@ -243,10 +251,7 @@ def missing_picture(ctx: AuditContext, max_periods: int = MAX_PERIODS) -> dict[s
     n_periods = len(rows)
     block = max(1, math.ceil(n_periods / max_periods))
     starts = np.arange(0, n_periods, block, dtype=np.int64)
-    labels = ctx.index.period_labels(starts)
-    if block > 1:
-        ends = ctx.index.period_labels(np.minimum(starts + block - 1, n_periods - 1))
-        labels = [a if a == b else f"{a}–{b}" for a, b in zip(labels, ends)]
+    labels = _column_labels(ctx.index, starts, block, n_periods)
     column_rows = np.add.reduceat(rows, starts)
     column_missing = np.add.reduceat(missing, starts, axis=0)
     with np.errstate(invalid="ignore", divide="ignore"):

@@ -437,36 +437,31 @@ def _panel(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
         ("rows without a full key", _num(panel.get("rows_without_key"))),
     ]
     body = _kv(rows) + _coverage(details)
-    presence = pictures.get("presence")
-    if presence is not None:
-        body += _figure("picture-presence", _presence_svg(presence),
-                        "<b>Presence map.</b> One row per entity, sorted by the period it "
-                        "enters, then the period it is last seen; one column per period. Teal: "
-                        "a row in the sample; copper: a hole inside the entity's span; the "
-                        "two greys: before its entry and after its exit. "
-                        f"{_e(presence.get('rule'))}")
-    flow = pictures.get("flow")
-    if flow is not None:
-        body += _figure("picture-flow", _flow_svg(flow),
-                        "<b>Entries and exits.</b> Entities present in each period (the most in "
-                        "one period of a column when periods are grouped), and below, how many "
-                        "enter the sample there and how many are seen there for the last time. "
-                        "Everyone present in the first period enters there and everyone present "
-                        "in the last is last seen there; those two counts are written, not "
-                        "drawn.")
-    missing = pictures.get("missing")
-    if missing is not None:
-        body += _figure("picture-missing", _missing_svg(missing),
-                        "<b>Missing cells.</b> One row per variable, one column per period of "
-                        "the rows read (keyed, exact repeats collapsed); the darker the cell, "
-                        "the larger the share of that period's rows missing the variable (square-root "
-                        "scale). "
-                        "Listwise deletion removes every such row from the sample.")
-    obs_pic = pictures.get("obs_per_entity")
-    if obs_pic is not None:
-        body += _figure("picture-obs", _obs_svg(obs_pic),
-                        "<b>Rows per entity.</b> How many entities have each number of rows in "
-                        "the sample.")
+    presence = pictures.get("presence") or {}
+    captions = (
+        ("presence", _presence_svg,
+         ("<b>Presence map.</b> One row per entity, sorted by the period it enters, then the "
+         "period it is last seen; one column per period. Teal: a row in the sample; copper: a "
+         "hole inside the entity's span; the two greys: before its entry and after its exit. "
+         f"{_e(presence.get('rule'))}")),
+        ("flow", _flow_svg,
+         ("<b>Entries and exits.</b> Entities present in each period (the most in one period of a "
+         "column when periods are grouped), and below, how many enter the sample there and how "
+         "many are seen there for the last time. Everyone present in the first period enters "
+         "there and everyone present in the last is last seen there; those two counts are "
+         "written, not drawn.")),
+        ("missing", _missing_svg,
+         ("<b>Missing cells.</b> One row per variable, one column per period of the rows read "
+         "(keyed, exact repeats collapsed); the darker the cell, the larger the share of that "
+         "period's rows missing the variable (square-root scale). Listwise deletion removes "
+         "every such row from the sample.")),
+        ("obs_per_entity", _obs_svg,
+         "<b>Rows per entity.</b> How many entities have each number of rows in the sample."),
+    )
+    for key, draw, caption in captions:
+        if pictures.get(key) is not None:
+            name = "obs" if key == "obs_per_entity" else key
+            body += _figure(f"picture-{name}", draw(pictures[key]), caption)
     return _section("panel", "The panel", body, f"{_e(definition[:1].upper() + definition[1:])}.")
 
 
