@@ -428,7 +428,7 @@ def _panel(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
         ("entities", _num(panel.get("entities"))),
         ("periods", _num(panel.get("periods")) + span),
         ("shape", "balanced" if panel.get("balanced") else "unbalanced"),
-        ("rows per entity (min / median / max)",
+        ("rows per entity (fewest / median / most)",
          f"{_num(obs.get('min'))} / {_num(obs.get('median'))} / {_num(obs.get('max'))}"),
         ("entities with a single row", _num(panel.get("singleton_entities"))),
         ("entities with holes in their series", _num(panel.get("entities_with_gaps"))),

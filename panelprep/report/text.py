@@ -131,8 +131,9 @@ def variable_lines(report: dict[str, Any]) -> list[str]:
                     right={1, 2, 3, 4, 5})
     lines += ["", f"Where the variation lies ({sample} sample)",
               (f"  {WITHIN_VARIANCE_SHARE} = s_w^2 / (s_w^2 + s_b^2), {BETWEEN_VARIANCE_SHARE} "
-               "= 1 - it; s_w: SD of deviations from entity means (n - N), s_b: SD of the "
-               f"entity means (ddof 1); {WITHIN_SD_RATIO} = s_w / sd")]
+               f"= 1 - it; {WITHIN_SD_RATIO} = s_w / sd"),
+              ("  s_w: SD of deviations from entity means (n - N); s_b: SD of the entity means "
+              "(ddof 1)")]
     header = ["variable", BETWEEN_VARIANCE_SHARE, WITHIN_VARIANCE_SHARE, WITHIN_SD_RATIO,
               "entities varying", "note"]
     rows = [header]
@@ -230,6 +231,10 @@ def components_lines(components: dict[str, Any]) -> list[str]:
     if components.get("truncated_negative"):
         lines.append(f"  the estimate of s2_u was negative ({_num(components.get('raw_sigma2_entity'), 6)})"
                      " and was set to 0")
+    for key, label in (("dropped_within", "left out of the within regression"),
+                       ("dropped_between", "left out of the between regression")):
+        if components.get(key):
+            lines.append(f"  {label}: {', '.join(components[key])}")
     lines += ["", "Demeaning weight per entity, theta_i = 1 - sqrt(s2_e / (T_i s2_u + s2_e)):",
               ("  the quasi file subtracts theta_i times the entity mean (0: pooled rows, "
               "1: within deviations)")]
@@ -239,10 +244,6 @@ def components_lines(components: dict[str, Any]) -> list[str]:
     if shown:
         lines += _table([[label for label, _ in shown],
                          [f"{value:.3f}" for _, value in shown]], right=set(range(len(shown))))
-    for key, label in (("dropped_within", "left out of the within regression"),
-                       ("dropped_between", "left out of the between regression")):
-        if components.get(key):
-            lines.append(f"  {label}: {', '.join(components[key])}")
     return lines
 
 
