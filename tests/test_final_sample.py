@@ -365,3 +365,21 @@ def test_a_warning_a_policy_eased_is_kept_resolved_beside_the_final_finding():
     assert judged.finding("panel-shape") is shapes[0]
     assert judged.panel["periods"] == 10
     assert judged.to_dict()["findings"][-1]["resolved_by"] == "clean.balance = largest-block"
+
+
+def test_the_demo_shows_coverage_and_ends_on_the_verdict(runs):
+    run = runs["demo"]
+    summary = run.summary
+    panel = summary["panel"]
+    shape = run.finding("panel-shape")["details"]
+    heading = (f"Coverage of the grid ({shape['first_period']} to {shape['last_period']}, "
+               f"{panel['periods']} periods)")
+    text = (run.out / "diagnostics.txt").read_text(encoding="utf-8").splitlines()
+    assert heading in run.stdout.splitlines() and heading in text
+    counting = [f for f in summary["findings"] if not f.get("resolved_by")]
+    tally = {s: sum(1 for f in counting if f["severity"] == s) for s in ("error", "warning", "info")}
+    words = [f"{tally[s]} {w}{'' if tally[s] == 1 else 's'}"
+             for s, w in (("error", "error"), ("warning", "warning"), ("info", "note"))]
+    last = f"PASS: {', '.join(words)}; exit 0"
+    assert run.returncode == 0
+    assert run.stdout.rstrip("\n").splitlines()[-1] == last == text[-1]
