@@ -40,6 +40,9 @@ from panelprep.limits import check_memory
 
 FORMATS = ("csv", "parquet", "arrow")
 OUTPUT_FORMATS = ("parquet", "csv")
+# Parquet codecs; zstd is the default: on float columns without dictionary pages it writes
+# faster than pyarrow's defaults and smaller (benchmarks/README.md, "Writes")
+PARQUET_COMPRESSIONS = ("zstd", "lz4", "snappy", "gzip", "none")
 _SUFFIXES = {
     ".csv": "csv",
     ".tsv": "csv",
@@ -423,13 +426,17 @@ def _short(err: BaseException) -> str:
 
 
 def write_table(
-    frame: pd.DataFrame | pa.Table, path: Path, fmt: str, metadata: dict[str, str]
+    frame: pd.DataFrame | pa.Table, path: Path, fmt: str, metadata: dict[str, str],
+    compression: str = "zstd", dictionary: Sequence[str] | None = None,
 ) -> None:
     """Write a data file (a DataFrame or an Arrow table); Parquet carries ``metadata``.
 
     Written without the pandas index and without timestamps, so the same
-    frame and metadata give the same bytes on every run.  A failing write
-    (a full disk) is an ``InputError`` naming the file.
+    frame and metadata give the same bytes on every run.  Parquet pages are
+    dictionary-encoded only for the columns named in ``dictionary`` (all
+    when None): key columns repeat and shrink, while a dictionary of distinct
+    floats costs time and space.  A failing write (a full disk) is an
+    ``InputError`` naming the file.
     """
     table = frame if isinstance(frame, pa.Table) else pa.Table.from_pandas(
         frame, preserve_index=False)
@@ -437,7 +444,9 @@ def write_table(
         if fmt == "parquet":
             schema_meta = {k.encode(): v.encode() for k, v in metadata.items()}
             table = table.replace_schema_metadata(schema_meta)
-            pq.write_table(table, path, compression="zstd", write_statistics=True)
+            pq.write_table(table, path, compression=compression, write_statistics=True,
+                           use_dictionary=True if dictionary is None else [
+                               c for c in dictionary if c in table.column_names])
         elif fmt == "csv":
             pacsv.write_csv(table, path)
         else:

@@ -21,7 +21,7 @@ import pandas as pd
 import pyarrow as pa
 
 from panelprep import transforms
-from panelprep._groups import group_counts
+from panelprep._groups import group_counts, select_rows
 from panelprep._linalg import independent_columns
 from panelprep._scale import standardise
 from panelprep._version import __version__
@@ -47,6 +47,7 @@ from panelprep.io import (
     DEFAULT_READ,
     DIAGNOSTIC_FILES,
     OUTPUT_FORMATS,
+    PARQUET_COMPRESSIONS,
     OutputFolder,
     ReadOptions,
     check_output_folder,
@@ -94,6 +95,7 @@ class PrepareOptions:
     transforms: list[str] = field(default_factory=lambda: list(DEFAULT_TRANSFORMS))
     method: str = "swamy-arora"
     output_format: str = "parquet"
+    compression: str = "zstd"
     fail_on: str = "error"
     severities: dict[str, str] = field(default_factory=dict)
     thresholds: Thresholds = field(default_factory=Thresholds)
@@ -115,6 +117,9 @@ class PrepareOptions:
             raise InputError(f"--method {self.method!r} is not one of {', '.join(METHODS)}")
         if self.output_format not in OUTPUT_FORMATS:
             raise InputError(f"--format {self.output_format!r} must be parquet or csv")
+        if self.compression not in PARQUET_COMPRESSIONS:
+            raise InputError(f"--compression {self.compression!r} is not one of "
+                             f"{', '.join(PARQUET_COMPRESSIONS)}")
         if not self.x:
             raise InputError("--x names no regressor")
         if self.y in self.x:
@@ -421,7 +426,9 @@ class OutputTables:
         self.progress(f"transform {name}")
         multi = self.counts[codes] > 1
         if name == "within":
-            block = transforms.within(values, codes, self.counts)[multi]
+            # the rows that stay, then demeaned in place: one block beside the sample's
+            block = select_rows(values, multi) if not multi.all() else values.copy(order="F")
+            transforms.within(block, codes[multi], self.counts, out=block)
             kept = self._regressors(name, block, values, multi, "no-within-variation")
             return _with_columns(self._key_table.filter(pa.array(multi)), names, block, kept)
         if name == "between":
@@ -756,7 +763,8 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
                                          "theta": (prep.summary.get("components") or {}).get("theta"),
                                          "columns": columns, "rows_counted": ROW_CONVENTION},
                                         sort_keys=True, allow_nan=False)}
-        write_table(table, path, fmt, meta)
+        write_table(table, path, fmt, meta, compression=options.compression,
+                    dictionary=[*options.entity, options.time])
         files.append({"name": path.name, "rows": len(table), "sha256": sha256_file(path),
                       "columns": columns})
         del table
@@ -797,7 +805,8 @@ def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
     options = PrepareOptions(
         entity=list(run.panel.entity), time=run.panel.time, y=run.model.y, x=list(run.model.x),
         freq=run.panel.freq, transforms=list(run.output.transforms), method=run.output.method,
-        output_format=run.output.format, fail_on=run.checks.fail_on,
+        output_format=run.output.format, compression=run.output.compression,
+        fail_on=run.checks.fail_on,
         severities=dict(run.checks.severity), thresholds=run.thresholds(),
         policies=Policies(
             duplicates=run.clean.duplicates, normalise_ids=run.clean.normalise_ids,
