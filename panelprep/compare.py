@@ -833,6 +833,7 @@ def write_comparison(result: Comparison, folder) -> None:
     import json
 
     from panelprep.report.comparison import comparison_lines, render_comparison_html
+    from panelprep.report.text import verdict_line
 
     doc = result.to_dict()
     meta = {"panelprep": json.dumps({"version": __version__, "file": "restated",
@@ -843,7 +844,7 @@ def write_comparison(result: Comparison, folder) -> None:
     write_table(result.restated_table(), folder.path("restated.parquet"), "parquet", meta)
     texts = {
         "comparison.json": json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False) + "\n",
-        "comparison.txt": "\n".join(comparison_lines(doc)) + "\n",
+        "comparison.txt": "\n".join([*comparison_lines(doc), "", verdict_line(doc)]) + "\n",
         "comparison.html": render_comparison_html(doc),
     }
     for name, text in texts.items():

@@ -21,7 +21,7 @@ import pandas as pd
 import pyarrow as pa
 
 from panelprep import transforms
-from panelprep._groups import group_counts
+from panelprep._groups import group_counts, select_rows
 from panelprep._linalg import independent_columns
 from panelprep._scale import standardise
 from panelprep._version import __version__
@@ -40,13 +40,14 @@ from panelprep.components import METHODS, VarianceComponents
 from panelprep.config import RunFile
 from panelprep.errors import InputError
 from panelprep.evidence import collect_evidence
-from panelprep.figures import picture_data
+from panelprep.figures import missing_picture, picture_data
 from panelprep.findings import Finding, apply_severities, gate
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
     DIAGNOSTIC_FILES,
     OUTPUT_FORMATS,
+    PARQUET_COMPRESSIONS,
     OutputFolder,
     ReadOptions,
     check_output_folder,
@@ -57,6 +58,7 @@ from panelprep.io import (
 from panelprep.lags import Shift, add_shifts, parse_shifts
 from panelprep.ledger import Ledger, StepRecord, require_rows
 from panelprep.names import (
+    MEANINGS,
     ROLE_AUXILIARY,
     ROLE_INTERCEPT,
     ROLE_KEY,
@@ -93,6 +95,7 @@ class PrepareOptions:
     transforms: list[str] = field(default_factory=lambda: list(DEFAULT_TRANSFORMS))
     method: str = "swamy-arora"
     output_format: str = "parquet"
+    compression: str = "zstd"
     fail_on: str = "error"
     severities: dict[str, str] = field(default_factory=dict)
     thresholds: Thresholds = field(default_factory=Thresholds)
@@ -116,6 +119,9 @@ class PrepareOptions:
             raise InputError(f"--method {self.method!r} is not one of {', '.join(METHODS)}")
         if self.output_format not in OUTPUT_FORMATS:
             raise InputError(f"--format {self.output_format!r} must be parquet or csv")
+        if self.compression not in PARQUET_COMPRESSIONS:
+            raise InputError(f"--compression {self.compression!r} is not one of "
+                             f"{', '.join(PARQUET_COMPRESSIONS)}")
         if not self.x:
             raise InputError("--x names no regressor")
         if self.y in self.x:
@@ -416,7 +422,9 @@ class OutputTables:
         roles = {**{c: ROLE_KEY for c in [*opts.entity, opts.time]}, opts.y: ROLE_RESPONSE,
                  **{c: ROLE_REGRESSOR for c in opts.x}, added.intercept: ROLE_INTERCEPT,
                  added.entity_rows: ROLE_WEIGHT}
-        return [{"name": c, "role": roles.get(c, ROLE_AUXILIARY)} for c in columns]
+        meanings = {getattr(added, field): text for field, text in MEANINGS.items()}
+        return [{"name": c, "role": roles.get(c, ROLE_AUXILIARY),
+                 **({"meaning": meanings[c]} if c in meanings else {})} for c in columns]
 
     def _arrow(self, name: str) -> pa.Table:
         codes, names, values = self.index.entity_codes, self.options.variables, self.values
@@ -430,7 +438,9 @@ class OutputTables:
         self.progress(f"transform {name}")
         multi = self.counts[codes] > 1
         if name == "within":
-            block = transforms.within(values, codes, self.counts)[multi]
+            # the rows that stay, then demeaned in place: one block beside the sample's
+            block = select_rows(values, multi) if not multi.all() else values.copy(order="F")
+            transforms.within(block, codes[multi], self.counts, out=block)
             kept = self._regressors(name, block, values, multi, "no-within-variation")
             return _with_columns(self._key_table.filter(pa.array(multi)), names, block, kept)
         if name == "between":
@@ -608,9 +618,9 @@ def _cautions(info: dict, components: VarianceComponents, index: PanelIndex,
         )
     if "quasi" in info:
         out.append(
-            "OLS on the quasi file gives random-effects (feasible GLS) slopes; keep the "
-            f"{names.intercept} column as the regressor for the intercept and fit without an "
-            "added constant."
+            "OLS on the quasi file gives random-effects (feasible GLS) slopes when "
+            f"{names.intercept} (1 - theta_i) takes the place of the constant: regress on it and "
+            "the other regressors only, with no column of ones of your own beside it."
         )
     if info:
         out.append(
@@ -792,7 +802,8 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
                                          "theta": (prep.summary.get("components") or {}).get("theta"),
                                          "columns": columns, "rows_counted": ROW_CONVENTION},
                                         sort_keys=True, allow_nan=False)}
-        write_table(table, path, fmt, meta)
+        write_table(table, path, fmt, meta, compression=options.compression,
+                    dictionary=[*options.entity, options.time])
         files.append({"name": path.name, "rows": len(table), "sha256": sha256_file(path),
                       "columns": columns})
         del table
@@ -836,10 +847,12 @@ def _write_text(path: Path, text: str) -> None:
 
 def pictures_of(prep: Preparation) -> dict[str, Any]:
     """The data behind the report's pictures, on the sample the files were written from."""
+    # missing cells describe the rows read: the audit kept them before the block was released
+    missing = missing_picture(prep.audit.context)
     if prep.sample_index is not None and prep.components is not None:
         return picture_data(prep.sample_index, theta=prep.components.theta_,
-                            variation=prep.summary["variables"])
-    return picture_data(prep.audit.context)
+                            variation=prep.summary["variables"], missing=missing)
+    return picture_data(prep.audit.context, missing=missing)
 
 
 def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
@@ -853,7 +866,8 @@ def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
     options = PrepareOptions(
         entity=list(run.panel.entity), time=run.panel.time, y=run.model.y, x=list(run.model.x),
         freq=run.panel.freq, transforms=list(run.output.transforms), method=run.output.method,
-        output_format=run.output.format, fail_on=run.checks.fail_on,
+        output_format=run.output.format, compression=run.output.compression,
+        fail_on=run.checks.fail_on,
         severities=dict(run.checks.severity), thresholds=run.thresholds(),
         policies=Policies(
             duplicates=run.clean.duplicates, normalise_ids=run.clean.normalise_ids,

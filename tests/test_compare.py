@@ -540,3 +540,13 @@ def test_any_pair_counts_as_a_pandas_merge_does(pair, tolerance):
     assert (doc["entities"]["gone"], doc["entities"]["appeared"]) == (ref["gone"],
                                                                       ref["appeared"])
     assert result.n_changed == len(result.restated_frame())
+
+
+def test_every_comparison_finding_has_a_hint_and_a_run_file_severity():
+    from panelprep.config import FINDING_IDS
+    from panelprep.findings import COMPARE_FINDING_IDS
+    from panelprep.report import HINTS
+
+    for fid in COMPARE_FINDING_IDS:
+        assert fid in FINDING_IDS, fid
+        assert "--" in HINTS[fid] or "[" in HINTS[fid], fid

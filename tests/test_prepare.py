@@ -359,6 +359,31 @@ def test_csv_format_writes_the_same_values(grunfeld_run, grunfeld_csv, tmp_path)
                                    reference[numbers].to_numpy(float), rtol=1e-15, atol=0)
 
 
+def _encodings(path: Path) -> dict[str, tuple[str, bool]]:
+    """Each column's codec and whether its first row group holds a dictionary page."""
+    group = pq.ParquetFile(path).metadata.row_group(0)
+    columns = (group.column(j) for j in range(group.num_columns))
+    return {c.path_in_schema: (c.compression, c.dictionary_page_offset is not None)
+            for c in columns}
+
+
+def test_parquet_codec_is_an_option_and_only_key_columns_get_dictionaries(
+        grunfeld_run, grunfeld_csv, tmp_path):
+    encodings = _encodings(grunfeld_run / "quasi.parquet")
+    assert {codec for codec, _ in encodings.values()} == {"ZSTD"}
+    assert [c for c, (_, dictionary) in encodings.items() if dictionary] == ["firm", "year"]
+    out = tmp_path / "lz4"
+    result = invoke("prepare", grunfeld_csv, *GRUNFELD, "--out", out, "--compression", "lz4")
+    assert result.exit_code == 0, result.output
+    assert {codec for codec, _ in _encodings(out / "within.parquet").values()} == {"LZ4"}
+    pd.testing.assert_frame_equal(pd.read_parquet(out / "within.parquet"),
+                                  pd.read_parquet(grunfeld_run / "within.parquet"))
+    bad = invoke("prepare", grunfeld_csv, *GRUNFELD, "--out", tmp_path / "x",
+                 "--compression", "brotli")
+    assert bad.exit_code == 2
+    assert "zstd" in bad.output and not (tmp_path / "x").exists()
+
+
 # --- two-way file against dummies on a random unbalanced panel -------------------------------
 
 

@@ -14,7 +14,7 @@ from typing import Any
 
 from panelprep.findings import severity_rank
 from panelprep.report import text as plain
-from panelprep.report.svg import Canvas, Palette, _short, period_axis
+from panelprep.report.svg import Canvas, Palette, _period_axis, _short
 
 # shares at or above this are drawn in the darkest shade
 _FULL_SHADE = 0.25
@@ -26,7 +26,7 @@ def _source(info: dict[str, Any]) -> str:
     rows = info.get("rows")
     sha = info.get("sha256")
     return (f"{shown}  rows {rows:,}" if rows is not None else shown) + (
-        f"  sha256 {sha[:16]}…" if sha else "")
+        f"  sha256 {sha[:16]}..." if sha else "")
 
 
 def _share(value: float | None) -> str:
@@ -165,7 +165,7 @@ def restated_grid(picture: dict[str, Any], palette: Palette, name: str, title: s
                 continue
             canvas.rect(left + c * cell_w, y, cell_w, cell_h - 2, palette.accent,
                         f' fill-opacity="{_shade(share):.3f}"')
-    period_axis(canvas, periods, left, cell_w, top + cell_h * rows + 14, palette)
+    _period_axis(canvas, periods, left, cell_w, top + cell_h * rows + 14, tilt, palette)
     legend = canvas.height - 14
     canvas.rect(left, legend - 10, 12, 12, palette.absent)
     canvas.text(left + 18, legend, "nothing restated", palette.ink, size=10)
