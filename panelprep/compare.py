@@ -48,6 +48,7 @@ from panelprep.findings import (
 from panelprep.index import build_index
 from panelprep.io import DEFAULT_READ, ReadOptions, column_names, write_table
 from panelprep.pipeline import load
+from panelprep.words import plural, plural_word
 
 # kinds of change, as written in the ``pp_change`` column of restated.parquet
 RESTATED, UNIT, NOW_MISSING, FILLED = "restated", "unit-change", "became-missing", "filled-in"
@@ -404,7 +405,7 @@ def compare_frames(
     for name, frame in (("OLD", old), ("NEW", new)):
         absent = [k for k in keys if k not in frame.columns]
         if absent:
-            raise ColumnError(f"{name}: key column(s) {absent} not found; columns are "
+            raise ColumnError(f"{name}: key columns {absent} not found; columns are "
                               f"{list(frame.columns)}")
     only_old = [c for c in old.columns if c not in new.columns and c not in keys]
     only_new = [c for c in new.columns if c not in old.columns and c not in keys]
@@ -415,10 +416,10 @@ def compare_frames(
         names = list(dict.fromkeys(vars))
         clash = [v for v in names if v in keys]
         if clash:
-            raise ColumnError(f"key column(s) {clash} cannot also be variables")
+            raise ColumnError(f"key columns {clash} cannot also be variables")
         nowhere = [v for v in names if v not in old.columns and v not in new.columns]
         if nowhere:
-            raise ColumnError(f"variable(s) {nowhere} in neither vintage")
+            raise ColumnError(f"variables {nowhere} are in neither vintage")
         only_old = [v for v in names if v not in new.columns]
         only_new = [v for v in names if v not in old.columns]
         names = [v for v in names if v in old.columns and v in new.columns]
@@ -693,6 +694,12 @@ def _unit_cells(
     return unit, out
 
 
+def _shown(value: Any) -> str:
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    return f"{value:,}" if isinstance(value, int) else str(value)
+
+
 def _findings(doc: dict[str, Any], options: CompareOptions) -> list[Finding]:
     """The findings of a comparison document, in a fixed order."""
     out: list[Finding] = []
@@ -706,12 +713,13 @@ def _findings(doc: dict[str, Any], options: CompareOptions) -> list[Finding]:
 
     for side in ("old", "new"):
         add("vintage-key-repeated", "warning", rows[f"{side}_repeated_keys"],
-            f"{rows[f'{side}_repeated_keys']:,} row(s) of the {side} vintage repeat an (entity, "
-            "time) key; each key is compared on its first row",
+            f"{plural(rows[f'{side}_repeated_keys'], 'row')} of the {side} vintage "
+            f"{plural_word(rows[f'{side}_repeated_keys'], 'repeats')} an (entity, time) key; "
+            "each key is compared on its first row",
             details={"vintage": side})
         add("vintage-key-missing", "info", rows[f"{side}_without_key"],
-            f"{rows[f'{side}_without_key']:,} row(s) of the {side} vintage lack a full key and "
-            "are not compared", details={"vintage": side})
+            f"{plural(rows[f'{side}_without_key'], 'row')} of the {side} vintage without a full "
+            "key, not compared", details={"vintage": side})
     add("vintage-columns-changed", "warning" if doc["columns"]["only_old"] else "info",
         len(doc["columns"]["only_old"]) + len(doc["columns"]["only_new"]),
         "columns only in the old vintage: " + (", ".join(doc["columns"]["only_old"]) or "none")
@@ -723,34 +731,34 @@ def _findings(doc: dict[str, Any], options: CompareOptions) -> list[Finding]:
             f"{t['column']} ({t['old']} -> {t['new']})" for t in doc["types"]), doc["types"])
     periods_gone = pers["gone"]
     add("vintage-periods-gone", "warning", len(periods_gone),
-        f"{len(periods_gone)} period(s) with rows in the old vintage have none in the new: "
+        f"{plural(len(periods_gone), 'period')} with rows in the old vintage, none in the new: "
         + ", ".join(periods_gone[:_SHOWN]), [{"period": p} for p in periods_gone])
     add("vintage-periods-new", "info", len(pers["appeared"]),
-        f"{len(pers['appeared'])} period(s) new in this vintage: "
+        f"{plural(len(pers['appeared']), 'period')} new in this vintage: "
         + ", ".join(pers["appeared"][:_SHOWN]), [{"period": p} for p in pers["appeared"]])
     add("vintage-entities-gone", "warning", ents["gone"],
-        f"{ents['gone']:,} entit(ies) of the old vintage are not in the new"
+        f"{plural(ents['gone'], 'entity')} of the old vintage not in the new"
         + (f" ({len(rekeyed)} of them look re-keyed, see vintage-entity-rekeyed)" if rekeyed
            else ""), [{"entity": e} for e in ents["gone_examples"]])
     add("vintage-entities-new", "info", ents["appeared"],
-        f"{ents['appeared']:,} entit(ies) are new in this vintage",
+        f"{plural(ents['appeared'], 'entity')} new in this vintage",
         [{"entity": e} for e in ents["appeared_examples"]])
     changed = [p for p in doc["by_period"] if p["removed"]]
     add("vintage-rows-removed", "warning", rows["removed"],
-        f"{rows['removed']:,} (entity, period) rows of the old vintage are not in the new, "
-        f"in {len(changed)} period(s)",
+        f"{plural(rows['removed'], 'row')} (entity, period keys) of the old vintage not in "
+        f"the new, in {plural(len(changed), 'period')}",
         [{"period": p["period"], "rows": p["removed"]} for p in changed])
     grown = [p for p in doc["by_period"] if p["added"]]
     add("vintage-rows-added", "info", rows["added"],
-        f"{rows['added']:,} (entity, period) rows are new in this vintage, in {len(grown)} "
-        "period(s)", [{"period": p["period"], "rows": p["added"]} for p in grown])
+        f"{plural(rows['added'], 'row')} (entity, period keys) new in this vintage, in "
+        f"{plural(len(grown), 'period')}", [{"period": p["period"], "rows": p["added"]} for p in grown])
     add("vintage-entity-rekeyed", "warning", len(rekeyed),
-        f"{len(rekeyed)} entit(ies) gone from the old vintage match a new entity's history over "
-        "the periods both hold (likely re-keyed)", rekeyed)
+        f"{plural(len(rekeyed), 'entity')} gone from the old vintage whose history matches a "
+        "new entity's over the periods both hold (likely re-keyed)", rekeyed)
     restated = {v: s for v, s in doc["variables"].items() if s["restated"]}
     total = sum(s["restated"] for s in restated.values())
     add("vintage-values-restated", "warning", total,
-        f"{total:,} cells hold a different value in the new vintage (beyond atol "
+        f"{plural(total, 'cell')} with a different value in the new vintage (beyond atol "
         f"{options.atol:g} + rtol {options.rtol:g} x |old|): "
         + ", ".join(f"{v} {s['restated']:,} ({100 * s['restated_share']:.2f}%)"
                     for v, s in restated.items()),
@@ -761,25 +769,28 @@ def _findings(doc: dict[str, Any], options: CompareOptions) -> list[Finding]:
     if limit is not None:
         over = {v: s for v, s in restated.items() if s["restated_share"] > limit}
         add("vintage-restated-over-limit", "error", len(over),
-            f"{len(over)} variable(s) restated in more than {100 * limit:g}% of their cells "
+            f"{plural(len(over), 'variable')} restated in more than {100 * limit:g}% of "
+            "their cells "
             "(--max-restated-share): " + ", ".join(
                 f"{v} {100 * s['restated_share']:.2f}%" for v, s in over.items()),
             [{"variable": v, "share": s["restated_share"]} for v, s in over.items()])
     units = doc["unit_changes"]
     add("vintage-unit-changed", "warning", len(units),
-        f"{len(units)} entity or period group(s) whose values moved by a power of ten "
+        f"{plural(len(units), 'group')} (entity, period or variable) whose values moved by a "
+        "power of ten "
         "(a likely change of unit): " + ", ".join(
             f"{u['variable']} in {u['scope']} {u['where']} x{u['factor']:g}" for u in units[:5]),
         units)
     now_missing = {v: s["became_missing"] for v, s in doc["variables"].items()
                    if s["became_missing"]}
     add("vintage-values-now-missing", "warning", sum(now_missing.values()),
-        f"{sum(now_missing.values()):,} cells present in the old vintage are missing in the "
-        "new: " + ", ".join(f"{v} {c:,}" for v, c in now_missing.items()),
+        f"{plural(sum(now_missing.values()), 'cell')} present in the old vintage, missing in "
+        "the new: " + ", ".join(f"{v} {c:,}" for v, c in now_missing.items()),
         [{"variable": v, "cells": c} for v, c in now_missing.items()])
     filled = {v: s["filled_in"] for v, s in doc["variables"].items() if s["filled_in"]}
     add("vintage-values-filled", "info", sum(filled.values()),
-        f"{sum(filled.values()):,} cells missing in the old vintage hold a value in the new: "
+        f"{plural(sum(filled.values()), 'cell')} missing in the old vintage, filled in the "
+        "new: "
         + ", ".join(f"{v} {c:,}" for v, c in filled.items()),
         [{"variable": v, "cells": c} for v, c in filled.items()])
     old, new = doc["shape"]["old"], doc["shape"]["new"]
@@ -787,7 +798,7 @@ def _findings(doc: dict[str, Any], options: CompareOptions) -> list[Finding]:
              if old[k] != new[k]]
     add("vintage-shape-changed", "info", len(moved),
         "the panel's shape changed: " + "; ".join(
-            f"{k.replace('_', ' ')} {old[k]} -> {new[k]}" for k in moved),
+            f"{k.replace('_', ' ')} {_shown(old[k])} -> {_shown(new[k])}" for k in moved),
         [{"measure": k, "old": old[k], "new": new[k]} for k in moved])
     return out
 

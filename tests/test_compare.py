@@ -550,3 +550,17 @@ def test_every_comparison_finding_has_a_hint_and_a_run_file_severity():
     for fid in COMPARE_FINDING_IDS:
         assert fid in FINDING_IDS, fid
         assert "--" in HINTS[fid] or "[" in HINTS[fid], fid
+
+
+def test_the_text_reads_like_the_audit_log(planted):
+    from panelprep.report.comparison import comparison_lines
+    from panelprep.report.text import verdict_line
+
+    _, _, result = planted
+    text = "\n".join([*comparison_lines(result.to_dict()), verdict_line(result.to_dict())])
+    for bad in ("(ies)", "(s)", "True", "False"):
+        assert bad not in text, bad
+    assert "balanced yes -> no" in text
+    # warnings: periods gone, entities gone, rows removed, re-key, restated, unit, now missing;
+    # notes: periods new, entities new, rows added, filled in, shape
+    assert text.splitlines()[-1] == "PASS: 0 errors, 7 warnings, 5 notes; exit 0"
