@@ -175,13 +175,14 @@ class Comparison:
         c = self._cells
         keys = self._keys.iloc[c["row"]].reset_index(drop=True)
         table = pa.Table.from_pandas(keys, preserve_index=False)
-        names = np.asarray(self._variables, dtype=object)
-        kinds = np.asarray(CHANGE_KINDS, dtype=object)
+        # names taken by index in Arrow: no Python object per changed cell
+        names = pa.array(self._variables, pa.string())
+        kinds = pa.array(CHANGE_KINDS, pa.string())
         added = {
-            RESTATED_COLUMNS["variable"]: pa.array(names[c["variable"]].tolist(), pa.string()),
+            RESTATED_COLUMNS["variable"]: names.take(pa.array(c["variable"])),
             RESTATED_COLUMNS["old"]: pa.array(c["old"], pa.float64(), from_pandas=True),
             RESTATED_COLUMNS["new"]: pa.array(c["new"], pa.float64(), from_pandas=True),
-            RESTATED_COLUMNS["kind"]: pa.array(kinds[c["kind"]].tolist(), pa.string()),
+            RESTATED_COLUMNS["kind"]: kinds.take(pa.array(c["kind"].astype(np.int64))),
         }
         for name, column in added.items():
             table = table.append_column(name, column)
