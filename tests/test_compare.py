@@ -564,3 +564,24 @@ def test_the_text_reads_like_the_audit_log(planted):
     # warnings: periods gone, entities gone, rows removed, re-key, restated, unit, now missing;
     # notes: periods new, entities new, rows added, filled in, shape
     assert text.splitlines()[-1] == "PASS: 0 errors, 7 warnings, 5 notes; exit 0"
+
+
+def test_cli_compare_never_touches_its_inputs(vintage_files):
+    import hashlib
+
+    def digest(path):
+        return hashlib.sha256(path.read_bytes()).hexdigest()
+
+    before = {p.name: digest(p) for p in vintage_files.iterdir() if p.is_file()}
+    # the output folder may not be, or hold, an input, even with --force
+    for out in (".", "old.csv"):
+        done = _run("compare", "old.csv", "new.parquet", "-e", "firm", "-t", "year",
+                    "--out", out, "--force", cwd=vintage_files)
+        assert done.returncode == 2 and done.stderr.startswith("panelprep: error: "), out
+    done = _run("compare", "old.csv", "new.parquet", "-e", "firm", "-t", "year", "--out", "cmp",
+                cwd=vintage_files)
+    assert done.returncode == 0
+    again = _run("compare", "old.csv", "new.parquet", "-e", "firm", "-t", "year", "--out", "cmp",
+                 cwd=vintage_files)
+    assert again.returncode == 2 and "cmp" in again.stderr
+    assert {p.name: digest(p) for p in vintage_files.iterdir() if p.is_file()} == before
