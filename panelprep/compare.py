@@ -60,8 +60,6 @@ RESTATED_COLUMNS = {"variable": "pp_variable", "old": "pp_old", "new": "pp_new",
 _UNIT_RATIO_TOL = 5e-3
 # binary digits of the mantissa kept when hashing histories (about five decimal digits)
 _HASH_BITS = 17
-# a hashed cell shared by more entities than this says nothing about identity (zeros)
-_COMMON_CELL = 50
 _SHOWN = 10
 # the picture of restated shares has at most this many period columns
 _PICTURE_COLUMNS = 120
@@ -323,7 +321,7 @@ def _rekeys(gone_cells: tuple[np.ndarray, np.ndarray, list[np.ndarray]],
 
     ``*_cells`` are (entity codes, period codes, value columns) of the cells
     of gone and of new entities.  Cells are joined on their history hash;
-    hashes shared by many cells are dropped first.
+    a hash held by more than one cell of its side is dropped first.
     """
     empty = pd.DataFrame({"old": [], "new": [], "matched": [], "overlap": []}, dtype=np.int64)
     if len(gone_cells[0]) == 0 or len(new_cells[0]) == 0 or not gone_cells[2]:
@@ -332,8 +330,9 @@ def _rekeys(gone_cells: tuple[np.ndarray, np.ndarray, list[np.ndarray]],
     h_new, ok_new = _history_hash(new_cells[1], new_cells[2])
     left = pd.DataFrame({"h": h_old[ok_old], "old": gone_cells[0][ok_old]})
     right = pd.DataFrame({"h": h_new[ok_new], "new": new_cells[0][ok_new]})
-    left, right = (side[side["h"].map(side["h"].value_counts()).to_numpy() <= _COMMON_CELL]
-                   for side in (left, right))
+    # a hashed cell that two cells of one side share (a constant, zeros) tells no entity
+    # apart from another: only cells unique on their side can pair entities
+    left, right = (side[~side["h"].duplicated(keep=False).to_numpy()] for side in (left, right))
     pairs = left.merge(right, on="h").groupby(["old", "new"], sort=True).size()
     pairs = pairs[pairs >= options.min_rekey_periods].rename("matched").reset_index()
     if pairs.empty:

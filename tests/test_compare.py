@@ -585,3 +585,12 @@ def test_cli_compare_never_touches_its_inputs(vintage_files):
                  cwd=vintage_files)
     assert again.returncode == 2 and "cmp" in again.stderr
     assert {p.name: digest(p) for p in vintage_files.iterdir() if p.is_file()} == before
+
+
+def test_entities_alike_in_every_value_are_not_taken_for_a_rekey():
+    # two new firms with the same constant history as the gone one: nothing tells them apart
+    old = pd.DataFrame({"firm": ["g"] * 4, "year": [1, 2, 3, 4], "code": 7.0})
+    new = pd.DataFrame({"firm": ["n1"] * 4 + ["n2"] * 4, "year": [1, 2, 3, 4] * 2, "code": 7.0})
+    result = compare_frames(old, new, "firm", "year")
+    assert result.to_dict()["rekeyed"] == []
+    assert finding(result, "vintage-entities-gone").count == 1
