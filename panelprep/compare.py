@@ -35,6 +35,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
+from panelprep._groups import segment_bounds
 from panelprep._version import __version__
 from panelprep.checks.context import looks_numeric, to_float
 from panelprep.errors import ColumnError, InputError
@@ -230,27 +231,24 @@ def _side(cell: np.ndarray) -> _Side:
                  repeated=len(keyed) - len(cells))
 
 
-def _shape(entity: np.ndarray, period: np.ndarray, n_entities: int) -> dict[str, Any]:
+def _shape(entity: np.ndarray, period: np.ndarray) -> dict[str, Any]:
     """Shape of one vintage from its distinct cells (ascending by entity, then period)."""
     if len(entity) == 0:
         return {"rows": 0, "entities": 0, "periods": 0, "balanced": False,
                 "entities_with_holes": 0, "singleton_entities": 0}
-    counts = np.bincount(entity, minlength=n_entities)
-    present = counts > 0
-    first = np.full(n_entities, -1, dtype=np.int64)
-    last = np.full(n_entities, -1, dtype=np.int64)
-    # cells ascend, so the first and last cell of each entity bound its span
-    first[entity[::-1]] = period[::-1]
-    last[entity] = period
-    span = (last - first + 1)[present]
+    # cells ascend, so each entity is one segment whose first and last cell bound its span
+    starts = segment_bounds(entity)
+    ends = np.append(starts[1:], len(entity)) - 1
+    counts = ends - starts + 1
+    span = period[ends] - period[starts] + 1
     periods_seen = int(period.max() - period.min() + 1)
     return {
         "rows": len(entity),
-        "entities": int(present.sum()),
+        "entities": len(starts),
         "periods": periods_seen,
-        "balanced": bool((counts[present] == periods_seen).all()),
-        "entities_with_holes": int((span > counts[present]).sum()),
-        "singleton_entities": int((counts[present] == 1).sum()),
+        "balanced": bool((counts == periods_seen).all()),
+        "entities_with_holes": int((span > counts).sum()),
+        "singleton_entities": int((counts == 1).sum()),
     }
 
 
@@ -517,7 +515,7 @@ def compare_frames(
                                              index.entity_key(pairs["new"].to_numpy()),
                                              pairs["matched"], pairs["overlap"])]
 
-    shape = {"old": _shape(ent_a, per_a, n_ent), "new": _shape(ent_b, per_b, n_ent)}
+    shape = {"old": _shape(ent_a, per_a), "new": _shape(ent_b, per_b)}
     for side, s in (("old", shape["old"]), ("new", shape["new"])):
         cells = per_a if side == "old" else per_b
         s["first_period"] = labels[int(cells.min())] if len(cells) else None
