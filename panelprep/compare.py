@@ -276,11 +276,13 @@ def _unit_groups(group: np.ndarray, power: np.ndarray, candidate: np.ndarray,
     n = len(compared_per_group)
     out_power = np.zeros(n, dtype=np.int64)
     out_cells = np.zeros(n, dtype=np.int64)
+    # powers of ten beyond +-60 are not changes of unit (and would not fit the code below)
+    candidate = candidate & (np.abs(power) <= 60)
     if not candidate.any():
         return out_power, out_cells
     g, k = group[candidate], power[candidate]
-    # one code per (group, power); powers of ten beyond +-60 are not unit changes
-    code = g * 128 + (np.clip(k, -60, 60) + 64)
+    # one code per (group, power)
+    code = g * 128 + (k + 64)
     uniq, counts = np.unique(code, return_counts=True)
     owner = uniq // 128
     best, where = _segment_best(owner, counts.astype(np.float64), n)
