@@ -594,3 +594,28 @@ def test_entities_alike_in_every_value_are_not_taken_for_a_rekey():
     result = compare_frames(old, new, "firm", "year")
     assert result.to_dict()["rekeyed"] == []
     assert finding(result, "vintage-entities-gone").count == 1
+
+
+def test_the_planted_pair_agrees_with_pandas_merges(planted):
+    old, new, result = planted
+    doc = result.to_dict()
+    # reference: pandas.merge on the key columns (outer, indicator), as in _pandas_counts
+    ref = _pandas_counts(old, new, ["firm", "year"], ["sales", "capital"], 1e-9, 0.0)
+    assert (doc["rows"]["removed"], doc["rows"]["added"], doc["rows"]["both"]) == (
+        ref["removed"], ref["added"], ref["both"])
+    removed = {int(p["period"]): p["removed"] for p in doc["by_period"] if p["removed"]}
+    assert removed == ref["removed_by_period"]
+    for v in ("sales", "capital"):
+        for key in ("compared", "restated", "became_missing", "filled_in"):
+            assert doc["variables"][v][key] == ref[v][key], (v, key)
+    # the re-key: E07's old rows and X07's new rows, merged on the year, agree in every value
+    pair = old[old.firm == "E07"].merge(new[new.firm == "X07"], on="year",
+                                        suffixes=("_old", "_new"))
+    assert len(pair) == doc["rekeyed"][0]["periods_both"]
+    assert (pair.sales_old == pair.sales_new).all() and (pair.capital_old == pair.capital_new).all()
+    # the unit change: new / old capital of E05, merged on the key, is 1/1000 within rounding
+    e05 = old[old.firm == "E05"].merge(new[new.firm == "E05"], on=["firm", "year"],
+                                       suffixes=("_old", "_new"))
+    ratio = e05.capital_new / e05.capital_old
+    assert np.allclose(ratio, 1e-3, rtol=1e-3)
+    assert len(e05) == doc["unit_changes"][0]["cells"]
