@@ -3,21 +3,16 @@
 Formatting only: everything shown comes from ``Comparison.to_dict()``.  The
 picture is a grid of variables (rows) by periods (columns), each cell shaded
 by the share of that variable's cells in that period the new vintage
-restated, drawn as plain SVG with the report's own canvas
-(:mod:`panelprep.report.svg`).
+restated: the report's own variables-by-periods map (``svg.missing_map``).
 """
 
 from __future__ import annotations
 
-import math
 from typing import Any
 
 from panelprep.findings import severity_rank
 from panelprep.report import text as plain
-from panelprep.report.svg import Canvas, Palette, _period_axis, _short
 
-# shares at or above this are drawn in the darkest shade
-_FULL_SHADE = 0.25
 _MOST_PERIODS_SHOWN = 40
 
 
@@ -130,57 +125,10 @@ def comparison_body(doc: dict[str, Any]) -> list[str]:
     return lines
 
 
-def _shade(share: float) -> float:
-    """Opacity of a restated share: a square-root scale, so that 1 % is plainly not 0 %."""
-    return 0.25 + 0.75 * math.sqrt(min(share / _FULL_SHADE, 1.0))
-
-
-def restated_grid(picture: dict[str, Any], palette: Palette, name: str, title: str) -> str:
-    """Variables (rows) by periods (columns), each cell shaded by its restated share.
-
-    A blank cell had nothing to compare (no row in both vintages with a value
-    in both); a cell with no restatement is drawn in the absent colour.
-    """
-    variables, periods = list(picture["variables"]), list(picture["periods"])
-    rows, columns = len(variables), len(periods)
-    left = 16 + (min(max((len(v) for v in variables), default=4), 22) * 6.6)
-    tilt = columns > 8
-    bottom = 92 if tilt else 64
-    cell_h = 18.0
-    plot_w = 900.0 - left - 16
-    canvas = Canvas(900.0, 12 + max(cell_h * rows, 20.0) + bottom, crisp=True)
-    if rows == 0 or columns == 0:
-        canvas.text(canvas.width / 2, canvas.height / 2, "no variable compared", palette.muted,
-                    anchor="middle")
-        return canvas.render(name, title)
-    top, cell_w = 12.0, plot_w / columns
-    for r, label in enumerate(variables):
-        y = top + r * cell_h
-        canvas.text(left - 8, y + 13, _short(label, 22), palette.ink, size=10, anchor="end")
-        for c, share in enumerate(picture["share"][r]):
-            if share is None:
-                continue
-            if share <= 0:
-                canvas.rect(left + c * cell_w, y, cell_w, cell_h - 2, palette.absent)
-                continue
-            canvas.rect(left + c * cell_w, y, cell_w, cell_h - 2, palette.accent,
-                        f' fill-opacity="{_shade(share):.3f}"')
-    _period_axis(canvas, periods, left, cell_w, top + cell_h * rows + 14, tilt, palette)
-    legend = canvas.height - 14
-    canvas.rect(left, legend - 10, 12, 12, palette.absent)
-    canvas.text(left + 18, legend, "nothing restated", palette.ink, size=10)
-    for i, share in enumerate((0.01, 0.05, _FULL_SHADE)):
-        x = left + 140 + i * 120
-        canvas.rect(x, legend - 10, 12, 12, palette.accent, f' fill-opacity="{_shade(share):.3f}"')
-        canvas.text(x + 18, legend, f"{100 * share:g}%" + (" or more" if share == _FULL_SHADE
-                                                          else ""), palette.ink, size=10)
-    canvas.text(left + 520, legend, "blank: nothing to compare", palette.muted, size=10)
-    return canvas.render(name, title)
-
-
 def comparison_section(doc: dict[str, Any]) -> str:
     """The ``comparison`` section of an HTML report."""
     from panelprep.report import html as page
+    from panelprep.report import svg
 
     rows, ents = doc["rows"], doc["entities"]
     tol = doc["tolerance"]
@@ -204,8 +152,10 @@ def comparison_section(doc: dict[str, Any]) -> str:
           page._e(_where(v["largest_abs_change"])), page._e(_where(v["largest_rel_change"]))]
          for name, v in doc["variables"].items()], numeric={1, 2, 3, 4, 5, 6})
     body = "<h3>Side by side</h3>" + overview + "<h3>Cells by variable</h3>" + variables
-    picture = restated_grid(doc["picture"], page._palette(), "restated",
-                            "Restated share by period and variable")
+    picture = svg.missing_map(doc["picture"], page._palette(), "restated",
+                              "Restated share by period and variable",
+                              none_label="nothing restated",
+                              most_label="{share} of the period's cells restated (the most)")
     body += page._figure("picture-restated", picture,
                          "Share of each variable's cells in each period that the new vintage "
                          "restated (unit changes included); darker is more.")
