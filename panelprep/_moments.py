@@ -36,6 +36,7 @@ import scipy.linalg
 
 from panelprep._groups import group_sums
 from panelprep._linalg import GRAM_MIN_ROWS, QR_BLOCK_ROWS
+from panelprep._scale import standardise
 
 
 @dataclass(frozen=True, eq=False)
@@ -138,6 +139,68 @@ def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
         r_within = triangular(np.vstack(factors) if factors else np.zeros((0, k + 1)), k + 1)
     return EntityMoments(codes=codes, counts=t, means=means, r_within=r_within,
                          within_ss=within_ss, total_ss=total_ss, n=n)
+
+
+@dataclass(eq=False)
+class StandardSample:
+    """The estimation sample, standardised, with its shared per-entity statistics.
+
+    Built once per sample (:func:`standard_sample`) and read by the variance
+    components, every evidence test and the transformed files' column
+    decisions, so the rows are standardised and summed once.
+    """
+
+    X: np.ndarray
+    y: np.ndarray
+    codes: np.ndarray
+    counts: np.ndarray
+    unit: float
+    moments: EntityMoments
+    x_unit: np.ndarray | None = None
+
+    @property
+    def n(self) -> int:
+        return len(self.y)
+
+    @property
+    def k(self) -> int:
+        return self.X.shape[1]
+
+    def centred_norms(self) -> np.ndarray:
+        """``||x_j - mean(x_j)||`` of each raw regressor, from the scaled sums of squares."""
+        with np.errstate(over="ignore"):
+            return self.x_unit * np.sqrt(self.moments.total_ss[:self.k])
+
+    def within_rows(self, extra: int = 0) -> np.ndarray:
+        """Within part of a design ``[entity column, X, extra entity columns, y]``."""
+        k, r = self.k, self.moments.r_within
+        rows = np.zeros((k + 1, k + 2 + extra))
+        rows[:, 1:1 + k] = r[:, :k]
+        rows[:, -1] = r[:, k]
+        return rows
+
+    def entity_rows(self, weight: np.ndarray, extra: list[int] | None = None) -> np.ndarray:
+        """Entity part ``weight_i [1, xbar_i, xbar_i[extra], ybar_i]``, one row per entity."""
+        means = self.moments.means
+        columns = [np.ones(len(weight)), *means[:, :self.k].T,
+                   *(means[:, j] for j in (extra or [])), means[:, self.k]]
+        return np.column_stack(columns) * weight[:, None]
+
+
+def standard_sample(y: np.ndarray, X: np.ndarray, codes: np.ndarray,
+                    counts: np.ndarray) -> StandardSample:
+    """Standardise ``y`` (n,) and ``X`` (n, k) (``_scale.standardise``) and take their moments.
+
+    ``counts`` (G,) are the rows per entity of the dense ``codes``.  The
+    scaled columns are centred, so the entity means and the factor of the
+    within block carry no digits lost to a level.
+    """
+    y_std, X_std = standardise(y), standardise(X)
+    z, Z = y_std.z[:, 0], X_std.z
+    sizes = np.asarray(counts, dtype=np.int64)
+    return StandardSample(X=Z, y=z, codes=codes, counts=sizes, unit=float(y_std.scale[0]),
+                          moments=entity_moments(Z, z, codes, sizes),
+                          x_unit=np.asarray(X_std.scale, dtype=np.float64).reshape(-1))
 
 
 def triangular(rows: np.ndarray, width: int) -> np.ndarray:

@@ -23,6 +23,7 @@ import pyarrow as pa
 from panelprep import transforms
 from panelprep._groups import group_counts, select_rows
 from panelprep._linalg import independent_columns
+from panelprep._moments import standard_sample
 from panelprep._scale import standardise
 from panelprep._version import __version__
 from panelprep.checks import AuditContext, Thresholds
@@ -286,12 +287,17 @@ def prepare_frame(
     y, X = values[:, 0], values[:, 1:]
 
     progress(f"variance components ({options.method})")
-    components = VarianceComponents(method=options.method).fit(y, X, codes, counts, names=options.x)
+    # standardised and summed per entity once: the components, the evidence and the
+    # files' column decisions all read these
+    standard = standard_sample(y, X, codes, counts)
+    components = VarianceComponents(method=options.method).fit(
+        y, X, codes, counts, names=options.x, sample=standard)
     keys = flow.frame[[*options.entity, options.time]].iloc[np.flatnonzero(sample)]
     outputs = OutputTables(
         keys=keys.reset_index(drop=True), index=sample_ix, values=values, counts=counts,
         theta=components.theta_, options=options, ledger=flow.ledger, raw=frame,
         rows=flow.origin[np.flatnonzero(sample)] + 1, progress=progress,
+        norms=standard.centred_norms(),
     )
 
     # a severity given for a components finding counts like one given for a check
@@ -315,7 +321,8 @@ def prepare_frame(
     summary["components"] = components.to_dict()
     if options.evidence:
         progress("evidence on the entity effect")
-        summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x)
+        summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x,
+                                               sample=standard)
     summary["transforms"] = outputs.info
     summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
     if summary["verdict"] == "fail":
@@ -367,6 +374,8 @@ class OutputTables:
     raw: pd.DataFrame
     rows: np.ndarray
     progress: Progress = _silent
+    # ||x - mean(x)|| of each regressor on the whole sample (StandardSample.centred_norms)
+    norms: np.ndarray | None = None
     info: dict[str, Any] = field(init=False)
     columns: dict[str, list[dict[str, str]]] = field(init=False)
 
@@ -470,8 +479,11 @@ class OutputTables:
         # reference sizes about the column's mean, taken on scaled values: a
         # level (x + 1e9) or a magnitude (1e200) must not change the decision
         source = block if raw is None else raw
-        scale = np.array([_centred_norm(source[:, j] if raw is None or rows is None
-                                        else source[rows, j]) for j in range(1, k + 1)])
+        if raw is not None and self.norms is not None and (rows is None or rows.all()):
+            scale = self.norms
+        else:
+            scale = np.array([_centred_norm(source[:, j] if raw is None or rows is None
+                                            else source[rows, j]) for j in range(1, k + 1)])
         if first is not None:
             columns.insert(0, first)
             scale = np.concatenate([[np.sqrt(len(first))], scale])
