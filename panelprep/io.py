@@ -293,7 +293,19 @@ def read_frame(
             frame[name] = pd.Series(pd.arrays.ArrowExtensionArray(column), index=frame.index)
     if fmt == "csv" and time in frame.columns:
         frame[time] = integer_text_to_int(frame[time])
+    del table
+    release_arrow_memory()
     return frame[wanted]
+
+
+def release_arrow_memory() -> None:
+    """Hand Arrow's freed buffers back to the system.
+
+    The Arrow allocator keeps what a table held after it is gone (about the
+    size of the table read, measured: 549 -> 357 MiB RSS after reading a
+    2.55 M row file); peak memory is what counts for a run's size limit.
+    """
+    pa.default_memory_pool().release_unused()
 
 
 def _read_csv(
@@ -447,6 +459,8 @@ def write_table(
             pq.write_table(table, path, compression=compression, write_statistics=True,
                            use_dictionary=True if dictionary is None else [
                                c for c in dictionary if c in table.column_names])
+            del table
+            release_arrow_memory()
         elif fmt == "csv":
             pacsv.write_csv(table, path)
         else:
