@@ -11,7 +11,7 @@ from __future__ import annotations
 import json
 import os
 import threading
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from concurrent.futures import Future
 from dataclasses import asdict, dataclass, field
 from functools import cached_property
@@ -23,7 +23,7 @@ import pandas as pd
 import pyarrow as pa
 
 from panelprep import transforms
-from panelprep._groups import group_counts, select_rows
+from panelprep._groups import group_counts
 from panelprep._linalg import independent_columns
 from panelprep._moments import standard_sample
 from panelprep._scale import standardise
@@ -345,6 +345,10 @@ def _context(flow: _Flow, options: PrepareOptions, read_options: ReadOptions) ->
                         missing_tokens=read_options.missing_tokens)
 
 
+# Rows per piece of the within and quasi files: each piece is built, written and freed
+# (a Parquet row group each), so no transformed (n, k) block is ever held whole.
+PIECE_ROWS = 1 << 20
+
 # Why a regressor is left out of a transformed file.
 _LEFT_OUT = {
     "no-within-variation": "constant within every entity: the within transform leaves zeros",
@@ -412,9 +416,57 @@ class OutputTables:
 
     def arrow(self, name: str) -> pa.Table:
         """One output table as an Arrow table: key columns, then numpy columns without a copy."""
+        return pa.concat_tables(self.pieces(name))
+
+    def pieces(self, name: str) -> Iterator[pa.Table]:
+        """One output table as Arrow tables of consecutive rows, built as they are read.
+
+        The within and quasi files come in pieces of ``PIECE_ROWS`` rows, so
+        writing them never holds an (n, k) transformed block; every other
+        table is one piece.
+        """
+        if name in ("within", "quasi"):
+            first = True
+            for table in self._demeaned_pieces(name):
+                if first:
+                    self.columns[name] = self._roles(table.column_names)
+                    first = False
+                yield table
+            return
         table = self._arrow(name)
         self.columns[name] = self._roles(table.column_names)
-        return table
+        yield table
+
+    def _demeaned_pieces(self, name: str) -> Iterator[pa.Table]:
+        codes, names, values = self.index.entity_codes, self.options.variables, self.values
+        added = self.options.names
+        self.progress(f"transform {name}")
+        if name == "within":
+            multi = self.counts[codes] > 1
+            rows = None if multi.all() else np.flatnonzero(multi)
+            block = transforms.within_block(values, codes, self.counts, rows)
+            kept = self._regressors(name, block, values, multi, "no-within-variation")
+        else:
+            rows = None
+            block = transforms.quasi_block(values, codes, self.counts, self.theta)
+            kept = self._regressors(name, block, values, None, "collinear",
+                                    first=1.0 - self.theta[codes])
+        n = block.shape[0]
+        for start in range(0, max(n, 1), PIECE_ROWS):
+            stop = min(start + PIECE_ROWS, n)
+            if rows is None:
+                keys = self._key_table.slice(start, stop - start)
+            else:
+                low = int(rows[start]) if stop > start else 0
+                high = int(rows[stop - 1]) + 1 if stop > start else 0
+                keys = self._key_table.slice(low, high - low).filter(
+                    pa.array(multi[low:high]))
+            table = _with_columns(keys, names, block.piece(start, stop), kept)
+            if name == "quasi":
+                theta = self.theta[codes[start:stop]]
+                table = table.append_column(added.intercept, pa.array(1.0 - theta))
+                table = table.append_column(added.theta, pa.array(theta))
+            yield table
 
     def _roles(self, columns: list[str]) -> list[dict[str, str]]:
         opts, added = self.options, self.options.names
@@ -436,12 +488,6 @@ class OutputTables:
             return pa.Table.from_pandas(frame, preserve_index=False)
         self.progress(f"transform {name}")
         multi = self.counts[codes] > 1
-        if name == "within":
-            # the rows that stay, then demeaned in place: one block beside the sample's
-            block = select_rows(values, multi) if not multi.all() else values.copy(order="F")
-            transforms.within(block, codes[multi], self.counts, out=block)
-            kept = self._regressors(name, block, values, multi, "no-within-variation")
-            return _with_columns(self._key_table.filter(pa.array(multi)), names, block, kept)
         if name == "between":
             labels = pa.Table.from_pandas(self.index.entity_labels, preserve_index=False)
             block = transforms.between(values, codes, self.counts)
@@ -449,13 +495,6 @@ class OutputTables:
             kept = self._regressors(name, block, None, None, "collinear", first=ones)
             table = _with_columns(labels, names, block, kept)
             return table.append_column(added.entity_rows, pa.array(self.counts))
-        if name == "quasi":
-            block = transforms.quasi(values, codes, self.counts, self.theta)
-            intercept = 1.0 - self.theta[codes]
-            kept = self._regressors(name, block, values, None, "collinear", first=intercept)
-            table = _with_columns(self._key_table, names, block, kept)
-            table = table.append_column(added.intercept, pa.array(intercept))
-            return table.append_column(added.theta, pa.array(self.theta[codes]))
         sub = self.index.subset(multi)
         block, result = transforms.twoway(
             values[multi], sub.entity_codes, sub.period_codes, sub.n_entities, sub.n_periods,
@@ -766,7 +805,9 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
     }
     for name in prep.outputs.names if prep.outputs is not None else []:
         # built, written and freed one at a time: peak memory holds one table
-        table = prep.tables[name] if "tables" in prep.__dict__ else prep.outputs.arrow(name)
+        # the first piece is built here, so the file's columns are known for its metadata
+        table = prep.tables[name] if "tables" in prep.__dict__ else _primed(
+            prep.outputs.pieces(name))
         columns = prep.outputs.columns[name]
         fmt = "parquet" if name == "dropped" else options.output_format
         path = folder.path(f"{name}.{'parquet' if name == 'dropped' else suffix}")
@@ -777,9 +818,9 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
                                          "theta": (prep.summary.get("components") or {}).get("theta"),
                                          "columns": columns, "rows_counted": ROW_CONVENTION},
                                         sort_keys=True, allow_nan=False)}
-        write_table(table, path, fmt, meta, compression=options.compression,
-                    dictionary=[*options.entity, options.time])
-        files.append({"name": path.name, "rows": len(table),
+        rows = write_table(table, path, fmt, meta, compression=options.compression,
+                           dictionary=[*options.entity, options.time])
+        files.append({"name": path.name, "rows": rows,
                       "sha256": _hash_in_background(path), "columns": columns})
         del table
     for entry in files:
@@ -790,6 +831,17 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
     _write_text(folder.path("diagnostics.txt"), "\n".join(preparation_lines(prep.summary)) + "\n")
     progress("writing report.html")
     _write_text(folder.path("report.html"), render_html(prep.summary, pictures_of(prep)))
+
+
+def _primed(pieces: Iterator[pa.Table]) -> Iterator[pa.Table]:
+    """``pieces`` with the first one already built; nothing holds a piece once it is passed on."""
+    held = [next(pieces)]
+
+    def passed_on() -> Iterator[pa.Table]:
+        yield held.pop()
+        yield from pieces
+
+    return passed_on()
 
 
 def _hash_in_background(path: Path) -> Future:
