@@ -31,7 +31,7 @@ import numpy as np
 
 from panelprep._groups import group_sums
 from panelprep._linalg import OlsFit, ols, ols_from_r
-from panelprep._moments import EntityMoments, StandardSample, standard_sample
+from panelprep._moments import StandardSample, standard_sample
 from panelprep.transforms import theta_per_entity, within
 from panelprep.words import plural
 
@@ -67,10 +67,11 @@ class _Moments:
     ``QX`` and the Gram matrices are built when a method asks for them.
     """
 
-    def __init__(self, y: np.ndarray, X: np.ndarray, entity: EntityMoments):
-        self.y, self.X = y, X
-        self.n = len(y)
-        self.k = X.shape[1]
+    def __init__(self, sample: StandardSample):
+        entity = sample.moments
+        self.sample = sample
+        self.n = sample.n
+        self.k = sample.k
         self.entity = entity
         self.codes = entity.codes
         self.counts = np.asarray(entity.counts, dtype=np.float64)
@@ -91,7 +92,7 @@ class _Moments:
 
     @cached_property
     def _grams(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        k, n, X = self.k, float(self.n), self.X
+        k, n, X = self.k, float(self.n), self.sample.X
         t, inv, sum_x = self.counts, self.inv, self.sum_x
         qx = within(X, self.codes, self.counts) if k else np.zeros((self.n, 0), order="F")
         xx = X.T @ X
@@ -334,8 +335,8 @@ class VarianceComponents:
         # around 0 (see _scale); s2 come back in the response's squared units
         if sample is None:
             sample = standard_sample(y, X, codes, counts)
-        y, X, unit = sample.y, sample.X, sample.unit
-        mom = _Moments(y, X, sample.moments)
+        unit = sample.unit
+        mom = _Moments(sample)
         self.findings_: list[dict] = []
         self.dropped_within_: list[str] = []
         self.dropped_between_: list[str] = []
@@ -350,7 +351,7 @@ class VarianceComponents:
             "amemiya": self._amemiya,
             "nerlove": self._nerlove,
         }[self.method]
-        s2u, s2e, dof = estimator(y, X, mom, labels)
+        s2u, s2e, dof = estimator(mom, labels)
         for key in _SQUARED_UNIT_DOF:
             if key in dof:
                 dof[key] = _in_units(dof[key], unit)
@@ -435,7 +436,7 @@ class VarianceComponents:
     def _underidentified(self, message: str) -> None:
         self.findings_.append(_finding("components-underidentified", "error", message))
 
-    def _swamy_arora(self, y, X, mom: _Moments, labels):
+    def _swamy_arora(self, mom: _Moments, labels):
         n, big_n = mom.n, mom.n_entities
         fw = self._within_fit(mom, labels, "")
         df_w = n - big_n - fw.rank
@@ -509,8 +510,8 @@ class VarianceComponents:
         )
         return 0.0, s2e
 
-    def _wallace_hussain(self, y, X, mom: _Moments, labels):
-        n = mom.n
+    def _wallace_hussain(self, mom: _Moments, labels):
+        n, y, X = mom.n, mom.sample.y, mom.sample.X
         design = np.empty((n, 1 + mom.k), order="F")
         design[:, 0] = 1.0
         design[:, 1:] = X
@@ -542,8 +543,8 @@ class VarianceComponents:
         }
         return s2u, s2e, dof
 
-    def _amemiya(self, y, X, mom: _Moments, labels):
-        n = mom.n
+    def _amemiya(self, mom: _Moments, labels):
+        n, y, X = mom.n, mom.sample.y, mom.sample.X
         fw = self._within_fit(
             mom, labels, "; its effect stays in the residual entity means, so s2_u includes it"
         )
@@ -582,7 +583,7 @@ class VarianceComponents:
         }
         return s2u, s2e, dof
 
-    def _nerlove(self, y, X, mom: _Moments, labels):
+    def _nerlove(self, mom: _Moments, labels):
         n, big_n = mom.n, mom.n_entities
         fw = self._within_fit(
             mom, labels, "; its effect stays in the estimated entity effects, so s2_u includes it"

@@ -497,7 +497,7 @@ def _mundlak_scores(sample: _Sample, theta_g: np.ndarray, var_idx: np.ndarray,
     slope = np.zeros(k)
     in_x = (kept_cols >= 1) & (kept_cols <= k)
     slope[kept_cols[in_x] - 1] = coef[in_x]
-    within_part = sample.moments.within_scores(sample.X, sample.y, slope)
+    within_part = sample.moments.within_scores(sample.x_column, sample.y_column(), slope)
     scores[:, in_x] += within_part[:, kept_cols[in_x] - 1]
     return scores
 
