@@ -55,6 +55,7 @@ from panelprep.io import (
     ReadOptions,
     check_output_folder,
     column_names,
+    release_arrow_memory,
     sha256_file,
     write_table,
 )
@@ -217,6 +218,7 @@ def prepare_frame(
                   _distinct_entities(flow.frame, options.entity), f"{changed:,} ids changed")
     progress(f"indexing {len(flow.frame):,} rows")
     flow.index = build_index(flow.frame, options.entity, options.time, options.freq)
+    release_arrow_memory()  # what factorising Arrow strings left in the pool
     if policies.duplicates != "fail":
         ctx = _context(flow, options, read_options)
         flow.apply(duplicate_removal(flow.frame, flow.index, ctx.repeat, policies.duplicates))
