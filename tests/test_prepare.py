@@ -495,3 +495,28 @@ def test_cleaning_policies_from_the_command_line(tmp_path):
     dropped = pd.read_parquet(out / "dropped.parquet")
     assert sorted(dropped[N.row]) == [9, 10, 13]
     assert len(pd.read_parquet(out / "clean.parquet")) == 10
+
+
+def test_files_written_in_pieces_equal_one_piece_and_pandas(tmp_path, monkeypatch):
+    import panelprep.prepare as flow
+
+    _random_unbalanced_csv(tmp_path / "panel.csv")  # shuffled rows, two single-row firms
+    args = {"entity": "firm", "time": "year", "y": "y", "x": "x1,x2",
+            "transforms": "within,quasi"}
+    whole = prepare(tmp_path / "panel.csv", tmp_path / "whole", **args)
+    monkeypatch.setattr(flow, "PIECE_ROWS", 7)
+    pieces = prepare(tmp_path / "panel.csv", tmp_path / "pieces", **args)
+    assert whole.verdict == pieces.verdict == "pass"
+    for name in ("within", "quasi"):
+        one = pd.read_parquet(tmp_path / "whole" / f"{name}.parquet")
+        many = pd.read_parquet(tmp_path / "pieces" / f"{name}.parquet")
+        assert pq.ParquetFile(tmp_path / "pieces" / f"{name}.parquet").num_row_groups > 5
+        pd.testing.assert_frame_equal(one, many, check_exact=True)
+    # outside check: pandas groupby demeaning of the clean file, single-row firms left out
+    clean = pd.read_parquet(tmp_path / "whole" / "clean.parquet")
+    multi = clean[clean.groupby("firm")["y"].transform("size") > 1]
+    demeaned = multi[["y", "x1", "x2"]] - multi.groupby("firm")[["y", "x1", "x2"]].transform("mean")
+    within_file = pd.read_parquet(tmp_path / "pieces" / "within.parquet")
+    assert within_file[N.row].tolist() == multi[N.row].tolist()
+    np.testing.assert_allclose(within_file[["y", "x1", "x2"]].to_numpy(),
+                               demeaned.to_numpy(), rtol=0, atol=1e-12)
