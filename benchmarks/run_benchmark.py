@@ -331,13 +331,16 @@ def _naive(spec: Spec) -> tuple[Any, dict]:
     return run, {}
 
 
-def _ours_summary(spec: Spec, prep) -> dict:
+def _ours_summary(spec: Spec, prep, quasi_file: Path | None = None) -> dict:
     comp = prep.summary.get("components") or {}
     out = {"verdict": prep.verdict, "sigma2_entity": comp.get("sigma2_entity"),
            "sigma2_idiosyncratic": comp.get("sigma2_idiosyncratic")}
+    import pandas as pd
+
     from panelprep.names import DEFAULT_NAMES
 
-    quasi = prep.tables.get("quasi")
+    quasi = prep.tables.get("quasi") if quasi_file is None else pd.read_parquet(
+        quasi_file, columns=[spec.y, DEFAULT_NAMES.theta])
     if quasi is not None:
         theta = quasi[DEFAULT_NAMES.theta].to_numpy()
         out.update(_probe_quasi(spec, quasi[spec.y].to_numpy(), theta))
@@ -351,7 +354,9 @@ def _ours_api(spec: Spec) -> tuple[Any, dict]:
         prep = prepare(spec.data, spec.out / "prepared", entity=ENTITY, time=TIME, y=spec.y,
                        x=spec.x, transforms=list(TRANSFORMS), force=True,
                        policies=spec.policies())
-        info = _ours_summary(spec, prep)
+        # the probe reads the quasi file written, as a user of the files would: building
+        # prep.tables would hold every output table in memory at once
+        info = _ours_summary(spec, prep, spec.out / "prepared" / "quasi.parquet")
         info["files_written"] = len(prep.summary.get("files", []))
         return info
 
