@@ -11,7 +11,7 @@ from __future__ import annotations
 import json
 import os
 from collections.abc import Sequence
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from functools import cached_property
 from pathlib import Path
 from typing import Any
@@ -24,6 +24,7 @@ from panelprep import transforms
 from panelprep._groups import group_counts
 from panelprep._linalg import independent_columns
 from panelprep._scale import standardise
+from panelprep._schema import SCHEMA_VERSION
 from panelprep._version import __version__
 from panelprep.checks import AuditContext, Thresholds
 from panelprep.clean import (
@@ -37,11 +38,22 @@ from panelprep.clean import (
     window_removal,
 )
 from panelprep.components import METHODS, VarianceComponents
-from panelprep.config import RunFile
+from panelprep.config import (
+    ChecksSection,
+    CleanSection,
+    ContractSection,
+    DeriveSection,
+    InputSection,
+    ModelSection,
+    NamesSection,
+    OutputSection,
+    PanelSection,
+    RunFile,
+)
 from panelprep.errors import InputError
 from panelprep.evidence import collect_evidence
 from panelprep.figures import picture_data
-from panelprep.findings import Finding, apply_severities, gate
+from panelprep.findings import Finding, apply_severities, gate, gate_block, ordered
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
@@ -67,10 +79,10 @@ from panelprep.names import (
     AddedNames,
     check_added_names,
 )
+from panelprep.runlog import RunLog
 from panelprep.pipeline import (
     AuditReport,
     Progress,
-    _silent,
     audit,
     judge_final_sample,
     load,
@@ -178,8 +190,9 @@ def prepare_frame(
     options: PrepareOptions,
     input_info: dict[str, Any] | None = None,
     read_options: ReadOptions = DEFAULT_READ,
-    progress: Progress = _silent,
+    progress: Progress | None = None,
     check_names: bool = True,
+    record: RunFile | None = None,
 ) -> Preparation:
     """Clean, audit and transform a panel held in memory; nothing is written.
 
@@ -187,9 +200,11 @@ def prepare_frame(
     transform and ``dropped`` (the ledger), and whose ``summary`` is the
     diagnostics document.  When the gate fails, ``tables`` is empty.
     ``check_names`` refuses added columns whose names the frame already uses
-    (off only where no table is built).
+    (off only where no table is built).  ``record`` is the run as a run
+    file (``run_record``), for the ``run`` block of the summary.
     """
     options.validate()
+    progress = progress if progress is not None else RunLog()
     if check_names:
         options.check_names(list(frame.columns), "the data")
     policies = options.policies
@@ -198,28 +213,34 @@ def prepare_frame(
     if options.contract is not None:
         from panelprep.contracts import check_contract
 
-        progress("checking the schema contract")
+        progress("contract", "checking the schema contract", rows=len(frame))
         contract_findings = check_contract(frame, options.contract, where="input")
 
     if policies.normalise_ids != "none":
+        progress("normalise-ids", f"normalise entity ids ({policies.normalise_ids})",
+                 rows=len(flow.frame))
         before = _distinct_entities(flow.frame, options.entity)
         flow.frame, changed = normalise_ids(flow.frame, options.entity, policies.normalise_ids)
-        flow.note(f"normalise entity ids ({policies.normalise_ids})", before,
+        flow.note("normalise-ids", f"normalise entity ids ({policies.normalise_ids})", before,
                   _distinct_entities(flow.frame, options.entity), f"{changed:,} ids changed")
-    progress(f"indexing {len(flow.frame):,} rows")
+    progress("index", "indexing", rows=len(flow.frame))
     flow.index = build_index(flow.frame, options.entity, options.time, options.freq)
     if policies.duplicates != "fail":
+        progress("duplicates", f"duplicates policy {policies.duplicates}", rows=len(flow.frame))
         ctx = _context(flow, options, read_options)
-        flow.apply(duplicate_removal(flow.frame, flow.index, ctx.repeat, policies.duplicates))
+        flow.apply(duplicate_removal(flow.frame, flow.index, ctx.repeat, policies.duplicates),
+                   "duplicates")
         if policies.duplicates == "mean":
             ctx = _context(flow, options, read_options)
             flow.frame, removal = merge_means(flow.frame, flow.index, ctx.values, ctx.variables)
-            flow.apply(removal)
+            flow.apply(removal, "duplicates-mean")
     if options.shifts:
+        progress("derive", f"{len(options.shifts)} lags, leads or differences",
+                 rows=len(flow.frame))
         flow.frame = add_shifts(flow.frame, flow.index, options.shifts,
                                 read_options.decimal_comma, read_options.missing_tokens)
     # after the lags, so a lag at the window's first period may reach before it
-    flow.apply(window_removal(flow.index, policies.window))
+    flow.apply(window_removal(flow.index, policies.window), "window")
 
     severities = dict(options.severities)
     if policies.duplicates == "fail":
@@ -234,20 +255,20 @@ def prepare_frame(
         origin=flow.origin,
     )
     audited = report.context
-    progress("building the estimation sample")
-    flow.drop(~audited.keyed, "key-missing", "drop rows without a full key")
-    flow.drop(audited.repeat, "exact-repeat", "collapse exact repeated rows")
+    progress("sample", "building the estimation sample", rows=len(flow.frame))
+    flow.drop(~audited.keyed, "key-missing", "drop rows without a full key", "sample-keys")
+    flow.drop(audited.repeat, "exact-repeat", "collapse exact repeated rows", "sample-repeats")
     flow.drop(~audited.complete, "listwise-missing",
-              f"listwise deletion over {', '.join(options.variables)}")
+              f"listwise deletion over {', '.join(options.variables)}", "sample-listwise")
     # the post-audit policies, each with the sample it leaves, so that the
     # audit is judged on the rows the files will hold
     stages: list[tuple[str, np.ndarray]] = []
     if policies.balance != "keep":
         flow.narrow(balance_removal(flow.index, flow.alive, policies.balance, policies.window),
-                    stages, f"clean.balance = {policies.balance}")
+                    stages, f"clean.balance = {policies.balance}", "balance")
     if policies.singletons == "drop":
         flow.narrow(singleton_removal(flow.index, flow.alive, "twoway" in options.transforms),
-                    stages, "clean.singletons = drop")
+                    stages, "clean.singletons = drop", "singletons")
     listwise = _listwise_summary(audited)
     if flow.alive.any():
         # an emptied sample keeps the estimation sample's report: it fails the
@@ -260,6 +281,8 @@ def prepare_frame(
         summary["steps"] = [s.to_dict() for s in flow.ledger.story]
         summary["files"] = []
         summary["cautions"] = [_gate_caution(report)]
+        summary["run"] = run_block(progress, record or run_record(options, read_options),
+                                   summary, options)
         return Preparation(report, flow.ledger, None, None, summary)
 
     if len(ctx.conflicting_cells):
@@ -279,7 +302,7 @@ def prepare_frame(
     ctx.release_values()
     y, X = values[:, 0], values[:, 1:]
 
-    progress(f"variance components ({options.method})")
+    progress("components", f"variance components ({options.method})", rows=len(y))
     components = VarianceComponents(method=options.method).fit(y, X, codes, counts, names=options.x)
     keys = flow.frame[[*options.entity, options.time]].iloc[np.flatnonzero(sample)]
     outputs = OutputTables(
@@ -300,18 +323,21 @@ def prepare_frame(
         clean = clean.drop(columns=[options.names.row]).set_index(
             pd.Index(clean[options.names.row], name=None))
         findings += check_contract(clean, options.contract, where="output clean")
-    summary["findings"] = [f.to_dict() for f in findings]
+    summary["findings"] = ordered([f.to_dict() for f in findings])
     summary["verdict"] = gate(findings, options.fail_on)
+    summary["gate"] = gate_block(summary["findings"], options.fail_on)
     summary["sample"] = {"rows": len(codes), "entities": int(sample_ix.n_entities), **listwise,
                          "y": options.y, "x": options.x}
     summary["steps"] = [s.to_dict() for s in flow.ledger.story]
     summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
     summary["components"] = components.to_dict()
     if options.evidence:
-        progress("evidence on the entity effect")
+        progress("evidence", "evidence on the entity effect", rows=len(y))
         summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x)
     summary["transforms"] = outputs.info
     summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
+    summary["run"] = run_block(progress, record or run_record(options, read_options), summary,
+                               options)
     if summary["verdict"] == "fail":
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
@@ -360,7 +386,7 @@ class OutputTables:
     ledger: Ledger
     raw: pd.DataFrame
     rows: np.ndarray
-    progress: Progress = _silent
+    progress: Progress
     info: dict[str, Any] = field(init=False)
     columns: dict[str, list[dict[str, str]]] = field(init=False)
 
@@ -415,7 +441,7 @@ class OutputTables:
             frame = self.ledger.to_frame(self.raw, [*self.options.entity, self.options.time],
                                          added)
             return pa.Table.from_pandas(frame, preserve_index=False)
-        self.progress(f"transform {name}")
+        self.progress(f"transform.{name}", f"transform {name}", rows=len(self.keys))
         multi = self.counts[codes] > 1
         if name == "within":
             block = transforms.within(values, codes, self.counts)[multi]
@@ -512,46 +538,48 @@ class _Flow:
     def __post_init__(self) -> None:
         self.origin = np.arange(len(self.frame))
 
-    def note(self, step: str, entities_before: int, entities_after: int, note: str) -> None:
+    def note(self, step_id: str, step: str, entities_before: int, entities_after: int,
+             note: str) -> None:
         """A step that changes values but removes no row."""
         rows = len(self.frame)
-        self.ledger.story.append(StepRecord(step, rows, rows, entities_before, entities_after,
-                                            note))
+        self.ledger.story.append(StepRecord(step_id, step, rows, rows, entities_before,
+                                            entities_after, note))
 
-    def apply(self, removal: Removal | None) -> None:
+    def apply(self, removal: Removal | None, step_id: str) -> None:
         """Before the audit: remove rows from the frame and the index."""
         if removal is None:
             return
         keep = ~removal.mask
-        self._story(removal.step, np.ones(len(self.frame), dtype=bool), keep)
-        self.ledger.drop(self.origin[removal.mask], removal.reason, removal.step)
+        self._story(step_id, removal.step, np.ones(len(self.frame), dtype=bool), keep)
+        self.ledger.drop(self.origin[removal.mask], removal.reason, step_id)
         self.frame = self.frame.iloc[np.flatnonzero(keep)].reset_index(drop=True)
         self.origin = self.origin[keep]
         self.index = self.index.subset(keep)
 
     def narrow(self, removal: Removal | None, stages: list[tuple[str, np.ndarray]],
-               policy: str) -> None:
+               policy: str, step_id: str) -> None:
         """After the audit: a policy's removal narrows ``alive``; ``stages`` gets (policy, alive)."""
         if removal is not None:
-            self.drop(removal.mask, removal.reason, removal.step)
+            self.drop(removal.mask, removal.reason, removal.step, step_id)
             stages.append((policy, self.alive))
 
-    def drop(self, removed: np.ndarray, reason: str, step: str) -> None:
+    def drop(self, removed: np.ndarray, reason: str, step: str, step_id: str) -> None:
         """Narrow ``alive`` (all rows at first) by ``removed``, recording the rows."""
         if self.alive is None:
             self.alive = np.ones(len(self.frame), dtype=bool)
         gone = removed & self.alive
         after = self.alive & ~gone
-        self._story(step, self.alive, after)
-        self.ledger.drop(self.origin[gone], reason, step)
+        self._story(step_id, step, self.alive, after)
+        self.ledger.drop(self.origin[gone], reason, step_id)
         self.alive = after
 
     def _entities(self, mask: np.ndarray) -> int:
         codes = self.index.entity_codes[mask]
         return int((group_counts(codes[codes >= 0], self.index.n_entities) > 0).sum())
 
-    def _story(self, step: str, before: np.ndarray, after: np.ndarray) -> None:
+    def _story(self, step_id: str, step: str, before: np.ndarray, after: np.ndarray) -> None:
         self.ledger.story.append(StepRecord(
+            id=step_id,
             step=step,
             rows_before=int(before.sum()),
             rows_after=int(after.sum()),
@@ -631,7 +659,7 @@ def prepare(
     output_format: str = "parquet",
     force: bool = False,
     read_options: ReadOptions = DEFAULT_READ,
-    progress: Progress = _silent,
+    progress: Progress | None = None,
     failed_out: str | Path | None = None,
     **options: Any,
 ) -> Preparation:
@@ -667,8 +695,9 @@ def failed_folder(out: str | Path) -> Path:
 
 def run_preparation(
     data: str | Path, out: str | Path, options: PrepareOptions,
-    read_options: ReadOptions = DEFAULT_READ, force: bool = False, progress: Progress = _silent,
+    read_options: ReadOptions = DEFAULT_READ, force: bool = False, progress: Progress | None = None,
     keep: Sequence[str | Path] = (), failed_out: str | Path | None = None,
+    contract_path: str | Path | None = None,
 ) -> Preparation:
     """Read, prepare and write into a folder that appears complete or not at all.
 
@@ -678,8 +707,12 @@ def run_preparation(
     exactly as it was and the diagnostics go to ``failed_out`` (default
     ``failed_folder(out)``), which replaces an earlier failed run's folder
     there; ``Preparation.written_to`` says which folder was written.
+    ``contract_path`` is the file ``options.contract`` was read from, for
+    the record of the run (``run.options`` and ``run.toml``).
     """
     options.validate()
+    progress = progress if progress is not None else RunLog()
+    record = run_record(options, read_options, data, out, force, failed_out, contract_path)
     # before the folder and before any data is read: the header names suffice
     options.check_names(column_names(Path(data), read_options), str(data))
     inputs = [Path(data), *map(Path, keep)]
@@ -690,15 +723,15 @@ def run_preparation(
         if failed_out is not None or _name_fits(failed):
             # a default name too long for the file system is reported only if the gate fails
             check_output_folder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
-        progress(f"reading {data}")
+        progress("read", f"reading {data}")
         frame, info = load(data, options.entity, options.time, options.columns_to_read,
                            read_options)
-        prep = prepare_frame(frame, options, info, read_options, progress)
+        prep = prepare_frame(frame, options, info, read_options, progress, record=record)
         if prep.verdict == "fail":
             # a failed gate never replaces or empties the output folder
             folder.abandon()
             folder = _failed_output(failed, inputs, out, failed_out is None)
-        write_outputs(prep, folder, options, progress)
+        write_outputs(prep, folder, options, progress, record)
         folder.commit()
     except BaseException:
         folder.abandon()
@@ -724,21 +757,30 @@ def _failed_output(failed: Path, inputs: list[Path], out: Path, default: bool) -
 
 
 def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptions,
-                  progress: Progress = _silent) -> None:
-    """Data files, then diagnostics.json and diagnostics.txt, into the temporary folder."""
+                  progress: Progress | None = None, record: RunFile | None = None) -> None:
+    """Data files, run.toml, then diagnostics.json, diagnostics.txt and report.html,
+    into the temporary folder (a failed gate: the diagnostics only).
+
+    ``record`` is the run as a run file (``run_record``); without it one is
+    made from ``options``.
+    """
     from panelprep.report.html import render_html
     from panelprep.report.text import preparation_lines
 
+    progress = progress if progress is not None else RunLog()
+    record = record if record is not None else run_record(options)
     suffix = "parquet" if options.output_format == "parquet" else "csv"
     files = []
     base_meta = {
+        "schema_version": SCHEMA_VERSION,
         "version": __version__,
         "input_sha256": prep.summary["input"].get("sha256"),
         "method": options.method,
         "components": prep.summary.get("components"),
-        "options": {"entity": options.entity, "time": options.time, "y": options.y,
-                    "x": options.x, "freq": options.freq, "transforms": options.transforms,
-                    "fail_on": options.fail_on},
+        # what defines the content, without where files were: inputs go by sha256
+        "options": {k: v for k, v in record.values().items() if k not in _LOCATION_KEYS},
+        "fixed_settings": fixed_settings(options),
+        "contract_sha256": _contract_sha256(record),
     }
     for name in prep.outputs.names if prep.outputs is not None else []:
         # built, written and freed one at a time: peak memory holds one table
@@ -746,7 +788,7 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
         columns = prep.outputs.columns[name]
         fmt = "parquet" if name == "dropped" else options.output_format
         path = folder.path(f"{name}.{'parquet' if name == 'dropped' else suffix}")
-        progress(f"writing {path.name}")
+        progress(f"write.{name}", f"writing {path.name}")
         meta = {"panelprep": json.dumps({**base_meta, "file": name,
                                          "transform": name if name in TRANSFORMS else None,
                                          "transform_info": prep.summary.get("transforms", {}).get(name),
@@ -757,12 +799,101 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
         files.append({"name": path.name, "rows": len(table), "sha256": sha256_file(path),
                       "columns": columns})
         del table
+    if prep.outputs is not None:
+        # the run again: this file on the same input gives the same data files
+        progress("write.run-file", "writing run.toml")
+        _write_text(folder.path(RUN_FILE), _run_file_text(record, folder.target))
     prep.summary["files"] = files
+    prep.summary["run"] = run_block(progress, record, prep.summary, options)
     text = json.dumps(prep.summary, indent=2, ensure_ascii=False, allow_nan=False)
     _write_text(folder.path("diagnostics.json"), text + "\n")
     _write_text(folder.path("diagnostics.txt"), "\n".join(preparation_lines(prep.summary)) + "\n")
-    progress("writing report.html")
+    progress("write.report", "writing report.html")
     _write_text(folder.path("report.html"), render_html(prep.summary, pictures_of(prep)))
+
+
+RUN_FILE = "run.toml"
+# run-file keys that say where things are, not what the data files hold
+_LOCATION_KEYS = ("input.path", "contract.schema", "output.dir", "output.failed_dir",
+                  "output.force")
+
+
+def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ,
+               data: str | Path | None = None, out: str | Path | None = None,
+               force: bool = False, failed_out: str | Path | None = None,
+               contract_path: str | Path | None = None) -> RunFile:
+    """The run as a run file: every option of the preparation, paths made absolute.
+
+    Its ``values()`` are the resolved options recorded in ``diagnostics.json``
+    (``run.options``) and, without the location keys, in every Parquet file's
+    metadata; ``_run_file_text`` writes it as ``run.toml``.
+    """
+    def absolute(path: str | Path | None) -> Path | None:
+        return None if path is None else Path(path).absolute()
+
+    shifts = {kind: [f"{s.variable}:{s.k}" for s in options.shifts if s.kind == kind]
+              for kind in ("lag", "lead", "diff")}
+    policies, names = options.policies, options.names
+    return RunFile(
+        input=InputSection(path=absolute(data), format=read_options.input_format,
+                           delimiter=read_options.delimiter,
+                           decimal_comma=read_options.decimal_comma,
+                           missing_tokens=list(read_options.missing_tokens)),
+        panel=PanelSection(entity=list(options.entity), time=options.time, freq=options.freq),
+        model=ModelSection(y=options.y, x=list(options.x)),
+        contract=ContractSection(schema=absolute(contract_path),
+                                 validate_outputs=options.validate_outputs),
+        checks=ChecksSection(fail_on=options.fail_on,
+                             low_within_ratio=options.thresholds.low_within_ratio,
+                             constant_rtol=options.thresholds.constant_rtol,
+                             severity=dict(options.severities)),
+        clean=CleanSection(duplicates=policies.duplicates, normalise_ids=policies.normalise_ids,
+                           singletons=policies.singletons, balance=policies.balance,
+                           window=tuple(policies.window)),
+        derive=DeriveSection(**shifts),
+        output=OutputSection(dir=absolute(out), failed_dir=absolute(failed_out),
+                             transforms=list(options.transforms), method=options.method,
+                             format=options.output_format, force=force,
+                             evidence=options.evidence),
+        names=NamesSection(**asdict(names)),
+    )
+
+
+def fixed_settings(options: PrepareOptions) -> dict[str, Any]:
+    """Settings a run file does not set, recorded beside the options."""
+    return {"checks.max_pattern_periods": options.thresholds.max_pattern_periods,
+            "checks.max_grid_periods": options.thresholds.max_grid_periods,
+            "output.twoway_tol": options.twoway_tol,
+            "contract.given": options.contract is not None}
+
+
+def run_block(log: RunLog, record: RunFile, summary: dict[str, Any],
+              options: PrepareOptions) -> dict[str, Any]:
+    """The ``run`` block: the log's steps and times with the resolved options."""
+    inferred = {}
+    if options.freq is None:
+        inferred["panel.freq"] = summary["keys"]["freq"]
+    if record.input.format is None and summary["input"].get("format"):
+        inferred["input.format"] = summary["input"]["format"]
+    return log.block(record.values(), inferred, summary["input"].get("sha256"),
+                     fixed_settings(options))
+
+
+def _contract_sha256(record: RunFile) -> str | None:
+    schema = record.contract.schema
+    return None if schema is None else sha256_file(schema)
+
+
+def _run_file_text(record: RunFile, target: Path) -> str:
+    """run.toml for the folder ``target``: paths relative to it; no output folder, so a
+    rerun names a new one (this folder holds the run file and cannot be replaced by it)."""
+    again = replace(record, output=replace(record.output, dir=None, failed_dir=None,
+                                           force=False))
+    header = [f"panelprep run file written by the run that made this folder (panelprep "
+              f"{__version__}).",
+              "The same input gives the same data files: panelprep prepare --config "
+              "run.toml --out NEW_FOLDER"]
+    return again.to_toml(base=target, header=header)
 
 
 def _write_text(path: Path, text: str) -> None:
@@ -781,7 +912,7 @@ def pictures_of(prep: Preparation) -> dict[str, Any]:
     return picture_data(prep.audit.context)
 
 
-def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
+def run_from_file(run: RunFile, progress: Progress | None = None) -> Preparation:
     """Run the preparation a run file describes (after command-line overrides)."""
     contract = None
     if run.contract.schema:
@@ -807,13 +938,13 @@ def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
     return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
                            force=run.output.force, progress=progress,
                            keep=[p for p in (run.source, run.contract.schema) if p is not None],
-                           failed_out=run.output.failed_dir)
+                           failed_out=run.output.failed_dir, contract_path=run.contract.schema)
 
 
 def estimate_file_components(
     data: str | Path, entity: str | Sequence[str], time: str, y: str, x: str | Sequence[str],
     method: str = "swamy-arora", freq: str | None = None,
-    read_options: ReadOptions = DEFAULT_READ, progress: Progress = _silent,
+    read_options: ReadOptions = DEFAULT_READ, progress: Progress | None = None,
 ) -> Preparation:
     """Audit a file and estimate the variance components of its estimation sample.
 
