@@ -362,8 +362,8 @@ def _print_preparation(result, out: Path, session: _Session) -> None:
         lines += ["", *components_lines(summary["components"])]
     names = ", ".join(f["name"] for f in summary.get("files", [])) or "diagnostics only"
     extra = ", run.toml" if result.verdict == "pass" else ""
-    lines += ["", f"written to {result.written_to}: {names}{extra}, diagnostics.json, "
-              "diagnostics.txt, report.html"]
+    lines += ["", (f"written to {result.written_to}: {names}{extra}, diagnostics.json, "
+              "diagnostics.txt, report.html")]
     session.summary(lines)
     if result.verdict == "fail":
         failing = ", ".join(summary["gate"]["failed_by"])

@@ -15,11 +15,11 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from panelprep._schema import SCHEMA_VERSION
 from panelprep._version import __version__
 from panelprep.checks import CHECKS, SAMPLE_CHECKS, AuditContext, Thresholds
 from panelprep.checks.context import looks_numeric
 from panelprep.errors import ColumnError, InputError
-from panelprep._schema import SCHEMA_VERSION
 from panelprep.findings import (
     FINDINGS_ORDER,
     SEVERITIES,

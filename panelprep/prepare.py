@@ -79,7 +79,6 @@ from panelprep.names import (
     AddedNames,
     check_added_names,
 )
-from panelprep.runlog import RunLog
 from panelprep.pipeline import (
     AuditReport,
     Progress,
@@ -88,6 +87,7 @@ from panelprep.pipeline import (
     load,
     split_names,
 )
+from panelprep.runlog import RunLog
 from panelprep.transforms import TRANSFORMS
 
 DEFAULT_TRANSFORMS = ("within", "between", "quasi")
@@ -889,10 +889,10 @@ def _run_file_text(record: RunFile, target: Path) -> str:
     rerun names a new one (this folder holds the run file and cannot be replaced by it)."""
     again = replace(record, output=replace(record.output, dir=None, failed_dir=None,
                                            force=False))
-    header = [f"panelprep run file written by the run that made this folder (panelprep "
-              f"{__version__}).",
-              "The same input gives the same data files: panelprep prepare --config "
-              "run.toml --out NEW_FOLDER"]
+    header = [(f"panelprep run file written by the run that made this folder (panelprep "
+              f"{__version__})."),
+              ("The same input gives the same data files: panelprep prepare --config "
+              "run.toml --out NEW_FOLDER")]
     return again.to_toml(base=target, header=header)
 
 
