@@ -27,7 +27,7 @@ PANELPREP = Path(sys.executable).with_name("panelprep")
 
 def _cli(*args, cwd=None) -> subprocess.CompletedProcess:
     return subprocess.run([str(PANELPREP), *map(str, args)], cwd=cwd,
-                          capture_output=True, text=True, timeout=300)
+                          capture_output=True, text=True, timeout=300, check=False)
 
 
 def _errors(kind: str, document) -> list[str]:

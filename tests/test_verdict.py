@@ -41,7 +41,7 @@ def run(*args, progress: str | None = "none", env: dict | None = None,
         environment["PANELPREP_PROGRESS"] = progress
     environment.update(env or {})
     return subprocess.run([*(command or [str(PANELPREP)]), *map(str, args)], env=environment,
-                          capture_output=True, text=True, timeout=300)
+                          capture_output=True, text=True, timeout=300, check=False)
 
 
 def sha256(path: Path) -> str:
