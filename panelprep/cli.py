@@ -123,6 +123,7 @@ class _Session:
 
     def summary(self, lines: list[str]) -> None:
         """The human summary: stdout, or stderr when stdout holds the document."""
+        self.log.settle()
         if not self.as_json:
             typer.echo("\n".join(lines))
         elif not (self.quiet or self.log_json):
@@ -130,6 +131,7 @@ class _Session:
 
     def note(self, line: str) -> None:
         """A human line for stderr (not under --log-json, where the end event says it)."""
+        self.log.settle()
         if not self.log_json:
             typer.echo(line, err=True)
 
@@ -186,6 +188,9 @@ def audit_command(
             progress=session.log,
             freq=freq, fail_on=fail_on,
         )
+        result.options.update({"audit.report": None if report is None else str(report),
+                               "audit.report_html": None if report_html is None
+                               else str(report_html)})
         if report_html is not None:
             session.log("write.report-html", f"writing {report_html}")
             _write_html(report_html, result.to_dict(), result, data)
@@ -408,7 +413,10 @@ def components_command(
         typer.echo(f"panelprep: the audit gate failed ({failing}); no components estimated "
                    "(panelprep audit shows why)", err=True)
         raise typer.Exit(EXIT_FAIL)
-    components = dict(found.summary["components"], verdict=found.verdict)
+    from panelprep._schema import SCHEMA_VERSION
+
+    components = {"schema_version": SCHEMA_VERSION, **found.summary["components"],
+                  "verdict": found.verdict}
     failed = [f for f in found.summary["findings"] if f["severity"] == "error"]
     if as_json:
         typer.echo(json.dumps(components, indent=2, allow_nan=False))

@@ -124,6 +124,13 @@ class RunLog:
         for sink in self.sinks:
             sink.ended(step)
 
+    def settle(self) -> None:
+        """End the open step and take any live display (the bar) off the screen, before
+        other lines are printed."""
+        self._end()
+        for sink in self.sinks:
+            sink.stop()
+
     def finish(self, **summary: Any) -> None:
         """End the last step and tell the sinks how the run ended (``verdict``, ``exit_code``...)."""
         self._end()
@@ -166,6 +173,9 @@ class PlainLines:
     def finished(self, summary: dict[str, Any]) -> None:
         return None
 
+    def stop(self) -> None:
+        return None
+
 
 class JsonLines:
     """One JSON object per line: ``{"event": "step", ...}`` per ended step, then ``end`` or ``error``."""
@@ -186,6 +196,9 @@ class JsonLines:
     def finished(self, summary: dict[str, Any]) -> None:
         self._write({"event": "error" if "message" in summary else "end",
                      "at": utc_stamp(datetime.now(UTC)), **summary})
+
+    def stop(self) -> None:
+        return None
 
 
 class Bar:
@@ -209,6 +222,9 @@ class Bar:
         self.progress.advance(self.task)
 
     def finished(self, summary: dict[str, Any]) -> None:
+        self.stop()
+
+    def stop(self) -> None:
         self.progress.stop()
 
 
