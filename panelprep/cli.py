@@ -96,6 +96,19 @@ def _read_options(input_format, delimiter, decimal_comma, missing_token) -> Read
     )
 
 
+def _check_data(path: Path | None, session: _Session | None = None) -> None:
+    """Refuse a missing or unreadable data file before the flow's heavy imports."""
+    from panelprep._paths import check_readable
+
+    if path is not None:
+        try:
+            check_readable(path)
+        except InputError as err:
+            if session is None:
+                _unusable(str(err))
+            session.fail(str(err))
+
+
 def _unusable(message: str) -> None:
     typer.echo(f"panelprep: error: {message}", err=True)
     raise typer.Exit(EXIT_UNUSABLE)
@@ -176,10 +189,11 @@ def audit_command(
     log_json: LogJsonOpt = False,
 ) -> None:
     """Check a panel's structure and gate on what is found."""
-    from panelprep import pipeline
-    from panelprep.report.text import audit_lines
-
     session = _Session(progress, quiet, log_json, as_json)
+    _check_data(data, session)
+    from panelprep import pipeline
+    from panelprep.report.text import audit_lines, closing_lines
+
     try:
         _check_reports([report, report_html], data)
         result = pipeline.audit_file(
@@ -202,7 +216,9 @@ def audit_command(
     except InputError as err:
         session.fail(str(err))
     session.document(document)
-    session.summary(audit_lines(document))
+    written = [(what, str(path)) for what, path in (("the JSON report", report),
+                                                     ("the HTML report", report_html)) if path]
+    session.summary(audit_lines(document) + closing_lines(document, written))
     session.end(result.verdict, document["gate"]["failed_by"])
 
 
@@ -219,6 +235,7 @@ def prepare_command(
     transform: Annotated[str | None, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway (default within,between,quasi).")] = None,
     method: Annotated[str | None, typer.Option("--method", help="Variance components: swamy-arora (default), wallace-hussain, amemiya or nerlove.")] = None,
     output_format: Annotated[str | None, typer.Option("--format", help="Data files as parquet (default) or csv.")] = None,
+    compression: Annotated[str | None, typer.Option("--compression", help="Parquet codec: zstd (default), lz4, snappy, gzip or none.")] = None,
     force: Annotated[bool | None, typer.Option("--force/--no-force", help="Replace a non-empty output folder.")] = None,
     evidence: Annotated[bool | None, typer.Option("--evidence/--no-evidence", help="Compute the tests that inform the choice of estimator (default on).")] = None,
     contract: Annotated[Path | None, typer.Option("--contract", help="pandera YAML schema the input must satisfy.")] = None,
@@ -244,6 +261,8 @@ def prepare_command(
     log_json: LogJsonOpt = False,
 ) -> None:
     """Clean, audit, then write estimation-ready files with provenance into --out."""
+    session = _Session(progress, quiet, log_json, as_json)
+    _check_data(data, session)
     from panelprep.config import RunFile, load_run_file
     from panelprep.prepare import run_from_file
 
@@ -257,9 +276,8 @@ def prepare_command(
         "clean.singletons": singletons, "clean.balance": balance, "clean.window": window,
         "derive.lag": lag, "derive.lead": lead, "derive.diff": diff,
         "output.dir": out, "output.failed_dir": failed_out, "output.transforms": transform, "output.method": method,
-        "output.format": output_format, "output.force": force, "output.evidence": evidence,
+        "output.format": output_format, "output.compression": compression, "output.force": force, "output.evidence": evidence,
     }
-    session = _Session(progress, quiet, log_json, as_json)
     try:
         overrides.update(_names_map(names))
         run = load_run_file(config, overrides) if config else RunFile().merged(overrides)
@@ -296,10 +314,9 @@ def demo_command(
                f"{sum(planted['missing_cells'].values())} missing cells")
     typer.echo(f"run file: {folder / 'run.toml'}")
     typer.echo("")
-    _print_preparation(result, folder / "out", session)
-    typer.echo("")
-    typer.echo(f"read {result.written_to / 'diagnostics.txt'} top to bottom; rerun with: "
-               f"panelprep prepare --config {folder / 'run.toml'} --force")
+    _print_preparation(result, folder / "out", session,
+                       f"read {result.written_to / 'diagnostics.txt'} top to bottom; rerun with: "
+                       f"panelprep prepare --config {folder / 'run.toml'} --force")
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 
@@ -358,8 +375,9 @@ def draft_command(
                f"panelprep prepare --config {out}", err=True)
 
 
-def _print_preparation(result, out: Path, session: _Session) -> None:
-    from panelprep.report.text import audit_lines, components_lines
+def _print_preparation(result, out: Path, session: _Session, note: str = "") -> None:
+    """The audit, the components, where the files went, ``note``, and the verdict line last."""
+    from panelprep.report.text import audit_lines, components_lines, verdict_line
 
     summary = result.summary
     lines = audit_lines(summary)
@@ -369,7 +387,9 @@ def _print_preparation(result, out: Path, session: _Session) -> None:
     extra = ", run.toml" if result.verdict == "pass" else ""
     lines += ["", (f"written to {result.written_to}: {names}{extra}, diagnostics.json, "
               "diagnostics.txt, report.html")]
-    session.summary(lines)
+    if note:
+        lines.append(note)
+    session.summary([*lines, verdict_line(summary)])
     if result.verdict == "fail":
         failing = ", ".join(summary["gate"]["failed_by"])
         session.note(f"panelprep: the gate failed ({failing}); {out} was left as it was; the "
@@ -394,6 +414,7 @@ def components_command(
     progress: ProgressOpt = "auto",
 ) -> None:
     """Print only the variance components of the estimation sample."""
+    _check_data(data)
     from panelprep.prepare import estimate_file_components
     from panelprep.report.text import components_lines
 
