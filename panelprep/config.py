@@ -656,13 +656,29 @@ class RunFile:
             constant_rtol=self.checks.constant_rtol,
         )
 
-    def to_toml(self, base: str | Path | None = None) -> str:
+    def values(self) -> dict[str, Any]:
+        """Every key as ``section.key`` -> its value as JSON data (paths as text, lists as lists)."""
+        out: dict[str, Any] = {}
+        for section, keys in _KEYS.items():
+            for key in keys:
+                value = self.get(f"{section}.{key}")
+                if isinstance(value, Path):
+                    value = str(value)
+                elif isinstance(value, (list, tuple)):
+                    value = list(value)
+                elif isinstance(value, Mapping):
+                    value = dict(value)
+                out[f"{section}.{key}"] = value
+        return out
+
+    def to_toml(self, base: str | Path | None = None, header: list[str] | None = None) -> str:
         """The canonical run file: every key in a fixed order, each with a comment.
 
         Keys without a value (an inferred frequency, no contract) are
         written commented out.  Paths are written as held (absolute after
         ``load_run_file``) or, with ``base``, relative to that folder.
         Loading the text again gives an equal ``RunFile`` (its ``source`` aside).
+        ``header`` replaces the title comment.
         """
         values = {f"{s}.{k}": self.get(f"{s}.{k}") for s, keys in _KEYS.items() for k in keys}
         if base is not None:
@@ -671,8 +687,8 @@ class RunFile:
                     values[dotted] = Path(os.path.relpath(Path(values[dotted]).resolve(),
                                                           Path(base).resolve()))
         active = {dotted for dotted, value in values.items() if value is not None}
-        title = f"panelprep run file, canonical form (panelprep {__version__})"
-        return _render(values, active, {}, [title])
+        title = [f"panelprep run file, canonical form (panelprep {__version__})"]
+        return _render(values, active, {}, header or title)
 
 
 def _split_dotted(dotted: str) -> tuple[str, str]:

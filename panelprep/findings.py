@@ -87,3 +87,32 @@ def gate(findings: list[Finding], fail_on: str = "error") -> str:
     failed = any(severity_rank(f.severity) >= threshold for f in findings
                  if f.resolved_by is None)
     return "fail" if failed else "pass"
+
+
+# the one order of findings in every report (JSON, text log, HTML)
+FINDINGS_ORDER = ("findings that count first, worst first (error, warning, info), ties in the "
+                  "order the checks ran; then the findings a policy resolved, in the same order")
+
+
+def ordered(findings: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Finding dicts in ``FINDINGS_ORDER`` (a stable sort)."""
+    return sorted(findings, key=lambda f: (bool(f.get("resolved_by")),
+                                           -severity_rank(f["severity"])))
+
+
+def gate_block(findings: list[dict[str, Any]], fail_on: str) -> dict[str, Any]:
+    """The gate as data: threshold, verdict, the ids that failed it, counts by severity.
+
+    ``counts`` are of the findings that count (not resolved by a policy);
+    ``resolved`` is how many a policy resolved.
+    """
+    threshold = severity_rank(fail_on)
+    counting = [f for f in findings if not f.get("resolved_by")]
+    failed = [f["id"] for f in ordered(counting) if severity_rank(f["severity"]) >= threshold]
+    return {
+        "fail_on": fail_on,
+        "verdict": "fail" if failed else "pass",
+        "failed_by": list(dict.fromkeys(failed)),
+        "counts": {s: sum(f["severity"] == s for f in counting) for s in reversed(SEVERITIES)},
+        "resolved": len(findings) - len(counting),
+    }

@@ -15,6 +15,7 @@ import hashlib
 import os
 import subprocess
 import sys
+import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -119,14 +120,20 @@ def test_an_unexpected_failure_is_one_line_through_main(tmp_path, data, earlier,
                         lambda *a, **k: (_ for _ in ()).throw(ValueError("bad\nvalue")))
     monkeypatch.setattr(sys, "argv", ["panelprep", "prepare", str(data), *ARGS, "--out",
                                       str(earlier), "--force", "--quiet"])
+    saved = tmp_path / "saved"
+    saved.mkdir()
+    monkeypatch.setattr(tempfile, "tempdir", str(saved))
     from panelprep.cli import main
 
     with pytest.raises(SystemExit) as stop:
         main()
-    assert stop.value.code == 2
+    # a bug is exit 3: one line naming the file that holds the traceback
+    assert stop.value.code == 3
     err = capsys.readouterr().err
-    assert err.count("\n") == 1 and err.startswith("panelprep: error: internal failure: ")
+    assert err.count("\n") == 1 and err.startswith("panelprep: internal error (a bug")
     assert "Traceback" not in err
+    (traceback_file,) = saved.iterdir()
+    assert str(traceback_file) in err and "Traceback" in traceback_file.read_text()
     assert snapshot(earlier) == before
     assert leftovers(tmp_path) == []
 
