@@ -308,8 +308,12 @@ def read_frame(
         raise
     except (pa.ArrowException, OSError, ValueError) as err:
         raise InputError(f"{path}: cannot read as {fmt}: {_short(err)}") from None
-    frame = table.to_pandas()
     keys = {*entity, time}
+    _refuse_nested_keys(path, table.schema, [k for k in (*entity, time) if k])
+    table = _decimal_keys(table, entity, time)
+    # decimals stay Arrow decimals (not Python Decimal objects): the audit reads them as
+    # float64 and reports the values float64 does not hold exactly (values-decimal-rounded)
+    frame = table.to_pandas(types_mapper=_keep_decimal)
     for name, column in zip(table.column_names, table.columns):
         if name in keys or not column.null_count and not pa.types.is_floating(column.type):
             continue
@@ -321,6 +325,45 @@ def read_frame(
     if fmt == "csv" and time in frame.columns:
         frame[time] = integer_text_to_int(frame[time])
     return frame[wanted]
+
+
+def _keep_decimal(arrow_type: pa.DataType) -> pd.ArrowDtype | None:
+    return pd.ArrowDtype(arrow_type) if pa.types.is_decimal(arrow_type) else None
+
+
+def _decimal_keys(table: pa.Table, entity: list[str], time: str | None) -> pa.Table:
+    """Decimal keys in types Arrow can group: a time column as float64, ids as decimal128.
+
+    A period is a whole number, a date or a label, so a decimal time column is read as
+    the number it holds (whole numbers beyond 2^53 are refused by the time axis);
+    32- and 64-bit decimals have no hashing kernels, so ids are widened losslessly.
+    """
+    for i, name in enumerate(table.column_names):
+        kind = table.schema.field(i).type
+        if not pa.types.is_decimal(kind) or name not in (*entity, time):
+            continue
+        if name == time:
+            wanted = pa.float64()
+        elif kind.bit_width < 128:
+            wanted = pa.decimal128(kind.precision, kind.scale)
+        else:
+            continue
+        table = table.set_column(i, name, pc.cast(table.column(i), wanted))
+    return table
+
+
+def _refuse_nested_keys(path: Path, schema: pa.Schema, keys: list[str]) -> None:
+    """One line for a key column of lists, structs or maps: a key is one value per row."""
+    for name in keys:
+        if name in schema.names:
+            kind = schema.field(name).type
+            if pa.types.is_dictionary(kind):
+                kind = kind.value_type
+            if pa.types.is_nested(kind):
+                raise ColumnError(
+                    f"{path}: key column {name!r} holds nested values ({kind}); an entity or "
+                    "time key must hold one text, number or date per row: flatten the "
+                    "column upstream or name another column")
 
 
 def _read_csv(
