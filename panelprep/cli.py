@@ -250,14 +250,13 @@ def draft_command(
 ) -> None:
     """Write a commented starter run file for DATA, with guessed keys marked."""
     from panelprep.config import starter_run_file
-    from panelprep.io import parent_folder, refuse_input_clash, write_file
+    from panelprep.io import check_file_destination, resolved, write_file
 
     try:
         if out is not None:
             # before anything is read or written: the run file may never be the data
-            refuse_input_clash(out, [data], "the run file")
-            parent_folder(out)
-        text = starter_run_file(data, run_dir=None if out is None else out.resolve().parent)
+            check_file_destination(out, [data], "the run file")
+        text = starter_run_file(data, run_dir=None if out is None else resolved(out).parent)
         if out is None:
             typer.echo(text, nl=False)
             return
@@ -346,12 +345,11 @@ def components_command(
 
 def _check_reports(paths: list[Path | None], source: Path) -> None:
     """Before the audit runs: no report may be the input, nor go into a folder that is not one."""
-    from panelprep.io import parent_folder, refuse_input_clash
+    from panelprep.io import check_file_destination
 
     for path in paths:
         if path is not None:
-            refuse_input_clash(path, [source], "the report")
-            parent_folder(path)
+            check_file_destination(path, [source], "the report")
 
 
 def _write_html(path: Path, document: dict, result, source: Path) -> None:

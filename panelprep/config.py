@@ -97,6 +97,8 @@ from panelprep.io import (
     detect_format,
     integer_text_to_int,
     read_frame,
+    refuse_link_loop,
+    resolved,
     sniff_delimiter,
 )
 from panelprep.names import DEFAULT_NAMES, AddedNames
@@ -661,8 +663,8 @@ class RunFile:
         if base is not None:
             for dotted in _PATH_KEYS:
                 if values[dotted] is not None:
-                    values[dotted] = Path(os.path.relpath(Path(values[dotted]).resolve(),
-                                                          Path(base).resolve()))
+                    values[dotted] = Path(os.path.relpath(resolved(values[dotted]),
+                                                          resolved(base)))
         active = {dotted for dotted, value in values.items() if value is not None}
         title = f"panelprep run file, canonical form (panelprep {__version__})"
         return _render(values, active, {}, [title])
@@ -812,7 +814,7 @@ def load_run_file(path: str | Path, overrides: Mapping[str, Any] | None = None) 
                 raise fail(bad_path, f"{dotted} must be {bad.expected}, got {_shown(value)}"
                            ) from None
             if dotted in _PATH_KEYS and not parsed.is_absolute():
-                parsed = (source.parent / parsed).resolve()
+                parsed = resolved(source.parent / parsed)
             setattr(getattr(run, section), key, parsed)
             line = _line_of(lines, (section, key))
             if line is not None:
@@ -830,6 +832,7 @@ def _shown(value: Any) -> str:
 
 def _read_text(path: Path) -> str:
     if not path.exists():
+        refuse_link_loop(path)
         raise InputError(f"{path}: no such run file")
     if path.is_dir():
         raise InputError(f"{path}: is a directory, expected a run file")
@@ -1128,8 +1131,8 @@ def starter_run_file(data_path: str | Path, frame_head: pd.DataFrame | None = No
     notes["model.x"] = "guessed: the other numeric columns"
 
     base = Path(run_dir) if run_dir is not None else None
-    data_written = (Path(os.path.relpath(path.resolve(), base.resolve())) if base is not None
-                    else path.resolve())
+    data_written = (Path(os.path.relpath(resolved(path), resolved(base))) if base is not None
+                    else resolved(path))
     values: dict[str, Any] = {f"{s}.{k}": _default(f"{s}.{k}")
                               for s, keys in _KEYS.items() for k in keys}
     values.update({

@@ -22,6 +22,7 @@ import yaml
 
 from panelprep.errors import InputError
 from panelprep.findings import CONTRACT_FINDING_ID, MAX_EXAMPLES, Finding
+from panelprep.io import refuse_link_loop
 
 try:
     import pandera.pandas as pa
@@ -69,6 +70,7 @@ def load_contract(path: str | Path) -> pa.DataFrameSchema:
     """
     source = Path(path)
     if not source.is_file():
+        refuse_link_loop(source)
         raise InputError(f"{source}: no such contract file")
     try:
         text = source.read_text(encoding="utf-8-sig")

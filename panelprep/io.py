@@ -128,6 +128,34 @@ def shown_path(path: Path | str) -> str:
     return os.fsencode(path).decode("utf-8", errors="backslashreplace")
 
 
+def resolved(path: str | os.PathLike[str]) -> Path:
+    """``path`` made absolute with every symbolic link followed; one line for a link loop."""
+    try:
+        return Path(path).resolve()
+    except (RuntimeError, OSError) as err:
+        # Python raises RuntimeError (3.11, 3.12) or OSError ELOOP (3.13) on a loop
+        if isinstance(err, OSError) and err.errno != errno.ELOOP:
+            raise InputError(f"{shown_path(path)}: cannot follow the path: "
+                             f"{err.strerror or _short(err)}") from None
+        raise InputError(_loop_message(path)) from None
+
+
+def _loop_message(path: str | os.PathLike[str]) -> str:
+    return (f"{shown_path(path)}: is a symbolic link loop (following its links leads back to "
+            "where they start); fix or remove the link, or name another path")
+
+
+def refuse_link_loop(path: str | os.PathLike[str]) -> None:
+    """One line when following ``path`` runs into a symbolic link loop (else nothing)."""
+    try:
+        os.stat(path)
+    except OSError as err:
+        if err.errno == errno.ELOOP:
+            raise InputError(_loop_message(path)) from None
+    except ValueError:
+        pass
+
+
 def check_readable(path: Path) -> None:
     """Fail with one line when ``path`` is not a readable, non-empty regular file.
 
@@ -139,6 +167,10 @@ def check_readable(path: Path) -> None:
         raise InputError(f"{name}: the file name is not UTF-8 text, so it cannot be written "
                          "into the reports; rename the file (or link to it under a UTF-8 name)")
     if not path.exists():
+        refuse_link_loop(path)
+        if path.is_symlink():
+            raise InputError(f"{path}: is a broken symbolic link (to {os.readlink(path)}, "
+                             "which does not exist)")
         raise InputError(f"{path}: no such file")
     if path.is_dir():
         raise InputError(f"{path}: is a directory, expected a data file")
@@ -555,8 +587,8 @@ def _identity(path: str | os.PathLike[str]) -> tuple[int, int] | None:
 
 def _lineage(path: Path) -> set[tuple[int, int]]:
     """Identities of ``path`` and of every folder holding it (after resolving links)."""
-    resolved = Path(path).resolve()
-    found = {_identity(p) for p in (Path(path), resolved, *resolved.parents)}
+    absolute = resolved(path)
+    found = {_identity(p) for p in (Path(path), absolute, *absolute.parents)}
     found.discard(None)
     return found
 
@@ -572,14 +604,14 @@ def refuse_input_clash(path: Path, inputs: Sequence[Path], what: str) -> None:
     mine = _identity(path)
     for source in inputs:
         same = mine is not None and mine == _identity(source)
-        if same or path.resolve() == Path(source).resolve():
+        if same or resolved(path) == resolved(source):
             raise InputError(f"{path}: {what} would overwrite the input {source} "
                              "(the same file); choose another path")
 
 
 def _holds(folder: Path, source: Path) -> bool:
     """Whether ``folder`` is ``source`` or a folder above it, by identity or by path."""
-    folder_abs, source_abs = folder.resolve(), Path(source).resolve()
+    folder_abs, source_abs = resolved(folder), resolved(source)
     if folder_abs == source_abs or folder_abs in source_abs.parents:
         return True
     mine = _identity(folder)
@@ -591,12 +623,28 @@ def parent_folder(path: Path) -> Path:
     parent = Path(path).absolute().parent
     if parent.is_dir():
         return parent
+    refuse_link_loop(parent)
     above = parent
     while not above.exists() and above != above.parent:
         above = above.parent
     if above.exists() and not above.is_dir():
         raise InputError(f"{path}: {above} is a file, not a folder")
-    raise InputError(f"{path}: parent folder {parent} does not exist")
+    raise InputError(f"{path}: parent folder {parent} does not exist; create it first, or name "
+                     "another path")
+
+
+def check_file_destination(path: Path, inputs: Sequence[Path], what: str) -> Path:
+    """Refuse, before anything runs, a file destination that cannot be written; its folder.
+
+    Refused: one of ``inputs`` (``refuse_input_clash``), a link loop, a
+    folder, a path whose parent folder is missing or a file.
+    """
+    path = Path(path)
+    refuse_input_clash(path, inputs, what)
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder, and {what} is written as a file; name a "
+                         f"file (inside it, e.g. {path / 'NAME'}, or elsewhere)")
+    return parent_folder(path)
 
 
 def _fresh_name(parent: Path) -> Path:
@@ -615,8 +663,7 @@ def write_file(path: str | Path, content: str | bytes, inputs: Sequence[Path] = 
     """
     path = Path(path)
     payload = content.encode("utf-8") if isinstance(content, str) else content
-    refuse_input_clash(path, inputs, what)
-    parent = parent_folder(path)
+    parent = check_file_destination(path, inputs, what)
     _remove_abandoned(parent)
     try:
         while True:
@@ -649,12 +696,14 @@ def check_output_folder(target: Path, inputs: Sequence[Path], force: bool = Fals
                         protect: Sequence[Path] = ()) -> None:
     """Refuse, with one line, an output folder that may not be written.
 
-    Refused: a ``target`` that is or holds one of ``inputs`` (even with
-    ``force``), one that is, holds or lies inside a folder in ``protect``,
+    Refused: the current folder or one above it, a ``target`` that is or
+    holds one of ``inputs`` (even with ``force``), one that is, holds or
+    lies inside a folder in ``protect``,
     a broken link, a file, and a non-empty folder unless ``force`` or it
     holds only names in ``replaceable``.
     """
     target = Path(target)
+    _refuse_working_folder(target)
     parent_folder(target)
     try:
         for source in inputs:
@@ -671,6 +720,16 @@ def check_output_folder(target: Path, inputs: Sequence[Path], force: bool = Fals
     if problem:
         reason, hint = problem
         raise InputError(f"{target}: {reason}{hint}")
+
+
+def _refuse_working_folder(target: Path) -> None:
+    """An output folder is replaced as a whole: never the current folder or one above it."""
+    where, here = resolved(target), resolved(Path.cwd())
+    if where == here or where in here.parents:
+        which = "the current folder" if where == here else "a folder above the current one"
+        raise InputError(f"{str(target) or '.'}: is {which} ({where}); an output folder is "
+                         "replaced as a whole, so name a new folder for it (e.g. "
+                         "--out prepared)")
 
 
 def _unacceptable(path: Path, force: bool,

@@ -684,8 +684,8 @@ def run_preparation(
     options.check_names(column_names(Path(data), read_options), str(data))
     inputs = [Path(data), *map(Path, keep)]
     out = Path(out)
-    failed = failed_folder(out) if failed_out is None else Path(failed_out)
     folder = OutputFolder(out, inputs, force=force)
+    failed = failed_folder(out) if failed_out is None else Path(failed_out)
     try:
         if failed_out is not None or _name_fits(failed):
             # a default name too long for the file system is reported only if the gate fails
