@@ -97,6 +97,7 @@ from panelprep.io import (
     detect_format,
     integer_text_to_int,
     read_frame,
+    refuse_checksum_failure,
     refuse_link_loop,
     resolved,
     sniff_delimiter,
@@ -966,13 +967,16 @@ def _sample(path: Path, options: ReadOptions, names: list[str]) -> pd.DataFrame:
             return read_frame(part, None, names, None, options)
     try:
         if fmt == "parquet":
-            batches = pq.ParquetFile(path).iter_batches(batch_size=_SAMPLE_ROWS)
+            batches = pq.ParquetFile(path, page_checksum_verification=True).iter_batches(
+                batch_size=_SAMPLE_ROWS)
             first = next(batches, None)
             if first is None:
                 return pq.read_schema(path).empty_table().to_pandas()
             return first.to_pandas()
         return feather.read_table(path, memory_map=True).slice(0, _SAMPLE_ROWS).to_pandas()
     except (pa.ArrowException, OSError, ValueError) as err:
+        if fmt == "parquet":
+            refuse_checksum_failure(path, err, None)
         raise InputError(f"{path}: cannot read as {fmt}: {err}") from None
 
 

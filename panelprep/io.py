@@ -333,12 +333,14 @@ def read_frame(
         if fmt == "csv":
             table = _read_csv(path, wanted, entity, time, options)
         elif fmt == "parquet":
-            table = pq.read_table(path, columns=wanted)
+            table = pq.read_table(path, columns=wanted, page_checksum_verification=True)
         else:
             table = feather.read_table(path, columns=wanted, memory_map=True)
     except InputError:
         raise
     except (pa.ArrowException, OSError, ValueError) as err:
+        if fmt == "parquet":
+            refuse_checksum_failure(path, err, wanted)
         raise InputError(f"{path}: cannot read as {fmt}: {_short(err)}") from None
     keys = {*entity, time}
     _refuse_nested_keys(path, table.schema, [k for k in (*entity, time) if k])
@@ -357,6 +359,33 @@ def read_frame(
     if fmt == "csv" and time in frame.columns:
         frame[time] = integer_text_to_int(frame[time])
     return frame[wanted]
+
+
+def refuse_checksum_failure(path: Path, err: BaseException, columns: list[str] | None) -> None:
+    """When ``err`` is a failed Parquet page checksum: one line naming the column and row group.
+
+    Pages are verified when the file has checksums (panelprep writes them); the
+    failing column and row group are found by reading each in turn, only here.
+    """
+    if "CRC checksum verification failed" not in str(err):
+        return
+    source = pq.ParquetFile(path, page_checksum_verification=True)
+    meta = source.metadata
+    names = columns or source.schema_arrow.names
+    first = 0
+    for group in range(meta.num_row_groups):
+        rows = meta.row_group(group).num_rows
+        for name in names:
+            try:
+                source.read_row_group(group, columns=[name])
+            except (OSError, pa.ArrowException):
+                raise InputError(
+                    f"{path}: column {name!r} fails its page checksum in row group {group + 1} "
+                    f"of {meta.num_row_groups} (rows {first + 1:,} to {first + rows:,}): the file "
+                    "was damaged after it was written; get a fresh copy") from None
+        first += rows
+    raise InputError(f"{path}: a data page fails its checksum: the file was damaged after it "
+                     "was written; get a fresh copy") from None
 
 
 def _keep_decimal(arrow_type: pa.DataType) -> pd.ArrowDtype | None:
@@ -542,7 +571,8 @@ def write_table(
         if fmt == "parquet":
             schema_meta = {k.encode(): v.encode() for k, v in metadata.items()}
             table = table.replace_schema_metadata(schema_meta)
-            pq.write_table(table, path, compression="zstd", write_statistics=True)
+            pq.write_table(table, path, compression="zstd", write_statistics=True,
+                           write_page_checksum=True)
         elif fmt == "csv":
             pacsv.write_csv(table, path)
         else:
