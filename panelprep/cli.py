@@ -10,6 +10,7 @@ from __future__ import annotations
 import json
 import os
 import sys
+import warnings
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
@@ -369,7 +370,11 @@ def _write_json(path: Path, document: dict, source: Path) -> None:
 def main() -> None:
     """Entry point: usage errors and unexpected failures become one line and exit 2."""
     try:
-        code = app(standalone_mode=False)
+        with warnings.catch_warnings():
+            # a library's warning never reaches stderr; the runs record theirs in the
+            # report (library-warnings), and this is the last line of defence
+            warnings.simplefilter("ignore")
+            code = app(standalone_mode=False)
     except typer.TyperException as err:  # usage errors: bad or missing options
         ctx = getattr(err, "ctx", None)
         where = f" ({ctx.command_path} --help shows the options)" if ctx is not None else ""

@@ -88,7 +88,12 @@ from panelprep.clean import NORMALISE as NORMALISE_IDS
 from panelprep.components import FINDING_IDS as COMPONENT_FINDING_IDS
 from panelprep.components import METHODS
 from panelprep.errors import InputError
-from panelprep.findings import CONTRACT_FINDING_ID, SEVERITIES, SKIPPED_COLUMNS_ID
+from panelprep.findings import (
+    CONTRACT_FINDING_ID,
+    SEVERITIES,
+    SKIPPED_COLUMNS_ID,
+    UNCOMPUTABLE_ID,
+)
 from panelprep.io import (
     FORMATS,
     OUTPUT_FORMATS,
@@ -108,7 +113,8 @@ from panelprep.transforms import TRANSFORMS
 
 # Finding ids that modules other than the structural checks emit; a run file
 # may set their severity too.
-EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, CONTRACT_FINDING_ID, SKIPPED_COLUMNS_ID)
+EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, UNCOMPUTABLE_ID, CONTRACT_FINDING_ID,
+                     SKIPPED_COLUMNS_ID)
 FINDING_IDS: tuple[str, ...] = (*CHECK_IDS, *EXTRA_FINDING_IDS)
 
 FAIL_ON = ("error", "warning")

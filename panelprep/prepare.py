@@ -39,9 +39,16 @@ from panelprep.clean import (
 from panelprep.components import METHODS, VarianceComponents
 from panelprep.config import RunFile
 from panelprep.errors import InputError
-from panelprep.evidence import collect_evidence
+from panelprep.evidence import collect_evidence, uncomputable_tests
 from panelprep.figures import picture_data
-from panelprep.findings import Finding, apply_severities, gate
+from panelprep.findings import (
+    UNCOMPUTABLE_ID,
+    Finding,
+    apply_severities,
+    gate,
+    library_warnings_finding,
+    recorded_warnings,
+)
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
@@ -187,8 +194,22 @@ def prepare_frame(
     transform and ``dropped`` (the ledger), and whose ``summary`` is the
     diagnostics document.  When the gate fails, ``tables`` is empty.
     ``check_names`` refuses added columns whose names the frame already uses
-    (off only where no table is built).
+    (off only where no table is built).  Warnings a library raises on the
+    way are recorded in a ``library-warnings`` finding, never printed.
     """
+    with recorded_warnings() as caught:
+        prep = _prepare_frame(frame, options, input_info, read_options, progress, check_names)
+    said = library_warnings_finding(caught)
+    if said is not None:
+        prep.audit.findings.append(said)
+        prep.summary["findings"].append(said.to_dict())
+    return prep
+
+
+def _prepare_frame(
+    frame: pd.DataFrame, options: PrepareOptions, input_info: dict[str, Any] | None,
+    read_options: ReadOptions, progress: Progress, check_names: bool,
+) -> Preparation:
     options.validate()
     if check_names:
         options.check_names(list(frame.columns), "the data")
@@ -310,11 +331,31 @@ def prepare_frame(
     if options.evidence:
         progress("evidence on the entity effect")
         summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x)
+        lost = _uncomputable_finding(summary["evidence"], options)
+        if lost is not None:
+            findings += apply_severities([lost], options.severities)
+            summary["findings"] = [f.to_dict() for f in findings]
+            summary["verdict"] = gate(findings, options.fail_on)
     summary["transforms"] = outputs.info
     summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
     if summary["verdict"] == "fail":
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
+
+
+def _uncomputable_finding(evidence: dict[str, Any], options: PrepareOptions) -> Finding | None:
+    """A warning naming each test float64 arithmetic could not carry out, and its variables."""
+    lost = uncomputable_tests(evidence)
+    if not lost:
+        return None
+    variables = {"breusch_pagan": [options.y], "honda": [options.y]}
+    named = [f"{test} ({', '.join(variables.get(test, [options.y, *options.x]))})"
+             for test in lost]
+    return Finding(
+        id=UNCOMPUTABLE_ID, severity="warning", count=len(lost),
+        message=(f"{len(lost)} test(s) of the evidence could not be computed in float64 and "
+                 f"are left null: {', '.join(named)}; {next(iter(lost.values()))}"),
+        examples=[{"test": test, "note": note} for test, note in lost.items()])
 
 
 def _distinct_entities(frame: pd.DataFrame, entity: list[str]) -> int:
