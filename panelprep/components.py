@@ -352,8 +352,9 @@ class VarianceComponents:
         s2u = max(s2u, 0.0)
         # standard deviations always fit in float64; variances of a response
         # beyond about 1e154 (or below 1e-154) do not
-        self.sigma_entity_ = float(np.sqrt(s2u) * unit)
-        self.sigma_idiosyncratic_ = float(np.sqrt(s2e) * unit)
+        with np.errstate(over="ignore"):  # an SD beyond float64 is null in to_dict
+            self.sigma_entity_ = float(np.sqrt(s2u) * unit)
+            self.sigma_idiosyncratic_ = float(np.sqrt(s2e) * unit)
         self.sigma2_entity_ = _in_units(s2u, unit)
         self.sigma2_idiosyncratic_ = _in_units(s2e, unit)
         self.entity_share_ = float(s2u / (s2u + s2e)) if s2u + s2e > 0 else 0.0
@@ -588,8 +589,8 @@ class VarianceComponents:
             "n_regressors": int(self.n_regressors_),
             "sigma2_entity": s2u,
             "sigma2_idiosyncratic": s2e,
-            "sigma_entity": self.sigma_entity_,
-            "sigma_idiosyncratic": self.sigma_idiosyncratic_,
+            "sigma_entity": _finite(self.sigma_entity_),
+            "sigma_idiosyncratic": _finite(self.sigma_idiosyncratic_),
             "entity_share": self.entity_share_,
             "theta": {
                 "min": float(theta.min()) if theta.size else 0.0,

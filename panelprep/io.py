@@ -344,7 +344,7 @@ def read_frame(
         raise InputError(f"{path}: cannot read as {fmt}: {_short(err)}") from None
     keys = {*entity, time}
     _refuse_nested_keys(path, table.schema, [k for k in (*entity, time) if k])
-    table = _decimal_keys(table, entity, time)
+    table = _decimal_columns(table, time)
     # decimals stay Arrow decimals (not Python Decimal objects): the audit reads them as
     # float64 and reports the values float64 does not hold exactly (values-decimal-rounded)
     frame = table.to_pandas(types_mapper=_keep_decimal)
@@ -392,16 +392,17 @@ def _keep_decimal(arrow_type: pa.DataType) -> pd.ArrowDtype | None:
     return pd.ArrowDtype(arrow_type) if pa.types.is_decimal(arrow_type) else None
 
 
-def _decimal_keys(table: pa.Table, entity: list[str], time: str | None) -> pa.Table:
-    """Decimal keys in types Arrow can group: a time column as float64, ids as decimal128.
+def _decimal_columns(table: pa.Table, time: str | None) -> pa.Table:
+    """Decimals in types Arrow can group: a time column as float64, others as decimal128+.
 
     A period is a whole number, a date or a label, so a decimal time column is read as
     the number it holds (whole numbers beyond 2^53 are refused by the time axis);
-    32- and 64-bit decimals have no hashing kernels, so ids are widened losslessly.
+    32- and 64-bit decimals have no hashing kernels (ids, repeated rows), so they are
+    widened losslessly.
     """
     for i, name in enumerate(table.column_names):
         kind = table.schema.field(i).type
-        if not pa.types.is_decimal(kind) or name not in (*entity, time):
+        if not pa.types.is_decimal(kind):
             continue
         if name == time:
             wanted = pa.float64()
