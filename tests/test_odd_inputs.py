@@ -421,7 +421,7 @@ def test_within_means_of_values_near_the_largest_float_do_not_overflow():
 
 
 def test_an_overflowing_test_is_null_with_a_finding_naming_its_variables(monkeypatch):
-    import panelprep.evidence as evidence
+    from panelprep import evidence
     from panelprep.prepare import PrepareOptions, prepare_frame
 
     def overflowing(*args, **kwargs):
@@ -442,7 +442,7 @@ def test_an_overflowing_test_is_null_with_a_finding_naming_its_variables(monkeyp
 
 
 def test_a_library_warning_is_recorded_as_a_finding_not_printed(monkeypatch):
-    import panelprep.prepare as prepare
+    from panelprep import prepare
 
     real = prepare.collect_evidence
 
