@@ -415,15 +415,19 @@ def _decimal_columns(table: pa.Table, time: str | None) -> pa.Table:
 
 
 def _refuse_nested_keys(path: Path, schema: pa.Schema, keys: list[str]) -> None:
-    """One line for a key column of lists, structs or maps: a key is one value per row."""
+    """One line for a key column of lists, structs, maps, unions or intervals.
+
+    A key is one value per row that can be compared and sorted; those are not.
+    """
     for name in keys:
         if name in schema.names:
             kind = schema.field(name).type
             if pa.types.is_dictionary(kind):
                 kind = kind.value_type
-            if pa.types.is_nested(kind):
+            if pa.types.is_nested(kind) or pa.types.is_interval(kind) or pa.types.is_union(kind):
+                what = "nested values" if pa.types.is_nested(kind) else "values"
                 raise ColumnError(
-                    f"{path}: key column {name!r} holds nested values ({kind}); an entity or "
+                    f"{path}: key column {name!r} holds {what} ({kind}); an entity or "
                     "time key must hold one text, number or date per row: flatten the "
                     "column upstream or name another column")
 
