@@ -347,7 +347,10 @@ def read_frame(
     table = _decimal_columns(table, time)
     # decimals stay Arrow decimals (not Python Decimal objects): the audit reads them as
     # float64 and reports the values float64 does not hold exactly (values-decimal-rounded)
-    frame = table.to_pandas(types_mapper=_keep_decimal)
+    try:
+        frame = table.to_pandas(types_mapper=_keep_decimal)
+    except pa.ArrowNotImplementedError:
+        raise ColumnError(_unconvertible(path, table)) from None
     for name, column in zip(table.column_names, table.columns):
         if name in keys or not column.null_count and not pa.types.is_floating(column.type):
             continue
@@ -386,6 +389,18 @@ def refuse_checksum_failure(path: Path, err: BaseException, columns: list[str] |
         first += rows
     raise InputError(f"{path}: a data page fails its checksum: the file was damaged after it "
                      "was written; get a fresh copy") from None
+
+
+def _unconvertible(path: Path, table: pa.Table) -> str:
+    """The message for a column pandas cannot hold (a union), found column by column."""
+    for name, column in zip(table.column_names, table.columns):
+        try:
+            column.slice(0, 1).to_pandas()
+        except pa.ArrowNotImplementedError:
+            return (f"{path}: column {name!r} holds {column.type} values, which panelprep "
+                    "cannot read; store one type per column, or leave the column out "
+                    "(--vars)")
+    return f"{path}: a column's type cannot be read into a table"
 
 
 def _keep_decimal(arrow_type: pa.DataType) -> pd.ArrowDtype | None:

@@ -14,10 +14,8 @@ import json
 import os
 import shutil
 import subprocess
-import sys
 import warnings
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
 from decimal import Decimal
 from fractions import Fraction
 from pathlib import Path
@@ -27,6 +25,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from test_messages import Run, _command
 
 FIRMS = ["00101"] * 4 + ["00102"] * 4 + ["00103"] * 4
 YEARS = [2018, 2019, 2020, 2021] * 3
@@ -35,12 +34,6 @@ SALES = [93.5, 101.2, 99.0, 104.4, 151.0, 166.2, 160.0, 171.3, 88.0, 95.5, 90.1,
 CAPITAL = [77.1, 76.3, 80.2, 79.9, 146.6, 145.1, 150.3, 149.0, 60.2, 59.9, 63.5, 61.1]
 PREPARE = ("-e", "firm_id", "-t", "year", "--y", "sales", "--x", "capital")
 AUDIT = ("-e", "firm_id", "-t", "year", "--vars", "sales,capital")
-
-
-def _command() -> list[str]:
-    beside = Path(sys.executable).with_name("panelprep")
-    found = str(beside) if beside.exists() else shutil.which("panelprep")
-    return [found] if found else [sys.executable, "-c", "from panelprep.cli import main; main()"]
 
 
 def _frame(**columns) -> pd.DataFrame:
@@ -170,15 +163,6 @@ def _jobs(f: dict[str, Path]) -> dict[str, tuple[list, Path | None]]:
     }
 
 
-@dataclass
-class Run:
-    returncode: int
-    stdout: str
-    stderr: str
-    report: dict | None
-    out: Path
-
-
 def _run(name: str, args: list, cwd: Path | None, root: Path) -> Run:
     out = root / f"{name}.out"
     report = root / f"{name}.json"
@@ -197,7 +181,7 @@ def _run(name: str, args: list, cwd: Path | None, root: Path) -> Run:
     target = out / "diagnostics.json" if args[0] == "prepare" else report
     document = json.loads(target.read_text(encoding="utf-8")) if target.is_file() else None
     return Run(done.returncode, done.stdout.decode("utf-8", "replace"),
-               done.stderr.decode("utf-8", "replace"), document, out)
+               done.stderr.decode("utf-8", "replace"), document, out, inputs_before={})
 
 
 @pytest.fixture(scope="module")
