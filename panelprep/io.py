@@ -352,6 +352,12 @@ def read_frame(
     except pa.ArrowNotImplementedError:
         raise ColumnError(_unconvertible(path, table)) from None
     for name, column in zip(table.column_names, table.columns):
+        if pa.types.is_nested(column.type) and name not in keys:
+            # lists, structs and maps arrive as arrays and dicts, which cannot be compared
+            # or hashed; as their text they are reported like any other text in a variable
+            values = frame[name]
+            frame[name] = values.astype(str).where(values.notna(), None)
+    for name, column in zip(table.column_names, table.columns):
         if name in keys or not column.null_count and not pa.types.is_floating(column.type):
             continue
         if pa.types.is_boolean(column.type):
