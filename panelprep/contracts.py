@@ -20,9 +20,9 @@ import numpy as np
 import pandas as pd
 import yaml
 
+from panelprep._paths import refuse_link_loop
 from panelprep.errors import InputError
 from panelprep.findings import CONTRACT_FINDING_ID, MAX_EXAMPLES, Finding
-from panelprep.io import refuse_link_loop
 
 try:
     import pandera.pandas as pa
