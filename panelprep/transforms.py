@@ -222,7 +222,9 @@ class DemeanedBlock:
         codes = _check_codes(codes, block.shape[0], len(counts), "codes")
         self.values, self.rows = block, rows
         self.codes = codes if rows is None else codes[rows]
-        self.shift = group_sums(codes, block, len(counts)) * weight[:, None]
+        self.shift = np.empty((len(counts), block.shape[1]), order="F")
+        for j in range(block.shape[1]):
+            self.shift[:, j] = _weighted_group_sums(codes, block[:, j], len(counts), weight)
         self.shape = (len(self.codes), block.shape[1])
 
     def _source(self, start: int, stop: int, j: int) -> np.ndarray:
