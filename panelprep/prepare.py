@@ -197,6 +197,7 @@ def prepare_frame(
     read_options: ReadOptions = DEFAULT_READ,
     progress: Progress = _silent,
     check_names: bool = True,
+    owns_frame: bool = False,
 ) -> Preparation:
     """Clean, audit and transform a panel held in memory; nothing is written.
 
@@ -204,11 +205,15 @@ def prepare_frame(
     transform and ``dropped`` (the ledger), and whose ``summary`` is the
     diagnostics document.  When the gate fails, ``tables`` is empty.
     ``check_names`` refuses added columns whose names the frame already uses
-    (off only where no table is built).  Warnings a library raises on the
-    way are recorded in a ``library-warnings`` finding, never printed.
+    (off only where no table is built).  ``owns_frame`` says the frame was
+    read for this run (``run_preparation``): its variable columns are then
+    dropped, in place, once the sample block is taken.  A caller's frame is
+    never changed.  Warnings a library raises on the way are recorded in a
+    ``library-warnings`` finding, never printed.
     """
     with recorded_warnings() as caught:
-        prep = _prepare_frame(frame, options, input_info, read_options, progress, check_names)
+        prep = _prepare_frame(frame, options, input_info, read_options, progress, check_names,
+                              owns_frame)
     said = library_warnings_finding(caught)
     if said is not None:
         prep.audit.findings.append(said)
@@ -218,7 +223,7 @@ def prepare_frame(
 
 def _prepare_frame(
     frame: pd.DataFrame, options: PrepareOptions, input_info: dict[str, Any] | None,
-    read_options: ReadOptions, progress: Progress, check_names: bool,
+    read_options: ReadOptions, progress: Progress, check_names: bool, owns_frame: bool,
 ) -> Preparation:
     options.validate()
     if check_names:
@@ -309,6 +314,10 @@ def _prepare_frame(
     counts = group_counts(codes, sample_ix.n_entities)
     values = ctx.sample_values
     ctx.release_values()
+    if owns_frame:
+        # a frame read for this run (never a caller's): from here on the flow reads its
+        # variables only from the sample block, so their columns are freed
+        _free_variable_columns([frame, flow.frame], ctx.variables, options)
     y, X = values[:, 0], values[:, 1:]
 
     progress(f"variance components ({options.method})")
@@ -799,7 +808,8 @@ def run_preparation(
         progress(f"reading {data}")
         frame, info = load(data, options.entity, options.time, options.columns_to_read,
                            read_options)
-        prep = prepare_frame(frame, options, info, read_options, progress)
+        prep = prepare_frame(frame, options, info, read_options, progress, owns_frame=True)
+        del frame
         if prep.verdict == "fail":
             # a failed gate never replaces or empties the output folder
             folder.abandon()
@@ -874,6 +884,15 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
     _write_text(folder.path("diagnostics.txt"), "\n".join(preparation_lines(prep.summary)) + "\n")
     progress("writing report.html")
     _write_text(folder.path("report.html"), render_html(prep.summary, pictures_of(prep)))
+
+
+def _free_variable_columns(frames: list[pd.DataFrame], variables: list[str],
+                           options: PrepareOptions) -> None:
+    """Drop the variable columns from frames the run owns, in place (about n x k x 8 bytes)."""
+    keys = {*options.entity, options.time}
+    for frame in {id(f): f for f in frames}.values():
+        for name in [v for v in variables if v in frame.columns and v not in keys]:
+            del frame[name]
 
 
 def _primed(pieces: Iterator[pa.Table]) -> Iterator[pa.Table]:

@@ -70,15 +70,21 @@ def test_a_failing_last_data_file_leaves_the_earlier_folder_intact(tmp_path, dat
                                                                     monkeypatch):
     before = snapshot(earlier)
     calls = []
-    real_write = pq.write_table
 
-    def full_disk(table, where, **kwargs):
-        calls.append(Path(where).name)
-        if Path(where).name == "dropped.parquet":  # the last data file written
-            raise OSError(errno.ENOSPC, "No space left on device")
-        return real_write(table, where, **kwargs)
+    class FullDisk(pq.ParquetWriter):
+        """The disk fills while the last data file is written."""
 
-    monkeypatch.setattr(pq, "write_table", full_disk)
+        def __init__(self, where, *args, **kwargs):
+            self.name = Path(where).name
+            calls.append(self.name)
+            super().__init__(where, *args, **kwargs)
+
+        def write_table(self, table, *args, **kwargs):
+            if self.name == "dropped.parquet":  # the last data file written
+                raise OSError(errno.ENOSPC, "No space left on device")
+            return super().write_table(table, *args, **kwargs)
+
+    monkeypatch.setattr(pq, "ParquetWriter", FullDisk)
     result = CliRunner().invoke(app, ["prepare", str(data), *ARGS, "--out", str(earlier),
                                       "--force", "--quiet"])
     assert result.exit_code == 2, result.output
@@ -127,16 +133,21 @@ def test_an_unexpected_failure_is_one_line_through_main(tmp_path, data, earlier,
 
 def test_an_interrupt_during_the_writes_leaves_no_partial_folder(tmp_path, data, monkeypatch):
     out = tmp_path / "out"
-    real_write = pq.write_table
     written = []
 
-    def interrupted(table, where, **kwargs):
-        written.append(Path(where).name)
-        if len(written) == 3:
-            raise KeyboardInterrupt
-        return real_write(table, where, **kwargs)
+    class Interrupted(pq.ParquetWriter):
+        """Ctrl-C arrives while the third data file is written."""
 
-    monkeypatch.setattr(pq, "write_table", interrupted)
+        def __init__(self, where, *args, **kwargs):
+            written.append(Path(where).name)
+            super().__init__(where, *args, **kwargs)
+
+        def write_table(self, table, *args, **kwargs):
+            if len(written) == 3:
+                raise KeyboardInterrupt
+            return super().write_table(table, *args, **kwargs)
+
+    monkeypatch.setattr(pq, "ParquetWriter", Interrupted)
     with pytest.raises(KeyboardInterrupt):
         prepare(data, out, **KEYS)
     assert not out.exists()

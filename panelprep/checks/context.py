@@ -246,22 +246,25 @@ class AuditContext:
         return holes, longest, missing
 
     @cached_property
-    def missing_by_period(self) -> tuple[np.ndarray, np.ndarray]:
-        """Keyed rows (exact repeats collapsed) per period of the full grid, and per period
-        the missing cells of each selected variable: (rows (P,), missing (P, k)).
+    def missing_by_period(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Per period that occurs, keyed rows (exact repeats collapsed) and the missing
+        cells of each selected variable: (period codes (P,), rows (P,), missing (P, k)).
 
-        Taken once from the numeric block, so it survives ``release_values``;
-        ``narrowed`` contexts share it (it describes the rows read).
+        Only the periods that occur are listed, so the cost follows the rows,
+        not the length of the grid.  Taken once from the numeric block, so it
+        survives ``release_values``; ``narrowed`` contexts share it (it
+        describes the rows read).
         """
-        n_periods = max(self.index.n_periods, 1)
         period = self.index.period_codes[self.base]
-        rows = np.bincount(period, minlength=n_periods)
-        missing = np.zeros((n_periods, len(self.variables)), dtype=np.int64)
+        present, compact = np.unique(period, return_inverse=True)
+        compact = compact.reshape(-1)
+        rows = np.bincount(compact, minlength=len(present))
+        missing = np.zeros((len(present), len(self.variables)), dtype=np.int64)
         block = self.values
         for j in range(len(self.variables)):
             absent = np.isnan(block[:, j])[self.base]
-            missing[:, j] = np.bincount(period[absent], minlength=n_periods)
-        return rows, missing
+            missing[:, j] = np.bincount(compact[absent], minlength=len(present))
+        return present, rows, missing
 
     @cached_property
     def periods_per_entity(self) -> np.ndarray:
