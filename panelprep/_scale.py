@@ -102,7 +102,7 @@ def standardise(values: np.ndarray) -> Standardised:
     spread = np.sqrt(np.einsum("ij,ij->j", z, z) / n)
     # at most 2^(1024 - exponent), so that scale = first * second stays finite for
     # columns spread near the largest float (z's root mean square is then up to 2)
-    second = np.minimum(power_of_two(spread), np.ldexp(1.0, np.minimum(1024 - exponent, 1023)))
+    second = _capped_second(spread, exponent)
     z /= second
     return Standardised(z=z, centre=first * mean, scale=first * second)
 
@@ -160,4 +160,9 @@ def scaling(values: np.ndarray) -> Scaling:
         mean[j] = buffer.mean()
         buffer -= mean[j]
         spread[j] = np.sqrt(np.dot(buffer, buffer) / n)
-    return Scaling(first, mean, power_of_two(spread))
+    return Scaling(first, mean, _capped_second(spread, exponent))
+
+
+def _capped_second(spread: np.ndarray, exponent: np.ndarray) -> np.ndarray:
+    """The power of two near ``spread``, at most 2^(1024 - exponent): the scale stays finite."""
+    return np.minimum(power_of_two(spread), np.ldexp(1.0, np.minimum(1024 - exponent, 1023)))

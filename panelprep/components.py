@@ -180,7 +180,7 @@ def _in_units(value: float, unit: float) -> float:
 
 
 def _finite(value):
-    """``value``, or None where a float is infinite (JSON has no infinity)."""
+    """``value``, or None where a float is infinite or NaN (JSON has neither)."""
     if isinstance(value, float) and not np.isfinite(value):
         return None
     return value
@@ -607,8 +607,8 @@ class VarianceComponents:
     def to_dict(self) -> dict[str, Any]:
         """Plain summary of the fitted components (JSON-serialisable)."""
         lost = self._unrepresentable
-        s2u = None if "s2_u" in lost else self.sigma2_entity_
-        s2e = None if "s2_e" in lost else self.sigma2_idiosyncratic_
+        s2u = None if "s2_u" in lost else _finite(self.sigma2_entity_)
+        s2e = None if "s2_e" in lost else _finite(self.sigma2_idiosyncratic_)
         theta = self.theta_[self._present]
         return {
             "method": self.method,
