@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import os
 import sys
+import warnings
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
@@ -355,14 +356,13 @@ def draft_command(
 ) -> None:
     """Write a commented starter run file for DATA, with guessed keys marked."""
     from panelprep.config import starter_run_file
-    from panelprep.io import parent_folder, refuse_input_clash, write_file
+    from panelprep.io import check_file_destination, resolved, write_file
 
     try:
         if out is not None:
             # before anything is read or written: the run file may never be the data
-            refuse_input_clash(out, [data], "the run file")
-            parent_folder(out)
-        text = starter_run_file(data, run_dir=None if out is None else out.resolve().parent)
+            check_file_destination(out, [data], "the run file")
+        text = starter_run_file(data, run_dir=None if out is None else resolved(out).parent)
         if out is None:
             typer.echo(text, nl=False)
             return
@@ -454,12 +454,11 @@ def components_command(
 
 def _check_reports(paths: list[Path | None], source: Path) -> None:
     """Before the audit runs: no report may be the input, nor go into a folder that is not one."""
-    from panelprep.io import parent_folder, refuse_input_clash
+    from panelprep.io import check_file_destination
 
     for path in paths:
         if path is not None:
-            refuse_input_clash(path, [source], "the report")
-            parent_folder(path)
+            check_file_destination(path, [source], "the report")
 
 
 def _write_html(path: Path, document: dict, result, source: Path) -> None:
@@ -479,7 +478,11 @@ def _write_json(path: Path, document: dict, source: Path) -> None:
 def main() -> None:
     """Entry point: usage errors become one line and exit 2, internal errors exit 3."""
     try:
-        code = app(standalone_mode=False)
+        with warnings.catch_warnings():
+            # a library's warning never reaches stderr; the runs record theirs in the
+            # report (library-warnings), and this is the last line of defence
+            warnings.simplefilter("ignore")
+            code = app(standalone_mode=False)
     except typer.TyperException as err:  # usage errors: bad or missing options
         ctx = getattr(err, "ctx", None)
         where = f" ({ctx.command_path} --help shows the options)" if ctx is not None else ""

@@ -180,7 +180,7 @@ def _in_units(value: float, unit: float) -> float:
 
 
 def _finite(value):
-    """``value``, or None where a float is infinite (JSON has no infinity)."""
+    """``value``, or None where a float is infinite or NaN (JSON has neither)."""
     if isinstance(value, float) and not np.isfinite(value):
         return None
     return value
@@ -379,8 +379,9 @@ class VarianceComponents:
         s2u = max(s2u, 0.0)
         # standard deviations always fit in float64; variances of a response
         # beyond about 1e154 (or below 1e-154) do not
-        self.sigma_entity_ = float(np.sqrt(s2u) * unit)
-        self.sigma_idiosyncratic_ = float(np.sqrt(s2e) * unit)
+        with np.errstate(over="ignore"):  # an SD beyond float64 is null in to_dict
+            self.sigma_entity_ = float(np.sqrt(s2u) * unit)
+            self.sigma_idiosyncratic_ = float(np.sqrt(s2e) * unit)
         self.sigma2_entity_ = _in_units(s2u, unit)
         self.sigma2_idiosyncratic_ = _in_units(s2e, unit)
         self.entity_share_ = float(s2u / (s2u + s2e)) if s2u + s2e > 0 else 0.0
@@ -606,8 +607,8 @@ class VarianceComponents:
     def to_dict(self) -> dict[str, Any]:
         """Plain summary of the fitted components (JSON-serialisable)."""
         lost = self._unrepresentable
-        s2u = None if "s2_u" in lost else self.sigma2_entity_
-        s2e = None if "s2_e" in lost else self.sigma2_idiosyncratic_
+        s2u = None if "s2_u" in lost else _finite(self.sigma2_entity_)
+        s2e = None if "s2_e" in lost else _finite(self.sigma2_idiosyncratic_)
         theta = self.theta_[self._present]
         return {
             "method": self.method,
@@ -616,8 +617,8 @@ class VarianceComponents:
             "n_regressors": int(self.n_regressors_),
             "sigma2_entity": s2u,
             "sigma2_idiosyncratic": s2e,
-            "sigma_entity": self.sigma_entity_,
-            "sigma_idiosyncratic": self.sigma_idiosyncratic_,
+            "sigma_entity": _finite(self.sigma_entity_),
+            "sigma_idiosyncratic": _finite(self.sigma_idiosyncratic_),
             "entity_share": self.entity_share_,
             "theta": {
                 "min": float(theta.min()) if theta.size else 0.0,

@@ -89,7 +89,12 @@ from panelprep.clean import NORMALISE as NORMALISE_IDS
 from panelprep.components import FINDING_IDS as COMPONENT_FINDING_IDS
 from panelprep.components import METHODS
 from panelprep.errors import InputError
-from panelprep.findings import CONTRACT_FINDING_ID, SEVERITIES, SKIPPED_COLUMNS_ID
+from panelprep.findings import (
+    CONTRACT_FINDING_ID,
+    SEVERITIES,
+    SKIPPED_COLUMNS_ID,
+    UNCOMPUTABLE_ID,
+)
 from panelprep.io import (
     FORMATS,
     OUTPUT_FORMATS,
@@ -99,6 +104,9 @@ from panelprep.io import (
     detect_format,
     integer_text_to_int,
     read_frame,
+    refuse_checksum_failure,
+    refuse_link_loop,
+    resolved,
     sniff_delimiter,
 )
 from panelprep.names import DEFAULT_NAMES, AddedNames
@@ -107,7 +115,8 @@ from panelprep.transforms import TRANSFORMS
 
 # Finding ids that modules other than the structural checks emit; a run file
 # may set their severity too.
-EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, CONTRACT_FINDING_ID, SKIPPED_COLUMNS_ID)
+EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, UNCOMPUTABLE_ID, CONTRACT_FINDING_ID,
+                     SKIPPED_COLUMNS_ID)
 FINDING_IDS: tuple[str, ...] = (*CHECK_IDS, *EXTRA_FINDING_IDS)
 
 FAIL_ON = ("error", "warning")
@@ -684,8 +693,8 @@ class RunFile:
         if base is not None:
             for dotted in _PATH_KEYS:
                 if values[dotted] is not None:
-                    values[dotted] = Path(os.path.relpath(Path(values[dotted]).resolve(),
-                                                          Path(base).resolve()))
+                    values[dotted] = Path(os.path.relpath(resolved(values[dotted]),
+                                                          resolved(base)))
         active = {dotted for dotted, value in values.items() if value is not None}
         title = [f"panelprep run file, canonical form (panelprep {__version__})"]
         return _render(values, active, {}, header or title)
@@ -835,7 +844,7 @@ def load_run_file(path: str | Path, overrides: Mapping[str, Any] | None = None) 
                 raise fail(bad_path, f"{dotted} must be {bad.expected}, got {_shown(value)}"
                            ) from None
             if dotted in _PATH_KEYS and not parsed.is_absolute():
-                parsed = (source.parent / parsed).resolve()
+                parsed = resolved(source.parent / parsed)
             setattr(getattr(run, section), key, parsed)
             line = _line_of(lines, (section, key))
             if line is not None:
@@ -853,6 +862,7 @@ def _shown(value: Any) -> str:
 
 def _read_text(path: Path) -> str:
     if not path.exists():
+        refuse_link_loop(path)
         raise InputError(f"{path}: no such run file")
     if path.is_dir():
         raise InputError(f"{path}: is a directory, expected a run file")
@@ -986,13 +996,16 @@ def _sample(path: Path, options: ReadOptions, names: list[str]) -> pd.DataFrame:
             return read_frame(part, None, names, None, options)
     try:
         if fmt == "parquet":
-            batches = pq.ParquetFile(path).iter_batches(batch_size=_SAMPLE_ROWS)
+            batches = pq.ParquetFile(path, page_checksum_verification=True).iter_batches(
+                batch_size=_SAMPLE_ROWS)
             first = next(batches, None)
             if first is None:
                 return pq.read_schema(path).empty_table().to_pandas()
             return first.to_pandas()
         return feather.read_table(path, memory_map=True).slice(0, _SAMPLE_ROWS).to_pandas()
     except (pa.ArrowException, OSError, ValueError) as err:
+        if fmt == "parquet":
+            refuse_checksum_failure(path, err, None)
         raise InputError(f"{path}: cannot read as {fmt}: {err}") from None
 
 
@@ -1151,8 +1164,8 @@ def starter_run_file(data_path: str | Path, frame_head: pd.DataFrame | None = No
     notes["model.x"] = "guessed: the other numeric columns"
 
     base = Path(run_dir) if run_dir is not None else None
-    data_written = (Path(os.path.relpath(path.resolve(), base.resolve())) if base is not None
-                    else path.resolve())
+    data_written = (Path(os.path.relpath(resolved(path), resolved(base))) if base is not None
+                    else resolved(path))
     values: dict[str, Any] = {f"{s}.{k}": _default(f"{s}.{k}")
                               for s, keys in _KEYS.items() for k in keys}
     values.update({

@@ -816,13 +816,51 @@ def collect_evidence(
     if sd_entity is None or sd_idiosyncratic is None:
         sd_entity = math.sqrt(float(components.sigma2_entity_))
         sd_idiosyncratic = math.sqrt(float(components.sigma2_idiosyncratic_))
-    out: dict[str, Any] = dict(_pooled_lm(sample))
+    out: dict[str, Any] = _guarded(lambda: dict(_pooled_lm(sample)), ("breusch_pagan", "honda"),
+                                   {"breusch_pagan": {"df": 1}})
     # both correlated-effects tests run on the same quasi-demeaned regression
-    out["mundlak"] = mundlak_test(
+    out.update(_guarded(lambda: {"mundlak": mundlak_test(
         y, X, entity_codes, counts, components.theta_, names, cluster=True, _cache=shared
-    )
-    out["hausman"] = _hausman(sample, (sd_entity / sample.unit) ** 2,
-                              (sd_idiosyncratic / sample.unit) ** 2, components.theta_, names, shared)
+    )}, ("mundlak",), {"mundlak": {"covariance": "entity-clustered", "tested": names}}))
+    out.update(_guarded(lambda: {"hausman": _hausman(
+        sample, (sd_entity / sample.unit) ** 2, (sd_idiosyncratic / sample.unit) ** 2,
+        components.theta_, names, shared)}, ("hausman",), {"hausman": {"tested": names}}))
     out["reading"] = read_evidence(out)
     out["caution"] = CAUTION
     return out
+
+
+_UNCOMPUTABLE = "not computable: "
+
+
+def _guarded(compute: Any, tests: Sequence[str], known: dict[str, dict]) -> dict[str, dict]:
+    """``compute()`` with floating-point overflow and invalid operations raised, not warned.
+
+    A test whose arithmetic overflows (or whose statistic is not finite) gets a
+    null statistic and a note saying so, instead of a number computed from
+    infinities; ``known`` holds the fields such a block keeps.
+    """
+    try:
+        with np.errstate(over="raise", invalid="raise", divide="raise"):
+            found = compute()
+    except FloatingPointError as err:
+        reason = f"{_UNCOMPUTABLE}floating-point {err} in its arithmetic"
+        return {t: _uncomputable(reason, known.get(t, {})) for t in tests}
+    for test in tests:
+        statistic = found[test].get("statistic")
+        if statistic is not None and not math.isfinite(statistic):
+            found[test] = _uncomputable(f"{_UNCOMPUTABLE}its statistic came out {statistic}",
+                                        found[test])
+    return found
+
+
+def _uncomputable(reason: str, block: dict[str, Any]) -> dict[str, Any]:
+    note = (f"{reason} (values too extreme for float64 even after centring and scaling); "
+            "rescale the variables and run again")
+    return {**block, "statistic": None, "p_value": None, "note": note}
+
+
+def uncomputable_tests(evidence: dict[str, Any]) -> dict[str, str]:
+    """Test name -> note, for the tests :func:`collect_evidence` could not compute."""
+    return {name: block["note"] for name, block in evidence.items()
+            if isinstance(block, dict) and str(block.get("note") or "").startswith(_UNCOMPUTABLE)}

@@ -29,6 +29,8 @@ from panelprep.findings import (
     gate,
     gate_block,
     ordered,
+    library_warnings_finding,
+    recorded_warnings,
     severity_rank,
 )
 from panelprep.index import PanelIndex, build_index
@@ -206,31 +208,34 @@ def audit(
     chosen = split_names(vars)
     names = choose_variables(frame, entity, time, chosen, decimal_comma)
     progress = progress if progress is not None else RunLog()
-    if index is None:
-        progress("index", f"indexing on ({', '.join(entity)}) x {time}", rows=len(frame))
-        index = build_index(frame, entity, time, freq)
-        release_arrow_memory()  # what factorising Arrow strings left in the pool
-    context = AuditContext(
-        frame=frame,
-        index=index,
-        variables=names,
-        thresholds=thresholds or Thresholds(),
-        decimal_comma=decimal_comma,
-        missing_tokens=tuple(missing_tokens),
-        origin=origin,
-    )
     findings: list[Finding] = list(prior_findings)
-    if chosen is None:
-        skipped = _skipped_columns(frame, [*entity, time], names)
-        if skipped is not None:
-            findings.append(skipped)
-    for check in CHECKS:
-        progress(f"check.{check.id}", f"check {check.id}")
-        found = check.run(context)
-        if found is not None:
-            findings.append(found)
+    with recorded_warnings() as caught:
+        if index is None:
+            progress("index", f"indexing on ({', '.join(entity)}) x {time}", rows=len(frame))
+            index = build_index(frame, entity, time, freq)
+            release_arrow_memory()  # what factorising Arrow strings left in the pool
+        context = AuditContext(
+            frame=frame,
+            index=index,
+            variables=names,
+            thresholds=thresholds or Thresholds(),
+            decimal_comma=decimal_comma,
+            missing_tokens=tuple(missing_tokens),
+            origin=origin,
+        )
+        if chosen is None:
+            skipped = _skipped_columns(frame, [*entity, time], names)
+            if skipped is not None:
+                findings.append(skipped)
+        for check in CHECKS:
+            progress(f"check.{check.id}", f"check {check.id}")
+            found = check.run(context)
+            if found is not None:
+                findings.append(found)
     findings = apply_severities(findings, severities or {})
     verdict = gate(findings, fail_on)
+    # after the gate: a library's warning is said, never judged (see library_warnings_finding)
+    findings += filter(None, [library_warnings_finding(caught)])
     thresholds = thresholds or context.thresholds
     options = {
         "panel.entity": entity, "panel.time": time, "panel.freq": freq, "audit.vars": chosen,

@@ -54,9 +54,18 @@ from panelprep.config import (
     RunFile,
 )
 from panelprep.errors import InputError
-from panelprep.evidence import collect_evidence
+from panelprep.evidence import collect_evidence, uncomputable_tests
 from panelprep.figures import missing_picture, picture_data
-from panelprep.findings import Finding, apply_severities, gate, gate_block, ordered
+from panelprep.findings import (
+    UNCOMPUTABLE_ID,
+    Finding,
+    apply_severities,
+    gate,
+    gate_block,
+    library_warnings_finding,
+    ordered,
+    recorded_warnings,
+)
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
@@ -215,8 +224,23 @@ def prepare_frame(
     file (``run_record``), for the ``run`` block of the summary.
     ``owns_frame`` says the frame was read for this run
     (``run_preparation``): its variable columns are then dropped, in place,
-    once the sample block is taken.  A caller's frame is never changed.
+    once the sample block is taken.  A caller's frame is never changed.  Warnings a library raises on the way are
+    recorded in a ``library-warnings`` finding, never printed.
     """
+    with recorded_warnings() as caught:
+        prep = _prepare_frame(frame, options, input_info, read_options, progress, check_names,
+                              owns_frame)
+    said = library_warnings_finding(caught)
+    if said is not None:
+        prep.audit.findings.append(said)
+        prep.summary["findings"].append(said.to_dict())
+    return prep
+
+
+def _prepare_frame(
+    frame: pd.DataFrame, options: PrepareOptions, input_info: dict[str, Any] | None,
+    read_options: ReadOptions, progress: Progress, check_names: bool, owns_frame: bool,
+) -> Preparation:
     options.validate()
     progress = progress if progress is not None else RunLog()
     if check_names:
@@ -359,6 +383,11 @@ def prepare_frame(
         progress("evidence", "evidence on the entity effect", rows=len(y))
         summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x,
                                                sample=standard)
+        lost = _uncomputable_finding(summary["evidence"], options)
+        if lost is not None:
+            findings += apply_severities([lost], options.severities)
+            summary["findings"] = [f.to_dict() for f in findings]
+            summary["verdict"] = gate(findings, options.fail_on)
     summary["transforms"] = outputs.info
     summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
     summary["run"] = run_block(progress, record or run_record(options, read_options), summary,
@@ -366,6 +395,21 @@ def prepare_frame(
     if summary["verdict"] == "fail":
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
+
+
+def _uncomputable_finding(evidence: dict[str, Any], options: PrepareOptions) -> Finding | None:
+    """A warning naming each test float64 arithmetic could not carry out, and its variables."""
+    lost = uncomputable_tests(evidence)
+    if not lost:
+        return None
+    variables = {"breusch_pagan": [options.y], "honda": [options.y]}
+    named = [f"{test} ({', '.join(variables.get(test, [options.y, *options.x]))})"
+             for test in lost]
+    return Finding(
+        id=UNCOMPUTABLE_ID, severity="warning", count=len(lost),
+        message=(f"{len(lost)} test(s) of the evidence could not be computed in float64 and "
+                 f"are left null: {', '.join(named)}; {next(iter(lost.values()))}"),
+        examples=[{"test": test, "note": note} for test, note in lost.items()])
 
 
 def _distinct_entities(frame: pd.DataFrame, entity: list[str]) -> int:
@@ -790,8 +834,8 @@ def run_preparation(
     options.check_names(column_names(Path(data), read_options), str(data))
     inputs = [Path(data), *map(Path, keep)]
     out = Path(out)
-    failed = failed_folder(out) if failed_out is None else Path(failed_out)
     folder = OutputFolder(out, inputs, force=force)
+    failed = failed_folder(out) if failed_out is None else Path(failed_out)
     try:
         if failed_out is not None or _name_fits(failed):
             # a default name too long for the file system is reported only if the gate fails

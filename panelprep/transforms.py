@@ -108,8 +108,32 @@ def between(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.nda
     inv = _safe_inverse_counts(counts)
     out = np.empty((len(counts), k), dtype=np.float64, order="F")
     for j in range(k):
-        out[:, j] = group_sums(codes, block[:, j], len(counts)) * inv
+        out[:, j] = _weighted_group_sums(codes, block[:, j], len(counts), inv)
     return out[:, 0] if flat else out
+
+
+# 2^-64: a sum of fewer than 2^64 scaled values stays below the largest float
+_SUM_SCALE = 2.0**-64
+
+
+def _weighted_group_sums(codes: np.ndarray, col: np.ndarray, n_groups: int,
+                         weight: np.ndarray) -> np.ndarray:
+    """``weight_i * sum_i(x)``, finite whenever the result is (values near 1e308 included).
+
+    A group whose plain sum overflows (two values near -1e308) is summed again
+    with every value scaled by 2^-64 and the weighted sum scaled back; scaling
+    by a power of two is exact apart from values far below the group's own
+    magnitude, which the weighted sum cannot show anyway.
+    """
+    with np.errstate(over="ignore", invalid="ignore"):
+        sums = group_sums(codes, col, n_groups)
+    overflow = ~np.isfinite(sums)
+    if not overflow.any():
+        return sums * weight
+    out = np.where(overflow, 0.0, sums) * weight
+    scaled = group_sums(codes, col * _SUM_SCALE, n_groups)[overflow]
+    out[overflow] = scaled * weight[overflow] / _SUM_SCALE
+    return out
 
 
 def quasi(
@@ -163,7 +187,7 @@ def _subtract_group_sums(values, codes, counts, weight: np.ndarray,
     buf = np.empty(n, dtype=np.float64)
     for j in range(k):
         col = block[:, j]
-        shift = group_sums(codes, col, len(counts)) * weight
+        shift = _weighted_group_sums(codes, col, len(counts), weight)
         np.take(shift, codes, out=buf, mode="clip")
         np.subtract(col, buf, out=out[:, j])
     return out[:, 0] if flat else out
@@ -198,7 +222,9 @@ class DemeanedBlock:
         codes = _check_codes(codes, block.shape[0], len(counts), "codes")
         self.values, self.rows = block, rows
         self.codes = codes if rows is None else codes[rows]
-        self.shift = group_sums(codes, block, len(counts)) * weight[:, None]
+        self.shift = np.empty((len(counts), block.shape[1]), order="F")
+        for j in range(block.shape[1]):
+            self.shift[:, j] = _weighted_group_sums(codes, block[:, j], len(counts), weight)
         self.shape = (len(self.codes), block.shape[1])
 
     def _source(self, start: int, stop: int, j: int) -> np.ndarray:
