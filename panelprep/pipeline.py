@@ -28,8 +28,8 @@ from panelprep.findings import (
     apply_severities,
     gate,
     gate_block,
-    ordered,
     library_warnings_finding,
+    ordered,
     recorded_warnings,
     severity_rank,
 )

@@ -224,12 +224,13 @@ def prepare_frame(
     file (``run_record``), for the ``run`` block of the summary.
     ``owns_frame`` says the frame was read for this run
     (``run_preparation``): its variable columns are then dropped, in place,
-    once the sample block is taken.  A caller's frame is never changed.  Warnings a library raises on the way are
-    recorded in a ``library-warnings`` finding, never printed.
+    once the sample block is taken.  A caller's frame is never changed.
+    Warnings a library raises on the way are recorded in a
+    ``library-warnings`` finding, never printed.
     """
     with recorded_warnings() as caught:
         prep = _prepare_frame(frame, options, input_info, read_options, progress, check_names,
-                              owns_frame)
+                              owns_frame, record)
     said = library_warnings_finding(caught)
     if said is not None:
         prep.audit.findings.append(said)
@@ -239,7 +240,8 @@ def prepare_frame(
 
 def _prepare_frame(
     frame: pd.DataFrame, options: PrepareOptions, input_info: dict[str, Any] | None,
-    read_options: ReadOptions, progress: Progress, check_names: bool, owns_frame: bool,
+    read_options: ReadOptions, progress: Progress | None, check_names: bool, owns_frame: bool,
+    record: RunFile | None,
 ) -> Preparation:
     options.validate()
     progress = progress if progress is not None else RunLog()
