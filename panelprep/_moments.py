@@ -73,6 +73,15 @@ class EntityMoments:
     def k(self) -> int:
         return self.means.shape[1] - 1
 
+    def within_residuals(self, X: np.ndarray, y: np.ndarray, coef: np.ndarray) -> np.ndarray:
+        """``e = y_w - X_w coef`` (n,), the within residual, one column of X_w at a time."""
+        resid = y - self.means[:, self.k][self.codes]
+        column = np.empty(len(y))
+        for j in np.flatnonzero(coef):
+            np.subtract(X[:, j], self.means[:, j][self.codes], out=column)
+            resid -= coef[j] * column
+        return resid
+
     def within_scores(self, X: np.ndarray, y: np.ndarray, coef: np.ndarray) -> np.ndarray:
         """``sum_t w_it e_it`` per entity (G, k), ``e = y_w - X_w coef`` the within residual.
 
@@ -80,11 +89,8 @@ class EntityMoments:
         within block is never held whole.
         """
         n_groups = len(self.counts)
-        resid = y - self.means[:, self.k][self.codes]
+        resid = self.within_residuals(X, y, coef)
         column = np.empty(len(y))
-        for j in np.flatnonzero(coef):
-            np.subtract(X[:, j], self.means[:, j][self.codes], out=column)
-            resid -= coef[j] * column
         out = np.empty((n_groups, X.shape[1]), order="F")
         for j in range(X.shape[1]):
             np.subtract(X[:, j], self.means[:, j][self.codes], out=column)
@@ -114,9 +120,7 @@ def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
     means[:, k] = group_sums(codes, y, n_groups) * inv
     within_ss = np.zeros(k + 1)
     total_ss = np.zeros(k + 1)
-    gram = n >= GRAM_MIN_ROWS
-    cross = np.zeros((k + 1, k + 1))
-    factors = []
+    factor = RowFactor(k + 1, n)
     for start in range(0, n, QR_BLOCK_ROWS):
         stop = min(start + QR_BLOCK_ROWS, n)
         block = np.empty((stop - start, k + 1), order="F")
@@ -125,19 +129,40 @@ def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
         total_ss += np.einsum("ij,ij->j", block, block)
         block -= means[codes[start:stop]]
         within_ss += np.einsum("ij,ij->j", block, block)
-        if gram:
-            cross += block.T @ block
-        else:
-            r = scipy.linalg.qr(block, mode="r", overwrite_a=True, check_finite=False)[0]
-            factors.append(r[: min(stop - start, k + 1)])
-    if gram:
-        values, vectors = np.linalg.eigh(cross)
-        root = np.sqrt(np.clip(values, 0.0, None))[:, None] * vectors.T
-        r_within = triangular(root, k + 1)
-    else:
-        r_within = triangular(np.vstack(factors) if factors else np.zeros((0, k + 1)), k + 1)
-    return EntityMoments(codes=codes, counts=t, means=means, r_within=r_within,
+        factor.add(block)
+    return EntityMoments(codes=codes, counts=t, means=means, r_within=factor.r(),
                          within_ss=within_ss, total_ss=total_ss, n=n)
+
+
+class RowFactor:
+    """A triangular factor of rows that arrive in blocks (``R'R`` = their cross product).
+
+    Below ``GRAM_MIN_ROWS`` rows in all, each block is reduced by a QR and
+    the partial factors are stacked; from there on the blocks' cross
+    products are summed and the factor is their square root, as in
+    ``_linalg.ols``.  A block may be overwritten by :meth:`add`.
+    """
+
+    def __init__(self, width: int, n: int):
+        self.width = width
+        self.gram = n >= GRAM_MIN_ROWS
+        self.cross = np.zeros((width, width))
+        self.factors: list[np.ndarray] = []
+
+    def add(self, block: np.ndarray) -> None:
+        if self.gram:
+            self.cross += block.T @ block
+        elif len(block):
+            r = scipy.linalg.qr(block, mode="r", overwrite_a=True, check_finite=False)[0]
+            self.factors.append(r[: min(len(block), self.width)])
+
+    def r(self) -> np.ndarray:
+        if self.gram:
+            values, vectors = np.linalg.eigh(self.cross)
+            root = np.sqrt(np.clip(values, 0.0, None))[:, None] * vectors.T
+            return triangular(root, self.width)
+        rows = np.vstack(self.factors) if self.factors else np.zeros((0, self.width))
+        return triangular(rows, self.width)
 
 
 def triangular(rows: np.ndarray, width: int) -> np.ndarray:

@@ -18,6 +18,12 @@ Three pieces of evidence are computed:
 * the classical Hausman contrast between the within and random-effects
   slopes.
 
+Given the period codes, :func:`error_structure` adds the evidence on the
+errors themselves (``panelprep.dependence``): Wooldridge's test for serial
+correlation on first differences, the Born-Breitung LM test for serial
+correlation with entity effects, and Pesaran's CD test for dependence across
+entities, with what each means for standard errors.
+
 :func:`read_evidence` turns them into plain sentences and
 :func:`collect_evidence` runs the lot and returns a JSON-serialisable dict
 (Python floats, ``None`` with a note wherever a number is undefined, never NaN
@@ -38,6 +44,14 @@ from panelprep._groups import group_sums
 from panelprep._linalg import default_rtol, ols_from_r, sandwich
 from panelprep._moments import EntityMoments, entity_moments, triangular
 from panelprep._scale import standardise
+from panelprep.dependence import (
+    born_breitung_lm,
+    panel_steps,
+    pesaran_cd,
+    read_error_structure,
+    standard_error_advice,
+    wooldridge_serial,
+)
 from panelprep.transforms import theta_per_entity
 
 #: Significance level used by :func:`read_evidence`.
@@ -49,7 +63,8 @@ CAUTION = (
     "data were generated, and a large sample rejects tiny departures while a small one "
     "misses large ones. After the within transform, standard errors must be clustered "
     "by entity whenever the errors may be serially correlated; the conventional ones "
-    "are then too small."
+    "are then too small. Clustering by entity allows for serial correlation, not for "
+    "dependence across entities within a period."
 )
 
 # Relative eigenvalue tolerance of the generalised inverses, on matrices scaled
@@ -585,6 +600,18 @@ def hausman_test(
                     theta, names, _cache)
 
 
+def _within_fit(sample: _Sample, cache: dict | None):
+    """The time-varying columns and the within regression of y on them, once per ``cache``."""
+    def compute():
+        cols = np.flatnonzero(_shared(cache, "varying", lambda: _varying(sample)))
+        r = sample.moments.r_within
+        fit = ols_from_r(triangular(r[:, [*cols, sample.k]], len(cols) + 1), sample.n,
+                         scale=np.sqrt(sample.moments.total_ss[cols]))
+        return cols, fit
+
+    return _shared(cache, "within", compute)
+
+
 def _hausman(sample: _Sample, sigma2_entity: float, s2_e: float, theta, names, cache) -> dict:
     """:func:`hausman_test` on the standardised sample (variances in its units)."""
     n, k = sample.n, sample.k
@@ -619,10 +646,7 @@ def _hausman(sample: _Sample, sigma2_entity: float, s2_e: float, theta, names, c
         result["note"] = " ".join(notes)
         return result
 
-    cols = np.flatnonzero(varying)
-    r = sample.moments.r_within
-    fit_w = ols_from_r(triangular(r[:, [*cols, k]], len(cols) + 1), n,
-                       scale=np.sqrt(sample.moments.total_ss[cols]))
+    cols, fit_w = _within_fit(sample, cache)
     stack = _random_effects_stack(sample, theta_g, [])
     fit_q = _shared(cache, "random_effects", lambda: _fit_stack(stack, list(range(1 + k)), n))
     y_norm = float(np.linalg.norm(stack[:, -1]))
@@ -797,8 +821,43 @@ def read_evidence(evidence: dict[str, Any]) -> list[str]:
     else:
         choice = "no estimator in particular: the tests could not be computed"
     lines.append(f"Overall, the evidence points to {choice}.")
+    lines += read_error_structure(evidence, LEVEL)
     lines.append(CAUTION)
     return lines
+
+
+def error_structure(sample: _Sample, period_codes: np.ndarray,
+                    cache: dict | None = None) -> dict[str, dict[str, Any]]:
+    """Wooldridge, Born-Breitung and Pesaran CD tests (``dependence``) on the sample.
+
+    Wooldridge's test fits its own first-differenced regression; the other two
+    use the residuals of the within regression on the time-varying regressors
+    (:func:`_within_fit`), formed once.  When the within regression fits
+    exactly (residuals are rounding) those two are undefined, with a note.
+    """
+    periods = np.asarray(period_codes, dtype=np.int64)
+    if periods.shape != sample.codes.shape or (len(periods) and periods.min() < 0):
+        raise ValueError("period_codes must be non-negative codes, one per row of the sample")
+    steps = panel_steps(sample.codes, periods)
+    out = {"wooldridge": wooldridge_serial(sample.X, sample.y, sample.codes, steps)}
+    cols, fit = _within_fit(sample, cache)
+    n, k = sample.n, sample.k
+    if math.sqrt(fit.ssr) <= default_rtol(n, len(cols)) * math.sqrt(
+            float(sample.moments.within_ss[k])):
+        note = ("the within regression fits exactly (its residuals are rounding), so the "
+                "test is undefined")
+        lm = born_breitung_lm(np.zeros(n), sample.codes, sample.counts, steps)
+        cd = pesaran_cd(np.zeros(n), sample.codes, periods, sample.counts, steps.duplicated)
+        out["born_breitung"] = {**lm, "statistic": None, "p_value": None, "note": note}
+        out["pesaran_cd"] = {**cd, "statistic": None, "p_value": None, "note": note}
+        return out
+    slope = np.zeros(k)
+    slope[cols[fit.kept]] = fit.coef[fit.kept]
+    resid = sample.moments.within_residuals(sample.X, sample.y, slope)
+    out["born_breitung"] = born_breitung_lm(resid, sample.codes, sample.counts, steps)
+    out["pesaran_cd"] = pesaran_cd(resid, sample.codes, periods, sample.counts,
+                                   steps.duplicated)
+    return out
 
 
 def collect_evidence(
@@ -808,6 +867,7 @@ def collect_evidence(
     counts: np.ndarray,
     components: Any,
     names: Sequence[str],
+    period_codes: np.ndarray | None = None,
 ) -> dict[str, Any]:
     """Run all tests and return a JSON-serialisable summary.
 
@@ -818,14 +878,20 @@ def collect_evidence(
     components : object
         Fitted variance components with attributes ``sigma2_entity_``,
         ``sigma2_idiosyncratic_`` and ``theta_`` (scalar or per entity (G,)).
+    period_codes : int array (n,), optional
+        Period codes on the grid (consecutive codes are consecutive periods).
+        When given, the error-structure tests run too (:func:`error_structure`).
 
     Returns
     -------
     dict
         ``breusch_pagan, honda`` (:func:`entity_effect_lm` on the residuals of
         pooled OLS with a constant), ``mundlak`` (entity-clustered covariance),
-        ``hausman``, ``reading`` (:func:`read_evidence`) and ``caution``.  Numbers
-        are Python floats or ints; undefined ones are None with a note.
+        ``hausman``; with ``period_codes`` also ``wooldridge``,
+        ``born_breitung``, ``pesaran_cd`` and ``standard_errors`` (one sentence,
+        :func:`panelprep.dependence.standard_error_advice`); ``reading``
+        (:func:`read_evidence`) and ``caution``.  Numbers are Python floats or
+        ints; undefined ones are None with a note.
     """
     names = list(names)
     # every regression here has a constant (or the constant column 1 - theta_i)
@@ -845,6 +911,9 @@ def collect_evidence(
     )
     out["hausman"] = _hausman(sample, (sd_entity / sample.unit) ** 2,
                               (sd_idiosyncratic / sample.unit) ** 2, components.theta_, names, shared)
+    if period_codes is not None:
+        out.update(error_structure(sample, period_codes, shared))
+        out["standard_errors"] = standard_error_advice(out, LEVEL)
     out["reading"] = read_evidence(out)
     out["caution"] = CAUTION
     return out

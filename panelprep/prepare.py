@@ -308,8 +308,9 @@ def prepare_frame(
     summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
     summary["components"] = components.to_dict()
     if options.evidence:
-        progress("evidence on the entity effect")
-        summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x)
+        progress("evidence on the entity effect and the error structure")
+        summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x,
+                                               period_codes=sample_ix.period_codes)
     summary["transforms"] = outputs.info
     summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
     if summary["verdict"] == "fail":
