@@ -826,21 +826,53 @@ def read_evidence(evidence: dict[str, Any]) -> list[str]:
     return lines
 
 
-def error_structure(sample: _Sample, period_codes: np.ndarray,
-                    cache: dict | None = None) -> dict[str, dict[str, Any]]:
-    """Wooldridge, Born-Breitung and Pesaran CD tests (``dependence``) on the sample.
+def error_structure(
+    y: np.ndarray,
+    X: np.ndarray,
+    entity_codes: np.ndarray,
+    counts: np.ndarray,
+    period_codes: np.ndarray,
+    _cache: dict | None = None,
+) -> dict[str, dict[str, Any]]:
+    """Wooldridge, Born-Breitung and Pesaran CD tests (``panelprep.dependence``) on the sample.
 
     Wooldridge's test fits its own first-differenced regression; the other two
-    use the residuals of the within regression on the time-varying regressors
-    (:func:`_within_fit`), formed once.  When the within regression fits
-    exactly (residuals are rounding) those two are undefined, with a note.
+    use the residuals of the within regression of y on the time-varying
+    regressors (:func:`_within_fit`), formed once.  When the within regression
+    fits exactly (residuals are rounding) those two are undefined, with a note.
+
+    Parameters
+    ----------
+    y, X, entity_codes, counts
+        Estimation sample (see the module docstring).
+    period_codes : int array (n,)
+        Period codes on the grid, non-negative; consecutive codes are
+        consecutive periods, so a hole in an entity's codes is a gap.
+
+    Returns
+    -------
+    dict
+        ``wooldridge`` (:func:`~panelprep.dependence.wooldridge_serial`),
+        ``born_breitung`` (:func:`~panelprep.dependence.born_breitung_lm`),
+        ``pesaran_cd`` (:func:`~panelprep.dependence.pesaran_cd`).
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> entity, period = np.repeat(np.arange(30), 6), np.tile(np.arange(6), 30)
+    >>> x = rng.normal(size=(180, 1))
+    >>> y = x[:, 0] + rng.normal(size=30)[entity] + rng.normal(size=180)
+    >>> out = error_structure(y, x, entity, np.bincount(entity), period)
+    >>> sorted(out), out["pesaran_cd"]["pairs"]
+    (['born_breitung', 'pesaran_cd', 'wooldridge'], 435)
     """
+    sample = _sample_of(y, X, entity_codes, counts, _cache)
     periods = np.asarray(period_codes, dtype=np.int64)
     if periods.shape != sample.codes.shape or (len(periods) and periods.min() < 0):
         raise ValueError("period_codes must be non-negative codes, one per row of the sample")
     steps = panel_steps(sample.codes, periods)
     out = {"wooldridge": wooldridge_serial(sample.X, sample.y, sample.codes, steps)}
-    cols, fit = _within_fit(sample, cache)
+    cols, fit = _within_fit(sample, _cache)
     n, k = sample.n, sample.k
     if math.sqrt(fit.ssr) <= default_rtol(n, len(cols)) * math.sqrt(
             float(sample.moments.within_ss[k])):
@@ -912,7 +944,7 @@ def collect_evidence(
     out["hausman"] = _hausman(sample, (sd_entity / sample.unit) ** 2,
                               (sd_idiosyncratic / sample.unit) ** 2, components.theta_, names, shared)
     if period_codes is not None:
-        out.update(error_structure(sample, period_codes, shared))
+        out.update(error_structure(y, X, entity_codes, counts, period_codes, _cache=shared))
         out["standard_errors"] = standard_error_advice(out, LEVEL)
     out["reading"] = read_evidence(out)
     out["caution"] = CAUTION
