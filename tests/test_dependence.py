@@ -17,7 +17,6 @@ from types import SimpleNamespace
 import numpy as np
 import pandas as pd
 import pytest
-import scipy.stats
 import statsmodels.api as sm
 
 from panelprep import dependence
