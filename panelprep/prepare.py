@@ -313,6 +313,9 @@ def prepare_frame(
                                                period_codes=sample_ix.period_codes)
     summary["transforms"] = outputs.info
     summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
+    if summary.get("evidence", {}).get("standard_errors"):
+        # what the error-structure tests of this run say, beside the general advice
+        summary["cautions"].append(summary["evidence"]["standard_errors"])
     if summary["verdict"] == "fail":
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
