@@ -45,7 +45,7 @@ Keys
 | `output.method` | `swamy-arora`, `wallace-hussain`, `amemiya`, `nerlove` | `swamy-arora` | variance components for theta |
 | `output.format` | `parquet`, `csv` | `parquet` | format of the data files |
 | `output.force` | bool | `false` | replace a non-empty output folder |
-| `output.evidence` | bool | `true` | compute the entity-effect and correlated-effects tests |
+| `output.evidence` | bool | `true` | compute the entity-effect, correlated-effects, serial-correlation and cross-sectional dependence tests |
 | `names.row` | text | `pp_row` | column of every row-level file holding each row's input row (from 1) |
 | `names.intercept` | text | `pp_intercept` | quasi file: the 1 - theta column that stands in for the constant |
 | `names.theta` | text | `pp_theta` | quasi file: theta of the row's entity |
