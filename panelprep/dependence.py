@@ -482,6 +482,52 @@ def _rejects(block: dict[str, Any] | None, level: float) -> bool | None:
     return bool(block["p_value"] < level)
 
 
+def _wooldridge_sentence(block: dict[str, Any], rejects: bool, pct: str) -> str:
+    delta = block["coefficient"]
+    head = (f"Wooldridge's test on first differences: coefficient {_fmt(delta)} against "
+            f"-0.5 without serial correlation (F = {_fmt(block['statistic'])} on 1 and "
+            f"{block['df_denominator']} df, p = {_fmt(block['p_value'])}, entity-clustered)")
+    if rejects:
+        return (head + f": at the {pct} level the idiosyncratic errors look serially "
+                f"correlated (for AR(1) errors the coefficient is -(1 - rho)/2, so rho would be "
+                f"about {_fmt(1.0 + 2.0 * delta)}). A coefficient near 0 would mean errors close "
+                "to a random walk, for which first differences is more efficient than the "
+                "within transform.")
+    return (head + f": at the {pct} level there is no evidence of first-order serial "
+            "correlation in the idiosyncratic errors.")
+
+
+def _born_breitung_sentence(block: dict[str, Any], rejects: bool, pct: str) -> str:
+    head = (f"Born-Breitung LM = {_fmt(block['statistic'])} (two-sided p = "
+            f"{_fmt(block['p_value'])}, {block['basis']})")
+    if rejects:
+        sign = "positive" if block["statistic"] > 0 else "negative"
+        return (head + f": at the {pct} level there is evidence of {sign} first-order serial "
+                "correlation given entity effects.")
+    return (head + f": at the {pct} level there is no evidence of first-order serial "
+            "correlation given entity effects (the test assumes a variance constant over "
+            "time within each entity).")
+
+
+def _cd_sentence(block: dict[str, Any], rejects: bool, pct: str) -> str:
+    head = (f"Pesaran CD = {_fmt(block['statistic'])} over {block['basis']}, mean pairwise "
+            f"correlation {_fmt(block['mean_correlation'])} (two-sided p = "
+            f"{_fmt(block['p_value'])})")
+    if rejects:
+        return (head + f": at the {pct} level the residuals of different entities move "
+                "together within periods (cross-sectional dependence).")
+    return (head + f": at the {pct} level there is no evidence of cross-sectional dependence "
+            "(CD has little power when correlations of both signs cancel out).")
+
+
+# each block: its key, its name when unavailable, its sentence
+_READERS = (
+    ("wooldridge", "Wooldridge's serial-correlation test", _wooldridge_sentence),
+    ("born_breitung", "The Born-Breitung LM test", _born_breitung_sentence),
+    ("pesaran_cd", "Pesaran's CD test", _cd_sentence),
+)
+
+
 def read_error_structure(evidence: dict[str, Any], level: float) -> list[str]:
     """Plain sentences on the three error-structure tests, at ``level``, and what they mean.
 
@@ -491,56 +537,15 @@ def read_error_structure(evidence: dict[str, Any], level: float) -> list[str]:
     """
     pct = f"{level:.0%}"
     lines: list[str] = []
-    wool = evidence.get("wooldridge")
-    if wool is not None:
-        verdict = _rejects(wool, level)
-        if verdict is None:
-            lines.append(f"Wooldridge's serial-correlation test is unavailable ({wool['note']}).")
+    for key, name, sentence in _READERS:
+        block = evidence.get(key)
+        if block is None:
+            continue
+        rejects = _rejects(block, level)
+        if rejects is None:
+            lines.append(f"{name} is unavailable ({block.get('note') or 'not computed'}).")
         else:
-            delta = wool["coefficient"]
-            head = (f"Wooldridge's test on first differences: coefficient {_fmt(delta)} against "
-                    f"-0.5 without serial correlation (F = {_fmt(wool['statistic'])} on 1 and "
-                    f"{wool['df_denominator']} df, p = {_fmt(wool['p_value'])}, "
-                    "entity-clustered)")
-            if verdict:
-                lines.append(
-                    head + f": at the {pct} level the idiosyncratic errors look serially "
-                    f"correlated (for AR(1) errors the coefficient is -(1 - rho)/2, so rho "
-                    f"would be about {_fmt(1.0 + 2.0 * delta)}). A coefficient near 0 would mean "
-                    "errors close to a random walk, for which first differences is more "
-                    "efficient than the within transform.")
-            else:
-                lines.append(head + f": at the {pct} level there is no evidence of first-order "
-                             "serial correlation in the idiosyncratic errors.")
-    bb = evidence.get("born_breitung")
-    if bb is not None:
-        verdict = _rejects(bb, level)
-        if verdict is None:
-            lines.append(f"The Born-Breitung LM test is unavailable ({bb['note']}).")
-        else:
-            head = (f"Born-Breitung LM = {_fmt(bb['statistic'])} (two-sided p = "
-                    f"{_fmt(bb['p_value'])}, {bb['basis']})")
-            sign = "positive" if bb["statistic"] > 0 else "negative"
-            lines.append(head + (
-                f": at the {pct} level there is evidence of {sign} first-order serial "
-                "correlation given entity effects." if verdict else
-                f": at the {pct} level there is no evidence of first-order serial correlation "
-                "given entity effects (the test assumes a variance constant over time "
-                "within each entity)."))
-    cd = evidence.get("pesaran_cd")
-    if cd is not None:
-        verdict = _rejects(cd, level)
-        if verdict is None:
-            lines.append(f"Pesaran's CD test is unavailable ({cd['note']}).")
-        else:
-            head = (f"Pesaran CD = {_fmt(cd['statistic'])} over {cd['basis']}, mean pairwise "
-                    f"correlation {_fmt(cd['mean_correlation'])} (two-sided p = "
-                    f"{_fmt(cd['p_value'])})")
-            lines.append(head + (
-                f": at the {pct} level the residuals of different entities move together "
-                "within periods (cross-sectional dependence)." if verdict else
-                f": at the {pct} level there is no evidence of cross-sectional dependence "
-                "(CD has little power when correlations of both signs cancel out)."))
+            lines.append(sentence(block, rejects, pct))
     advice = standard_error_advice(evidence, level)
     if advice:
         lines.append(advice)

@@ -370,3 +370,50 @@ def test_reading_of_outcomes_for_standard_errors(w_p, cd_p, serial, dependent):
     assert lines[-1] == advice
     assert len(lines) == 4
     assert standard_error_advice({}, 0.05) is None
+
+
+# --- through prepare: JSON, text log and HTML report -------------------------------
+
+
+def test_prepare_writes_the_three_tests_on_grunfeld(tmp_path):
+    from statsmodels.datasets import grunfeld
+
+    from panelprep.prepare import prepare
+
+    frame = grunfeld.load_pandas().data
+    frame = frame[frame["firm"] != "American Steel"].reset_index(drop=True)
+    frame["year"] = frame["year"].astype(np.int64)
+    # a hole: drop one firm-year, so a difference across it must not be formed
+    frame = frame.drop(index=frame.index[(frame["firm"] == "Chrysler")
+                                         & (frame["year"] == 1945)])
+    data = tmp_path / "grunfeld.csv"
+    frame[["firm", "year", "invest", "value", "capital"]].to_csv(data, index=False)
+    prep = prepare(data, tmp_path / "out", entity="firm", time="year", y="invest",
+                   x=["value", "capital"], transforms="within")
+    assert prep.verdict == "pass"
+    summary = json.loads((tmp_path / "out" / "diagnostics.json").read_text(encoding="utf-8"))
+    evidence = summary["evidence"]
+    entity = pd.factorize(frame["firm"], sort=True)[0]
+    period = (frame["year"] - frame["year"].min()).to_numpy()
+    y = frame["invest"].to_numpy(float)
+    X = frame[["value", "capital"]].to_numpy(float)
+    # Wooldridge: statsmodels cluster OLS on the explicit regressions (merge-built lags)
+    aux, n_diff, n_pairs, _ = _statsmodels_wooldridge(y, X, entity, period)
+    assert evidence["wooldridge"]["differences"] == n_diff == 200 - 10 - 2
+    assert evidence["wooldridge"]["pairs"] == n_pairs
+    assert evidence["wooldridge"]["coefficient"] == pytest.approx(aux.params[0], rel=1e-8)
+    # CD: statsmodels LSDV residuals, numpy loop over the 45 pairs
+    dummies = (entity[:, None] == np.arange(10)[None, :]).astype(float)
+    resid = sm.OLS(y, np.column_stack([X, dummies])).fit().resid
+    expected, pairs, _ = _loop_cd(resid, entity, period)
+    assert evidence["pesaran_cd"]["pairs"] == pairs == 45
+    assert evidence["pesaran_cd"]["method"] == "pairs over common periods"
+    assert evidence["pesaran_cd"]["statistic"] == pytest.approx(expected, rel=1e-8)
+    assert evidence["born_breitung"]["statistic"] is not None
+    assert evidence["standard_errors"] in summary["cautions"]
+    text = (tmp_path / "out" / "diagnostics.txt").read_text(encoding="utf-8")
+    assert "Wooldridge's test on first differences" in text and "Pesaran CD = " in text
+    assert "Born-Breitung LM = " in text
+    html = (tmp_path / "out" / "report.html").read_text(encoding="utf-8")
+    assert "Wooldridge serial correlation (F)" in html and "Pesaran CD cross-sectional" in html
+    assert f"1, {evidence['wooldridge']['df_denominator']}" in html
