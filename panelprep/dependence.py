@@ -31,6 +31,7 @@ with a ``note`` wherever a number is undefined, never NaN or infinity.
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -58,6 +59,10 @@ CD_MAX_PAIR_WORK = 250_000_000
 # the average squared residual (per row) is treated as constant: its
 # correlations are undefined.  sqrt(eps)^2 = eps, the rounding floor of a sum.
 _CONSTANT_SHARE = float(np.finfo(np.float64).eps) * 64
+
+# Cells (entities x periods) of one dense block in the pair computation of CD:
+# 2^21 cells are 16 MiB per block.
+_CD_BLOCK_CELLS = 1 << 21
 
 _UNDEFINED_ORDER = ("two rows share an entity and a period, so consecutive periods are "
                     "ambiguous and the test is undefined")
@@ -345,6 +350,8 @@ def pesaran_cd(resid: np.ndarray, entity_codes: np.ndarray, period_codes: np.nda
       the most rows (ties to the lower code).  With more entities, CD is that
       of the subset, which is still a valid test of the null of no
       dependence, with less power; ``entities`` and ``entity_cap`` say so.
+      The blocks span as many periods as keep them within 2^21 cells, so
+      memory stays bounded however many periods there are.
 
     Parameters
     ----------
@@ -423,6 +430,38 @@ def _cd_balanced(e, codes, periods, counts, n_periods, keys) -> tuple[float, int
     return math.sqrt(common) * rho_sum, pairs
 
 
+def _common_period_sums(values: np.ndarray, who: np.ndarray, periods: np.ndarray,
+                        g: int) -> tuple[np.ndarray, ...]:
+    """For every pair (i, j) of ``g`` entities, sums over the periods both are seen in.
+
+    Returns ``(T_ij, sum e_i, sum e_i^2, sum e_i e_j)`` as (g, g) arrays, the
+    second and third over the periods i shares with j.  They are products of
+    dense (entities x periods) blocks of presence, residual and squared
+    residual, taken over blocks of at most ``_CD_BLOCK_CELLS // g`` periods so
+    that no block outgrows that many cells.
+    """
+    order = np.argsort(periods, kind="stable")
+    who, values = who[order], values[order]
+    distinct, column = np.unique(periods[order], return_inverse=True)
+    step = max(1, _CD_BLOCK_CELLS // max(g, 1))
+    bounds = np.searchsorted(column, np.arange(0, len(distinct) + step, step))
+    common, sums, squares, cross = (np.zeros((g, g)) for _ in range(4))
+    for lo, hi in itertools.pairwise(bounds):
+        if lo == hi:
+            continue
+        first = column[lo]
+        width = int(column[hi - 1] - first) + 1
+        present = np.zeros((g, width))
+        level = np.zeros((g, width))
+        present[who[lo:hi], column[lo:hi] - first] = 1.0
+        level[who[lo:hi], column[lo:hi] - first] = values[lo:hi]
+        common += present @ present.T
+        sums += level @ present.T        # sums[i, j]: e_i summed over periods shared with j
+        squares += (level * level) @ present.T
+        cross += level @ level.T
+    return common, sums, squares, cross
+
+
 def _cd_pairs(e, codes, periods, counts, n_present, keys) -> tuple[float, int]:
     """Sum of ``sqrt(T_ij) rho_ij`` and the pair count, pair by pair over common periods."""
     n_groups = len(counts)
@@ -438,22 +477,9 @@ def _cd_pairs(e, codes, periods, counts, n_present, keys) -> tuple[float, int]:
     slot[chosen] = np.arange(len(chosen))
     rows = np.flatnonzero(slot[codes] >= 0)
     who = slot[codes[rows]]
-    # the periods these entities are seen in, numbered densely
-    distinct, column = np.unique(periods[rows], return_inverse=True)
-    width = len(distinct)
     g = len(chosen)
     keys["entities"] = g
-    values = e[rows]
-    # entities x periods blocks: presence, residual and squared residual
-    present = np.zeros((g, width))
-    level = np.zeros((g, width))
-    present[who, column] = 1.0
-    level[who, column] = values
-    square = level * level
-    common = present @ present.T
-    sums = level @ present.T            # sums[i, j]: sum of e_i over the periods i shares with j
-    squares = square @ present.T
-    cross = level @ level.T
+    common, sums, squares, cross = _common_period_sums(e[rows], who, periods[rows], g)
     safe = np.where(common > 0, common, 1.0)
     centred_cross = cross - sums * sums.T / safe
     ss_i = squares - sums * sums / safe
@@ -466,7 +492,6 @@ def _cd_pairs(e, codes, periods, counts, n_present, keys) -> tuple[float, int]:
     rho = centred_cross[use] / np.sqrt(ss_i[use] * ss_i.T[use])
     keys["mean_correlation"] = float(rho.mean())
     return float(np.sum(np.sqrt(common[use]) * rho)), pairs
-
 
 
 # ------------------------------------------------------------------ reading

@@ -201,8 +201,11 @@ def _loop_cd(resid, entity, period, min_common=3):
     return total / math.sqrt(pairs), pairs, float(np.mean(rhos))
 
 
-@pytest.mark.parametrize("hole_share", [0.0, 0.3])
-def test_cd_matches_a_loop_over_pairs(hole_share):
+@pytest.mark.parametrize(("hole_share", "block_cells"), [(0.0, None), (0.3, None), (0.3, 40)])
+def test_cd_matches_a_loop_over_pairs(hole_share, block_cells, monkeypatch):
+    if block_cells is not None:
+        # blocks of 2 periods for 15 entities: the sums run over several period blocks
+        monkeypatch.setattr(dependence, "_CD_BLOCK_CELLS", block_cells)
     rng = np.random.default_rng(21)
     n_entities, n_periods = 15, 9
     entity = np.repeat(np.arange(n_entities), n_periods)
