@@ -193,8 +193,8 @@ def wooldridge_serial(Z: np.ndarray, z: np.ndarray, entity_codes: np.ndarray,
                      f"(from {len(at):,} differences)")
     lag_ss = float(before @ before)
     if m < 2 or n_clusters < 2 or not lag_ss > 0:
-        return _missing(keys, "fewer than two entities with three consecutive periods, so "
-                              "the test is undefined")
+        return _missing(keys, "fewer than two entities have three consecutive periods (one "
+                              "step of the period grid apart), so the test is undefined")
     delta = float(before @ now) / lag_ss
     scores = group_sums(cluster, before * (now - delta * before), n_clusters)[:, None]
     variance = float(sandwich(scores, np.array([[1.0 / lag_ss]]), m, n_clusters)[0, 0])
@@ -311,8 +311,8 @@ def born_breitung_lm(within_resid: np.ndarray, entity_codes: np.ndarray, counts:
                 basis=f"{len(at):,} pairs of consecutive periods in {with_pairs:,} entities")
     spread = float(s @ s)
     if not spread > 0:
-        return _missing(keys, "no entity has two consecutive periods with residual variation, "
-                              "so the test is undefined")
+        return _missing(keys, "no entity has two consecutive periods (one step of the period "
+                              "grid apart) with residual variation, so the test is undefined")
     statistic = float(s.sum()) / math.sqrt(spread)
     return {**keys, "statistic": statistic,
             "p_value": float(2.0 * scipy.stats.norm.sf(abs(statistic))), "note": None}
