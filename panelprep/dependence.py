@@ -57,7 +57,7 @@ CD_MAX_PAIR_WORK = 250_000_000
 
 # A residual series whose sum of squares about its mean is below this share of
 # the average squared residual (per row) is treated as constant: its
-# correlations are undefined.  sqrt(eps)^2 = eps, the rounding floor of a sum.
+# correlations are undefined.  64 eps: a few units of rounding in a sum of squares.
 _CONSTANT_SHARE = float(np.finfo(np.float64).eps) * 64
 
 # Cells (entities x periods) of one dense block in the pair computation of CD:
