@@ -271,7 +271,8 @@ def born_breitung_lm(within_resid: np.ndarray, entity_codes: np.ndarray, counts:
 
     is the self-normalised (robust) form, valid when the error variance
     differs across entities but is constant over time within each.  Entities
-    with one row contribute nothing.  The two-sided p-value is reported.
+    with one row contribute nothing; at least two entities with a pair are
+    needed.  The two-sided p-value is reported.
     The formula is written from memory of the paper; its unbalanced and
     gapped form above is derived here from the same moment condition.
 
@@ -310,9 +311,10 @@ def born_breitung_lm(within_resid: np.ndarray, entity_codes: np.ndarray, counts:
     keys.update(pairs=len(at), entities=with_pairs,
                 basis=f"{len(at):,} pairs of consecutive periods in {with_pairs:,} entities")
     spread = float(s @ s)
-    if not spread > 0:
-        return _missing(keys, "no entity has two consecutive periods (one step of the period "
-                              "grid apart) with residual variation, so the test is undefined")
+    if with_pairs < 2 or not spread > 0:
+        return _missing(keys, "fewer than two entities have two consecutive periods (one step "
+                              "of the period grid apart) with residual variation, so the test "
+                              "is undefined")
     statistic = float(s.sum()) / math.sqrt(spread)
     return {**keys, "statistic": statistic,
             "p_value": float(2.0 * scipy.stats.norm.sf(abs(statistic))), "note": None}

@@ -312,6 +312,16 @@ def test_duplicated_cells_give_notes():
     _no_nan(out)
 
 
+def test_one_entity_gives_notes_not_a_statistic():
+    rng = np.random.default_rng(3)
+    entity, period = np.zeros(8, dtype=np.int64), np.arange(8)
+    out = error_structure(rng.normal(size=8), rng.normal(size=(8, 1)), entity,
+                          np.bincount(entity), period)
+    for key in ("wooldridge", "born_breitung", "pesaran_cd"):
+        assert out[key]["statistic"] is None and out[key]["note"], key
+    _no_nan(out)
+
+
 def test_two_periods_and_exact_fit_give_notes_not_nan():
     entity = np.repeat(np.arange(10), 2)
     period = np.tile(np.arange(2), 10)
