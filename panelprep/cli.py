@@ -81,6 +81,17 @@ def _read_options(input_format, delimiter, decimal_comma, missing_token) -> Read
     )
 
 
+def _check_data(path: Path | None) -> None:
+    """Refuse a missing or unreadable data file before the flow's heavy imports."""
+    from panelprep._paths import check_readable
+
+    if path is not None:
+        try:
+            check_readable(path)
+        except InputError as err:
+            _unusable(str(err))
+
+
 def _unusable(message: str) -> None:
     typer.echo(f"panelprep: error: {message}", err=True)
     raise typer.Exit(EXIT_UNUSABLE)
@@ -103,8 +114,9 @@ def audit_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Check a panel's structure and gate on what is found."""
+    _check_data(data)
     from panelprep import pipeline
-    from panelprep.report.text import audit_lines
+    from panelprep.report.text import audit_lines, closing_lines
     try:
         _check_reports([report, report_html], data)
         result = pipeline.audit_file(
@@ -120,7 +132,9 @@ def audit_command(
             _write_html(report_html, document, result, data)
     except InputError as err:
         _unusable(str(err))
-    typer.echo("\n".join(audit_lines(document)))
+    written = [(what, str(path)) for what, path in (("the JSON report", report),
+                                                     ("the HTML report", report_html)) if path]
+    typer.echo("\n".join(audit_lines(document) + closing_lines(document, written)))
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 
@@ -159,6 +173,7 @@ def prepare_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Clean, audit, then write estimation-ready files with provenance into --out."""
+    _check_data(data)
     from panelprep import pipeline
     from panelprep.config import RunFile, load_run_file
     from panelprep.prepare import run_from_file
@@ -208,10 +223,9 @@ def demo_command(
                f"{sum(planted['missing_cells'].values())} missing cells")
     typer.echo(f"run file: {folder / 'run.toml'}")
     typer.echo("")
-    _print_preparation(result, folder / "out")
-    typer.echo("")
-    typer.echo(f"read {result.written_to / 'diagnostics.txt'} top to bottom; rerun with: "
-               f"panelprep prepare --config {folder / 'run.toml'} --force")
+    _print_preparation(result, folder / "out",
+                       f"read {result.written_to / 'diagnostics.txt'} top to bottom; rerun with: "
+                       f"panelprep prepare --config {folder / 'run.toml'} --force")
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 
@@ -270,8 +284,9 @@ def draft_command(
                f"panelprep prepare --config {out}", err=True)
 
 
-def _print_preparation(result, out: Path) -> None:
-    from panelprep.report.text import audit_lines, components_lines
+def _print_preparation(result, out: Path, note: str = "") -> None:
+    """The audit, the components, where the files went, ``note``, and the verdict line last."""
+    from panelprep.report.text import audit_lines, components_lines, verdict_line
 
     summary = result.summary
     typer.echo("\n".join(audit_lines(summary)))
@@ -282,6 +297,9 @@ def _print_preparation(result, out: Path) -> None:
     names = ", ".join(f["name"] for f in summary.get("files", [])) or "diagnostics only"
     typer.echo(f"written to {result.written_to}: {names}, diagnostics.json, diagnostics.txt, "
                "report.html")
+    if note:
+        typer.echo(note)
+    typer.echo(verdict_line(summary))
     if result.verdict == "fail":
         failing = ", ".join(dict.fromkeys(f["id"] for f in summary["findings"]
                                           if _fails(f["severity"], summary)))
@@ -311,6 +329,7 @@ def components_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Print only the variance components of the estimation sample."""
+    _check_data(data)
     from panelprep import pipeline
     from panelprep.prepare import estimate_file_components
     from panelprep.report.text import components_lines

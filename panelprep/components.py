@@ -32,6 +32,7 @@ from panelprep._groups import group_sums
 from panelprep._linalg import OlsFit, ols
 from panelprep._scale import standardise
 from panelprep.transforms import theta_per_entity, within
+from panelprep.words import plural
 
 METHODS = ("swamy-arora", "wallace-hussain", "amemiya", "nerlove")
 # every finding id the estimators emit (a run file may set their severity)
@@ -398,7 +399,7 @@ class VarianceComponents:
                 _finding(
                     "regressor-dropped-within",
                     "warning",
-                    f"{len(fit.dropped)} regressor(s) with no within variation or collinear "
+                    f"{plural(len(fit.dropped), 'regressor')} with no within variation or collinear "
                     f"after the within transform, left out of the within regression{note}",
                     fit.dropped,
                 )
@@ -433,7 +434,7 @@ class VarianceComponents:
                 _finding(
                     "regressor-dropped-between",
                     "warning",
-                    f"{len(fb.dropped)} column(s) collinear in the between regression on "
+                    f"{plural(len(fb.dropped), 'column')} collinear in the between regression on "
                     "entity means, left out of it",
                     fb.dropped,
                 )
@@ -495,7 +496,7 @@ class VarianceComponents:
                 _finding(
                     "regressor-dropped-pooled",
                     "warning",
-                    f"{len(fp.dropped)} column(s) collinear in the pooled regression, left out",
+                    f"{plural(len(fp.dropped), 'column')} collinear in the pooled regression, left out",
                     fp.dropped,
                 )
             )
@@ -595,6 +596,9 @@ class VarianceComponents:
                 "min": float(theta.min()) if theta.size else 0.0,
                 "median": float(np.median(theta)) if theta.size else 0.0,
                 "max": float(theta.max()) if theta.size else 0.0,
+                # the spread of the weight over entities (numpy's linear quantiles)
+                **{f"p{q}": float(np.quantile(theta, q / 100)) if theta.size else 0.0
+                   for q in (10, 25, 75, 90)},
             },
             "truncated_negative": self.truncated_negative_,
             "raw_sigma2_entity": _finite(self.raw_sigma2_entity_),

@@ -38,7 +38,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import scipy.stats
 
 from panelprep._groups import group_sums
 from panelprep._linalg import default_rtol, ols_from_r, sandwich
@@ -53,6 +52,7 @@ from panelprep.dependence import (
     wooldridge_serial,
 )
 from panelprep.transforms import theta_per_entity
+from panelprep.words import p_phrase, plural
 
 #: Significance level used by :func:`read_evidence`.
 LEVEL = 0.05
@@ -179,7 +179,17 @@ def _varying(sample: _Sample) -> np.ndarray:
 
 
 def _p_chi2(statistic: float, df: int) -> float:
-    return float(scipy.stats.chi2.sf(statistic, df))
+    """Upper tail of chi2(df): ``chdtrc``, the function ``scipy.stats.chi2.sf`` calls."""
+    import scipy.special  # here, not at import: scipy.stats alone costs about 0.6 s
+
+    return float(scipy.special.chdtrc(df, statistic))
+
+
+def _p_normal_upper(statistic: float) -> float:
+    """Upper tail of the standard normal: ``ndtr(-z)``, as ``scipy.stats.norm.sf`` computes it."""
+    import scipy.special
+
+    return float(scipy.special.ndtr(-statistic))
 
 
 def _entity_theta(theta: float | np.ndarray, n_groups: int) -> np.ndarray:
@@ -375,7 +385,7 @@ def _lm_from_sums(sums: np.ndarray, ssr: float, n: int, pairs: float) -> dict[st
         "breusch_pagan": {"statistic": lm, "df": 1, "p_value": _p_chi2(lm, 1), "note": None},
         "honda": {
             "statistic": honda,
-            "p_value": float(scipy.stats.norm.sf(honda)),
+            "p_value": _p_normal_upper(honda),
             "note": None,
         },
     }
@@ -657,7 +667,7 @@ def _hausman(sample: _Sample, sigma2_entity: float, s2_e: float, theta, names, c
     # Contrast over columns estimable in both fits.
     use = fit_w.kept & fit_q.kept[1 + cols]
     if not use.all():
-        notes.append(f"{int(np.count_nonzero(~use))} collinear regressor(s) left out.")
+        notes.append(f"{plural(int(np.count_nonzero(~use)), 'collinear regressor')} left out.")
     if not use.any():
         notes.append("No estimable slope to contrast.")
         result["note"] = " ".join(notes)
@@ -697,7 +707,8 @@ def _verdict(block: dict[str, Any] | None) -> bool | None:
 
 
 def _fmt(value: float) -> str:
-    return f"{value:.4g}"
+    # a statistic of thousands keeps its digits: 14142.1, not 1.414e+04
+    return f"{value:.1f}" if 1e3 <= abs(value) < 1e9 else f"{value:.4g}"
 
 
 def read_evidence(evidence: dict[str, Any]) -> list[str]:
@@ -742,10 +753,10 @@ def read_evidence(evidence: dict[str, Any]) -> list[str]:
         effects = bool(bp_v or honda_v)
         parts = []
         if bp_v is not None:
-            parts.append(f"Breusch-Pagan LM = {_fmt(bp['statistic'])} (p = {_fmt(bp['p_value'])})")
+            parts.append(f"Breusch-Pagan LM = {_fmt(bp['statistic'])} ({p_phrase(bp['p_value'])})")
         if honda_v is not None:
             parts.append(
-                f"Honda = {_fmt(honda['statistic'])} (one-sided p = {_fmt(honda['p_value'])})"
+                f"Honda = {_fmt(honda['statistic'])} ({p_phrase(honda['p_value'], 'one-sided p')})"
             )
         if effects:
             tail = (
@@ -771,7 +782,7 @@ def read_evidence(evidence: dict[str, Any]) -> list[str]:
             continue
         head = (
             f"{label} statistic = {_fmt(block['statistic'])} on {block['df']} df "
-            f"(p = {_fmt(block['p_value'])}"
+            f"({p_phrase(block['p_value'])}"
             + (f", {block['covariance']} covariance" if "covariance" in block else "")
             + ")"
         )

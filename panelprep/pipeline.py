@@ -37,6 +37,7 @@ from panelprep.io import (
     read_frame,
     sha256_file,
 )
+from panelprep.words import plural
 
 Progress = Callable[[str], None]
 
@@ -309,13 +310,19 @@ def _skipped_columns(frame: pd.DataFrame, keys: list[str], chosen: list[str]) ->
         return None
     comma = [c for c in skipped if looks_numeric(frame[c], decimal_comma=True)]
     if comma:
-        message = (f"{len(skipped)} column(s) not checked because they are not numbers as read; "
+        they = "it is" if len(skipped) == 1 else "they are"
+        message = (f"{plural(len(skipped), 'column')} not checked because {they} not numbers "
+                   "as read; "
                    f"{', '.join(comma)} look like numbers with decimal commas "
                    "(try --decimal-comma, or name the variables with --vars)")
     else:
         empty = [c for c in skipped if frame[c].isna().all()]
         held = "hold no value at all" if len(empty) == len(skipped) else "hold text"
-        message = (f"{len(skipped)} column(s) not checked because they {held}: "
+        if len(skipped) == 1:
+            held = held.replace("hold", "it holds", 1)
+        else:
+            held = "they " + held
+        message = (f"{plural(len(skipped), 'column')} not checked because {held}: "
                    f"{', '.join(skipped[:10])} (name variables with --vars to check them)")
     return Finding(id=SKIPPED_COLUMNS_ID, severity="warning" if comma else "info",
                    count=len(skipped), message=message,

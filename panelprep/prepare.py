@@ -40,7 +40,7 @@ from panelprep.components import METHODS, VarianceComponents
 from panelprep.config import RunFile
 from panelprep.errors import InputError
 from panelprep.evidence import collect_evidence
-from panelprep.figures import picture_data
+from panelprep.figures import missing_picture, picture_data
 from panelprep.findings import Finding, apply_severities, gate
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
@@ -57,6 +57,7 @@ from panelprep.io import (
 from panelprep.lags import Shift, add_shifts, parse_shifts
 from panelprep.ledger import Ledger, StepRecord, require_rows
 from panelprep.names import (
+    MEANINGS,
     ROLE_AUXILIARY,
     ROLE_INTERCEPT,
     ROLE_KEY,
@@ -408,7 +409,9 @@ class OutputTables:
         roles = {**{c: ROLE_KEY for c in [*opts.entity, opts.time]}, opts.y: ROLE_RESPONSE,
                  **{c: ROLE_REGRESSOR for c in opts.x}, added.intercept: ROLE_INTERCEPT,
                  added.entity_rows: ROLE_WEIGHT}
-        return [{"name": c, "role": roles.get(c, ROLE_AUXILIARY)} for c in columns]
+        meanings = {getattr(added, field): text for field, text in MEANINGS.items()}
+        return [{"name": c, "role": roles.get(c, ROLE_AUXILIARY),
+                 **({"meaning": meanings[c]} if c in meanings else {})} for c in columns]
 
     def _arrow(self, name: str) -> pa.Table:
         codes, names, values = self.index.entity_codes, self.options.variables, self.values
@@ -600,9 +603,9 @@ def _cautions(info: dict, components: VarianceComponents, index: PanelIndex,
         )
     if "quasi" in info:
         out.append(
-            "OLS on the quasi file gives random-effects (feasible GLS) slopes; keep the "
-            f"{names.intercept} column as the regressor for the intercept and fit without an "
-            "added constant."
+            "OLS on the quasi file gives random-effects (feasible GLS) slopes when "
+            f"{names.intercept} (1 - theta_i) takes the place of the constant: regress on it and "
+            "the other regressors only, with no column of ones of your own beside it."
         )
     if info:
         out.append(
@@ -779,10 +782,12 @@ def _write_text(path: Path, text: str) -> None:
 
 def pictures_of(prep: Preparation) -> dict[str, Any]:
     """The data behind the report's pictures, on the sample the files were written from."""
+    # missing cells describe the rows read: the audit kept them before the block was released
+    missing = missing_picture(prep.audit.context)
     if prep.sample_index is not None and prep.components is not None:
         return picture_data(prep.sample_index, theta=prep.components.theta_,
-                            variation=prep.summary["variables"])
-    return picture_data(prep.audit.context)
+                            variation=prep.summary["variables"], missing=missing)
+    return picture_data(prep.audit.context, missing=missing)
 
 
 def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:

@@ -21,9 +21,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
-import scipy.sparse
-import scipy.sparse.csgraph
-import scipy.sparse.linalg
 
 from panelprep._groups import compact_codes, group_counts, group_sums
 from panelprep._scale import standardise
@@ -264,6 +261,8 @@ def _incidence(a: np.ndarray, b: np.ndarray, na: int, nb: int) -> _Incidence:
     (``np.unique``).  The sort gives cells in row-major order, so the CSR
     arrays are filled directly.
     """
+    import scipy.sparse  # lazy: scipy.sparse costs a quarter second at start-up
+
     cells = a * np.int64(nb)
     cells += b
     size = na * nb
@@ -303,6 +302,9 @@ def _labels_from_normal(full: np.ndarray) -> np.ndarray:
     Off-diagonal entries of ``C' diag(1/n_a) C`` are sums of positive terms,
     so they are exactly nonzero precisely for linked pairs.
     """
+    import scipy.sparse
+    import scipy.sparse.csgraph
+
     _, labels = scipy.sparse.csgraph.connected_components(
         scipy.sparse.csr_matrix(full != 0), directed=False
     )
@@ -311,6 +313,9 @@ def _labels_from_normal(full: np.ndarray) -> np.ndarray:
 
 def _labels_from_incidence(sparse: scipy.sparse.csr_matrix) -> np.ndarray:
     """Components of the b-levels from the bipartite a-b graph (sparse path)."""
+    import scipy.sparse
+    import scipy.sparse.csgraph
+
     na = sparse.shape[0]
     graph = scipy.sparse.bmat([[None, sparse], [sparse.T, None]], format="csr")
     _, labels = scipy.sparse.csgraph.connected_components(graph, directed=False)
@@ -380,6 +385,8 @@ def twoway(
     Cost per column: two group sums and two broadcasts over the rows for the
     transform, two more group sums for the precision check.
     """
+    import scipy.sparse
+
     block, flat = _as_block(values)
     n, k = block.shape
     entity_codes = _check_codes(entity_codes, n, n_entities, "entity_codes")
@@ -480,6 +487,8 @@ def _precision(r, a, na, inv_a, sums_b, inv_b, scale) -> float:
 
 def _normal_matrix(inc: _Incidence, count_b: np.ndarray, inv_a: np.ndarray) -> np.ndarray:
     """Dense ``diag(n_b) - C' diag(1/n_a) C`` (b-levels x b-levels)."""
+    import scipy.sparse
+
     if inc.dense is not None:
         cross = inc.dense.T @ (inc.dense * inv_a[:, None])
     else:
@@ -515,6 +524,8 @@ def _direct_solver(full: np.ndarray, free_idx: np.ndarray, nb: int):
 
 def _cg_solver(sparse, count_b, inv_a, free_idx, nb, tol, max_iter):
     """Jacobi-preconditioned CG on the reduced normal equations (sparse operator)."""
+    import scipy.sparse.linalg
+
     squared = sparse.multiply(sparse)
     diag = (count_b - squared.T @ inv_a)[free_idx]
     diag = np.where(diag > 0, diag, 1.0)
