@@ -482,7 +482,8 @@ _KEYS: dict[str, dict[str, _Key]] = {
         "format": _Key("`parquet`, `csv`", _choice(OUTPUT_FORMATS), "format of the data files"),
         "force": _Key("bool", _bool, "replace a non-empty output folder"),
         "evidence": _Key("bool", _bool,
-                         "compute the entity-effect and correlated-effects tests"),
+                         "compute the entity-effect, correlated-effects, serial-correlation "
+                         "and cross-sectional dependence tests"),
     },
     "names": {
         "row": _Key("text", _column_name,
