@@ -151,6 +151,7 @@ def prepare_command(
     transform: Annotated[str | None, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway (default within,between,quasi).")] = None,
     method: Annotated[str | None, typer.Option("--method", help="Variance components: swamy-arora (default), wallace-hussain, amemiya or nerlove.")] = None,
     output_format: Annotated[str | None, typer.Option("--format", help="Data files as parquet (default) or csv.")] = None,
+    compression: Annotated[str | None, typer.Option("--compression", help="Parquet codec: zstd (default), lz4, snappy, gzip or none.")] = None,
     force: Annotated[bool | None, typer.Option("--force/--no-force", help="Replace a non-empty output folder.")] = None,
     evidence: Annotated[bool | None, typer.Option("--evidence/--no-evidence", help="Compute the tests that inform the choice of estimator (default on).")] = None,
     contract: Annotated[Path | None, typer.Option("--contract", help="pandera YAML schema the input must satisfy.")] = None,
@@ -188,7 +189,7 @@ def prepare_command(
         "clean.singletons": singletons, "clean.balance": balance, "clean.window": window,
         "derive.lag": lag, "derive.lead": lead, "derive.diff": diff,
         "output.dir": out, "output.failed_dir": failed_out, "output.transforms": transform, "output.method": method,
-        "output.format": output_format, "output.force": force, "output.evidence": evidence,
+        "output.format": output_format, "output.compression": compression, "output.force": force, "output.evidence": evidence,
     }
     try:
         overrides.update(_names_map(names))

@@ -123,8 +123,8 @@ def _tiny(resid: np.ndarray) -> float:
 # ----------------------------------------------------------------- Wooldridge
 
 
-def wooldridge_serial(Z: np.ndarray, z: np.ndarray, entity_codes: np.ndarray,
-                      steps: PanelSteps) -> dict[str, Any]:
+def wooldridge_serial(X: np.ndarray, y: np.ndarray, entity_codes: np.ndarray,
+                      steps: PanelSteps, divisors: np.ndarray | None = None) -> dict[str, Any]:
     """Wooldridge's test for first-order serial correlation in the idiosyncratic errors.
 
     With ``y_it = x_it' b + c_i + u_it``, first differences remove ``c_i``:
@@ -149,13 +149,18 @@ def wooldridge_serial(Z: np.ndarray, z: np.ndarray, entity_codes: np.ndarray,
 
     Parameters
     ----------
-    Z, z : arrays (n, k) and (n,)
-        Regressors (without a constant) and response, standardised
-        (``_scale.standardise``); the statistic does not depend on their units.
+    X, y : arrays (n, k) and (n,)
+        Regressors (without a constant) and response, as read; the statistic
+        does not depend on their units or levels (a level cancels in a
+        difference).
     entity_codes : int array (n,)
         Dense entity codes.
     steps : PanelSteps
         From :func:`panel_steps` on the same rows.
+    divisors : array (k + 1,), optional
+        Powers of two near the spread of each column of ``[X, y]``
+        (``_scale.Scaling.scale``): each is divided by it before differencing
+        (exact), so the differenced cross products stay near unit size.
 
     Returns
     -------
@@ -175,7 +180,10 @@ def wooldridge_serial(Z: np.ndarray, z: np.ndarray, entity_codes: np.ndarray,
     at = np.flatnonzero(steps.follows)
     keys["differences"] = len(at)
     current, previous = steps.order[at], steps.order[at - 1]
-    resid = _difference_residuals(Z, z, current, previous)
+    if divisors is None:
+        divisors = np.ones(X.shape[1] + 1)
+    resid = _difference_residuals(X, y, np.asarray(divisors, dtype=np.float64), current,
+                                  previous)
     if resid is None:
         return _missing(keys, "fewer differenced rows than columns, or the differenced "
                               "regression fits exactly, so the test is undefined")
@@ -209,20 +217,20 @@ def wooldridge_serial(Z: np.ndarray, z: np.ndarray, entity_codes: np.ndarray,
             "p_value": float(scipy.stats.f.sf(statistic, 1, n_clusters - 1)), "note": None}
 
 
-def _difference_residuals(Z: np.ndarray, z: np.ndarray, current: np.ndarray,
-                          previous: np.ndarray) -> np.ndarray | None:
-    """Residuals of ``z[current] - z[previous]`` on ``[1, Z[current] - Z[previous]]``.
+def _difference_residuals(X: np.ndarray, y: np.ndarray, divisors: np.ndarray,
+                          current: np.ndarray, previous: np.ndarray) -> np.ndarray | None:
+    """Residuals of ``dy = y[current] - y[previous]`` on ``[1, dX]``, columns over ``divisors``.
 
     Two passes over the differenced rows in blocks of ``QR_BLOCK_ROWS``: the
     first builds the triangular factor of ``[1, dZ, dz]`` (``RowFactor``),
     the second the residuals; no full differenced block is held.  None when
     the fit is undefined (no residual degree of freedom) or exact.
     """
-    n_d, k = len(current), Z.shape[1]
+    n_d, k = len(current), X.shape[1]
     factor = RowFactor(k + 2, n_d)
     dz_ss = 0.0
     for start in range(0, n_d, QR_BLOCK_ROWS):
-        block = _difference_block(Z, z, current[start:start + QR_BLOCK_ROWS],
+        block = _difference_block(X, y, divisors, current[start:start + QR_BLOCK_ROWS],
                                   previous[start:start + QR_BLOCK_ROWS])
         dz_ss += float(block[:, -1] @ block[:, -1])
         factor.add(block)
@@ -231,19 +239,21 @@ def _difference_residuals(Z: np.ndarray, z: np.ndarray, current: np.ndarray,
         return None
     resid = np.empty(n_d)
     for start in range(0, n_d, QR_BLOCK_ROWS):
-        block = _difference_block(Z, z, current[start:start + QR_BLOCK_ROWS],
+        block = _difference_block(X, y, divisors, current[start:start + QR_BLOCK_ROWS],
                                   previous[start:start + QR_BLOCK_ROWS])
         resid[start:start + len(block)] = block[:, -1] - block[:, :-1] @ fit.coef
     return resid
 
 
-def _difference_block(Z, z, current, previous) -> np.ndarray:
-    """``[1, Z[current] - Z[previous], z[current] - z[previous]]`` for one block of rows."""
-    k = Z.shape[1]
+def _difference_block(X, y, divisors, current, previous) -> np.ndarray:
+    """``[1, dX, dy]`` for one block of rows, each column divided by its divisor first."""
+    k = X.shape[1]
     block = np.empty((len(current), k + 2), order="F")
     block[:, 0] = 1.0
-    block[:, 1:k + 1] = Z[current] - Z[previous]
-    block[:, k + 1] = z[current] - z[previous]
+    block[:, 1:k + 1] = X[current] / divisors[:k]
+    block[:, 1:k + 1] -= X[previous] / divisors[:k]
+    block[:, k + 1] = y[current] / divisors[k]
+    block[:, k + 1] -= y[previous] / divisors[k]
     return block
 
 

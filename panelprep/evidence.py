@@ -34,15 +34,13 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
 from panelprep._groups import group_sums
 from panelprep._linalg import default_rtol, ols_from_r, sandwich
-from panelprep._moments import EntityMoments, entity_moments, triangular
-from panelprep._scale import standardise
+from panelprep._moments import StandardSample, standard_sample, triangular
 from panelprep.dependence import (
     born_breitung_lm,
     panel_steps,
@@ -103,50 +101,15 @@ def _shared(cache: dict | None, key: str, compute: Any) -> Any:
     return cache[key]
 
 
-@dataclass(eq=False)
-class _Sample:
-    """The estimation sample, standardised, with its shared per-entity statistics."""
-
-    X: np.ndarray
-    y: np.ndarray
-    codes: np.ndarray
-    counts: np.ndarray
-    unit: float
-    moments: EntityMoments
-
-    @property
-    def n(self) -> int:
-        return len(self.y)
-
-    @property
-    def k(self) -> int:
-        return self.X.shape[1]
-
-    def within_rows(self, extra: int = 0) -> np.ndarray:
-        """Within part of a design ``[entity column, X, extra entity columns, y]``."""
-        k, r = self.k, self.moments.r_within
-        rows = np.zeros((k + 1, k + 2 + extra))
-        rows[:, 1:1 + k] = r[:, :k]
-        rows[:, -1] = r[:, k]
-        return rows
-
-    def entity_rows(self, weight: np.ndarray, extra: list[int] | None = None) -> np.ndarray:
-        """Entity part ``weight_i [1, xbar_i, xbar_i[extra], ybar_i]``, one row per entity."""
-        means = self.moments.means
-        columns = [np.ones(len(weight)), *means[:, :self.k].T,
-                   *(means[:, j] for j in (extra or [])), means[:, self.k]]
-        return np.column_stack(columns) * weight[:, None]
+# the standardised sample and its moments are shared with the components (prepare_frame)
+_Sample = StandardSample
 
 
 def _sample_of(y, X, entity_codes, counts, cache) -> _Sample:
     """Standardise the sample and build its moments, once per ``cache``."""
     def compute():
         y_raw, X_raw, sizes = _as_sample(y, X, counts)
-        y_std, X_std = standardise(y_raw), standardise(X_raw)
-        codes = np.asarray(entity_codes)
-        z, Z = y_std.z[:, 0], X_std.z
-        return _Sample(X=Z, y=z, codes=codes, counts=sizes, unit=float(y_std.scale[0]),
-                       moments=entity_moments(Z, z, codes, sizes))
+        return standard_sample(y_raw, X_raw, np.asarray(entity_codes), sizes)
 
     return _shared(cache, "sample", compute)
 
@@ -549,7 +512,7 @@ def _mundlak_scores(sample: _Sample, theta_g: np.ndarray, var_idx: np.ndarray,
     slope = np.zeros(k)
     in_x = (kept_cols >= 1) & (kept_cols <= k)
     slope[kept_cols[in_x] - 1] = coef[in_x]
-    within_part = sample.moments.within_scores(sample.X, sample.y, slope)
+    within_part = sample.moments.within_scores(sample.x_column, sample.y_column(), slope)
     scores[:, in_x] += within_part[:, kept_cols[in_x] - 1]
     return scores
 
@@ -882,7 +845,9 @@ def error_structure(
     if periods.shape != sample.codes.shape or (len(periods) and periods.min() < 0):
         raise ValueError("period_codes must be non-negative codes, one per row of the sample")
     steps = panel_steps(sample.codes, periods)
-    out = {"wooldridge": wooldridge_serial(sample.X, sample.y, sample.codes, steps)}
+    divisors = np.concatenate([sample.x_scaling.scale, sample.y_scaling.scale])
+    out = {"wooldridge": wooldridge_serial(sample.raw_X, sample.raw_y, sample.codes, steps,
+                                           divisors)}
     cols, fit = _within_fit(sample, _cache)
     n, k = sample.n, sample.k
     if math.sqrt(fit.ssr) <= default_rtol(n, len(cols)) * math.sqrt(
@@ -896,7 +861,7 @@ def error_structure(
         return out
     slope = np.zeros(k)
     slope[cols[fit.kept]] = fit.coef[fit.kept]
-    resid = sample.moments.within_residuals(sample.X, sample.y, slope)
+    resid = sample.moments.within_residuals(sample.x_column, sample.y_column(), slope)
     out["born_breitung"] = born_breitung_lm(resid, sample.codes, sample.counts, steps)
     out["pesaran_cd"] = pesaran_cd(resid, sample.codes, periods, sample.counts,
                                    steps.duplicated)
@@ -910,6 +875,7 @@ def collect_evidence(
     counts: np.ndarray,
     components: Any,
     names: Sequence[str],
+    sample: StandardSample | None = None,
     period_codes: np.ndarray | None = None,
 ) -> dict[str, Any]:
     """Run all tests and return a JSON-serialisable summary.
@@ -921,6 +887,9 @@ def collect_evidence(
     components : object
         Fitted variance components with attributes ``sigma2_entity_``,
         ``sigma2_idiosyncratic_`` and ``theta_`` (scalar or per entity (G,)).
+    sample : StandardSample, optional
+        The same sample already standardised with its moments
+        (``_moments.standard_sample``), as the components were fitted on it.
     period_codes : int array (n,), optional
         Period codes on the grid (consecutive codes are consecutive periods).
         When given, the error-structure tests run too (:func:`error_structure`).
@@ -940,7 +909,7 @@ def collect_evidence(
     # every regression here has a constant (or the constant column 1 - theta_i)
     # or works within entities, so centring changes no statistic; scaling by
     # powers of two keeps squares of values near 1e-300 or 1e300 in range
-    shared: dict = {}
+    shared: dict = {} if sample is None else {"sample": sample}
     sample = _sample_of(y, X, entity_codes, counts, shared)
     sd_entity = getattr(components, "sigma_entity_", None)
     sd_idiosyncratic = getattr(components, "sigma_idiosyncratic_", None)

@@ -22,7 +22,7 @@ import signal
 import stat
 import sys
 import threading
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -40,6 +40,9 @@ from panelprep.limits import check_memory
 
 FORMATS = ("csv", "parquet", "arrow")
 OUTPUT_FORMATS = ("parquet", "csv")
+# Parquet codecs; zstd is the default: on float columns without dictionary pages it writes
+# faster than pyarrow's defaults and smaller (benchmarks/README.md, "Writes")
+PARQUET_COMPRESSIONS = ("zstd", "lz4", "snappy", "gzip", "none")
 _SUFFIXES = {
     ".csv": "csv",
     ".tsv": "csv",
@@ -290,7 +293,19 @@ def read_frame(
             frame[name] = pd.Series(pd.arrays.ArrowExtensionArray(column), index=frame.index)
     if fmt == "csv" and time in frame.columns:
         frame[time] = integer_text_to_int(frame[time])
+    del table
+    release_arrow_memory()
     return frame[wanted]
+
+
+def release_arrow_memory() -> None:
+    """Hand Arrow's freed buffers back to the system.
+
+    The Arrow allocator keeps what a table held after it is gone (about the
+    size of the table read, measured: 549 -> 357 MiB RSS after reading a
+    2.55 M row file); peak memory is what counts for a run's size limit.
+    """
+    pa.default_memory_pool().release_unused()
 
 
 def _read_csv(
@@ -423,28 +438,50 @@ def _short(err: BaseException) -> str:
 
 
 def write_table(
-    frame: pd.DataFrame | pa.Table, path: Path, fmt: str, metadata: dict[str, str]
-) -> None:
-    """Write a data file (a DataFrame or an Arrow table); Parquet carries ``metadata``.
+    frame: pd.DataFrame | pa.Table | Iterable[pa.Table], path: Path, fmt: str,
+    metadata: dict[str, str], compression: str = "zstd", dictionary: Sequence[str] | None = None,
+) -> int:
+    """Write a data file; Parquet carries ``metadata``.  Returns the rows written.
 
-    Written without the pandas index and without timestamps, so the same
-    frame and metadata give the same bytes on every run.  A failing write
-    (a full disk) is an ``InputError`` naming the file.
+    ``frame`` is a DataFrame, an Arrow table, or Arrow tables of one schema
+    written one after another (a table built and written in pieces never
+    exists whole).  Written without the pandas index and without
+    timestamps, so the same data and metadata give the same bytes on every
+    run.  Parquet pages are dictionary-encoded only for the columns named in
+    ``dictionary`` (all when None): key columns repeat and shrink, while a
+    dictionary of distinct floats costs time and space.  A failing write (a
+    full disk) is an ``InputError`` naming the file.
     """
-    table = frame if isinstance(frame, pa.Table) else pa.Table.from_pandas(
-        frame, preserve_index=False)
+    if isinstance(frame, pd.DataFrame):
+        frame = pa.Table.from_pandas(frame, preserve_index=False)
+    pieces = iter([frame] if isinstance(frame, pa.Table) else frame)
+    del frame
+    rows = 0
     try:
+        first = next(pieces)
         if fmt == "parquet":
             schema_meta = {k.encode(): v.encode() for k, v in metadata.items()}
-            table = table.replace_schema_metadata(schema_meta)
-            pq.write_table(table, path, compression="zstd", write_statistics=True)
+            schema = first.schema.with_metadata(schema_meta)
+            writer = pq.ParquetWriter(
+                path, schema, compression=compression, write_statistics=True,
+                use_dictionary=True if dictionary is None else [
+                    c for c in dictionary if c in schema.names])
         elif fmt == "csv":
-            pacsv.write_csv(table, path)
+            writer = pacsv.CSVWriter(path, first.schema)
         else:
             raise InputError(f"--format {fmt!r} must be parquet or csv")
+        with writer:
+            piece = first
+            del first
+            while piece is not None:
+                writer.write_table(piece)
+                rows += piece.num_rows
+                piece = next(pieces, None)
+        release_arrow_memory()
     except OSError as err:
         raise InputError(f"cannot write {path.name} into {path.parent}: "
                          f"{err.strerror or _short(err)}") from None
+    return rows
 
 
 # --- writing without ever losing or overwriting what is there ------------------------------

@@ -35,6 +35,7 @@ from panelprep.io import (
     column_names,
     detect_format,
     read_frame,
+    release_arrow_memory,
     sha256_file,
 )
 from panelprep.words import plural
@@ -190,7 +191,9 @@ def audit(
     chosen = split_names(vars)
     names = choose_variables(frame, entity, time, chosen, decimal_comma)
     progress(f"indexing {len(frame):,} rows on ({', '.join(entity)}) x {time}")
-    index = index or build_index(frame, entity, time, freq)
+    if index is None:
+        index = build_index(frame, entity, time, freq)
+        release_arrow_memory()  # what factorising Arrow strings left in the pool
     context = AuditContext(
         frame=frame,
         index=index,
