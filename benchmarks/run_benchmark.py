@@ -17,6 +17,7 @@ resident memory (``VmHWM``) belongs to that measurement alone:
 * ``twoway_ours`` / ``twoway_naive`` / ``within_ours``: the two-way transform
   to 1e-10 relative precision, alternating pandas groupby demeaning to the
   same precision, and the one-way within transform, on the same block.
+* ``errors_ours``: the three error-structure tests on the same block.
 
 Usage (see benchmarks/README.md)::
 
@@ -64,6 +65,7 @@ CASES = {
     "twoway_ours": f"transforms.twoway to {TWOWAY_TOL:g} relative precision",
     "twoway_naive": f"alternating pandas groupby demeaning until max change < {TWOWAY_TOL:g}",
     "within_ours": "transforms.within on the same block",
+    "errors_ours": "evidence.error_structure (Wooldridge, Born-Breitung, Pesaran CD) on the block",
 }
 SCALING_CASES = ("floor", "ours_api", "ours_compute", "audit", "twoway_ours", "within_ours")
 SCALING_ROWS = (1_000_000, 3_000_000, 10_000_000)
@@ -505,10 +507,26 @@ def _within_ours(spec: Spec) -> tuple[Any, dict]:
     return run, {}
 
 
+def _errors_ours(spec: Spec) -> tuple[Any, dict]:
+    from panelprep.evidence import error_structure
+
+    # the factorised years stand in for the period grid: a year no entity has would join
+    # its neighbours, which would change the statistics, not the cost measured here
+    values, ent, per = _block(spec)
+    counts = np.bincount(ent)
+
+    def run():
+        out = error_structure(values[:, 0], values[:, 1:], ent, counts, per)
+        return {key: out[key]["statistic"] for key in out} | {"rows": len(ent)}
+
+    return run, {}
+
+
 SETUP = {
     "floor": _floor, "naive": _naive, "ours_api": _ours_api, "ours_cli": _ours_cli,
     "naive_compute": _naive_compute, "ours_compute": _ours_compute, "audit": _audit,
     "twoway_ours": _twoway_ours, "twoway_naive": _twoway_naive, "within_ours": _within_ours,
+    "errors_ours": _errors_ours,
 }
 
 

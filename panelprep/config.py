@@ -46,7 +46,7 @@ Keys
 | `output.format` | `parquet`, `csv` | `parquet` | format of the data files |
 | `output.compression` | `zstd`, `lz4`, `snappy`, `gzip`, `none` | `zstd` | codec of the Parquet files (zstd: the fastest total time at the smallest size measured) |
 | `output.force` | bool | `false` | replace a non-empty output folder |
-| `output.evidence` | bool | `true` | compute the entity-effect and correlated-effects tests |
+| `output.evidence` | bool | `true` | compute the entity-effect, correlated-effects, serial-correlation and cross-sectional dependence tests |
 | `names.row` | text | `pp_row` | column of every row-level file holding each row's input row (from 1) |
 | `names.intercept` | text | `pp_intercept` | quasi file: the 1 - theta column that stands in for the constant |
 | `names.theta` | text | `pp_theta` | quasi file: theta of the row's entity |
@@ -498,7 +498,8 @@ _KEYS: dict[str, dict[str, _Key]] = {
                             "smallest size measured)"),
         "force": _Key("bool", _bool, "replace a non-empty output folder"),
         "evidence": _Key("bool", _bool,
-                         "compute the entity-effect and correlated-effects tests"),
+                         "compute the entity-effect, correlated-effects, serial-correlation "
+                         "and cross-sectional dependence tests"),
     },
     "names": {
         "row": _Key("text", _column_name,

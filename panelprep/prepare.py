@@ -382,9 +382,11 @@ def _prepare_frame(
     summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
     summary["components"] = components.to_dict()
     if options.evidence:
-        progress("evidence", "evidence on the entity effect", rows=len(y))
+        progress("evidence", "evidence on the entity effect and the error structure",
+                 rows=len(y))
         summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x,
-                                               sample=standard)
+                                               sample=standard,
+                                               period_codes=sample_ix.period_codes)
         lost = _uncomputable_finding(summary["evidence"], options)
         if lost is not None:
             findings += apply_severities([lost], options.severities)
@@ -392,6 +394,9 @@ def _prepare_frame(
             summary["verdict"] = gate(findings, options.fail_on)
     summary["transforms"] = outputs.info
     summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
+    if summary.get("evidence", {}).get("standard_errors"):
+        # what the error-structure tests of this run say, beside the general advice
+        summary["cautions"].append(summary["evidence"]["standard_errors"])
     summary["run"] = run_block(progress, record or run_record(options, read_options), summary,
                                options)
     if summary["verdict"] == "fail":
