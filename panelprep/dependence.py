@@ -37,9 +37,9 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import scipy.stats
+import scipy.special
 
-from panelprep._groups import group_counts, group_sums
+from panelprep._groups import compact_codes, group_counts, group_sums
 from panelprep._linalg import QR_BLOCK_ROWS, default_rtol, ols_from_r, sandwich
 from panelprep._moments import RowFactor
 
@@ -214,7 +214,7 @@ def wooldridge_serial(X: np.ndarray, y: np.ndarray, entity_codes: np.ndarray,
     statistic = ((delta + 0.5) / se) ** 2
     keys["std_error"] = se
     return {**keys, "statistic": statistic,
-            "p_value": float(scipy.stats.f.sf(statistic, 1, n_clusters - 1)), "note": None}
+            "p_value": float(scipy.special.fdtrc(1, n_clusters - 1, statistic)), "note": None}
 
 
 def _difference_residuals(X: np.ndarray, y: np.ndarray, divisors: np.ndarray,
@@ -327,7 +327,7 @@ def born_breitung_lm(within_resid: np.ndarray, entity_codes: np.ndarray, counts:
                               "is undefined")
     statistic = float(s.sum()) / math.sqrt(spread)
     return {**keys, "statistic": statistic,
-            "p_value": float(2.0 * scipy.stats.norm.sf(abs(statistic))), "note": None}
+            "p_value": float(2.0 * scipy.special.ndtr(-abs(statistic))), "note": None}
 
 
 # --------------------------------------------------------------- Pesaran CD
@@ -396,7 +396,9 @@ def pesaran_cd(resid: np.ndarray, entity_codes: np.ndarray, period_codes: np.nda
     e = np.asarray(resid, dtype=np.float64)
     codes = np.asarray(entity_codes, dtype=np.int64)
     periods = np.asarray(period_codes, dtype=np.int64)
-    n_periods = int(periods.max()) + 1 if len(periods) else 0
+    # only which rows share a period matters: renumbered over the periods that occur, so a
+    # grid of billions of periods costs what its rows cost
+    periods, n_periods = compact_codes(periods, int(periods.max()) + 1 if len(periods) else 0)
     per_period = group_counts(periods, n_periods)
     present = per_period[per_period > 0]
     if len(present) and np.all(present == n_groups):
@@ -416,7 +418,7 @@ def pesaran_cd(resid: np.ndarray, entity_codes: np.ndarray, period_codes: np.nda
         keys["basis"] += (f"; capped at the {keys['entities']:,} entities with the most rows "
                           f"of {n_groups:,}")
     return {**keys, "statistic": statistic,
-            "p_value": float(2.0 * scipy.stats.norm.sf(abs(statistic))), "note": None}
+            "p_value": float(2.0 * scipy.special.ndtr(-abs(statistic))), "note": None}
 
 
 def _cd_balanced(e, codes, periods, counts, n_periods, keys) -> tuple[float, int]:
