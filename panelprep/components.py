@@ -91,7 +91,8 @@ class _Moments:
         self.n_basis = m
 
     @cached_property
-    def _grams(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    def grams(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """``(gram_i, gram_p, gram_q, gram_z)``, made when a method first asks."""
         k, n, X = self.k, float(self.n), self.sample.X
         t, inv, sum_x = self.counts, self.inv, self.sum_x
         qx = within(X, self.codes, self.counts) if k else np.zeros((self.n, 0), order="F")
@@ -122,22 +123,6 @@ class _Moments:
         gz[xs, xs] = xzx
         return sym(gi), sym(gp), sym(gq), sym(gz)
 
-    @property
-    def gram_i(self) -> np.ndarray:
-        return self._grams[0]
-
-    @property
-    def gram_p(self) -> np.ndarray:
-        return self._grams[1]
-
-    @property
-    def gram_q(self) -> np.ndarray:
-        return self._grams[2]
-
-    @property
-    def gram_z(self) -> np.ndarray:
-        return self._grams[3]
-
     def entity_quadratic(self, e: np.ndarray) -> float:
         """``e'Pe = sum_i (sum_t e_it)^2 / T_i``."""
         s = group_sums(self.codes, e, len(self.counts))
@@ -157,15 +142,16 @@ class _Moments:
         ``q_e, q_u`` (A = Q: coefficients of s2_e and s2_u), ``p_e, p_u``.
         """
         n, big_n = float(self.n), float(self.n_entities)
-        v_i = ev.T @ self.gram_i @ ev
-        v_z = ev.T @ self.gram_z @ ev
-        u_q = eu.T @ self.gram_q @ eu
-        u_p = eu.T @ self.gram_p @ eu
+        gram_i, gram_p, gram_q, gram_z = self.grams
+        v_i = ev.T @ gram_i @ ev
+        v_z = ev.T @ gram_z @ ev
+        u_q = eu.T @ gram_q @ eu
+        u_p = eu.T @ gram_p @ eu
         return {
-            "q_e": (n - big_n) - 2 * np.trace(eu.T @ self.gram_q @ ev) + np.trace(u_q @ v_i),
+            "q_e": (n - big_n) - 2 * np.trace(eu.T @ gram_q @ ev) + np.trace(u_q @ v_i),
             "q_u": np.trace(u_q @ v_z),
-            "p_e": big_n - 2 * np.trace(eu.T @ self.gram_p @ ev) + np.trace(u_p @ v_i),
-            "p_u": n - 2 * np.trace(eu.T @ self.gram_z @ ev) + np.trace(u_p @ v_z),
+            "p_e": big_n - 2 * np.trace(eu.T @ gram_p @ ev) + np.trace(u_p @ v_i),
+            "p_u": n - 2 * np.trace(eu.T @ gram_z @ ev) + np.trace(u_p @ v_z),
         }
 
 
