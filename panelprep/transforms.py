@@ -68,8 +68,7 @@ def _check_codes(codes: np.ndarray, n_rows: int, n_groups: int, what: str) -> np
     return codes
 
 
-def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray,
-           out: np.ndarray | None = None) -> np.ndarray:
+def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndarray:
     """Deviations from entity means, ``x_it - xbar_i``.
 
     Parameters
@@ -80,9 +79,6 @@ def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray,
         Entity codes 0..G-1.
     counts : int array (G,)
         Rows per entity ``T_i`` (``group_counts(codes, G)``).
-    out : array like ``values``, optional
-        Where to write the result (Fortran-ordered when 2-D); may be
-        ``values`` itself, to demean in place.
 
     Returns
     -------
@@ -90,7 +86,7 @@ def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray,
         Same shape as ``values``; 2-D output is Fortran-ordered.  The mean is
         ``sum / T_i`` (no ddof; this is a projection, not a variance).
     """
-    return _subtract_group_sums(values, codes, counts, _safe_inverse_counts(counts), out)
+    return _subtract_group_sums(values, codes, counts, _safe_inverse_counts(counts))
 
 
 def between(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndarray:
@@ -168,22 +164,15 @@ def quasi(
     return _subtract_group_sums(values, codes, counts, theta * _safe_inverse_counts(counts))
 
 
-def _subtract_group_sums(values, codes, counts, weight: np.ndarray,
-                         out: np.ndarray | None = None) -> np.ndarray:
+def _subtract_group_sums(values, codes, counts, weight: np.ndarray) -> np.ndarray:
     """``x - weight_i * sum_i(x)`` column by column: within (weight 1/T_i), quasi (theta_i/T_i).
 
-    One bincount and one take per column into reused buffers; ``out`` may be
-    ``values`` (each column's sum is taken before the column is overwritten).
+    One bincount and one take per column into reused buffers.
     """
     block, flat = _as_block(values)
     n, k = block.shape
     codes = _check_codes(codes, n, len(counts), "codes")
-    if out is None:
-        out = np.empty((n, k), dtype=np.float64, order="F")
-    elif out.ndim == 1:
-        out = out[:, None]
-    if out.shape != (n, k) or not (out.flags.f_contiguous or k == 1):
-        raise ValueError(f"out must be a Fortran-ordered ({n}, {k}) float64 array")
+    out = np.empty((n, k), dtype=np.float64, order="F")
     buf = np.empty(n, dtype=np.float64)
     for j in range(k):
         col = block[:, j]
