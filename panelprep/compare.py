@@ -36,6 +36,7 @@ import pandas as pd
 import pyarrow as pa
 
 from panelprep._groups import segment_bounds
+from panelprep._schema import SCHEMA_VERSION
 from panelprep._version import __version__
 from panelprep.checks.context import looks_numeric, to_float
 from panelprep.errors import ColumnError, InputError
@@ -45,10 +46,14 @@ from panelprep.findings import (
     Finding,
     apply_severities,
     gate,
+    gate_block,
+    ordered,
 )
 from panelprep.index import build_index
 from panelprep.io import DEFAULT_READ, ReadOptions, column_names, write_table
+from panelprep.names import ROLE_AUXILIARY, ROLE_KEY
 from panelprep.pipeline import load
+from panelprep.runlog import RunLog
 from panelprep.words import plural, plural_word
 
 # kinds of change, as written in the ``pp_change`` column of restated.parquet
@@ -168,7 +173,18 @@ class Comparison:
     def report(self) -> dict[str, Any]:
         """The document without its own gate, for a report whose findings already hold these."""
         return {k: v for k, v in self.document.items()
-                if k not in ("tool", "verdict", "fail_on", "findings")}
+                if k not in ("schema_version", "tool", "verdict", "fail_on", "findings", "gate")}
+
+    def restated_provenance(self, **more: Any) -> dict[str, Any]:
+        """restated.parquet's metadata (``panelprep`` key): the vintages by sha256, the
+        tolerance, each column's role; ``more`` adds the keys of a preparation's files."""
+        keys = set(self._keys.columns)
+        columns = [{"name": c, "role": ROLE_KEY if c in keys else ROLE_AUXILIARY}
+                   for c in [*self._keys.columns, *RESTATED_COLUMNS.values()]]
+        return {"schema_version": SCHEMA_VERSION, "version": __version__, **more,
+                "file": "restated", "old_sha256": self.document["old"].get("sha256"),
+                "new_sha256": self.document["new"].get("sha256"), "columns": columns,
+                "restated_columns": RESTATED_COLUMNS, "tolerance": self.document["tolerance"]}
 
     def restated_table(self) -> pa.Table:
         c = self._cells
@@ -372,7 +388,7 @@ def compare_frames(
     new_info: dict[str, Any] | None = None,
     decimal_comma: bool = False,
     missing_tokens: Sequence[str] = (),
-    progress=None,
+    progress: RunLog | None = None,
 ) -> Comparison:
     """Compare two vintages of a panel held in DataFrames.
 
@@ -399,7 +415,7 @@ def compare_frames(
     """
     options = options or CompareOptions()
     options.validate()
-    say = progress or (lambda _: None)
+    progress = progress if progress is not None else RunLog()
     entity = [entity] if isinstance(entity, str) else list(entity)
     keys = [*entity, time]
     for name, frame in (("OLD", old), ("NEW", new)):
@@ -438,7 +454,8 @@ def compare_frames(
     compared = [v for v in names if all(k in ("number", "true/false", "empty") for k in kinds[v])
                 and kinds[v] != ("empty", "empty")]
 
-    say(f"indexing {len(old):,} + {len(new):,} rows on ({', '.join(entity)}) x {time}")
+    progress("compare.index", f"indexing both vintages on ({', '.join(entity)}) x {time}",
+             rows=len(old) + len(new))
     index = build_index(_stack_keys(old, new, keys), entity, time, freq)
     n_old = len(old)
     periods = max(index.n_periods, 1)
@@ -487,7 +504,7 @@ def compare_frames(
     totals = dict.fromkeys(("restated", "unit", "now_missing", "filled"), 0)
     tokens = tuple(missing_tokens)
     for j, name in enumerate(compared):
-        say(f"comparing {name}")
+        progress("compare.values", f"comparing {name}", rows=len(pair_old))
         old_all = to_float(old[name], name, decimal_comma, tokens)[0]
         new_all = to_float(new[name], name, decimal_comma, tokens)[0]
         gone_values.append(old_all[a.rows[gone_at]])
@@ -508,7 +525,8 @@ def compare_frames(
         changed["new"].append(n[hit])
         changed["kind"].append(kind)
 
-    say("looking for re-keyed entities")
+    progress("compare.rekeys", "looking for re-keyed entities",
+             rows=len(gone_at) + len(new_at))
     pairs = _rekeys((ent_a[gone_at], per_a[gone_at], gone_values),
                     (ent_b[new_at], per_b[new_at], new_values), options)
     rekeyed = [{"old_entity": o_key, "new_entity": n_key, "periods_matched": int(m),
@@ -524,6 +542,7 @@ def compare_frames(
         s["last_period"] = labels[int(cells.max())] if len(cells) else None
 
     document: dict[str, Any] = {
+        "schema_version": SCHEMA_VERSION,
         "tool": {"name": "panelprep", "version": __version__},
         "keys": {"entity": entity, "time": time, "freq": index.axis.name,
                  "freq_inferred": index.axis.inferred},
@@ -565,7 +584,8 @@ def compare_frames(
     verdict = gate(findings, options.fail_on)
     document["verdict"] = verdict
     document["fail_on"] = options.fail_on
-    document["findings"] = [f.to_dict() for f in findings]
+    document["findings"] = ordered([f.to_dict() for f in findings])
+    document["gate"] = gate_block(document["findings"], options.fail_on)
     cells = {k: (np.concatenate(v) if v else np.zeros(0)) for k, v in changed.items()}
     for key, dtype in (("row", np.int64), ("variable", np.int64), ("kind", np.int8)):
         cells[key] = cells[key].astype(dtype)
@@ -810,16 +830,16 @@ def compare_files(
     time: str,
     vars: Sequence[str] | None = None,
     read_options: ReadOptions | None = None,
-    progress=None,
+    progress: RunLog | None = None,
     **kwargs: Any,
 ) -> Comparison:
     """Read two vintages (only the columns needed when ``vars`` is given) and compare them."""
     read_options = read_options or DEFAULT_READ
-    say = progress or (lambda _: None)
+    progress = progress if progress is not None else RunLog()
     entity = [entity] if isinstance(entity, str) else list(entity)
     frames, infos = [], []
-    for path in (old_path, new_path):
-        say(f"reading {path}")
+    for side, path in (("old", old_path), ("new", new_path)):
+        progress(f"read.{side}", f"reading {path}")
         wanted = None if vars is None else _present(Path(path), list(vars), read_options)
         frame, info = load(path, entity, time, wanted, read_options)
         frames.append(frame)
@@ -839,20 +859,20 @@ def _present(path: Path, wanted: list[str], read_options: ReadOptions) -> list[s
 COMPARISON_FILES = ("restated.parquet", "comparison.json", "comparison.txt", "comparison.html")
 
 
-def write_comparison(result: Comparison, folder) -> None:
+def write_comparison(result: Comparison, folder, progress: RunLog | None = None) -> None:
     """restated.parquet, comparison.json, comparison.txt and comparison.html into an ``OutputFolder``."""
     import json
 
     from panelprep.report.comparison import comparison_lines, render_comparison_html
     from panelprep.report.text import verdict_line
 
+    progress = progress if progress is not None else RunLog()
     doc = result.to_dict()
-    meta = {"panelprep": json.dumps({"version": __version__, "file": "restated",
-                                     "old_sha256": doc["old"].get("sha256"),
-                                     "new_sha256": doc["new"].get("sha256"),
-                                     "columns": RESTATED_COLUMNS, "tolerance": doc["tolerance"]},
-                                    sort_keys=True, allow_nan=False)}
+    progress("write.restated", "writing restated.parquet", rows=result.n_changed)
+    meta = {"panelprep": json.dumps(result.restated_provenance(), sort_keys=True,
+                                    allow_nan=False)}
     write_table(result.restated_table(), folder.path("restated.parquet"), "parquet", meta)
+    progress("write.comparison", "writing comparison.json, comparison.txt, comparison.html")
     texts = {
         "comparison.json": json.dumps(doc, indent=2, ensure_ascii=False, allow_nan=False) + "\n",
         "comparison.txt": "\n".join([*comparison_lines(doc), "", verdict_line(doc)]) + "\n",

@@ -10,6 +10,7 @@ than the integer-code alignment under test.
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -585,6 +586,67 @@ def test_cli_compare_never_touches_its_inputs(vintage_files):
                  cwd=vintage_files)
     assert again.returncode == 2 and "cmp" in again.stderr
     assert {p.name: digest(p) for p in vintage_files.iterdir() if p.is_file()} == before
+
+
+def test_cli_compare_json_is_the_comparison_file_and_meets_its_schema(vintage_files):
+    from conftest import schema_validator
+
+    done = _run("compare", "old.csv", "new.parquet", "-e", "firm", "-t", "year", "--out", "cmp",
+                "--json", cwd=vintage_files)
+    assert done.returncode == 0, done.stderr
+    folder = vintage_files / "cmp"
+    # stdout holds the document and nothing else; the summary went to stderr
+    assert done.stdout == (folder / "comparison.json").read_text(encoding="utf-8")
+    assert "vintage-entity-rekeyed" in done.stderr
+    document = json.loads(done.stdout)
+    assert document["gate"]["verdict"] == "pass" and document["gate"]["counts"]["error"] == 0
+    assert not list(schema_validator("comparison").iter_errors(document))
+    meta = json.loads(pq.read_schema(folder / "restated.parquet").metadata[b"panelprep"])
+    assert not list(schema_validator("provenance").iter_errors(meta))
+    assert meta["file"] == "restated" and meta["new_sha256"] == document["new"]["sha256"]
+    # the schema can refuse: a restated count below zero
+    document["variables"]["sales"]["restated"] = -1
+    assert list(schema_validator("comparison").iter_errors(document))
+
+
+def test_cli_compare_logs_json_lines_and_names_the_failing_ids(vintage_files):
+    from conftest import schema_validator
+
+    validator = schema_validator("log-line")
+    env = {k: v for k, v in os.environ.items() if k != "PANELPREP_PROGRESS"}
+    done = subprocess.run(
+        [str(Path(sys.executable).with_name("panelprep")), "compare", "old.csv", "new.parquet",
+         "-e", "firm", "-t", "year", "--max-restated-share", "0.06", "--log-json"],
+        cwd=vintage_files, env=env, capture_output=True, text=True, check=False)
+    assert done.returncode == 1
+    records = [json.loads(line) for line in done.stderr.strip().splitlines()]
+    for record in records:
+        assert not list(validator.iter_errors(record)), record
+    steps = [r["id"] for r in records if r["event"] == "step"]
+    assert steps[:3] == ["read.old", "read.new", "compare.index"]
+    assert records[-1]["event"] == "end" and records[-1]["exit_code"] == 1
+    assert records[-1]["failed_by"] == ["vintage-restated-over-limit"]
+    bad = _run("compare", "old.csv", "new.parquet", "-e", "firm", "-t", "year",
+               "--progress", "loud", cwd=vintage_files)
+    assert bad.returncode == 2 and "--progress" in bad.stderr
+    text = " ".join(_run("compare", "--help", cwd=vintage_files).stdout.split())
+    assert "Exit codes: 0" in text and "3 internal error" in text and "--log-json" in text
+
+
+def test_cli_compare_internal_error_is_exit_3(vintage_files):
+    code = ("import panelprep.compare as c\n"
+            "def broken(*a, **k):\n"
+            "    raise RuntimeError('planted for the test')\n"
+            "c.compare_files = broken\n"
+            "from panelprep.cli import main\n"
+            "main()\n")
+    done = subprocess.run(
+        [sys.executable, "-c", code, "compare", "old.csv", "new.parquet", "-e", "firm", "-t",
+         "year", "--out", "cmp"], cwd=vintage_files, capture_output=True, text=True,
+        env={**os.environ, "TMPDIR": str(vintage_files)}, check=False)
+    assert done.returncode == 3, done.stderr
+    assert "Traceback" not in done.stderr and "internal error" in done.stderr
+    assert not (vintage_files / "cmp").exists()
 
 
 def test_entities_alike_in_every_value_are_not_taken_for_a_rekey():
