@@ -49,7 +49,7 @@ from panelprep.findings import (
     gate_block,
     ordered,
 )
-from panelprep.index import build_index
+from panelprep.index import PanelIndex, build_index, index_on_entity_codes
 from panelprep.io import DEFAULT_READ, ReadOptions, column_names, write_table
 from panelprep.names import ROLE_AUXILIARY, ROLE_KEY
 from panelprep.pipeline import load
@@ -240,11 +240,82 @@ def _stack_keys(old: pd.DataFrame, new: pd.DataFrame, keys: list[str]) -> pd.Dat
     return pd.concat([left, right], ignore_index=True)
 
 
+def _stacked_index(old: pd.DataFrame, new: pd.DataFrame, entity: list[str], time: str,
+                   freq: str | None) -> PanelIndex:
+    """One ``PanelIndex`` on both vintages' key columns stacked, old rows first.
+
+    The entity key is coded on the rows where it differs from the row above
+    (one row per entity in a file sorted by entity) with ``build_index`` and
+    repeated down each run, so its text is factorised once per run, not once
+    per row; the codes are those ``build_index`` gives the stacked rows.  The
+    time column is parsed whole, as ``build_index`` parses it.
+    """
+    if time in entity:
+        raise ColumnError(f"column {time!r} cannot be both an entity and the time key")
+    stacked = _stack_keys(old, new, [*entity, time])
+    n = len(stacked)
+    starts = np.zeros(n, dtype=bool)
+    starts[:1] = True
+    for column in entity:
+        starts[1:] |= _differs_from_above(stacked[column])
+    heads = np.flatnonzero(starts)
+    placeholder = "_pp_time"
+    while placeholder in entity:
+        placeholder += "_"
+    runs = stacked[entity].iloc[heads].reset_index(drop=True)
+    runs[placeholder] = 0
+    coded = build_index(runs, entity, placeholder)
+    codes = np.repeat(coded.entity_codes, np.diff(np.append(heads, n)))
+    return index_on_entity_codes(entity, codes, coded.entity_labels, stacked[time], time, freq)
+
+
+def _differs_from_above(values: pd.Series) -> np.ndarray:
+    """For rows 1..n-1: whether the value differs from the one above (a missing value
+    differs from every value, or repeats a missing value above; both code as missing)."""
+    if len(values) < 2:
+        return np.zeros(max(len(values) - 1, 0), dtype=bool)
+    if isinstance(values.dtype, pd.CategoricalDtype):
+        codes = values.cat.codes.to_numpy()
+        return codes[1:] != codes[:-1]
+    if isinstance(values.dtype, np.dtype) and values.dtype.kind in "biufmM":
+        plain = values.to_numpy()
+        return plain[1:] != plain[:-1]
+    if hasattr(values.array, "__arrow_array__"):
+        import pyarrow.compute as pc
+
+        column = pa.array(values.array)  # an Array or a ChunkedArray, no copy
+        differs = pc.not_equal(column.slice(1), column.slice(0, len(column) - 1))
+        return np.asarray(differs.fill_null(True), dtype=bool)
+    codes = pd.factorize(values, use_na_sentinel=True)[0]
+    return codes[1:] != codes[:-1]
+
+
 def _side(cell: np.ndarray) -> _Side:
     keyed = np.flatnonzero(cell >= 0)
-    cells, first = np.unique(cell[keyed], return_index=True)
+    keyed_cells = cell[keyed]
+    if (keyed_cells[1:] > keyed_cells[:-1]).all():
+        # already ascending without a repeat (a file sorted by its key): nothing to sort
+        return _Side(cells=keyed_cells, rows=keyed, read=len(cell),
+                     unkeyed=len(cell) - len(keyed), repeated=0)
+    cells, first = np.unique(keyed_cells, return_index=True)
     return _Side(cells=cells, rows=keyed[first], read=len(cell), unkeyed=len(cell) - len(keyed),
                  repeated=len(keyed) - len(cells))
+
+
+def _positions(cells: np.ndarray, among: np.ndarray, grid: int) -> np.ndarray:
+    """Where each of ``cells`` sits in ``among`` (both ascending, distinct); -1 where absent.
+
+    A lookup table over the grid of cells when it is not much longer than
+    the cells, else a sorted search.
+    """
+    if grid <= 4 * (len(cells) + len(among)) + (1 << 20):
+        table = np.full(grid, -1, dtype=np.int64)
+        table[among] = np.arange(len(among))
+        return table[cells]
+    at = np.searchsorted(among, cells)
+    found = at < len(among)
+    found[found] = among[at[found]] == cells[found]
+    return np.where(found, at, -1)
 
 
 def _shape(entity: np.ndarray, period: np.ndarray) -> dict[str, Any]:
@@ -456,25 +527,21 @@ def compare_frames(
 
     progress("compare.index", f"indexing both vintages on ({', '.join(entity)}) x {time}",
              rows=len(old) + len(new))
-    index = build_index(_stack_keys(old, new, keys), entity, time, freq)
+    index = _stacked_index(old, new, entity, time, freq)
     n_old = len(old)
     periods = max(index.n_periods, 1)
     a, b = _side(index.cell[:n_old]), _side(index.cell[n_old:])
-    # pair the cells both hold: a sorted search of the old cells among the new
-    at = np.searchsorted(b.cells, a.cells)
-    at_ok = np.minimum(at, max(len(b.cells) - 1, 0))
-    matched = (at < len(b.cells)) & (b.cells[at_ok] == a.cells) if len(b.cells) else \
-        np.zeros(len(a.cells), dtype=bool)
+    at = _positions(a.cells, b.cells, index.n_entities * periods)
+    matched = at >= 0
     in_old = np.zeros(len(b.cells), dtype=bool)
     in_old[at[matched]] = True
     pair_old, pair_new = a.rows[matched], b.rows[at[matched]]
-    pair_cell = a.cells[matched]
-    pair_entity, pair_period = pair_cell // periods, pair_cell % periods
+    ent_a, per_a = np.divmod(a.cells, periods)
+    ent_b, per_b = np.divmod(b.cells, periods)
+    pair_entity, pair_period = ent_a[matched], per_a[matched]
     removed, added = a.cells[~matched], b.cells[~in_old]
 
     n_ent, n_per = index.n_entities, index.n_periods
-    ent_a, per_a = a.cells // periods, a.cells % periods
-    ent_b, per_b = b.cells // periods, b.cells % periods
     ent_in_a = np.bincount(ent_a, minlength=n_ent) > 0
     ent_in_b = np.bincount(ent_b, minlength=n_ent) > 0
     per_rows_a = np.bincount(per_a, minlength=n_per)
@@ -503,16 +570,17 @@ def compare_frames(
     share_grid: list[list[float | None]] = []
     totals = dict.fromkeys(("restated", "unit", "now_missing", "filled"), 0)
     tokens = tuple(missing_tokens)
+    pairs_per_period = np.bincount(pair_period, minlength=n_per)
     for j, name in enumerate(compared):
         progress("compare.values", f"comparing {name}", rows=len(pair_old))
-        old_all = to_float(old[name], name, decimal_comma, tokens)[0]
-        new_all = to_float(new[name], name, decimal_comma, tokens)[0]
-        gone_values.append(old_all[a.rows[gone_at]])
-        new_values.append(new_all[b.rows[new_at]])
+        old_all = _numbers(old[name], name, decimal_comma, tokens)
+        new_all = _numbers(new[name], name, decimal_comma, tokens)
+        gone_values.append(_finite(old_all[a.rows[gone_at]]))
+        new_values.append(_finite(new_all[b.rows[new_at]]))
         o, n = old_all[pair_old], new_all[pair_new]
         del old_all, new_all
         summary, hit, kind, units, shares = _compare_variable(
-            name, o, n, pair_entity, pair_period, index, labels, options)
+            name, o, n, pair_entity, pair_period, pairs_per_period, index, labels, options)
         variables[name] = summary
         unit_changes += units
         share_grid.append(shares)
@@ -596,35 +664,69 @@ def compare_frames(
                       _keys=new[keys], _variables=compared)
 
 
+def _numbers(values: pd.Series, name: str, decimal_comma: bool,
+             tokens: tuple[str, ...]) -> np.ndarray:
+    """A column as the audit reads it (``checks.context.to_float``), but infinities kept.
+
+    A plain float64 column with no missing tokens declared is read in place
+    (no copy, none of the audit's checks, which report but change no value
+    there but the infinities); the comparison reads an infinity as missing
+    itself, on the few cells where it matters.
+    """
+    if values.dtype == np.float64 and not tokens:
+        return values.to_numpy()
+    return to_float(values, name, decimal_comma, tokens)[0]
+
+
+def _finite(values: np.ndarray) -> np.ndarray:
+    """``values`` with infinities read as missing (a copy)."""
+    return np.where(np.isinf(values), np.nan, values)
+
+
 def _compare_variable(
     name: str, o: np.ndarray, n: np.ndarray, pair_entity: np.ndarray, pair_period: np.ndarray,
-    index, labels: list[str], options: CompareOptions,
+    pairs_per_period: np.ndarray, index, labels: list[str], options: CompareOptions,
 ) -> tuple[dict[str, Any], np.ndarray, np.ndarray, list[dict[str, Any]], list[float | None]]:
-    """One variable on the paired cells ``o`` (old) and ``n`` (new).
+    """One variable on the paired cells ``o`` (old) and ``n`` (new), infinities read as missing.
 
     Returns its summary, the positions of the changed cells with their kind
     (an index into ``CHANGE_KINDS``), its unit changes, and its restated
-    share per period (None where no cell was compared).  Full-length passes
-    are few; everything about the size of a change runs on the restated
-    cells alone.
+    share per period (None where no cell was compared).  One full-length
+    test finds the candidates: every cell not within the tolerance, which
+    holds the restated cells and every cell missing on a side (NaN is
+    within no tolerance).  Everything else runs on the candidates alone.
+    ``o`` and ``n`` are the caller's copies: their infinities become NaN.
     """
     n_per = index.n_periods
-    o_there, n_there = ~np.isnan(o), ~np.isnan(n)
-    both = o_there & n_there
     with np.errstate(invalid="ignore"):
-        # NaN compares false: a cell missing on either side is never restated
-        restated_at = np.flatnonzero(np.abs(n - o) > options.atol + options.rtol * np.abs(o))
-    now_missing_at = np.flatnonzero(o_there & ~n_there)
-    filled_at = np.flatnonzero(~o_there & n_there)
+        tolerance = np.abs(o)
+        tolerance *= options.rtol
+        tolerance += options.atol
+        change = np.subtract(n, o)
+        np.abs(change, out=change)
+        within = np.less_equal(change, tolerance, out=np.empty(len(o), dtype=bool))
+    del tolerance, change
+    candidates = np.flatnonzero(~within)
+    del within
+    for side in (o, n):
+        at = candidates[np.isinf(side[candidates])]
+        side[at] = np.nan
+    o_there, n_there = ~np.isnan(o[candidates]), ~np.isnan(n[candidates])
+    both_there = o_there & n_there
+    restated_at = candidates[both_there]
+    now_missing_at = candidates[o_there & ~n_there]
+    filled_at = candidates[~o_there & n_there]
     old_r, new_r = o[restated_at], n[restated_at]
     diff = np.abs(new_r - old_r)
     ent_r, per_r = pair_entity[restated_at], pair_period[restated_at]
     with np.errstate(divide="ignore", invalid="ignore"):
         relative = np.where(old_r != 0, diff / np.abs(old_r), -np.inf)
-    unit, unit_changes = _unit_cells(name, old_r, new_r, ent_r, per_r, both & (o != 0),
+    unit, unit_changes = _unit_cells(name, old_r, new_r, ent_r, per_r, o, n,
                                      pair_entity, pair_period, index, labels, options)
 
-    compared_pp = np.bincount(pair_period[both], minlength=n_per)
+    # compared: both vintages hold a value; the cells missing on a side are candidates
+    compared_pp = pairs_per_period - np.bincount(pair_period[candidates[~both_there]],
+                                                 minlength=n_per)
     restated_pp = np.bincount(per_r, minlength=n_per)
     abs_best, abs_at = _segment_best(per_r, diff, n_per)
     rel_best, _ = _segment_best(per_r, relative, n_per)
@@ -669,14 +771,15 @@ def _compare_variable(
 
 def _unit_cells(
     name: str, old_r: np.ndarray, new_r: np.ndarray, ent_r: np.ndarray, per_r: np.ndarray,
-    ratio_base: np.ndarray, pair_entity: np.ndarray, pair_period: np.ndarray, index,
+    o: np.ndarray, n: np.ndarray, pair_entity: np.ndarray, pair_period: np.ndarray, index,
     labels: list[str], options: CompareOptions,
 ) -> tuple[np.ndarray, list[dict[str, Any]]]:
     """Which restated cells moved by a group's power of ten, and the groups (entities, periods).
 
     A group (an entity or a period) has a likely unit change when most of its
-    cells with an old value other than zero (``ratio_base``) are old times one
-    power of ten other than 1 (``_unit_groups``).
+    cells holding both values, the old one other than zero (of ``o`` and
+    ``n``, all paired cells), are old times one power of ten other than 1
+    (``_unit_groups``).
     """
     usable = (old_r != 0) & (new_r != 0) & (np.sign(old_r) == np.sign(new_r))
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -689,6 +792,7 @@ def _unit_cells(
     out: list[dict[str, Any]] = []
     unit = np.zeros(len(old_r), dtype=bool)
     found = {}
+    ratio_base = ~np.isnan(o) & ~np.isnan(n) & (o != 0)
     for scope, group, every in (("period", per_r, pair_period), ("entity", ent_r, pair_entity)):
         size = index.n_entities if scope == "entity" else index.n_periods
         compared = np.bincount(every[ratio_base], minlength=size)

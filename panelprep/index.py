@@ -208,8 +208,17 @@ def build_index(
     keyed_entity = entity_codes >= 0
     np.minimum.at(first_rows, entity_codes[keyed_entity], np.flatnonzero(keyed_entity))
     labels = frame[entity].iloc[first_rows].reset_index(drop=True)
+    return index_on_entity_codes(entity, entity_codes, labels, frame[time], time, freq)
 
-    axis = build_time_axis(frame[time], freq=freq, column=time)
+
+def index_on_entity_codes(
+    entity: list[str], entity_codes: np.ndarray, entity_labels: pd.DataFrame,
+    time_values: pd.Series, time: str, freq: str | None = None,
+) -> PanelIndex:
+    """The time half of ``build_index``: a ``PanelIndex`` from entity codes already made
+    (sorted dense, -1 for a missing key; ``entity_labels`` one row per code) and the
+    time column, parsed onto its grid as ``build_index`` parses it."""
+    axis = build_time_axis(time_values, freq=freq, column=time)
     has_time = ~axis.missing
     if has_time.any():
         first = int(axis.ordinal[has_time].min())
@@ -217,13 +226,13 @@ def build_index(
     else:
         first, last = 0, -1
     if has_time.any():
-        check_grid(len(uniq_combined), last - first + 1, time, *axis.label([first, last]))
+        check_grid(len(entity_labels), last - first + 1, time, *axis.label([first, last]))
     period_codes = np.where(has_time, axis.ordinal - first, -1).astype(np.int64)
     return PanelIndex(
         entity=entity,
         time=time,
         entity_codes=entity_codes,
-        entity_labels=labels,
+        entity_labels=entity_labels,
         axis=axis,
         first_period=first,
         n_periods=last - first + 1,
