@@ -50,7 +50,13 @@ from panelprep.findings import (
     ordered,
 )
 from panelprep.index import PanelIndex, build_index, index_on_entity_codes
-from panelprep.io import DEFAULT_READ, ReadOptions, column_names, write_table
+from panelprep.io import (
+    DEFAULT_READ,
+    ReadOptions,
+    column_names,
+    sha256_in_background,
+    write_table,
+)
 from panelprep.names import ROLE_AUXILIARY, ROLE_KEY
 from panelprep.pipeline import load
 from panelprep.runlog import RunLog
@@ -704,7 +710,10 @@ def _compare_variable(
         tolerance += options.atol
         change = np.subtract(n, o)
         np.abs(change, out=change)
-        within = np.less_equal(change, tolerance, out=np.empty(len(o), dtype=bool))
+        # |new - old| - tolerance, not a comparison of the two: an infinite old value has an
+        # infinite tolerance, and inf - inf is NaN, outside every tolerance as it should be
+        change -= tolerance
+        within = np.less_equal(change, 0.0, out=np.empty(len(o), dtype=bool))
     del tolerance, change
     candidates = np.flatnonzero(~within)
     del within
@@ -945,12 +954,18 @@ def compare_files(
     for side, path in (("old", old_path), ("new", new_path)):
         progress(f"read.{side}", f"reading {path}")
         wanted = None if vars is None else _present(Path(path), list(vars), read_options)
-        frame, info = load(path, entity, time, wanted, read_options)
+        frame, info = load(path, entity, time, wanted, read_options, digest=False)
         frames.append(frame)
         infos.append(info)
-    return compare_frames(frames[0], frames[1], entity, time, vars, old_info=infos[0],
-                          new_info=infos[1], decimal_comma=read_options.decimal_comma,
-                          missing_tokens=read_options.missing_tokens, progress=progress, **kwargs)
+    # both files hashed on the other core while the comparison runs on this one
+    digests = [sha256_in_background(Path(path)) for path in (old_path, new_path)]
+    result = compare_frames(frames[0], frames[1], entity, time, vars, old_info=infos[0],
+                            new_info=infos[1], decimal_comma=read_options.decimal_comma,
+                            missing_tokens=read_options.missing_tokens, progress=progress,
+                            **kwargs)
+    for side, digest in zip(("old", "new"), digests):
+        result.document[side]["sha256"] = digest.result()
+    return result
 
 
 def _present(path: Path, wanted: list[str], read_options: ReadOptions) -> list[str]:

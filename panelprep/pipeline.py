@@ -393,8 +393,13 @@ def load(
     vars: Sequence[str] | None,
     options: ReadOptions = DEFAULT_READ,
     extra: Sequence[str] = (),
+    digest: bool = True,
 ) -> tuple[pd.DataFrame, dict[str, Any]]:
-    """Read the columns a run needs and describe the input for provenance."""
+    """Read the columns a run needs and describe the input for provenance.
+
+    ``digest`` False leaves ``sha256`` None, for a caller that hashes the
+    file in the background (``io.sha256_in_background``).
+    """
     path = Path(path)
     names = column_names(path, options)
     for column in [*entity, time]:
@@ -404,7 +409,7 @@ def load(
     frame = read_frame(path, columns, list(entity), time, options)
     if frame.empty:
         raise InputError(f"{path}: no data rows, only a header")
-    info = {"path": str(path), "sha256": sha256_file(path), "rows": len(frame),
+    info = {"path": str(path), "sha256": sha256_file(path) if digest else None, "rows": len(frame),
             "format": detect_format(path, options.input_format)}
     return frame, info
 

@@ -543,6 +543,67 @@ def test_any_pair_counts_as_a_pandas_merge_does(pair, tolerance):
     assert result.n_changed == len(result.restated_frame())
 
 
+@settings(max_examples=examples(40), deadline=None)
+@given(vintage_pairs(), st.booleans())
+def test_sorted_and_shuffled_vintages_count_alike(pair, with_infinity):
+    """Files sorted by their key take the no-sort path; the counts are those of pandas merges
+    either way.  An infinity is read as missing, as the audit reads it (pandas: replaced by
+    NaN before the merge)."""
+    old, new = pair
+    if with_infinity:
+        old.loc[old.index[::3], "v"] = np.inf
+        new.loc[new.index[1::4], "v"] = -np.inf
+    reference = _pandas_counts(old.replace([np.inf, -np.inf], np.nan),
+                               new.replace([np.inf, -np.inf], np.nan), ["f", "t"], ["v"], 1e-9, 0.0)
+    for frames in ((old, new), tuple(f.drop_duplicates(["f", "t"]).sort_values(["f", "t"])
+                                     .reset_index(drop=True) for f in (old, new))):
+        result = compare_frames(*frames, "f", "t", ["v"])
+        doc = result.to_dict()
+        assert (doc["rows"]["removed"], doc["rows"]["added"], doc["rows"]["both"]) == (
+            reference["removed"], reference["added"], reference["both"])
+        for key in ("compared", "restated", "became_missing", "filled_in"):
+            assert doc["variables"]["v"][key] == reference["v"][key], key
+        table = result.restated_frame()
+        assert np.isfinite(table["pp_old"].dropna()).all()
+        assert np.isfinite(table["pp_new"].dropna()).all()
+
+
+@settings(max_examples=examples(60), deadline=None)
+@given(st.lists(st.tuples(st.sampled_from(["b", "a", " ", None, "c"]), st.sampled_from([2, 1, 3]),
+                          st.sampled_from([2001, 2003, 2002, None])), min_size=1, max_size=40),
+       st.integers(0, 39), st.sampled_from(["str", "object", "category"]))
+def test_the_stacked_index_codes_every_row_as_build_index_does(rows, split, kind):
+    """Entities coded once per run of equal keys give the codes build_index gives each row
+    (blank and missing keys -1, two-column keys, sorted or not)."""
+    from panelprep.compare import _stack_keys, _stacked_index
+    from panelprep.index import build_index
+
+    frame = pd.DataFrame(rows, columns=["firm", "plant", "year"])
+    frame["firm"] = frame["firm"].astype(kind)
+    split = min(split, len(frame))
+    old, new = frame.iloc[:split].reset_index(drop=True), frame.iloc[split:].reset_index(drop=True)
+    ours = _stacked_index(old, new, ["firm", "plant"], "year", None)
+    reference = build_index(_stack_keys(old, new, ["firm", "plant", "year"]), ["firm", "plant"],
+                            "year")
+    np.testing.assert_array_equal(ours.entity_codes, reference.entity_codes)
+    np.testing.assert_array_equal(ours.period_codes, reference.period_codes)
+    assert ours.entity_key(np.arange(ours.n_entities)) == reference.entity_key(
+        np.arange(reference.n_entities))
+
+
+def test_cells_are_found_by_table_and_by_sorted_search_alike():
+    from panelprep.compare import _positions
+
+    rng = np.random.default_rng(3)
+    among = np.unique(rng.integers(0, 5000, 1500))
+    cells = np.unique(rng.integers(0, 5000, 1200))
+    # reference: pandas' hash lookup of each cell among the others
+    expected = pd.Index(among).get_indexer(cells)
+    np.testing.assert_array_equal(_positions(cells, among, 5000), expected)  # the table
+    np.testing.assert_array_equal(_positions(cells, among, 10**12), expected)  # the search
+    assert (_positions(cells, among[:0], 10**12) == -1).all()
+
+
 def test_every_comparison_finding_has_a_hint_and_a_run_file_severity():
     from panelprep.config import FINDING_IDS
     from panelprep.findings import COMPARE_FINDING_IDS
