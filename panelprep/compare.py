@@ -581,8 +581,8 @@ def compare_frames(
         progress("compare.values", f"comparing {name}", rows=len(pair_old))
         old_all = _numbers(old[name], name, decimal_comma, tokens)
         new_all = _numbers(new[name], name, decimal_comma, tokens)
-        gone_values.append(_finite(old_all[a.rows[gone_at]]))
-        new_values.append(_finite(new_all[b.rows[new_at]]))
+        gone_values.append(old_all[a.rows[gone_at]])
+        new_values.append(new_all[b.rows[new_at]])
         o, n = old_all[pair_old], new_all[pair_new]
         del old_all, new_all
         summary, hit, kind, units, shares = _compare_variable(
@@ -672,57 +672,41 @@ def compare_frames(
 
 def _numbers(values: pd.Series, name: str, decimal_comma: bool,
              tokens: tuple[str, ...]) -> np.ndarray:
-    """A column as the audit reads it (``checks.context.to_float``), but infinities kept.
+    """A column as the audit reads it (``checks.context.to_float``): NaN where missing.
 
-    A plain float64 column with no missing tokens declared is read in place
-    (no copy, none of the audit's checks, which report but change no value
-    there but the infinities); the comparison reads an infinity as missing
-    itself, on the few cells where it matters.
+    A plain float64 column without infinities, with no missing tokens
+    declared, is read in place: the audit's reading would copy it and change
+    no value (its checks there only report).
     """
     if values.dtype == np.float64 and not tokens:
-        return values.to_numpy()
+        plain = values.to_numpy()
+        if not np.isinf(plain).any():
+            return plain
     return to_float(values, name, decimal_comma, tokens)[0]
-
-
-def _finite(values: np.ndarray) -> np.ndarray:
-    """``values`` with infinities read as missing (a copy)."""
-    return np.where(np.isinf(values), np.nan, values)
 
 
 def _compare_variable(
     name: str, o: np.ndarray, n: np.ndarray, pair_entity: np.ndarray, pair_period: np.ndarray,
     pairs_per_period: np.ndarray, index, labels: list[str], options: CompareOptions,
 ) -> tuple[dict[str, Any], np.ndarray, np.ndarray, list[dict[str, Any]], list[float | None]]:
-    """One variable on the paired cells ``o`` (old) and ``n`` (new), infinities read as missing.
+    """One variable on the paired cells ``o`` (old) and ``n`` (new), NaN where missing.
 
     Returns its summary, the positions of the changed cells with their kind
     (an index into ``CHANGE_KINDS``), its unit changes, and its restated
     share per period (None where no cell was compared).  One full-length
-    test finds the candidates: every cell not within the tolerance, which
-    holds the restated cells and every cell missing on a side (NaN is
-    within no tolerance).  Everything else runs on the candidates alone.
-    ``o`` and ``n`` are the caller's copies: their infinities become NaN.
+    test finds the candidates, the cells whose two values are not equal
+    (NaN equals nothing, so every cell missing on a side is one); the
+    tolerance and everything else runs on the candidates alone.
     """
     n_per = index.n_periods
-    with np.errstate(invalid="ignore"):
-        tolerance = np.abs(o)
-        tolerance *= options.rtol
-        tolerance += options.atol
-        change = np.subtract(n, o)
-        np.abs(change, out=change)
-        # |new - old| - tolerance, not a comparison of the two: an infinite old value has an
-        # infinite tolerance, and inf - inf is NaN, outside every tolerance as it should be
-        change -= tolerance
-        within = np.less_equal(change, 0.0, out=np.empty(len(o), dtype=bool))
-    del tolerance, change
-    candidates = np.flatnonzero(~within)
-    del within
-    for side in (o, n):
-        at = candidates[np.isinf(side[candidates])]
-        side[at] = np.nan
-    o_there, n_there = ~np.isnan(o[candidates]), ~np.isnan(n[candidates])
+    candidates = np.flatnonzero(o != n)
+    oc, nc = o[candidates], n[candidates]
+    o_there, n_there = ~np.isnan(oc), ~np.isnan(nc)
     both_there = o_there & n_there
-    restated_at = candidates[both_there]
+    # a cell is restated when |new - old| > atol + rtol * |old|
+    beyond = np.abs(nc[both_there] - oc[both_there]) > (
+        options.atol + options.rtol * np.abs(oc[both_there]))
+    restated_at = candidates[both_there][beyond]
     now_missing_at = candidates[o_there & ~n_there]
     filled_at = candidates[~o_there & n_there]
     old_r, new_r = o[restated_at], n[restated_at]
@@ -733,7 +717,7 @@ def _compare_variable(
     unit, unit_changes = _unit_cells(name, old_r, new_r, ent_r, per_r, o, n,
                                      pair_entity, pair_period, index, labels, options)
 
-    # compared: both vintages hold a value; the cells missing on a side are candidates
+    # compared: both vintages hold a value; every cell missing on a side is a candidate
     compared_pp = pairs_per_period - np.bincount(pair_period[candidates[~both_there]],
                                                  minlength=n_per)
     restated_pp = np.bincount(per_r, minlength=n_per)
