@@ -297,8 +297,12 @@ def _differs_from_above(values: pd.Series) -> np.ndarray:
 
 
 def _side(cell: np.ndarray) -> _Side:
-    keyed = np.flatnonzero(cell >= 0)
-    keyed_cells = cell[keyed]
+    has_key = cell >= 0
+    if has_key.all():
+        keyed, keyed_cells = np.arange(len(cell)), cell
+    else:
+        keyed = np.flatnonzero(has_key)
+        keyed_cells = cell[keyed]
     if (keyed_cells[1:] > keyed_cells[:-1]).all():
         # already ascending without a repeat (a file sorted by its key): nothing to sort
         return _Side(cells=keyed_cells, rows=keyed, read=len(cell),
