@@ -39,7 +39,7 @@ from typing import Any
 import numpy as np
 import scipy.special
 
-from panelprep._groups import compact_codes, group_counts, group_sums
+from panelprep._groups import compact_codes, group_counts, group_sums, occurring
 from panelprep._linalg import QR_BLOCK_ROWS, default_rtol, ols_from_r, sandwich
 from panelprep._moments import RowFactor
 
@@ -194,7 +194,7 @@ def wooldridge_serial(X: np.ndarray, y: np.ndarray, entity_codes: np.ndarray,
     entity = np.asarray(entity_codes)[current[lagged]]
     m = len(lagged)
     keys["pairs"] = m
-    present, cluster = np.unique(entity, return_inverse=True)
+    present, cluster, _ = occurring(entity)
     n_clusters = len(present)
     keys["entities"] = n_clusters
     keys["basis"] = (f"{m:,} pairs of consecutive differences in {n_clusters:,} entities "
@@ -246,14 +246,24 @@ def _difference_residuals(X: np.ndarray, y: np.ndarray, divisors: np.ndarray,
 
 
 def _difference_block(X, y, divisors, current, previous) -> np.ndarray:
-    """``[1, dX, dy]`` for one block of rows, each column divided by its divisor first."""
+    """``[1, dX, dy]`` for one block of rows, each column divided by its divisor.
+
+    Column by column (a gather of one contiguous column is several times
+    faster than of rows of a block); dividing before subtracting keeps a
+    difference of two huge values finite.
+    """
     k = X.shape[1]
     block = np.empty((len(current), k + 2), order="F")
     block[:, 0] = 1.0
-    block[:, 1:k + 1] = X[current] / divisors[:k]
-    block[:, 1:k + 1] -= X[previous] / divisors[:k]
-    block[:, k + 1] = y[current] / divisors[k]
-    block[:, k + 1] -= y[previous] / divisors[k]
+    spare = np.empty(len(current))
+    for j in range(k + 1):
+        column = X[:, j] if j < k else y
+        out = block[:, j + 1]
+        np.take(column, current, out=out)
+        out /= divisors[j]
+        np.take(column, previous, out=spare)
+        spare /= divisors[j]
+        out -= spare
     return block
 
 

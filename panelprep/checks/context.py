@@ -24,7 +24,7 @@ from functools import cached_property
 import numpy as np
 import pandas as pd
 
-from panelprep._groups import group_counts, segment_bounds, select_rows
+from panelprep._groups import group_counts, occurring, segment_bounds, select_rows
 from panelprep.index import PanelIndex
 from panelprep.limits import GRID_PERIODS
 from panelprep.variation import variation_table, with_within_measures
@@ -256,9 +256,7 @@ class AuditContext:
         describes the rows read).
         """
         period = self.index.period_codes[self.base]
-        present, compact = np.unique(period, return_inverse=True)
-        compact = compact.reshape(-1)
-        rows = np.bincount(compact, minlength=len(present))
+        present, compact, rows = occurring(period, self.index.n_periods)
         missing = np.zeros((len(present), len(self.variables)), dtype=np.int64)
         block = self.values
         for j in range(len(self.variables)):
