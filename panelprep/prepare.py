@@ -350,7 +350,7 @@ def _prepare_frame(
     progress("components", f"variance components ({options.method})", rows=len(y))
     # standardised and summed per entity once: the components, the evidence and the
     # files' column decisions all read these
-    standard = standard_sample(y, X, codes, counts)
+    standard = standard_sample(y, X, codes, counts, shared=ctx.sample_means)
     components = VarianceComponents(method=options.method).fit(
         y, X, codes, counts, names=options.x, sample=standard)
     keys = flow.frame[[*options.entity, options.time]].iloc[np.flatnonzero(sample)]

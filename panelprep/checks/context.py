@@ -25,6 +25,7 @@ import numpy as np
 import pandas as pd
 
 from panelprep._groups import group_counts, occurring, segment_bounds, select_rows
+from panelprep._scale import Scaling, scaled_group_means
 from panelprep.index import PanelIndex
 from panelprep.limits import GRID_PERIODS
 from panelprep.variation import variation_table, with_within_measures
@@ -271,10 +272,21 @@ class AuditContext:
         return group_counts(entity, self.sample_index.n_entities)
 
     @cached_property
+    def sample_means(self) -> tuple[Scaling, np.ndarray]:
+        """Scaling and entity means of the sample block (``_scale.scaled_group_means``).
+
+        Read by the variation table here and, for the final sample, by the
+        variance components and the evidence (``_moments.standard_sample``).
+        """
+        return scaled_group_means(self.sample_values, self.sample_index.entity_codes,
+                                  self.sample_counts)
+
+    @cached_property
     def variation(self) -> dict[str, dict]:
         """The variation table of the estimation sample (``variation_table``, ``within_measures``)."""
         return with_within_measures(variation_table(
-            self.sample_index, self.sample_values, self.variables, self.thresholds.constant_rtol
+            self.sample_index, self.sample_values, self.variables, self.thresholds.constant_rtol,
+            shared=self.sample_means,
         ))
 
     def row_key(self, rows: np.ndarray) -> list[dict[str, object]]:
