@@ -39,7 +39,8 @@ app = typer.Typer(
 EntityOpt = Annotated[str, typer.Option("--entity", "-e", help="Entity key column(s), comma-separated.")]
 TimeOpt = Annotated[str, typer.Option("--time", "-t", help="Time column.")]
 FreqOpt = Annotated[str | None, typer.Option(
-    "--freq", help="Period frequency: year, quarter, month, week, day or int (inferred if omitted).")]
+    "--freq", help="Period frequency: year, quarter, month, week, day, int, or int:K for "
+    "whole-number periods K apart (waves 80 and 90: int:10); inferred if omitted.")]
 FormatOpt = Annotated[str | None, typer.Option(
     "--input-format", help="csv, parquet or arrow (default: by extension).")]
 DelimOpt = Annotated[str | None, typer.Option(

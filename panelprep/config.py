@@ -22,7 +22,7 @@ Keys
 | `input.missing_tokens` | list of text | `[]` | texts read as missing in numeric variables, e.g. `["n/a", "-"]` |
 | `panel.entity` | text or list of text | *required* | entity key column(s) |
 | `panel.time` | text | *required* | time column |
-| `panel.freq` | `year`, `quarter`, `month`, `week`, `day`, `int` | inferred | period frequency |
+| `panel.freq` | `year`, `quarter`, `month`, `week`, `day`, `int`, `int:K` | inferred | period frequency; `int:K`: whole-number periods K apart (waves 80, 90: `int:10`) |
 | `model.y` | text | *required* | dependent variable |
 | `model.x` | list of text | *required* | regressors (at least one) |
 | `contract.schema` | path | none | pandera YAML contract checked before the panel checks |
@@ -88,7 +88,12 @@ from panelprep.clean import NORMALISE as NORMALISE_IDS
 from panelprep.components import FINDING_IDS as COMPONENT_FINDING_IDS
 from panelprep.components import METHODS
 from panelprep.errors import InputError
-from panelprep.findings import CONTRACT_FINDING_ID, SEVERITIES, SKIPPED_COLUMNS_ID
+from panelprep.findings import (
+    CONTRACT_FINDING_ID,
+    SEVERITIES,
+    SKIPPED_COLUMNS_ID,
+    STEP_FINDING_ID,
+)
 from panelprep.io import (
     FORMATS,
     OUTPUT_FORMATS,
@@ -100,12 +105,13 @@ from panelprep.io import (
     sniff_delimiter,
 )
 from panelprep.names import DEFAULT_NAMES, AddedNames
-from panelprep.timeaxis import FREQUENCIES, build_time_axis
+from panelprep.timeaxis import FREQ_CHOICES, FREQUENCIES, build_time_axis, parse_freq
 from panelprep.transforms import TRANSFORMS
 
 # Finding ids that modules other than the structural checks emit; a run file
 # may set their severity too.
-EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, CONTRACT_FINDING_ID, SKIPPED_COLUMNS_ID)
+EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, CONTRACT_FINDING_ID, SKIPPED_COLUMNS_ID,
+                     STEP_FINDING_ID)
 FINDING_IDS: tuple[str, ...] = (*CHECK_IDS, *EXTRA_FINDING_IDS)
 
 FAIL_ON = ("error", "warning")
@@ -275,6 +281,16 @@ def _choice(allowed: tuple[str, ...]) -> Callable[[Any, bool], str]:
     return parse
 
 
+def _freq(value: Any, cli: bool) -> str:
+    """A frequency, or ``int:K`` for whole-number periods K apart (kept as written, trimmed)."""
+    try:
+        if isinstance(value, str) and parse_freq(value.strip())[0] is not None:
+            return value.strip().replace(" ", "")
+    except InputError:
+        pass
+    raise _Bad(f"one of {FREQ_CHOICES}, K a whole number from 1")
+
+
 def _items(value: Any, cli: bool, what: str) -> list[Any]:
     """A list from the file; on the command line a comma-separated text is a list too."""
     if cli and isinstance(value, str):
@@ -428,8 +444,9 @@ _KEYS: dict[str, dict[str, _Key]] = {
     "panel": {
         "entity": _Key("text or list of text", _names, "entity key column(s)"),
         "time": _Key("text", _text, "time column"),
-        "freq": _Key(", ".join(f"`{f}`" for f in FREQUENCIES), _choice(FREQUENCIES),
-                     "period frequency"),
+        "freq": _Key(", ".join(f"`{f}`" for f in FREQUENCIES) + ", `int:K`", _freq,
+                     "period frequency; `int:K`: whole-number periods K apart (waves 80, 90: "
+                     "`int:10`)"),
     },
     "model": {
         "y": _Key("text", _text, "dependent variable"),

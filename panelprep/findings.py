@@ -16,6 +16,8 @@ SEVERITIES = ("info", "warning", "error")
 CONTRACT_FINDING_ID = "contract-check-failed"
 # emitted by the audit itself when it picks the variables to check
 SKIPPED_COLUMNS_ID = "columns-not-checked"
+# emitted by the audit when a stated step (--freq int:K) is not the data's own
+STEP_FINDING_ID = "period-step-stated"
 MAX_EXAMPLES = 10
 
 

@@ -129,6 +129,8 @@ class PanelIndex:
                 off_grid=self.axis.off_grid[rows],
                 inferred=self.axis.inferred,
                 instant=None if self.axis.instant is None else self.axis.instant[rows],
+                data_step=self.axis.data_step,
+                step_stated=self.axis.step_stated,
             ),
             first_period=self.first_period + low,
             n_periods=high - low + 1,
