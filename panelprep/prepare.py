@@ -258,6 +258,7 @@ def prepare_frame(
     summary = report.to_dict()
     if report.verdict == "fail":
         summary["steps"] = [s.to_dict() for s in flow.ledger.story]
+        summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
         summary["files"] = []
         summary["cautions"] = [_gate_caution(report)]
         return Preparation(report, flow.ledger, None, None, summary)
