@@ -187,7 +187,19 @@ def prepare_frame(
     transform and ``dropped`` (the ledger), and whose ``summary`` is the
     diagnostics document.  When the gate fails, ``tables`` is empty.
     ``check_names`` refuses added columns whose names the frame already uses
-    (off only where no table is built).
+    (off only where no table is built, or the caller checked them already).
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> from panelprep.prepare import PrepareOptions, prepare_frame
+    >>> frame = pd.DataFrame({"firm": list("aabbcc"), "year": [1, 2] * 3,
+    ...                       "sales": [1.0, 2.0, 3.0, 5.0, 4.0, 4.5],
+    ...                       "capital": [2.0, 2.5, 1.0, 3.0, 2.0, 1.0]})
+    >>> prep = prepare_frame(frame, PrepareOptions(entity=["firm"], time="year", y="sales",
+    ...                                            x=["capital"]))
+    >>> prep.verdict, sorted(prep.tables), len(prep.tables["within"])
+    ('pass', ['between', 'clean', 'dropped', 'quasi', 'within'], 6)
     """
     options.validate()
     if check_names:
@@ -621,7 +633,7 @@ def _cautions(info: dict, components: VarianceComponents, index: PanelIndex,
 
 
 def prepare(
-    data: str | Path,
+    data: str | Path | pd.DataFrame,
     out: str | Path,
     entity: str | Sequence[str],
     time: str,
@@ -636,20 +648,27 @@ def prepare(
     failed_out: str | Path | None = None,
     **options: Any,
 ) -> Preparation:
-    """Read ``data``, prepare it, and write every output into ``out``.
+    """Prepare ``data`` (a file, or a DataFrame as ``audit`` takes) and write every output into ``out``.
 
     Keyword ``options`` are the remaining fields of ``PrepareOptions``
     (``freq``, ``fail_on``, ``policies``, ``shifts``, ``severities``, ...).
     Returns the ``Preparation``; ``verdict == "fail"`` means the gate failed:
     ``out`` was left as it was and only the diagnostics were written, into
-    ``failed_out`` (default ``OUT.failed`` beside ``out``).
+    ``failed_out`` (default ``OUT.failed`` beside ``out``).  A DataFrame is
+    used as it is (no file is read, ``input.path`` is null); ``prepare_frame``
+    does the same without writing anything.
 
     Examples
     --------
+    >>> import pandas as pd, tempfile
     >>> from panelprep.prepare import prepare
-    >>> prep = prepare("firms.csv", "out", entity="firm_id", time="year",
-    ...                y="sales", x="capital,staff")            # doctest: +SKIP
-    >>> prep.summary["components"]["theta"]                     # doctest: +SKIP
+    >>> frame = pd.DataFrame({"firm": list("aabbcc"), "year": [1, 2] * 3,
+    ...                       "sales": [1.0, 2.0, 3.0, 5.0, 4.0, 4.5],
+    ...                       "capital": [2.0, 2.5, 1.0, 3.0, 2.0, 1.0]})
+    >>> out = tempfile.mkdtemp() + "/prepared"
+    >>> prep = prepare(frame, out, entity="firm", time="year", y="sales", x="capital")
+    >>> prep.verdict, sorted(p.name for p in prep.written_to.iterdir())[:3]
+    ('pass', ['between.parquet', 'clean.parquet', 'diagnostics.json'])
     """
     settings = PrepareOptions(
         entity=split_names(entity) or [], time=time, y=y, x=split_names(x) or [],
@@ -667,11 +686,12 @@ def failed_folder(out: str | Path) -> Path:
 
 
 def run_preparation(
-    data: str | Path, out: str | Path, options: PrepareOptions,
+    data: str | Path | pd.DataFrame, out: str | Path, options: PrepareOptions,
     read_options: ReadOptions = DEFAULT_READ, force: bool = False, progress: Progress = _silent,
     keep: Sequence[str | Path] = (), failed_out: str | Path | None = None,
 ) -> Preparation:
-    """Read, prepare and write into a folder that appears complete or not at all.
+    """Read (or take a DataFrame), prepare and write into a folder that appears complete or
+    not at all.
 
     ``keep`` names other files the run reads (the run file, the contract):
     like ``data``, an output folder that is or holds one is refused, so
@@ -681,9 +701,14 @@ def run_preparation(
     there; ``Preparation.written_to`` says which folder was written.
     """
     options.validate()
+    given = isinstance(data, pd.DataFrame)
+    if not given and not isinstance(data, (str, os.PathLike)):
+        raise InputError(f"data must be a file path or a pandas DataFrame, not "
+                         f"{type(data).__name__}")
     # before the folder and before any data is read: the header names suffice
-    options.check_names(column_names(Path(data), read_options), str(data))
-    inputs = [Path(data), *map(Path, keep)]
+    options.check_names(list(data.columns) if given else column_names(Path(data), read_options),
+                        "the data" if given else str(data))
+    inputs = [*([] if given else [Path(data)]), *map(Path, keep)]
     out = Path(out)
     failed = failed_folder(out) if failed_out is None else Path(failed_out)
     folder = OutputFolder(out, inputs, force=force)
@@ -691,10 +716,13 @@ def run_preparation(
         if failed_out is not None or _name_fits(failed):
             # a default name too long for the file system is reported only if the gate fails
             check_output_folder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
-        progress(f"reading {data}")
-        frame, info = load(data, options.entity, options.time, options.columns_to_read,
-                           read_options)
-        prep = prepare_frame(frame, options, info, read_options, progress)
+        if given:
+            frame, info = data, {"path": None, "sha256": None, "rows": len(data)}
+        else:
+            progress(f"reading {data}")
+            frame, info = load(data, options.entity, options.time, options.columns_to_read,
+                               read_options)
+        prep = prepare_frame(frame, options, info, read_options, progress, check_names=not given)
         if prep.verdict == "fail":
             # a failed gate never replaces or empties the output folder
             folder.abandon()
