@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
+import typer.core
 
 from panelprep.errors import InputError
 
@@ -27,7 +28,33 @@ if TYPE_CHECKING:
 EXIT_PASS, EXIT_FAIL, EXIT_UNUSABLE = 0, 1, 2
 EXIT_INTERRUPTED = 130  # 128 + SIGINT, as shells report a run stopped by Ctrl-C
 
+_NO_BREAK = "\u2011"  # a non-breaking hyphen, only while the help text is wrapped
+
+
+class _WholeWordHelp(typer.Context.formatter_class):
+    """Help wrapped at spaces only: ``period-holes`` or ``drop-exact`` never split at a line end."""
+
+    def write_dl(self, rows, *args, **kwargs) -> None:
+        start = len(self.buffer)
+        super().write_dl([(term, text.replace("-", _NO_BREAK)) for term, text in rows],
+                         *args, **kwargs)
+        self.buffer[start:] = [part.replace(_NO_BREAK, "-") for part in self.buffer[start:]]
+
+
+class _Context(typer.Context):
+    formatter_class = _WholeWordHelp
+
+
+class _Command(typer.core.TyperCommand):
+    context_class = _Context
+
+
+class _Group(typer.core.TyperGroup):
+    context_class = _Context
+
+
 app = typer.Typer(
+    cls=_Group,
     add_completion=False,
     no_args_is_help=True,
     pretty_exceptions_enable=False,
@@ -87,7 +114,7 @@ def _unusable(message: str) -> None:
     raise typer.Exit(EXIT_UNUSABLE)
 
 
-@app.command("audit")
+@app.command("audit", cls=_Command)
 def audit_command(
     data: Annotated[Path, typer.Argument(help="CSV, Parquet or Arrow/Feather file.")],
     entity: EntityOpt,
@@ -125,7 +152,7 @@ def audit_command(
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 
-@app.command("prepare")
+@app.command("prepare", cls=_Command)
 def prepare_command(
     data: Annotated[Path | None, typer.Argument(help="CSV, Parquet or Arrow/Feather file (or input.path of --config).")] = None,
     config: Annotated[Path | None, typer.Option("--config", "-c", help="Run file (TOML); flags given here override it.")] = None,
@@ -149,7 +176,7 @@ def prepare_command(
     lag: Annotated[str | None, typer.Option("--lag", help="Lags as var:k,... creating var_lagk.")] = None,
     lead: Annotated[str | None, typer.Option("--lead", help="Leads as var:k,... creating var_leadk.")] = None,
     diff: Annotated[str | None, typer.Option("--diff", help="Differences as var[:k],... creating var_diffk.")] = None,
-    severity: Annotated[str | None, typer.Option("--severity", help="Severity per finding id, e.g. period-holes=error,entity-single-obs=info.")] = None,
+    severity: Annotated[str | None, typer.Option("--severity", help="Severity per finding id as ID=LEVEL,... with LEVEL info, warning or error, e.g. period-holes=error,entity-single-obs=info.")] = None,
     names: Annotated[str | None, typer.Option("--names", help="Rename the columns panelprep adds (run-file [names] keys), e.g. row=src_row,theta=re_theta.")] = None,
     freq: FreqOpt = None,
     fail_on: Annotated[str | None, typer.Option("--fail-on", help="Lowest severity that fails the gate: error (default) or warning.")] = None,
@@ -186,7 +213,7 @@ def prepare_command(
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 
-@app.command("demo")
+@app.command("demo", cls=_Command)
 def demo_command(
     folder: Annotated[Path, typer.Argument(help="Folder for the demo data, run file and outputs.")] = Path("panelprep-demo"),
     force: Annotated[bool, typer.Option("--force", help="Redo the demo in a folder that is not empty.")] = False,
@@ -243,7 +270,7 @@ def _names_map(text: str | None) -> dict[str, str]:
     return out
 
 
-@app.command("draft")
+@app.command("draft", cls=_Command)
 def draft_command(
     data: Annotated[Path, typer.Argument(help="The data file to draft a run file for.")],
     out: Annotated[Path | None, typer.Option("--out", "-o", help="Write the run file here (default: print it).")] = None,
@@ -295,7 +322,7 @@ def _fails(severity: str, summary: dict) -> bool:
     return severity in levels
 
 
-@app.command("components")
+@app.command("components", cls=_Command)
 def components_command(
     data: Annotated[Path, typer.Argument(help="CSV, Parquet or Arrow/Feather file.")],
     entity: EntityOpt,

@@ -131,6 +131,7 @@ class PanelIndex:
                 instant=None if self.axis.instant is None else self.axis.instant[rows],
                 data_step=self.axis.data_step,
                 step_stated=self.axis.step_stated,
+                written_as=self.axis.written_as,
             ),
             first_period=self.first_period + low,
             n_periods=high - low + 1,

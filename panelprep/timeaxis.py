@@ -82,6 +82,10 @@ class TimeAxis:
         what the data show, to compare with a stated ``int:K``.
     step_stated : bool
         Whether the step was stated (``int:K``) rather than inferred.
+    written_as : str
+        How the values were written: ``int``, ``date``, or the label kind
+        (``quarter``, ``month``, ``week``); week labels are shown as week
+        labels (``2021-W07``), weekly dates as dates.
     instant : ndarray of int64, shape (n,), or None
         One code per distinct moment the time values denote, so rows that
         spell the same moment differently (``2021-01-31`` and
@@ -100,6 +104,7 @@ class TimeAxis:
     instant: np.ndarray | None = None
     data_step: int | None = None
     step_stated: bool = False
+    written_as: str = "date"
 
     @property
     def name(self) -> str:
@@ -118,7 +123,11 @@ class TimeAxis:
         if self.freq == "month":
             return [f"{int(v) // 12}-{int(v) % 12 + 1:02d}" for v in ords]
         days = ords * 7 - _EPOCH_WEEKDAY if self.freq == "week" else ords
-        return [str(d) for d in (np.datetime64("1970-01-01") + days.astype("timedelta64[D]"))]
+        dates = np.datetime64("1970-01-01") + days.astype("timedelta64[D]")
+        if self.freq == "week" and self.written_as == "week":
+            iso = pd.DatetimeIndex(dates).isocalendar()
+            return [f"{y}-W{w:02d}" for y, w in zip(iso["year"], iso["week"])]
+        return [str(d) for d in dates]
 
 
 def parse_freq(freq: str | None) -> tuple[str | None, int | None]:
@@ -160,7 +169,7 @@ def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "t
     else:
         blank = np.zeros(len(uniques), dtype=bool)
 
-    _, uniq_ord, uniq_off, step, base, found_freq, uniq_instant = _parse_uniques(
+    kind, uniq_ord, uniq_off, step, base, found_freq, uniq_instant = _parse_uniques(
         uniques, blank, freq, codes, column, stated_step
     )
     safe = np.where(codes < 0, 0, codes)
@@ -183,6 +192,7 @@ def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "t
         instant=instant,
         data_step=_data_step(uniq_instant[~blank]) if found_freq == "int" else None,
         step_stated=stated_step is not None,
+        written_as=kind,
     )
 
 

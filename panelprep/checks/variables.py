@@ -5,6 +5,7 @@ from __future__ import annotations
 import re
 
 import numpy as np
+import pandas as pd
 
 from panelprep._groups import group_counts
 from panelprep.checks.base import Check, check
@@ -22,9 +23,14 @@ def not_numeric(ctx: AuditContext, self: Check):
     total = sum(len(p.rows) for p in bad.values())
     examples = []
     for name, problem in bad.items():
-        for row in problem.rows[:MAX_EXAMPLES]:
-            examples.append({"column": name, "row": int(ctx.input_rows([row])[0]),
-                             "value": str(ctx.frame[name].iloc[int(row)])})
+        # one example per distinct text: how many rows hold it (count) and the first (row)
+        texts = ctx.frame[name].iloc[problem.rows].astype(str).to_numpy()
+        codes, uniques = pd.factorize(texts)
+        counts = np.bincount(codes, minlength=len(uniques))
+        first = np.unique(codes, return_index=True)[1]
+        rows = ctx.input_rows(problem.rows[first[:MAX_EXAMPLES]])
+        examples += [{"column": name, "value": str(value), "count": int(count), "row": int(row)}
+                     for value, count, row in zip(uniques[:MAX_EXAMPLES], counts, rows)]
     details = {name: {"rows": len(p.rows), "values": p.values} for name, p in bad.items()}
     names = ", ".join(f"{n} ({len(p.rows)})" for n, p in bad.items())
     return self.finding(
