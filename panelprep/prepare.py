@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from panelprep import transforms
+from panelprep import cautions, transforms
 from panelprep._groups import group_counts
 from panelprep._linalg import independent_columns
 from panelprep._scale import standardise
@@ -324,7 +324,14 @@ def prepare_frame(
         progress("evidence on the entity effect")
         summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x)
     summary["transforms"] = outputs.info
-    summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
+    summary["cautions"] = [
+        *_cautions(outputs.info, components, sample_ix, options.names),
+        *cautions.time_invariant_cautions(components, y, X, codes, counts, options.x),
+        *cautions.lagged_response_cautions(options.shifts, options.y, options.x,
+                                           options.transforms, counts),
+        *cautions.lag_period_cautions(options.shifts, options.x, options.y, summary["findings"]),
+        *cautions.listwise_cautions(summary["findings"]),
+    ]
     if summary["verdict"] == "fail":
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)

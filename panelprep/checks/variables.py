@@ -117,13 +117,18 @@ def missing_values(ctx: AuditContext, self: Check):
     if rows_lost == 0:
         return None
     lost = _listwise(ctx)
+    # rows where a column is the only one missing: what dropping that column alone would keep
+    alone = absent & (absent.sum(axis=1) == 1)[:, None]
+    only_missing = {name: int(alone[:, j].sum()) for j, name in enumerate(ctx.variables)}
+    worst = sorted((n for n in per_variable if per_variable[n]), key=lambda n: -per_variable[n])
     return self.finding(
         rows_lost,
         f"{rows_lost} row(s) miss at least one selected variable; listwise deletion removes "
         f"them, {lost['entities_lost']} entit(ies) entirely and makes "
-        f"{lost['new_singletons']} new singleton(s)",
+        f"{lost['new_singletons']} new singleton(s); most often missing: "
+        + ", ".join(f"{n} ({per_variable[n]}, {only_missing[n]} alone)" for n in worst[:3]),
         [{"column": name, "missing": count} for name, count in per_variable.items() if count],
-        {"per_variable": per_variable, **lost},
+        {"per_variable": per_variable, "only_missing": only_missing, **lost},
     )
 
 
