@@ -162,7 +162,7 @@ def prepare_command(
     x: Annotated[str | None, typer.Option("--x", help="Regressors, comma-separated (may name lags, e.g. sales_lag1).")] = None,
     out: Annotated[Path | None, typer.Option("--out", "-o", help="Output folder.")] = None,
     failed_out: Annotated[Path | None, typer.Option("--failed-out", help="Folder for the diagnostics when the gate fails (default: OUT.failed beside --out); --out is then left as it was.")] = None,
-    transform: Annotated[str | None, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway (default within,between,quasi).")] = None,
+    transform: Annotated[str | None, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway, diff (default within,between,quasi).")] = None,
     method: Annotated[str | None, typer.Option("--method", help="Variance components: swamy-arora (default), wallace-hussain, amemiya or nerlove.")] = None,
     output_format: Annotated[str | None, typer.Option("--format", help="Data files as parquet (default) or csv.")] = None,
     force: Annotated[bool | None, typer.Option("--force/--no-force", help="Replace a non-empty output folder.")] = None,

@@ -41,7 +41,7 @@ Keys
 | `derive.diff` | list of `var` or `var:k` | `[]` | gap-aware differences x(t) - x(t-k), k = 1 when absent |
 | `output.dir` | path | *required* | output folder; a relative path is read from the run file's folder |
 | `output.failed_dir` | path | `DIR.failed` beside `output.dir` | folder for a failed gate's diagnostics, replacing an earlier failed run's (output.dir is left as it was); a relative path is read from the run file's folder |
-| `output.transforms` | list among `within`, `between`, `quasi`, `twoway` | `["within", "between", "quasi"]` | transformed files to write |
+| `output.transforms` | list among `within`, `between`, `quasi`, `twoway`, `diff` | `["within", "between", "quasi"]` | transformed files to write |
 | `output.method` | `swamy-arora`, `wallace-hussain`, `amemiya`, `nerlove` | `swamy-arora` | variance components for theta |
 | `output.format` | `parquet`, `csv` | `parquet` | format of the data files |
 | `output.force` | bool | `false` | replace a non-empty output folder |

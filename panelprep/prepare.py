@@ -355,6 +355,7 @@ _LEFT_OUT = {
     "no-within-variation": "constant within every entity: the within transform leaves zeros",
     "no-twoway-variation": "explained by entity and period effects: the two-way transform "
                            "leaves zeros",
+    "no-diff-variation": "constant within every entity: its first differences are zeros",
     "collinear": "a linear combination of the columns before it in this file "
                  "(with the constant or intercept column where the file has one)",
 }
@@ -394,7 +395,14 @@ class OutputTables:
             "between": {"rows": int(self.index.n_entities)},
             "quasi": {"rows": len(self.keys)},
             "twoway": {"rows": multi_rows, "singletons_dropped": singletons},
+            "diff": {},
         }
+        if "diff" in self.options.transforms:
+            # the counts are known before the file is built (a sort, no values)
+            found = transforms.first_difference(np.empty((len(self.keys), 0)),
+                                                self.index.entity_codes, self.index.period_codes)
+            plan["diff"] = {"rows": len(found.rows), "first_rows": found.first_rows,
+                            "across_holes": found.across_holes}
         self.info = {name: plan[name] for name in self.options.transforms}
         self.columns = {}
 
@@ -455,6 +463,12 @@ class OutputTables:
             table = _with_columns(self._key_table, names, block, kept)
             table = table.append_column(added.intercept, pa.array(intercept))
             return table.append_column(added.theta, pa.array(self.theta[codes]))
+        if name == "diff":
+            found = transforms.first_difference(values, codes, self.index.period_codes)
+            kept = self._regressors(name, found.values, values, found.rows,
+                                    "no-diff-variation", first=np.ones(len(found.rows)))
+            return _with_columns(self._key_table.take(pa.array(found.rows)), names,
+                                 found.values, kept)
         sub = self.index.subset(multi)
         block, result = transforms.twoway(
             values[multi], sub.entity_codes, sub.period_codes, sub.n_entities, sub.n_periods,
@@ -613,6 +627,15 @@ def _cautions(info: dict, components: VarianceComponents, index: PanelIndex,
         out.append(
             f"OLS on the twoway file has also absorbed up to {index.n_periods} period effects: "
             "reduce the degrees of freedom by entities + periods - 1 (per connected block)."
+        )
+    if "diff" in info:
+        diff = info["diff"]
+        out.append(
+            f"The diff file holds {diff['rows']:,} first differences: each entity's first row "
+            f"({diff['first_rows']:,}) has none, and {diff['across_holes']:,} row(s) after a hole "
+            "were left out rather than differenced across it. Fit it with a constant (a common "
+            "trend); differenced errors are serially correlated even when the errors in levels "
+            "are not."
         )
     if "quasi" in info:
         out.append(
