@@ -159,7 +159,8 @@ def audit(
     entity : entity key column(s).
     time : time column (integer periods, dates or period labels).
     vars : variables to check; default every numeric non-key column.
-    freq : period frequency; inferred when None.
+    freq : period frequency (``year`` ... ``int``, or ``int:K`` for whole-number periods K
+        apart); inferred when None.
     fail_on : lowest severity that fails the gate (``error`` or ``warning``).
     thresholds : limits of the checks (see ``Thresholds``).
     severities : severity per finding id, overriding the defaults.
