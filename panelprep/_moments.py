@@ -29,13 +29,16 @@ assembled partition by partition.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 import scipy.linalg
 
 from panelprep._groups import group_sums
 from panelprep._linalg import GRAM_MIN_ROWS, QR_BLOCK_ROWS
+from panelprep._scale import Scaling, scaling
 
 
 @dataclass(frozen=True, eq=False)
@@ -73,32 +76,41 @@ class EntityMoments:
     def k(self) -> int:
         return self.means.shape[1] - 1
 
-    def within_scores(self, X: np.ndarray, y: np.ndarray, coef: np.ndarray) -> np.ndarray:
+    def within_scores(self, x_column: Callable[..., np.ndarray], y: np.ndarray,
+                      coef: np.ndarray) -> np.ndarray:
         """``sum_t w_it e_it`` per entity (G, k), ``e = y_w - X_w coef`` the within residual.
 
-        Two sweeps over the columns with one n-vector buffer each; the
-        within block is never held whole.
+        ``x_column(j, out=buffer)`` gives regressor ``j`` of the (scaled)
+        sample (``StandardSample.x_column``).  Two sweeps over the columns
+        with two n-vector buffers; neither the within block nor the scaled
+        regressors are ever held whole.
         """
-        n_groups = len(self.counts)
-        resid = y - self.means[:, self.k][self.codes]
+        n_groups, k = len(self.counts), self.k
+        resid = y - self.means[:, k][self.codes]
         column = np.empty(len(y))
+        centre = np.empty(len(y))
         for j in np.flatnonzero(coef):
-            np.subtract(X[:, j], self.means[:, j][self.codes], out=column)
+            x_column(j, out=column)
+            column -= np.take(self.means[:, j], self.codes, out=centre)
             resid -= coef[j] * column
-        out = np.empty((n_groups, X.shape[1]), order="F")
-        for j in range(X.shape[1]):
-            np.subtract(X[:, j], self.means[:, j][self.codes], out=column)
+        out = np.empty((n_groups, k), order="F")
+        for j in range(k):
+            x_column(j, out=column)
+            column -= np.take(self.means[:, j], self.codes, out=centre)
             column *= resid
             out[:, j] = group_sums(self.codes, column, n_groups)
         return out
 
 
 def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
-                   counts: np.ndarray) -> EntityMoments:
+                   counts: np.ndarray, x_scaling: Scaling | None = None,
+                   y_scaling: Scaling | None = None) -> EntityMoments:
     """Counts, means and the within factor of ``[X, y]`` in one pass over the rows.
 
     ``X`` (n, k) and ``y`` (n,) should be standardised (centred, scaled;
-    ``_scale.standardise``) so that no cross product loses digits to a level.
+    ``_scale.standardise``) so that no cross product loses digits to a level;
+    or raw, with their ``_scale.Scaling`` given, and then each column and
+    row block is scaled as it is read (no scaled copy of the sample).
     The factor is a tall-skinny QR of row blocks below ``GRAM_MIN_ROWS`` rows
     and the square root of the blocks' summed cross product from there on,
     as in ``_linalg.ols``.
@@ -108,10 +120,19 @@ def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
     t = np.asarray(counts, dtype=np.float64)
     inv = np.zeros(n_groups)
     np.divide(1.0, t, out=inv, where=t > 0)
+    y2 = y.reshape(n, 1)
+    buffer = np.empty(n) if x_scaling is not None or y_scaling is not None else None
+
+    def column(block, scale, j):
+        return block[:, j] if scale is None else scale.column(block, j, out=buffer)
+
+    def rows(block, scale, start, stop):
+        return block[start:stop] if scale is None else scale.rows(block, start, stop)
+
     means = np.empty((n_groups, k + 1), order="F")
     for j in range(k):
-        means[:, j] = group_sums(codes, X[:, j], n_groups) * inv
-    means[:, k] = group_sums(codes, y, n_groups) * inv
+        means[:, j] = group_sums(codes, column(X, x_scaling, j), n_groups) * inv
+    means[:, k] = group_sums(codes, column(y2, y_scaling, 0), n_groups) * inv
     within_ss = np.zeros(k + 1)
     total_ss = np.zeros(k + 1)
     gram = n >= GRAM_MIN_ROWS
@@ -120,8 +141,8 @@ def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
     for start in range(0, n, QR_BLOCK_ROWS):
         stop = min(start + QR_BLOCK_ROWS, n)
         block = np.empty((stop - start, k + 1), order="F")
-        block[:, :k] = X[start:stop]
-        block[:, k] = y[start:stop]
+        block[:, :k] = rows(X, x_scaling, start, stop)
+        block[:, k] = rows(y2, y_scaling, start, stop)[:, 0]
         total_ss += np.einsum("ij,ij->j", block, block)
         block -= means[codes[start:stop]]
         within_ss += np.einsum("ij,ij->j", block, block)
@@ -138,6 +159,98 @@ def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
         r_within = triangular(np.vstack(factors) if factors else np.zeros((0, k + 1)), k + 1)
     return EntityMoments(codes=codes, counts=t, means=means, r_within=r_within,
                          within_ss=within_ss, total_ss=total_ss, n=n)
+
+
+@dataclass(eq=False)
+class StandardSample:
+    """The estimation sample with its scaling and shared per-entity statistics.
+
+    Built once per sample (:func:`standard_sample`) and read by the variance
+    components, every evidence test and the transformed files' column
+    decisions.  The sample is kept raw with each column's
+    ``_scale.Scaling``: a test that needs scaled rows reads them a column at
+    a time (:meth:`x_column`, :meth:`y_column`); ``X`` and ``y``, the whole
+    scaled block, are made only when a method asks for them.
+    """
+
+    raw_X: np.ndarray
+    raw_y: np.ndarray
+    codes: np.ndarray
+    counts: np.ndarray
+    x_scaling: Scaling
+    y_scaling: Scaling
+    moments: EntityMoments
+
+    @property
+    def n(self) -> int:
+        return len(self.raw_y)
+
+    @property
+    def k(self) -> int:
+        return self.raw_X.shape[1]
+
+    @property
+    def unit(self) -> float:
+        """The response's scale: a second moment of ``y`` times ``unit**2`` is in its units."""
+        return float(self.y_scaling.scale[0])
+
+    @cached_property
+    def X(self) -> np.ndarray:
+        """The scaled regressors (n, k), Fortran-ordered."""
+        return self.x_scaling.rows(self.raw_X, 0, self.n)
+
+    @cached_property
+    def y(self) -> np.ndarray:
+        """The scaled response (n,)."""
+        return self.y_column()
+
+    def x_column(self, j: int, out: np.ndarray | None = None) -> np.ndarray:
+        """Scaled regressor ``j`` (into ``out`` when given)."""
+        return self.x_scaling.column(self.raw_X, j, out=out)
+
+    def y_column(self, out: np.ndarray | None = None) -> np.ndarray:
+        """The scaled response (into ``out`` when given)."""
+        return self.y_scaling.column(self.raw_y.reshape(-1, 1), 0, out=out)
+
+    def centred_norms(self) -> np.ndarray:
+        """``||x_j - mean(x_j)||`` of each raw regressor, from the scaled sums of squares."""
+        with np.errstate(over="ignore"):
+            return self.x_scaling.scale * np.sqrt(self.moments.total_ss[:self.k])
+
+    def within_rows(self, extra: int = 0) -> np.ndarray:
+        """Within part of a design ``[entity column, X, extra entity columns, y]``."""
+        k, r = self.k, self.moments.r_within
+        rows = np.zeros((k + 1, k + 2 + extra))
+        rows[:, 1:1 + k] = r[:, :k]
+        rows[:, -1] = r[:, k]
+        return rows
+
+    def entity_rows(self, weight: np.ndarray, extra: list[int] | None = None) -> np.ndarray:
+        """Entity part ``weight_i [1, xbar_i, xbar_i[extra], ybar_i]``, one row per entity."""
+        means = self.moments.means
+        columns = [np.ones(len(weight)), *means[:, :self.k].T,
+                   *(means[:, j] for j in (extra or [])), means[:, self.k]]
+        return np.column_stack(columns) * weight[:, None]
+
+
+def standard_sample(y: np.ndarray, X: np.ndarray, codes: np.ndarray,
+                    counts: np.ndarray) -> StandardSample:
+    """The sample ``y`` (n,), ``X`` (n, k) with its scaling and moments, in one pass or two.
+
+    ``counts`` (G,) are the rows per entity of the dense ``codes``.  The
+    moments are taken on the scaled columns (``_scale.standardise``), which
+    are centred, so the entity means and the factor of the within block
+    carry no digits lost to a level; no scaled copy of the rows is kept.
+    """
+    y = np.asarray(y, dtype=np.float64).reshape(-1)
+    X = np.asarray(X, dtype=np.float64)
+    if X.ndim == 1:
+        X = X[:, None]
+    x_scaling, y_scaling = scaling(X), scaling(y.reshape(-1, 1))
+    sizes = np.asarray(counts, dtype=np.int64)
+    return StandardSample(raw_X=X, raw_y=y, codes=codes, counts=sizes, x_scaling=x_scaling,
+                          y_scaling=y_scaling,
+                          moments=entity_moments(X, y, codes, sizes, x_scaling, y_scaling))
 
 
 def triangular(rows: np.ndarray, width: int) -> np.ndarray:

@@ -102,3 +102,59 @@ def standardise(values: np.ndarray) -> Standardised:
     second = power_of_two(spread)
     z /= second
     return Standardised(z=z, centre=first * mean, scale=first * second)
+
+
+@dataclass(frozen=True)
+class Scaling:
+    """The parameters of :func:`standardise`, to scale a block on the fly, row range by row range.
+
+    ``z = (x / first - mean) / second`` column-wise, the same operations in
+    the same order as :func:`standardise`, so a block scaled piece by piece
+    needs no (n, k) scaled copy of the sample.
+    """
+
+    first: np.ndarray
+    mean: np.ndarray
+    second: np.ndarray
+
+    @property
+    def centre(self) -> np.ndarray:
+        return self.first * self.mean
+
+    @property
+    def scale(self) -> np.ndarray:
+        return self.first * self.second
+
+    def column(self, values: np.ndarray, j: int, out: np.ndarray | None = None) -> np.ndarray:
+        """Column ``j`` of the scaled block (``values`` is the raw (n, k) block)."""
+        out = np.divide(values[:, j], self.first[j], out=out)
+        out -= self.mean[j]
+        out /= self.second[j]
+        return out
+
+    def rows(self, values: np.ndarray, start: int, stop: int) -> np.ndarray:
+        """Rows ``start:stop`` of the scaled block, Fortran-ordered."""
+        out = np.divide(values[start:stop], self.first, order="F")
+        out -= self.mean
+        out /= self.second
+        return out
+
+
+def scaling(values: np.ndarray) -> Scaling:
+    """:func:`standardise`'s parameters of an (n, k) block, column by column with one buffer."""
+    block = np.asarray(values, dtype=np.float64)
+    n, k = block.shape
+    first, mean, second = np.ones(k), np.zeros(k), np.ones(k)
+    if n == 0:
+        return Scaling(first, mean, second)
+    largest = np.abs(block).max(axis=0)
+    _, exponent = np.frexp(np.where(largest > 0, largest, 1.0))
+    first = np.ldexp(1.0, exponent - 1)
+    buffer = np.empty(n)
+    spread = np.zeros(k)
+    for j in range(k):
+        np.divide(block[:, j], first[j], out=buffer)
+        mean[j] = buffer.mean()
+        buffer -= mean[j]
+        spread[j] = np.sqrt(np.dot(buffer, buffer) / n)
+    return Scaling(first, mean, power_of_two(spread))

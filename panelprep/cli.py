@@ -109,6 +109,17 @@ def _read_options(input_format, delimiter, decimal_comma, missing_token) -> Read
     )
 
 
+def _check_data(path: Path | None) -> None:
+    """Refuse a missing or unreadable data file before the flow's heavy imports."""
+    from panelprep._paths import check_readable
+
+    if path is not None:
+        try:
+            check_readable(path)
+        except InputError as err:
+            _unusable(str(err))
+
+
 def _unusable(message: str) -> None:
     typer.echo(f"panelprep: error: {message}", err=True)
     raise typer.Exit(EXIT_UNUSABLE)
@@ -131,8 +142,9 @@ def audit_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Check a panel's structure and gate on what is found."""
+    _check_data(data)
     from panelprep import pipeline
-    from panelprep.report.text import audit_lines
+    from panelprep.report.text import audit_lines, closing_lines
     try:
         _check_reports([report, report_html], data)
         result = pipeline.audit_file(
@@ -148,7 +160,9 @@ def audit_command(
             _write_html(report_html, document, result, data)
     except InputError as err:
         _unusable(str(err))
-    typer.echo("\n".join(audit_lines(document)))
+    written = [(what, str(path)) for what, path in (("the JSON report", report),
+                                                     ("the HTML report", report_html)) if path]
+    typer.echo("\n".join(audit_lines(document) + closing_lines(document, written)))
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 
@@ -165,6 +179,7 @@ def prepare_command(
     transform: Annotated[str | None, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway, diff (default within,between,quasi).")] = None,
     method: Annotated[str | None, typer.Option("--method", help="Variance components: swamy-arora (default), wallace-hussain, amemiya or nerlove.")] = None,
     output_format: Annotated[str | None, typer.Option("--format", help="Data files as parquet (default) or csv.")] = None,
+    compression: Annotated[str | None, typer.Option("--compression", help="Parquet codec: zstd (default), lz4, snappy, gzip or none.")] = None,
     force: Annotated[bool | None, typer.Option("--force/--no-force", help="Replace a non-empty output folder.")] = None,
     evidence: Annotated[bool | None, typer.Option("--evidence/--no-evidence", help="Compute the tests that inform the choice of estimator (default on).")] = None,
     contract: Annotated[Path | None, typer.Option("--contract", help="pandera YAML schema the input must satisfy.")] = None,
@@ -187,6 +202,7 @@ def prepare_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Clean, audit, then write estimation-ready files with provenance into --out."""
+    _check_data(data)
     from panelprep import pipeline
     from panelprep.config import RunFile, load_run_file
     from panelprep.prepare import run_from_file
@@ -201,7 +217,7 @@ def prepare_command(
         "clean.singletons": singletons, "clean.balance": balance, "clean.window": window,
         "derive.lag": lag, "derive.lead": lead, "derive.diff": diff,
         "output.dir": out, "output.failed_dir": failed_out, "output.transforms": transform, "output.method": method,
-        "output.format": output_format, "output.force": force, "output.evidence": evidence,
+        "output.format": output_format, "output.compression": compression, "output.force": force, "output.evidence": evidence,
     }
     try:
         overrides.update(_names_map(names))
@@ -236,10 +252,9 @@ def demo_command(
                f"{sum(planted['missing_cells'].values())} missing cells")
     typer.echo(f"run file: {folder / 'run.toml'}")
     typer.echo("")
-    _print_preparation(result, folder / "out")
-    typer.echo("")
-    typer.echo(f"read {result.written_to / 'diagnostics.txt'} top to bottom; rerun with: "
-               f"panelprep prepare --config {folder / 'run.toml'} --force")
+    _print_preparation(result, folder / "out",
+                       f"read {result.written_to / 'diagnostics.txt'} top to bottom; rerun with: "
+                       f"panelprep prepare --config {folder / 'run.toml'} --force")
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 
@@ -298,8 +313,9 @@ def draft_command(
                f"panelprep prepare --config {out}", err=True)
 
 
-def _print_preparation(result, out: Path) -> None:
-    from panelprep.report.text import audit_lines, components_lines
+def _print_preparation(result, out: Path, note: str = "") -> None:
+    """The audit, the components, where the files went, ``note``, and the verdict line last."""
+    from panelprep.report.text import audit_lines, components_lines, verdict_line
 
     summary = result.summary
     typer.echo("\n".join(audit_lines(summary)))
@@ -310,6 +326,9 @@ def _print_preparation(result, out: Path) -> None:
     names = ", ".join(f["name"] for f in summary.get("files", [])) or "diagnostics only"
     typer.echo(f"written to {result.written_to}: {names}, diagnostics.json, diagnostics.txt, "
                "report.html")
+    if note:
+        typer.echo(note)
+    typer.echo(verdict_line(summary))
     if result.verdict == "fail":
         failing = ", ".join(dict.fromkeys(f["id"] for f in summary["findings"]
                                           if _fails(f["severity"], summary)))
@@ -339,6 +358,7 @@ def components_command(
     quiet: QuietOpt = False,
 ) -> None:
     """Print only the variance components of the estimation sample."""
+    _check_data(data)
     from panelprep import pipeline
     from panelprep.prepare import estimate_file_components
     from panelprep.report.text import components_lines

@@ -24,14 +24,16 @@ Every trace reduces to small matrices built from ``X'X``, ``X'QX``,
 from __future__ import annotations
 
 from collections.abc import Sequence
+from functools import cached_property
 from typing import Any
 
 import numpy as np
 
 from panelprep._groups import group_sums
-from panelprep._linalg import OlsFit, ols
-from panelprep._scale import standardise
+from panelprep._linalg import OlsFit, ols, ols_from_r
+from panelprep._moments import StandardSample, standard_sample
 from panelprep.transforms import theta_per_entity, within
+from panelprep.words import plural
 
 METHODS = ("swamy-arora", "wallace-hussain", "amemiya", "nerlove")
 # every finding id the estimators emit (a run file may set their severity)
@@ -55,39 +57,49 @@ _MAX_EXAMPLES = 10
 
 
 class _Moments:
-    """Sample moments shared by all methods (one pass of group sums per column).
+    """Sample moments shared by all methods, read off the sample's :class:`EntityMoments`.
 
     The basis ``F = [1, X, QX]`` (1 + 2K columns) spans every residual-maker
     used here; ``gram_i``, ``gram_p``, ``gram_q``, ``gram_z`` are ``F'F``,
     ``F'PF``, ``F'QF`` and ``F'ZZ'F``.  Products with ``QX`` vanish under P
-    and ZZ' because ``PQ = 0`` and ``ZZ'Q = 0``.
+    and ZZ' because ``PQ = 0`` and ``ZZ'Q = 0``.  Swamy-Arora and Nerlove
+    need only the entity sums and the within factor; the within block
+    ``QX`` and the Gram matrices are built when a method asks for them.
     """
 
-    def __init__(self, y: np.ndarray, X: np.ndarray, codes: np.ndarray, counts: np.ndarray):
-        self.n = len(y)
-        self.k = X.shape[1]
-        self.codes = codes
-        self.counts = np.asarray(counts, dtype=np.float64)
+    def __init__(self, sample: StandardSample):
+        entity = sample.moments
+        self.sample = sample
+        self.n = sample.n
+        self.k = sample.k
+        self.entity = entity
+        self.codes = entity.codes
+        self.counts = np.asarray(entity.counts, dtype=np.float64)
         self.present = self.counts > 0
         self.n_entities = int(np.count_nonzero(self.present))
-        n_groups = len(counts)
-        inv = np.zeros(n_groups)
+        inv = np.zeros(len(self.counts))
         np.divide(1.0, self.counts, out=inv, where=self.present)
         self.inv = inv
-        self.sy = group_sums(codes, y, n_groups)
-        self.sx = group_sums(codes, X, n_groups) if self.k else np.zeros((n_groups, 0))
-        self.qy = within(y, codes, counts)
-        self.qx = within(X, codes, counts) if self.k else np.zeros((self.n, 0), order="F")
-        self.x_norm = np.sqrt(np.einsum("ij,ij->j", X, X)) if self.k else np.zeros(0)
+        k = self.k
+        self.sy = entity.means[:, k] * self.counts
+        self.sx = entity.means[:, :k] * self.counts[:, None]
+        self.x_norm = np.sqrt(entity.total_ss[:k])
+        self.sum_x = self.sx.sum(axis=0)
+        m = 1 + 2 * k
+        self.basis_x = np.arange(1, 1 + k)
+        self.basis_qx = np.arange(1 + k, m)
+        self.n_basis = m
 
-        k, n = self.k, float(self.n)
-        t = self.counts
-        sum_x = self.sx.sum(axis=0)
+    @cached_property
+    def _grams(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        k, n, X = self.k, float(self.n), self.sample.X
+        t, inv, sum_x = self.counts, self.inv, self.sum_x
+        qx = within(X, self.codes, self.counts) if k else np.zeros((self.n, 0), order="F")
         xx = X.T @ X
-        xqx = self.qx.T @ self.qx
+        xqx = qx.T @ qx
         xpx = self.sx.T @ (self.sx * inv[:, None])
         xzx = self.sx.T @ self.sx
-        m = 1 + 2 * k
+        m = self.n_basis
         xs, qs = slice(1, 1 + k), slice(1 + k, m)
 
         def sym(mat: np.ndarray) -> np.ndarray:
@@ -108,11 +120,23 @@ class _Moments:
         gz[0, 0] = float(t @ t)
         gz[0, xs] = gz[xs, 0] = t @ self.sx
         gz[xs, xs] = xzx
-        self.gram_i, self.gram_p, self.gram_q, self.gram_z = sym(gi), sym(gp), sym(gq), sym(gz)
-        self.basis_x = np.arange(1, 1 + k)
-        self.basis_qx = np.arange(1 + k, m)
-        self.sum_x = sum_x
-        self.n_basis = m
+        return sym(gi), sym(gp), sym(gq), sym(gz)
+
+    @property
+    def gram_i(self) -> np.ndarray:
+        return self._grams[0]
+
+    @property
+    def gram_p(self) -> np.ndarray:
+        return self._grams[1]
+
+    @property
+    def gram_q(self) -> np.ndarray:
+        return self._grams[2]
+
+    @property
+    def gram_z(self) -> np.ndarray:
+        return self._grams[3]
 
     def entity_quadratic(self, e: np.ndarray) -> float:
         """``e'Pe = sum_i (sum_t e_it)^2 / T_i``."""
@@ -262,6 +286,7 @@ class VarianceComponents:
         entity_codes: np.ndarray,
         counts: np.ndarray,
         names: Sequence[str] | None = None,
+        sample: StandardSample | None = None,
     ) -> VarianceComponents:
         """Estimate the components on the estimation sample.
 
@@ -278,6 +303,9 @@ class VarianceComponents:
             Rows per entity.
         names : sequence of str, optional
             Regressor names for the dropped lists; ``x0, x1, ...`` otherwise.
+        sample : StandardSample, optional
+            The same sample already standardised with its moments
+            (``_moments.standard_sample``), shared with the evidence.
 
         Returns
         -------
@@ -305,10 +333,10 @@ class VarianceComponents:
         # every moment on centred, power-of-two scaled columns: a regressor
         # around 1e9 (or 1e-300) gives the same components as the same one
         # around 0 (see _scale); s2 come back in the response's squared units
-        y_std = standardise(y)
-        X_std = standardise(X)
-        y, X = y_std.z[:, 0], X_std.z
-        mom = _Moments(y, X, codes, counts)
+        if sample is None:
+            sample = standard_sample(y, X, codes, counts)
+        unit = sample.unit
+        mom = _Moments(sample)
         self.findings_: list[dict] = []
         self.dropped_within_: list[str] = []
         self.dropped_between_: list[str] = []
@@ -323,8 +351,7 @@ class VarianceComponents:
             "amemiya": self._amemiya,
             "nerlove": self._nerlove,
         }[self.method]
-        s2u, s2e, dof = estimator(y, X, mom, labels)
-        unit = float(y_std.scale[0])
+        s2u, s2e, dof = estimator(mom, labels)
         for key in _SQUARED_UNIT_DOF:
             if key in dof:
                 dof[key] = _in_units(dof[key], unit)
@@ -391,14 +418,15 @@ class VarianceComponents:
 
     def _within_fit(self, mom: _Moments, labels: list[str], note: str) -> OlsFit:
         """Within regression ``Qy`` on ``QX``, columns scaled by the raw ``X`` norms."""
-        fit = ols(mom.qy, mom.qx, names=labels, scale=mom.x_norm)
+        # from the within factor of [X, y]: the rank decisions of OLS on the n within rows
+        fit = ols_from_r(mom.entity.r_within, mom.n, names=labels, scale=mom.x_norm)
         self.dropped_within_ = [str(d) for d in fit.dropped]
         if fit.dropped:
             self.findings_.append(
                 _finding(
                     "regressor-dropped-within",
                     "warning",
-                    f"{len(fit.dropped)} regressor(s) with no within variation or collinear "
+                    f"{plural(len(fit.dropped), 'regressor')} with no within variation or collinear "
                     f"after the within transform, left out of the within regression{note}",
                     fit.dropped,
                 )
@@ -408,7 +436,7 @@ class VarianceComponents:
     def _underidentified(self, message: str) -> None:
         self.findings_.append(_finding("components-underidentified", "error", message))
 
-    def _swamy_arora(self, y, X, mom: _Moments, labels):
+    def _swamy_arora(self, mom: _Moments, labels):
         n, big_n = mom.n, mom.n_entities
         fw = self._within_fit(mom, labels, "")
         df_w = n - big_n - fw.rank
@@ -433,7 +461,7 @@ class VarianceComponents:
                 _finding(
                     "regressor-dropped-between",
                     "warning",
-                    f"{len(fb.dropped)} column(s) collinear in the between regression on "
+                    f"{plural(len(fb.dropped), 'column')} collinear in the between regression on "
                     "entity means, left out of it",
                     fb.dropped,
                 )
@@ -482,8 +510,8 @@ class VarianceComponents:
         )
         return 0.0, s2e
 
-    def _wallace_hussain(self, y, X, mom: _Moments, labels):
-        n = mom.n
+    def _wallace_hussain(self, mom: _Moments, labels):
+        n, y, X = mom.n, mom.sample.y, mom.sample.X
         design = np.empty((n, 1 + mom.k), order="F")
         design[:, 0] = 1.0
         design[:, 1:] = X
@@ -495,7 +523,7 @@ class VarianceComponents:
                 _finding(
                     "regressor-dropped-pooled",
                     "warning",
-                    f"{len(fp.dropped)} column(s) collinear in the pooled regression, left out",
+                    f"{plural(len(fp.dropped), 'column')} collinear in the pooled regression, left out",
                     fp.dropped,
                 )
             )
@@ -515,8 +543,8 @@ class VarianceComponents:
         }
         return s2u, s2e, dof
 
-    def _amemiya(self, y, X, mom: _Moments, labels):
-        n = mom.n
+    def _amemiya(self, mom: _Moments, labels):
+        n, y, X = mom.n, mom.sample.y, mom.sample.X
         fw = self._within_fit(
             mom, labels, "; its effect stays in the residual entity means, so s2_u includes it"
         )
@@ -555,7 +583,7 @@ class VarianceComponents:
         }
         return s2u, s2e, dof
 
-    def _nerlove(self, y, X, mom: _Moments, labels):
+    def _nerlove(self, mom: _Moments, labels):
         n, big_n = mom.n, mom.n_entities
         fw = self._within_fit(
             mom, labels, "; its effect stays in the estimated entity effects, so s2_u includes it"
@@ -595,6 +623,9 @@ class VarianceComponents:
                 "min": float(theta.min()) if theta.size else 0.0,
                 "median": float(np.median(theta)) if theta.size else 0.0,
                 "max": float(theta.max()) if theta.size else 0.0,
+                # the spread of the weight over entities (numpy's linear quantiles)
+                **{f"p{q}": float(np.quantile(theta, q / 100)) if theta.size else 0.0
+                   for q in (10, 25, 75, 90)},
             },
             "truncated_negative": self.truncated_negative_,
             "raw_sigma2_entity": _finite(self.raw_sigma2_entity_),

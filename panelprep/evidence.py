@@ -28,17 +28,15 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import scipy.stats
 
 from panelprep._groups import group_sums
 from panelprep._linalg import default_rtol, ols_from_r, sandwich
-from panelprep._moments import EntityMoments, entity_moments, triangular
-from panelprep._scale import standardise
+from panelprep._moments import StandardSample, standard_sample, triangular
 from panelprep.transforms import theta_per_entity
+from panelprep.words import p_phrase, plural
 
 #: Significance level used by :func:`read_evidence`.
 LEVEL = 0.05
@@ -88,50 +86,15 @@ def _shared(cache: dict | None, key: str, compute: Any) -> Any:
     return cache[key]
 
 
-@dataclass(eq=False)
-class _Sample:
-    """The estimation sample, standardised, with its shared per-entity statistics."""
-
-    X: np.ndarray
-    y: np.ndarray
-    codes: np.ndarray
-    counts: np.ndarray
-    unit: float
-    moments: EntityMoments
-
-    @property
-    def n(self) -> int:
-        return len(self.y)
-
-    @property
-    def k(self) -> int:
-        return self.X.shape[1]
-
-    def within_rows(self, extra: int = 0) -> np.ndarray:
-        """Within part of a design ``[entity column, X, extra entity columns, y]``."""
-        k, r = self.k, self.moments.r_within
-        rows = np.zeros((k + 1, k + 2 + extra))
-        rows[:, 1:1 + k] = r[:, :k]
-        rows[:, -1] = r[:, k]
-        return rows
-
-    def entity_rows(self, weight: np.ndarray, extra: list[int] | None = None) -> np.ndarray:
-        """Entity part ``weight_i [1, xbar_i, xbar_i[extra], ybar_i]``, one row per entity."""
-        means = self.moments.means
-        columns = [np.ones(len(weight)), *means[:, :self.k].T,
-                   *(means[:, j] for j in (extra or [])), means[:, self.k]]
-        return np.column_stack(columns) * weight[:, None]
+# the standardised sample and its moments are shared with the components (prepare_frame)
+_Sample = StandardSample
 
 
 def _sample_of(y, X, entity_codes, counts, cache) -> _Sample:
     """Standardise the sample and build its moments, once per ``cache``."""
     def compute():
         y_raw, X_raw, sizes = _as_sample(y, X, counts)
-        y_std, X_std = standardise(y_raw), standardise(X_raw)
-        codes = np.asarray(entity_codes)
-        z, Z = y_std.z[:, 0], X_std.z
-        return _Sample(X=Z, y=z, codes=codes, counts=sizes, unit=float(y_std.scale[0]),
-                       moments=entity_moments(Z, z, codes, sizes))
+        return standard_sample(y_raw, X_raw, np.asarray(entity_codes), sizes)
 
     return _shared(cache, "sample", compute)
 
@@ -164,7 +127,17 @@ def _varying(sample: _Sample) -> np.ndarray:
 
 
 def _p_chi2(statistic: float, df: int) -> float:
-    return float(scipy.stats.chi2.sf(statistic, df))
+    """Upper tail of chi2(df): ``chdtrc``, the function ``scipy.stats.chi2.sf`` calls."""
+    import scipy.special  # here, not at import: scipy.stats alone costs about 0.6 s
+
+    return float(scipy.special.chdtrc(df, statistic))
+
+
+def _p_normal_upper(statistic: float) -> float:
+    """Upper tail of the standard normal: ``ndtr(-z)``, as ``scipy.stats.norm.sf`` computes it."""
+    import scipy.special
+
+    return float(scipy.special.ndtr(-statistic))
 
 
 def _entity_theta(theta: float | np.ndarray, n_groups: int) -> np.ndarray:
@@ -360,7 +333,7 @@ def _lm_from_sums(sums: np.ndarray, ssr: float, n: int, pairs: float) -> dict[st
         "breusch_pagan": {"statistic": lm, "df": 1, "p_value": _p_chi2(lm, 1), "note": None},
         "honda": {
             "statistic": honda,
-            "p_value": float(scipy.stats.norm.sf(honda)),
+            "p_value": _p_normal_upper(honda),
             "note": None,
         },
     }
@@ -524,7 +497,7 @@ def _mundlak_scores(sample: _Sample, theta_g: np.ndarray, var_idx: np.ndarray,
     slope = np.zeros(k)
     in_x = (kept_cols >= 1) & (kept_cols <= k)
     slope[kept_cols[in_x] - 1] = coef[in_x]
-    within_part = sample.moments.within_scores(sample.X, sample.y, slope)
+    within_part = sample.moments.within_scores(sample.x_column, sample.y_column(), slope)
     scores[:, in_x] += within_part[:, kept_cols[in_x] - 1]
     return scores
 
@@ -633,7 +606,7 @@ def _hausman(sample: _Sample, sigma2_entity: float, s2_e: float, theta, names, c
     # Contrast over columns estimable in both fits.
     use = fit_w.kept & fit_q.kept[1 + cols]
     if not use.all():
-        notes.append(f"{int(np.count_nonzero(~use))} collinear regressor(s) left out.")
+        notes.append(f"{plural(int(np.count_nonzero(~use)), 'collinear regressor')} left out.")
     if not use.any():
         notes.append("No estimable slope to contrast.")
         result["note"] = " ".join(notes)
@@ -673,7 +646,8 @@ def _verdict(block: dict[str, Any] | None) -> bool | None:
 
 
 def _fmt(value: float) -> str:
-    return f"{value:.4g}"
+    # a statistic of thousands keeps its digits: 14142.1, not 1.414e+04
+    return f"{value:.1f}" if 1e3 <= abs(value) < 1e9 else f"{value:.4g}"
 
 
 def read_evidence(evidence: dict[str, Any]) -> list[str]:
@@ -718,10 +692,10 @@ def read_evidence(evidence: dict[str, Any]) -> list[str]:
         effects = bool(bp_v or honda_v)
         parts = []
         if bp_v is not None:
-            parts.append(f"Breusch-Pagan LM = {_fmt(bp['statistic'])} (p = {_fmt(bp['p_value'])})")
+            parts.append(f"Breusch-Pagan LM = {_fmt(bp['statistic'])} ({p_phrase(bp['p_value'])})")
         if honda_v is not None:
             parts.append(
-                f"Honda = {_fmt(honda['statistic'])} (one-sided p = {_fmt(honda['p_value'])})"
+                f"Honda = {_fmt(honda['statistic'])} ({p_phrase(honda['p_value'], 'one-sided p')})"
             )
         if effects:
             tail = (
@@ -747,7 +721,7 @@ def read_evidence(evidence: dict[str, Any]) -> list[str]:
             continue
         head = (
             f"{label} statistic = {_fmt(block['statistic'])} on {block['df']} df "
-            f"(p = {_fmt(block['p_value'])}"
+            f"({p_phrase(block['p_value'])}"
             + (f", {block['covariance']} covariance" if "covariance" in block else "")
             + ")"
         )
@@ -808,6 +782,7 @@ def collect_evidence(
     counts: np.ndarray,
     components: Any,
     names: Sequence[str],
+    sample: StandardSample | None = None,
 ) -> dict[str, Any]:
     """Run all tests and return a JSON-serialisable summary.
 
@@ -818,6 +793,9 @@ def collect_evidence(
     components : object
         Fitted variance components with attributes ``sigma2_entity_``,
         ``sigma2_idiosyncratic_`` and ``theta_`` (scalar or per entity (G,)).
+    sample : StandardSample, optional
+        The same sample already standardised with its moments
+        (``_moments.standard_sample``), as the components were fitted on it.
 
     Returns
     -------
@@ -831,7 +809,7 @@ def collect_evidence(
     # every regression here has a constant (or the constant column 1 - theta_i)
     # or works within entities, so centring changes no statistic; scaling by
     # powers of two keeps squares of values near 1e-300 or 1e300 in range
-    shared: dict = {}
+    shared: dict = {} if sample is None else {"sample": sample}
     sample = _sample_of(y, X, entity_codes, counts, shared)
     sd_entity = getattr(components, "sigma_entity_", None)
     sd_idiosyncratic = getattr(components, "sigma_idiosyncratic_", None)

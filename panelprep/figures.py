@@ -23,6 +23,12 @@ from panelprep.variation import within_measures
 MAX_ENTITIES = 200
 MAX_PERIODS = 240
 
+# the four states of a presence-map cell: outside the entity's span on either
+# side, observed, or a hole inside the span
+BEFORE, PRESENT, HOLE, AFTER = 0, 1, 2, 3
+STATE_WORDS = {str(BEFORE): "before entry", str(PRESENT): "observed",
+               str(HOLE): "hole inside the span", str(AFTER): "after exit"}
+
 SHARE_DEFINITION = (
     "within variance share = sd_within^2 / (sd_within^2 + sd_between^2), from the variation "
     "table (sd_within with denominator n - N, sd_between the ddof-1 SD of the N entity means); "
@@ -37,6 +43,7 @@ def picture_data(
     max_entities: int = MAX_ENTITIES,
     max_periods: int = MAX_PERIODS,
     variation: dict[str, dict] | None = None,
+    missing: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     """The data of every picture on the HTML page, JSON-serialisable.
 
@@ -49,9 +56,10 @@ def picture_data(
     theta : ndarray (N,), optional
         theta_i per entity, aligned with the entity codes of the sample.
     max_entities : int
-        Most entity rows in the presence map.  With N entities in key order
-        and N > max_entities, every k-th entity is shown, k = ceil(N /
-        max_entities), starting with the first.
+        Most entity rows in the presence map.  Entities are sorted by entry
+        period, then exit period, then key; with N > max_entities, every k-th
+        entity of that order is shown, k = ceil(N / max_entities), starting
+        with the first.
     max_periods : int
         Most period columns in the presence map.  With P periods and P >
         max_periods, consecutive periods are grouped in blocks of m = ceil(P /
@@ -60,18 +68,27 @@ def picture_data(
     variation : dict, optional
         A variation table (``variation_table`` output); when absent and
         ``source`` is an ``AuditContext``, the context's own.
+    missing : dict, optional
+        :func:`missing_picture` of the audit; when absent and ``source`` is an
+        ``AuditContext``, the context's own.
 
     Returns
     -------
-    dict with keys ``presence`` (``matrix`` rows x columns of bools,
-    ``entities``, ``periods`` labels of each column, ``rule`` in words,
+    dict with keys ``presence`` (``states`` rows x columns of cell states,
+    ``legend`` the words of each state: 0 before entry, 1 observed, 2 hole
+    inside the span, 3 after exit; ``entities`` of each row, sorted by entry,
+    then exit, then key; ``periods`` labels of each column, ``rule`` in words,
     ``entities_total``, ``entities_shown``, ``entity_step``, ``periods_total``,
-    ``period_block``), ``obs_per_entity`` (``rows`` distinct rows-per-entity
+    ``period_block``), ``flow`` (per column of the map: ``present_most``
+    entities present in one period of it, ``entering`` and ``last_seen``
+    entities whose first and last period lie in it), ``missing`` (None, or
+    :func:`missing_picture`), ``obs_per_entity`` (``rows`` distinct rows-per-entity
     values with ``entities`` how many entities have each, ``periods`` the same
     for distinct periods observed), ``share`` (per variable ``within``,
     ``between`` or None when undefined, and ``definition``) and ``theta``
     (None, or distinct ``values`` with ``entities`` counts, ``min``,
-    ``median``, ``max``, ``definition`` and ``shown`` for the sampled rows).
+    ``median``, ``max``, ``definition`` and ``shown`` for the rows of the
+    presence map, in its order).
 
     Raises
     ------
@@ -95,25 +112,42 @@ def picture_data(
         rows_per_entity = group_counts(index.entity_codes[keyed], index.n_entities)
     n_entities, n_periods = index.n_entities, max(index.n_periods, 0)
     periods_per_entity = group_counts(entity, n_entities)
+    entry = np.full(n_entities, n_periods, dtype=np.int64)
+    leave = np.full(n_entities, -1, dtype=np.int64)
+    if len(entity):
+        # the cells are sorted by entity, then period: a segment's ends are its entry and exit
+        first = np.flatnonzero(np.r_[True, entity[1:] != entity[:-1]])
+        last = np.r_[first[1:] - 1, len(entity) - 1]
+        entry[entity[first]] = period[first]
+        leave[entity[first]] = period[last]
 
     step = max(1, math.ceil(n_entities / max_entities))
-    chosen = np.arange(0, n_entities, step, dtype=np.int64)
+    # rows sorted by entry, then exit, then key; every step-th of that order is shown
+    order = np.lexsort((np.arange(n_entities), leave, entry))
+    chosen = order[::step]
     block = max(1, math.ceil(n_periods / max_periods))
     n_columns = math.ceil(n_periods / block)
     position = np.full(n_entities, -1, dtype=np.int64)
     position[chosen] = np.arange(len(chosen))
-    matrix = np.zeros((len(chosen), n_columns), dtype=bool)
+    states = np.full((len(chosen), n_columns), HOLE, dtype=np.int8)
+    column = np.arange(n_columns)
+    states[column[None, :] < (entry[chosen] // block)[:, None]] = BEFORE
+    states[column[None, :] > (leave[chosen] // block)[:, None]] = AFTER
     shown = position[entity] >= 0 if len(entity) else np.zeros(0, dtype=bool)
-    matrix[position[entity[shown]], period[shown] // block] = True
+    states[position[entity[shown]], period[shown] // block] = PRESENT
     starts = np.arange(n_columns, dtype=np.int64) * block
-    labels = index.period_labels(starts) if n_columns else []
-    if block > 1:
-        ends = index.period_labels(np.minimum(starts + block - 1, n_periods - 1))
-        labels = [a if a == b else f"{a}–{b}" for a, b in zip(labels, ends)]
+    labels = _column_labels(index, starts, block, n_periods)
+    present_by_period = np.bincount(period, minlength=n_periods) if n_periods else np.zeros(0)
+    cut = starts if n_columns else np.zeros(0, dtype=np.int64)
+    has = periods_per_entity > 0
+
+    def per_column(counts: np.ndarray, reduce) -> list[int]:
+        return reduce.reduceat(counts, cut).astype(np.int64).tolist() if n_columns else []
 
     out: dict[str, Any] = {
         "presence": {
-            "matrix": matrix.tolist(),
+            "states": states.tolist(),
+            "legend": dict(STATE_WORDS),
             "entities": index.entity_key(chosen),
             "periods": labels,
             "entities_total": int(n_entities),
@@ -123,6 +157,15 @@ def picture_data(
             "period_block": block,
             "rule": _rule(n_entities, step, len(chosen), n_periods, block),
         },
+        "flow": {
+            "periods": labels,
+            "present_most": per_column(present_by_period, np.maximum),
+            "entering": per_column(np.bincount(entry[has], minlength=n_periods), np.add),
+            "last_seen": per_column(np.bincount(leave[has], minlength=n_periods), np.add),
+            "period_block": block,
+        },
+        "missing": missing if missing is not None else (
+            missing_picture(source, max_periods) if isinstance(source, AuditContext) else None),
         "obs_per_entity": {
             "rows": _distribution(rows_per_entity),
             "periods": _distribution(periods_per_entity),
@@ -145,6 +188,17 @@ def picture_data(
             "definition": THETA_DEFINITION,
         }
     return out
+
+
+def _column_labels(index: PanelIndex, starts: np.ndarray, block: int, n_periods: int) -> list[str]:
+    """The label of each column of periods: its period, or "first–last" of its block."""
+    if len(starts) == 0:
+        return []
+    labels = index.period_labels(starts)
+    if block == 1:
+        return labels
+    ends = index.period_labels(np.minimum(starts + block - 1, n_periods - 1))
+    return [a if a == b else f"{a}–{b}" for a, b in zip(labels, ends)]
 
 
 def _distribution(per_entity: np.ndarray) -> dict[str, list[int]]:
@@ -172,13 +226,42 @@ def _shares(variation: dict[str, dict]) -> dict[str, dict[str, float | None]]:
 def _rule(n_entities: int, step: int, shown: int, n_periods: int, block: int) -> str:
     """The sampling rule of the presence map in words, for the page to print."""
     if step == 1:
-        rows = f"all {n_entities:,} entities, in key order"
+        rows = f"all {n_entities:,} entities, sorted by entry, then exit, then key"
     else:
-        rows = (f"{shown:,} of {n_entities:,} entities: every k-th entity in key order "
-                f"(k = {step}), starting with the first")
+        rows = (f"{shown:,} of {n_entities:,} entities: every k-th entity in the order by "
+                f"entry, then exit, then key (k = {step}), starting with the first")
     if block == 1:
         columns = f"each of the {n_periods:,} periods"
     else:
         columns = (f"{n_periods:,} periods grouped in blocks of {block} consecutive periods "
                    "(a cell is present when the entity has a row in any period of its block)")
     return f"Rows: {rows}. Columns: {columns}."
+
+
+def missing_picture(ctx: AuditContext, max_periods: int = MAX_PERIODS) -> dict[str, Any] | None:
+    """Share of the keyed rows missing each variable, per period (blocks as the presence map).
+
+    ``share[j][c]`` is the missing cells of variable j over the keyed rows
+    (exact repeats collapsed) in column c's periods; None where a column
+    holds no row.  None when no variable is selected.
+    """
+    if not ctx.variables:
+        return None
+    rows, missing = ctx.missing_by_period
+    n_periods = len(rows)
+    block = max(1, math.ceil(n_periods / max_periods))
+    starts = np.arange(0, n_periods, block, dtype=np.int64)
+    labels = _column_labels(ctx.index, starts, block, n_periods)
+    column_rows = np.add.reduceat(rows, starts)
+    column_missing = np.add.reduceat(missing, starts, axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        share = column_missing / column_rows[:, None]
+    return {
+        "variables": list(ctx.variables),
+        "periods": labels,
+        "rows": column_rows.tolist(),
+        "missing": column_missing.T.tolist(),
+        "share": [[None if not math.isfinite(v) else float(v) for v in col]
+                  for col in share.T.tolist()],
+        "period_block": block,
+    }

@@ -22,7 +22,7 @@ import signal
 import stat
 import sys
 import threading
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -34,11 +34,15 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 from pyarrow import feather
 
+from panelprep._paths import check_readable
 from panelprep.errors import ColumnError, InputError
 from panelprep.limits import check_memory
 
 FORMATS = ("csv", "parquet", "arrow")
 OUTPUT_FORMATS = ("parquet", "csv")
+# Parquet codecs; zstd is the default: on float columns without dictionary pages it writes
+# faster than pyarrow's defaults and smaller (benchmarks/README.md, "Writes")
+PARQUET_COMPRESSIONS = ("zstd", "lz4", "snappy", "gzip", "none")
 _SUFFIXES = {
     ".csv": "csv",
     ".tsv": "csv",
@@ -121,37 +125,6 @@ def detect_format(path: Path, given: str | None = None) -> str:
         f"{path}: cannot tell the format from the extension {path.suffix or '(none)'!r}; "
         f"use .csv, .parquet or .feather, or pass --input-format"
     )
-
-
-def shown_path(path: Path | str) -> str:
-    """A path as written in a message: bytes that are not UTF-8 as escapes (``b\\xffd.csv``)."""
-    return os.fsencode(path).decode("utf-8", errors="backslashreplace")
-
-
-def check_readable(path: Path) -> None:
-    """Fail with one line when ``path`` is not a readable, non-empty regular file.
-
-    A file name that is not UTF-8 is refused too: the name is written into
-    every report and output file, which are UTF-8.
-    """
-    name = shown_path(path)
-    if name != str(path):
-        raise InputError(f"{name}: the file name is not UTF-8 text, so it cannot be written "
-                         "into the reports; rename the file (or link to it under a UTF-8 name)")
-    if not path.exists():
-        raise InputError(f"{path}: no such file")
-    if path.is_dir():
-        raise InputError(f"{path}: is a directory, expected a data file")
-    mode = path.stat().st_mode
-    if not stat.S_ISREG(mode):
-        kind = ("a named pipe" if stat.S_ISFIFO(mode) else "a socket" if stat.S_ISSOCK(mode)
-                else "a device" if stat.S_ISCHR(mode) or stat.S_ISBLK(mode) else "a special file")
-        raise InputError(f"{path}: is {kind}, not a regular file; the data is read more than "
-                         "once (header, columns, checksum), so save it to a file and pass that")
-    if not os.access(path, os.R_OK):
-        raise InputError(f"{path}: not readable (permission denied)")
-    if path.stat().st_size == 0:
-        raise InputError(f"{path}: the file is empty")
 
 
 def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
@@ -320,7 +293,19 @@ def read_frame(
             frame[name] = pd.Series(pd.arrays.ArrowExtensionArray(column), index=frame.index)
     if fmt == "csv" and time in frame.columns:
         frame[time] = integer_text_to_int(frame[time])
+    del table
+    release_arrow_memory()
     return frame[wanted]
+
+
+def release_arrow_memory() -> None:
+    """Hand Arrow's freed buffers back to the system.
+
+    The Arrow allocator keeps what a table held after it is gone (about the
+    size of the table read, measured: 549 -> 357 MiB RSS after reading a
+    2.55 M row file); peak memory is what counts for a run's size limit.
+    """
+    pa.default_memory_pool().release_unused()
 
 
 def _read_csv(
@@ -453,28 +438,50 @@ def _short(err: BaseException) -> str:
 
 
 def write_table(
-    frame: pd.DataFrame | pa.Table, path: Path, fmt: str, metadata: dict[str, str]
-) -> None:
-    """Write a data file (a DataFrame or an Arrow table); Parquet carries ``metadata``.
+    frame: pd.DataFrame | pa.Table | Iterable[pa.Table], path: Path, fmt: str,
+    metadata: dict[str, str], compression: str = "zstd", dictionary: Sequence[str] | None = None,
+) -> int:
+    """Write a data file; Parquet carries ``metadata``.  Returns the rows written.
 
-    Written without the pandas index and without timestamps, so the same
-    frame and metadata give the same bytes on every run.  A failing write
-    (a full disk) is an ``InputError`` naming the file.
+    ``frame`` is a DataFrame, an Arrow table, or Arrow tables of one schema
+    written one after another (a table built and written in pieces never
+    exists whole).  Written without the pandas index and without
+    timestamps, so the same data and metadata give the same bytes on every
+    run.  Parquet pages are dictionary-encoded only for the columns named in
+    ``dictionary`` (all when None): key columns repeat and shrink, while a
+    dictionary of distinct floats costs time and space.  A failing write (a
+    full disk) is an ``InputError`` naming the file.
     """
-    table = frame if isinstance(frame, pa.Table) else pa.Table.from_pandas(
-        frame, preserve_index=False)
+    if isinstance(frame, pd.DataFrame):
+        frame = pa.Table.from_pandas(frame, preserve_index=False)
+    pieces = iter([frame] if isinstance(frame, pa.Table) else frame)
+    del frame
+    rows = 0
     try:
+        first = next(pieces)
         if fmt == "parquet":
             schema_meta = {k.encode(): v.encode() for k, v in metadata.items()}
-            table = table.replace_schema_metadata(schema_meta)
-            pq.write_table(table, path, compression="zstd", write_statistics=True)
+            schema = first.schema.with_metadata(schema_meta)
+            writer = pq.ParquetWriter(
+                path, schema, compression=compression, write_statistics=True,
+                use_dictionary=True if dictionary is None else [
+                    c for c in dictionary if c in schema.names])
         elif fmt == "csv":
-            pacsv.write_csv(table, path)
+            writer = pacsv.CSVWriter(path, first.schema)
         else:
             raise InputError(f"--format {fmt!r} must be parquet or csv")
+        with writer:
+            piece = first
+            del first
+            while piece is not None:
+                writer.write_table(piece)
+                rows += piece.num_rows
+                piece = next(pieces, None)
+        release_arrow_memory()
     except OSError as err:
         raise InputError(f"cannot write {path.name} into {path.parent}: "
                          f"{err.strerror or _short(err)}") from None
+    return rows
 
 
 # --- writing without ever losing or overwriting what is there ------------------------------

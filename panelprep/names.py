@@ -95,6 +95,20 @@ _DESCRIBED = {
 }
 
 
+# What each added column holds, written beside its role in every file's column list
+# (``files[].columns`` and the Parquet metadata), keyed by AddedNames field.
+MEANINGS = {
+    "row": "the row's data row in the input, counted from 1 (header excluded)",
+    "intercept": "1 - theta_i of the row's entity: the regressor that takes the place of the "
+                 "constant in a fit on the quasi file; add no column of ones beside it",
+    "theta": "theta_i of the row's entity, the share of its entity mean the quasi file "
+             "subtracted",
+    "entity_rows": "rows of the entity in the sample, for a fit weighted by rows per entity",
+    "reason": "why the row was removed (a reason id)",
+    "step": "the step that removed the row",
+}
+
+
 def added_columns(names: AddedNames, transforms: Iterable[str]) -> dict[str, str]:
     """``{field: column name}`` of the columns a run with these transforms adds."""
     wanted = set(transforms)

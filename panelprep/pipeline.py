@@ -36,8 +36,10 @@ from panelprep.io import (
     column_names,
     detect_format,
     read_frame,
+    release_arrow_memory,
     sha256_file,
 )
+from panelprep.words import plural
 
 Progress = Callable[[str], None]
 
@@ -191,7 +193,9 @@ def audit(
     chosen = split_names(vars)
     names = choose_variables(frame, entity, time, chosen, decimal_comma)
     progress(f"indexing {len(frame):,} rows on ({', '.join(entity)}) x {time}")
-    index = index or build_index(frame, entity, time, freq)
+    if index is None:
+        index = build_index(frame, entity, time, freq)
+        release_arrow_memory()  # what factorising Arrow strings left in the pool
     context = AuditContext(
         frame=frame,
         index=index,
@@ -314,13 +318,19 @@ def _skipped_columns(frame: pd.DataFrame, keys: list[str], chosen: list[str]) ->
         return None
     comma = [c for c in skipped if looks_numeric(frame[c], decimal_comma=True)]
     if comma:
-        message = (f"{len(skipped)} column(s) not checked because they are not numbers as read; "
+        they = "it is" if len(skipped) == 1 else "they are"
+        message = (f"{plural(len(skipped), 'column')} not checked because {they} not numbers "
+                   "as read; "
                    f"{', '.join(comma)} look like numbers with decimal commas "
                    "(try --decimal-comma, or name the variables with --vars)")
     else:
         empty = [c for c in skipped if frame[c].isna().all()]
         held = "hold no value at all" if len(empty) == len(skipped) else "hold text"
-        message = (f"{len(skipped)} column(s) not checked because they {held}: "
+        if len(skipped) == 1:
+            held = held.replace("hold", "it holds", 1)
+        else:
+            held = "they " + held
+        message = (f"{plural(len(skipped), 'column')} not checked because {held}: "
                    f"{', '.join(skipped[:10])} (name variables with --vars to check them)")
     return Finding(id=SKIPPED_COLUMNS_ID, severity="warning" if comma else "info",
                    count=len(skipped), message=message,

@@ -23,9 +23,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
-import scipy.sparse
-import scipy.sparse.csgraph
-import scipy.sparse.linalg
 
 from panelprep._groups import compact_codes, group_counts, group_sums
 from panelprep._scale import standardise
@@ -73,7 +70,8 @@ def _check_codes(codes: np.ndarray, n_rows: int, n_groups: int, what: str) -> np
     return codes
 
 
-def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndarray:
+def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray,
+           out: np.ndarray | None = None) -> np.ndarray:
     """Deviations from entity means, ``x_it - xbar_i``.
 
     Parameters
@@ -84,6 +82,9 @@ def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndar
         Entity codes 0..G-1.
     counts : int array (G,)
         Rows per entity ``T_i`` (``group_counts(codes, G)``).
+    out : array like ``values``, optional
+        Where to write the result (Fortran-ordered when 2-D); may be
+        ``values`` itself, to demean in place.
 
     Returns
     -------
@@ -91,7 +92,7 @@ def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndar
         Same shape as ``values``; 2-D output is Fortran-ordered.  The mean is
         ``sum / T_i`` (no ddof; this is a projection, not a variance).
     """
-    return _subtract_group_sums(values, codes, counts, _safe_inverse_counts(counts))
+    return _subtract_group_sums(values, codes, counts, _safe_inverse_counts(counts), out)
 
 
 @dataclass(frozen=True)
@@ -192,15 +193,22 @@ def quasi(
     return _subtract_group_sums(values, codes, counts, theta * _safe_inverse_counts(counts))
 
 
-def _subtract_group_sums(values, codes, counts, weight: np.ndarray) -> np.ndarray:
+def _subtract_group_sums(values, codes, counts, weight: np.ndarray,
+                         out: np.ndarray | None = None) -> np.ndarray:
     """``x - weight_i * sum_i(x)`` column by column: within (weight 1/T_i), quasi (theta_i/T_i).
 
-    One bincount and one take per column into reused buffers.
+    One bincount and one take per column into reused buffers; ``out`` may be
+    ``values`` (each column's sum is taken before the column is overwritten).
     """
     block, flat = _as_block(values)
     n, k = block.shape
     codes = _check_codes(codes, n, len(counts), "codes")
-    out = np.empty((n, k), dtype=np.float64, order="F")
+    if out is None:
+        out = np.empty((n, k), dtype=np.float64, order="F")
+    elif out.ndim == 1:
+        out = out[:, None]
+    if out.shape != (n, k) or not (out.flags.f_contiguous or k == 1):
+        raise ValueError(f"out must be a Fortran-ordered ({n}, {k}) float64 array")
     buf = np.empty(n, dtype=np.float64)
     for j in range(k):
         col = block[:, j]
@@ -208,6 +216,93 @@ def _subtract_group_sums(values, codes, counts, weight: np.ndarray) -> np.ndarra
         np.take(shift, codes, out=buf, mode="clip")
         np.subtract(col, buf, out=out[:, j])
     return out[:, 0] if flat else out
+
+
+class DemeanedBlock:
+    """``values[rows] - weight_i * sum_i(values)``, read by row ranges, never held whole.
+
+    The within block (``weight = 1 / T_i``) or the quasi-demeaned block
+    (``theta_i / T_i``) of a file is written in pieces of rows and its
+    regressors are judged column by column (``_linalg.independent_columns``
+    reads ``block[:, j][start:stop]``), so no (n, k) output block exists.
+    Each element is computed as in :func:`within` and :func:`quasi` (the
+    entity sums of the whole column, then one subtraction), so the numbers
+    are the same to the last bit.
+
+    Parameters
+    ----------
+    values : array (n, k)
+        Sample block.
+    codes, counts :
+        Entity codes of the rows and rows per entity.
+    weight : array (G,)
+        Multiplier of each entity's column sums.
+    rows : int array (m,), optional
+        Positions of the rows the block keeps (all when None), ascending.
+    """
+
+    def __init__(self, values: np.ndarray, codes: np.ndarray, counts: np.ndarray,
+                 weight: np.ndarray, rows: np.ndarray | None = None):
+        block, _ = _as_block(values)
+        codes = _check_codes(codes, block.shape[0], len(counts), "codes")
+        self.values, self.rows = block, rows
+        self.codes = codes if rows is None else codes[rows]
+        self.shift = group_sums(codes, block, len(counts)) * weight[:, None]
+        self.shape = (len(self.codes), block.shape[1])
+
+    def _source(self, start: int, stop: int, j: int) -> np.ndarray:
+        column = self.values[:, j]
+        return column[start:stop] if self.rows is None else column[self.rows[start:stop]]
+
+    def column_piece(self, j: int, start: int, stop: int) -> np.ndarray:
+        """Rows ``start:stop`` of column ``j``."""
+        return self._source(start, stop, j) - self.shift[self.codes[start:stop], j]
+
+    def piece(self, start: int, stop: int) -> np.ndarray:
+        """Rows ``start:stop`` of every column, Fortran-ordered."""
+        out = np.empty((max(min(stop, self.shape[0]) - start, 0), self.shape[1]), order="F")
+        for j in range(self.shape[1]):
+            np.subtract(self._source(start, stop, j), self.shift[self.codes[start:stop], j],
+                        out=out[:, j])
+        return out
+
+    def __getitem__(self, key: tuple[slice, int]) -> _DemeanedColumn:
+        rows, j = key
+        if rows != slice(None):
+            raise IndexError("a DemeanedBlock is read as block[:, j], then by row ranges")
+        return _DemeanedColumn(self, int(j))
+
+
+@dataclass(frozen=True)
+class _DemeanedColumn:
+    """One column of a :class:`DemeanedBlock`, sliced by row ranges only."""
+
+    block: DemeanedBlock
+    j: int
+
+    def __len__(self) -> int:
+        return self.block.shape[0]
+
+    def __getitem__(self, rows: slice) -> np.ndarray:
+        start, stop, step = rows.indices(len(self))
+        if step != 1:
+            raise IndexError("a demeaned column is read by contiguous row ranges")
+        return self.block.column_piece(self.j, start, stop)
+
+
+def within_block(values: np.ndarray, codes: np.ndarray, counts: np.ndarray,
+                 rows: np.ndarray | None = None) -> DemeanedBlock:
+    """:func:`within` as a :class:`DemeanedBlock` (optionally of the rows at ``rows``)."""
+    return DemeanedBlock(values, codes, counts, _safe_inverse_counts(counts), rows)
+
+
+def quasi_block(values: np.ndarray, codes: np.ndarray, counts: np.ndarray,
+                theta: np.ndarray) -> DemeanedBlock:
+    """:func:`quasi` as a :class:`DemeanedBlock`."""
+    theta = np.asarray(theta, dtype=np.float64)
+    if theta.shape != (len(counts),):
+        raise ValueError(f"theta has shape {theta.shape}, expected ({len(counts)},)")
+    return DemeanedBlock(values, codes, counts, theta * _safe_inverse_counts(counts))
 
 
 def theta_per_entity(
@@ -313,6 +408,8 @@ def _incidence(a: np.ndarray, b: np.ndarray, na: int, nb: int) -> _Incidence:
     (``np.unique``).  The sort gives cells in row-major order, so the CSR
     arrays are filled directly.
     """
+    import scipy.sparse  # lazy: scipy.sparse costs a quarter second at start-up
+
     cells = a * np.int64(nb)
     cells += b
     size = na * nb
@@ -352,6 +449,9 @@ def _labels_from_normal(full: np.ndarray) -> np.ndarray:
     Off-diagonal entries of ``C' diag(1/n_a) C`` are sums of positive terms,
     so they are exactly nonzero precisely for linked pairs.
     """
+    import scipy.sparse
+    import scipy.sparse.csgraph
+
     _, labels = scipy.sparse.csgraph.connected_components(
         scipy.sparse.csr_matrix(full != 0), directed=False
     )
@@ -360,6 +460,9 @@ def _labels_from_normal(full: np.ndarray) -> np.ndarray:
 
 def _labels_from_incidence(sparse: scipy.sparse.csr_matrix) -> np.ndarray:
     """Components of the b-levels from the bipartite a-b graph (sparse path)."""
+    import scipy.sparse
+    import scipy.sparse.csgraph
+
     na = sparse.shape[0]
     graph = scipy.sparse.bmat([[None, sparse], [sparse.T, None]], format="csr")
     _, labels = scipy.sparse.csgraph.connected_components(graph, directed=False)
@@ -429,6 +532,8 @@ def twoway(
     Cost per column: two group sums and two broadcasts over the rows for the
     transform, two more group sums for the precision check.
     """
+    import scipy.sparse
+
     block, flat = _as_block(values)
     n, k = block.shape
     entity_codes = _check_codes(entity_codes, n, n_entities, "entity_codes")
@@ -529,6 +634,8 @@ def _precision(r, a, na, inv_a, sums_b, inv_b, scale) -> float:
 
 def _normal_matrix(inc: _Incidence, count_b: np.ndarray, inv_a: np.ndarray) -> np.ndarray:
     """Dense ``diag(n_b) - C' diag(1/n_a) C`` (b-levels x b-levels)."""
+    import scipy.sparse
+
     if inc.dense is not None:
         cross = inc.dense.T @ (inc.dense * inv_a[:, None])
     else:
@@ -564,6 +671,8 @@ def _direct_solver(full: np.ndarray, free_idx: np.ndarray, nb: int):
 
 def _cg_solver(sparse, count_b, inv_a, free_idx, nb, tol, max_iter):
     """Jacobi-preconditioned CG on the reduced normal equations (sparse operator)."""
+    import scipy.sparse.linalg
+
     squared = sparse.multiply(sparse)
     diag = (count_b - squared.T @ inv_a)[free_idx]
     diag = np.where(diag > 0, diag, 1.0)

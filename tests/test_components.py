@@ -387,9 +387,12 @@ def test_to_dict_contents_and_parameters():
     share = out["sigma2_entity"] / (out["sigma2_entity"] + out["sigma2_idiosyncratic"])
     assert out["entity_share"] == pytest.approx(share)
     theta = est.theta_
-    assert out["theta"] == {
-        "min": theta.min(), "median": float(np.median(theta)), "max": theta.max()
-    }
+    # the quartiles and deciles recomputed with pandas (linear interpolation, its default)
+    quantiles = pd.Series(theta).quantile([0.1, 0.25, 0.75, 0.9]).tolist()
+    assert out["theta"] == pytest.approx({
+        "min": theta.min(), "median": float(np.median(theta)), "max": theta.max(),
+        **dict(zip(("p10", "p25", "p75", "p90"), quantiles)),
+    }, rel=1e-12)
     assert theta.min() < theta.max()  # unbalanced: theta varies with T_i
     json.dumps(out)
     with pytest.raises(ValueError, match="unknown method"):

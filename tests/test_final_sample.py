@@ -102,7 +102,10 @@ def runs(tmp_path_factory) -> dict[str, Run]:
 
 
 class _Sections(HTMLParser):
-    """Per section id: its lead text, table header cells and rows of cell texts."""
+    """Per section id: its lead text, and its tables (each a header and rows of cell texts).
+
+    ``header`` and ``rows`` are those of the section's last table.
+    """
 
     def __init__(self) -> None:
         super().__init__()
@@ -116,9 +119,13 @@ class _Sections(HTMLParser):
         attrs = dict(attrs)
         if tag == "section":
             self._section = attrs.get("id")
-            self.sections[self._section] = {"lead": "", "header": [], "rows": []}
+            self.sections[self._section] = {"lead": "", "tables": [], "header": [], "rows": []}
         elif tag == "p" and attrs.get("class") == "lead":
             self._lead = True
+        elif tag == "table" and self._section in self.sections:
+            part = self.sections[self._section]
+            part["header"], part["rows"] = [], []
+            part["tables"].append({"header": part["header"], "rows": part["rows"]})
         elif tag == "tr":
             self._row = []
         elif tag in ("th", "td"):
@@ -131,7 +138,7 @@ class _Sections(HTMLParser):
             self._cell = None
         elif tag == "tr" and self._row is not None and part is not None:
             if not part["header"]:
-                part["header"] = self._row
+                part["header"].extend(self._row)
             else:
                 part["rows"].append(self._row)
             self._row = None
@@ -191,7 +198,7 @@ def test_resolved_findings_are_marked_in_every_rendering(runs):
     assert f"resolved by {RESOLVED}" in line and "not counted by the gate" in line
     assert f"resolved by {RESOLVED}" in next(x for x in run.stdout.splitlines()
                                              if "entity-single-obs" in x)
-    findings = _html(run)["findings"]
+    findings = _html(run)["findings"]["tables"][0]
     row = next(r for r in findings["rows"] if r[1] == "entity-single-obs")
     assert f"resolved by {RESOLVED}" in row[3]
 
@@ -240,7 +247,8 @@ def test_the_panel_block_counts_the_written_rows_and_entities(runs):
     assert shape["details"]["entities"] == panel["entities"]
     text = (run.out / "diagnostics.txt").read_text(encoding="utf-8")
     assert f"rows        {len(clean):,} of" in text
-    kv = {r[0]: r[1] for r in _html(run)["panel"]["rows"] if len(r) == 2}
+    first = _html(run)["panel"]["tables"][0]
+    kv = {r[0]: r[1] for r in [first["header"], *first["rows"]] if len(r) == 2}
     assert kv["rows in the final sample"].startswith(f"{len(clean):,} of")
     assert kv["entities"] == f"{clean['firm_id'].nunique():,}"
 
@@ -252,7 +260,7 @@ def test_every_block_says_which_sample_it_describes(runs):
     assert samples["policies"] == [RESOLVED]
     assert RESOLVED in samples["definition"]
     text = (run.out / "diagnostics.txt").read_text(encoding="utf-8").splitlines()
-    for heading in ("Panel (", "Findings (", "Variation ("):
+    for heading in ("Panel (", "Findings (", "Variables (", "Where the variation lies ("):
         line = next(x for x in text if x.startswith(heading))
         assert "final sample" in line, line
     sections = _html(run)
@@ -283,18 +291,24 @@ def test_text_and_html_show_the_same_two_names_and_numbers(runs):
     for document in (text, page, run.stdout):
         assert "within share" not in document  # the old name that meant two things
     lines = text.splitlines()
-    header = next(x for x in lines if x.strip().startswith("variable "))
-    variation = _html(run)["variation"]
+    # the table of where the variation lies, after the table describing the variables
+    start = next(i for i, x in enumerate(lines) if x.startswith("Where the variation lies ("))
+    header = next(x for x in lines[start:] if x.strip().startswith("variable "))
+    where = lines[lines.index(header):]
+    variation = next(t for t in _html(run)["variation"]["tables"]
+                     if WITHIN_LABELS[0] in t["header"])
     for label in WITHIN_LABELS:
         assert label in header
         assert label in variation["header"]
+    text_columns = [header.index(label) + len(label) for label in WITHIN_LABELS]
     columns = [variation["header"].index(label) for label in WITHIN_LABELS]
     rows = {r[0]: r for r in variation["rows"]}
     for name in ("sales", "capital", "staff"):
         ratio, share = _within_by_hand(clean, name)
         shown = (f"{ratio:.3f}", f"{100 * share:.1f}%")
-        cells = next(x for x in lines if x.strip().startswith(name + " ")).split()
-        assert cells[8:10] == list(shown), name
+        line = next(x for x in where if x.strip().startswith(name + " "))
+        # right-aligned: each number ends where its label ends
+        assert [line[:end].split()[-1] for end in text_columns] == list(shown), name
         assert [rows[name][c] for c in columns] == list(shown), name
 
 
@@ -351,3 +365,21 @@ def test_a_warning_a_policy_eased_is_kept_resolved_beside_the_final_finding():
     assert judged.finding("panel-shape") is shapes[0]
     assert judged.panel["periods"] == 10
     assert judged.to_dict()["findings"][-1]["resolved_by"] == "clean.balance = largest-block"
+
+
+def test_the_demo_shows_coverage_and_ends_on_the_verdict(runs):
+    run = runs["demo"]
+    summary = run.summary
+    panel = summary["panel"]
+    shape = run.finding("panel-shape")["details"]
+    heading = (f"Coverage of the grid ({shape['first_period']} to {shape['last_period']}, "
+               f"{panel['periods']} periods)")
+    text = (run.out / "diagnostics.txt").read_text(encoding="utf-8").splitlines()
+    assert heading in run.stdout.splitlines() and heading in text
+    counting = [f for f in summary["findings"] if not f.get("resolved_by")]
+    tally = {s: sum(1 for f in counting if f["severity"] == s) for s in ("error", "warning", "info")}
+    words = [f"{tally[s]} {w}{'' if tally[s] == 1 else 's'}"
+             for s, w in (("error", "error"), ("warning", "warning"), ("info", "note"))]
+    last = f"PASS: {', '.join(words)}; exit 0"
+    assert run.returncode == 0
+    assert run.stdout.rstrip("\n").splitlines()[-1] == last == text[-1]

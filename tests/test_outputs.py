@@ -11,6 +11,7 @@ in its metadata and diagnostics.json.
 from __future__ import annotations
 
 import json
+import re
 import shutil
 import subprocess
 import sys
@@ -328,6 +329,33 @@ def test_ols_on_every_regressor_column_of_every_file_is_well_defined(runs):
     assert _roles(out / "dropped.parquet") == {N.row: "auxiliary", "firm_id": "key",
                                                "year": "key", N.reason: "auxiliary",
                                                N.step: "auxiliary"}
+
+
+def test_the_intercept_column_says_what_it_is_and_the_readme_fit_runs(runs):
+    out = runs["demo"].out
+    meta = json.loads(pq.read_schema(out / "quasi.parquet").metadata[b"panelprep"])
+    column = next(c for c in meta["columns"] if c["name"] == N.intercept)
+    assert column["role"] == "intercept"
+    assert "1 - theta_i" in column["meaning"] and "no column of ones" in column["meaning"]
+    diagnostics = json.loads((out / "diagnostics.json").read_text(encoding="utf-8"))
+    listed = next(f for f in diagnostics["files"] if f["name"] == "quasi.parquet")["columns"]
+    assert next(c for c in listed if c["name"] == N.intercept) == column
+    quasi = pd.read_parquet(out / "quasi.parquet")
+    assert (quasi[N.intercept] == 1 - quasi[N.theta]).all()
+    # the README's regression on the quasi file, run as written on the demo's output
+    readme = (Path(__file__).resolve().parent.parent / "README.md").read_text(encoding="utf-8")
+    block = next(b for b in re.findall(r"```python\n(.*?)```", readme, re.DOTALL)
+                 if "lstsq" in b)
+    names = {"__name__": "readme"}
+    code = (block.replace('"prepared/quasi.parquet"', repr(str(out / "quasi.parquet")))
+            .replace('"capital", "staff"', '"capital", "staff", "capital_lag1", "founded"'))
+    exec(code, names)  # noqa: S102 - the README's own lines, as a user would run them
+    import statsmodels.api as sm
+
+    # statsmodels OLS on the same columns and no added constant gives the same coefficients
+    design = quasi[[N.intercept, "capital", "staff", "capital_lag1", "founded"]]
+    fit = sm.OLS(quasi["sales"], design, hasconst=True).fit()
+    assert names["coef"] == pytest.approx(fit.params.to_numpy(), rel=1e-8)
 
 
 def test_every_row_level_file_traces_rows_back_to_the_input(runs):

@@ -359,6 +359,31 @@ def test_csv_format_writes_the_same_values(grunfeld_run, grunfeld_csv, tmp_path)
                                    reference[numbers].to_numpy(float), rtol=1e-15, atol=0)
 
 
+def _encodings(path: Path) -> dict[str, tuple[str, bool]]:
+    """Each column's codec and whether its first row group holds a dictionary page."""
+    group = pq.ParquetFile(path).metadata.row_group(0)
+    columns = (group.column(j) for j in range(group.num_columns))
+    return {c.path_in_schema: (c.compression, c.dictionary_page_offset is not None)
+            for c in columns}
+
+
+def test_parquet_codec_is_an_option_and_only_key_columns_get_dictionaries(
+        grunfeld_run, grunfeld_csv, tmp_path):
+    encodings = _encodings(grunfeld_run / "quasi.parquet")
+    assert {codec for codec, _ in encodings.values()} == {"ZSTD"}
+    assert [c for c, (_, dictionary) in encodings.items() if dictionary] == ["firm", "year"]
+    out = tmp_path / "lz4"
+    result = invoke("prepare", grunfeld_csv, *GRUNFELD, "--out", out, "--compression", "lz4")
+    assert result.exit_code == 0, result.output
+    assert {codec for codec, _ in _encodings(out / "within.parquet").values()} == {"LZ4"}
+    pd.testing.assert_frame_equal(pd.read_parquet(out / "within.parquet"),
+                                  pd.read_parquet(grunfeld_run / "within.parquet"))
+    bad = invoke("prepare", grunfeld_csv, *GRUNFELD, "--out", tmp_path / "x",
+                 "--compression", "brotli")
+    assert bad.exit_code == 2
+    assert "zstd" in bad.output and not (tmp_path / "x").exists()
+
+
 # --- two-way file against dummies on a random unbalanced panel -------------------------------
 
 
@@ -470,3 +495,28 @@ def test_cleaning_policies_from_the_command_line(tmp_path):
     dropped = pd.read_parquet(out / "dropped.parquet")
     assert sorted(dropped[N.row]) == [9, 10, 13]
     assert len(pd.read_parquet(out / "clean.parquet")) == 10
+
+
+def test_files_written_in_pieces_equal_one_piece_and_pandas(tmp_path, monkeypatch):
+    import panelprep.prepare as flow
+
+    _random_unbalanced_csv(tmp_path / "panel.csv")  # shuffled rows, two single-row firms
+    args = {"entity": "firm", "time": "year", "y": "y", "x": "x1,x2",
+            "transforms": "within,quasi"}
+    whole = prepare(tmp_path / "panel.csv", tmp_path / "whole", **args)
+    monkeypatch.setattr(flow, "PIECE_ROWS", 7)
+    pieces = prepare(tmp_path / "panel.csv", tmp_path / "pieces", **args)
+    assert whole.verdict == pieces.verdict == "pass"
+    for name in ("within", "quasi"):
+        one = pd.read_parquet(tmp_path / "whole" / f"{name}.parquet")
+        many = pd.read_parquet(tmp_path / "pieces" / f"{name}.parquet")
+        assert pq.ParquetFile(tmp_path / "pieces" / f"{name}.parquet").num_row_groups > 5
+        pd.testing.assert_frame_equal(one, many, check_exact=True)
+    # outside check: pandas groupby demeaning of the clean file, single-row firms left out
+    clean = pd.read_parquet(tmp_path / "whole" / "clean.parquet")
+    multi = clean[clean.groupby("firm")["y"].transform("size") > 1]
+    demeaned = multi[["y", "x1", "x2"]] - multi.groupby("firm")[["y", "x1", "x2"]].transform("mean")
+    within_file = pd.read_parquet(tmp_path / "pieces" / "within.parquet")
+    assert within_file[N.row].tolist() == multi[N.row].tolist()
+    np.testing.assert_allclose(within_file[["y", "x1", "x2"]].to_numpy(),
+                               demeaned.to_numpy(), rtol=0, atol=1e-12)

@@ -25,14 +25,15 @@ from typing import Self
 import pytest
 
 from panelprep.clean import Policies
-from panelprep.figures import picture_data
+from panelprep.figures import missing_picture, picture_data
 from panelprep.index import build_index
 from panelprep.pipeline import load
 from panelprep.prepare import PrepareOptions, prepare_frame
 from panelprep.report.html import PREPARATION_SECTIONS, write_html
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
-PICTURES = ("picture-presence", "picture-obs", "picture-share", "picture-theta")
+PICTURES = ("picture-presence", "picture-flow", "picture-obs", "picture-missing",
+            "picture-share", "picture-theta")
 # Hosts of the browser's own background services (not anything a page asked for).
 BROWSER_SERVICE_SUFFIXES = (".google.com", ".googleapis.com", ".gstatic.com", ".gvt1.com")
 FLAGS = (
@@ -152,7 +153,8 @@ def page(tmp_path_factory) -> Path:
                          "sha256": "0" * 64}]
     sample = build_index(prep.tables["clean"], options.entity, options.time,
                          summary["keys"]["freq"])
-    pictures = picture_data(sample, theta=prep.components.theta_, variation=summary["variables"])
+    pictures = picture_data(sample, theta=prep.components.theta_, variation=summary["variables"],
+                            missing=missing_picture(prep.audit.context))
     return write_html(tmp_path_factory.mktemp("page") / "report.html", summary, pictures)
 
 

@@ -24,15 +24,17 @@ import pandas as pd
 import pytest
 
 import panelprep
-from panelprep.figures import picture_data
+from panelprep.figures import AFTER, BEFORE, HOLE, PRESENT, missing_picture, picture_data
 from panelprep.index import build_index
 from panelprep.pipeline import load
 from panelprep.prepare import PrepareOptions, prepare_frame
 from panelprep.report.html import AUDIT_SECTIONS, PREPARATION_SECTIONS, render_html, write_html
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
-PREP_PICTURES = ("picture-presence", "picture-obs", "picture-share", "picture-theta")
-AUDIT_PICTURES = ("picture-presence", "picture-obs", "picture-share")
+PREP_PICTURES = ("picture-presence", "picture-flow", "picture-obs", "picture-missing",
+                 "picture-share", "picture-theta")
+AUDIT_PICTURES = ("picture-presence", "picture-flow", "picture-obs", "picture-missing",
+                  "picture-share")
 PREP_ONLY = ("story", "components", "evidence", "cautions", "files", "picture-theta")
 
 
@@ -80,7 +82,8 @@ def _preparation(name: str = "gaps.csv", **policies) -> tuple[dict, dict]:
         return summary, picture_data(prep.audit.context)
     sample = build_index(prep.tables["clean"], options.entity, options.time,
                          summary["keys"]["freq"])
-    pictures = picture_data(sample, theta=prep.components.theta_, variation=summary["variables"])
+    pictures = picture_data(sample, theta=prep.components.theta_, variation=summary["variables"],
+                            missing=missing_picture(prep.audit.context))
     return summary, pictures
 
 
@@ -111,6 +114,29 @@ def test_preparation_page_has_every_section_and_picture(prep_page):
     text = " ".join(page.text)
     assert "Evidence, not a verdict." in text
     assert "These tests are evidence, not a verdict" in text
+
+
+def test_our_own_tables_and_words_replace_the_old_layouts(prep_page):
+    page = _parse(prep_page)
+    for tid in ("table-spells", "table-bands", "table-describe", "table-where", "table-theta"):
+        assert tid in page.ids, tid
+    text = " ".join(page.text)
+    for gone in ("Most common presence patterns", "entity effect variance",
+                 "entity share s2_u", "sd overall", "■"):
+        assert gone not in text, gone
+    for words in ("before entry", "hole inside the span", "after exit", "observed",
+                  "Where the variation lies", "Where the error variance sits",
+                  "share of the error variance at entity level"):
+        assert words in text, words
+    # the closing line of the text log stands in the page's header too
+    assert re.search(r"PASS: \d+ errors?, \d+ warnings?, \d+ notes?; exit 0", text)
+
+
+def test_a_failing_finding_names_what_addresses_it():
+    summary, pictures = _preparation("conflicting_duplicates.csv")
+    text = " ".join(_parse(render_html(summary, pictures)).text)
+    assert "Fails the gate. What addresses it: --duplicates keep-first, keep-last or mean" in text
+    assert "FAIL: 1 error (key-conflict)" in text and "; exit 1" in text
 
 
 def test_audit_page_has_only_the_audit_sections(audit_page):
@@ -255,11 +281,25 @@ def test_gate_failed_after_the_components_still_tells_the_story():
 
 
 def _plain_presence(name: str) -> pd.DataFrame:
-    """Entity x year presence of a clean fixture, by pandas alone."""
+    """Entity x year cell states of a clean fixture, by pandas alone, rows by entry then exit.
+
+    Observed where the entity has a row; before entry / after exit outside
+    its first and last year; a hole inside.
+    """
     raw = pd.read_csv(FIXTURES / name, dtype={"firm_id": str})
     years = range(raw["year"].min(), raw["year"].max() + 1)
-    table = pd.crosstab(raw["firm_id"], raw["year"]).reindex(columns=years, fill_value=0)
-    return table.sort_index() > 0
+    seen = pd.crosstab(raw["firm_id"], raw["year"]).reindex(columns=years, fill_value=0) > 0
+    first = raw.groupby("firm_id")["year"].min()
+    last = raw.groupby("firm_id")["year"].max()
+    grid = np.array(list(years))[None, :]
+    states = np.where(seen, PRESENT, np.where(grid < first.loc[seen.index].to_numpy()[:, None],
+                                              BEFORE,
+                                              np.where(grid > last.loc[seen.index]
+                                                       .to_numpy()[:, None], AFTER, HOLE)))
+    table = pd.DataFrame(states, index=seen.index, columns=list(years))
+    order = pd.DataFrame({"first": first, "last": last}).loc[seen.index]
+    order = order.assign(key=order.index).sort_values(["first", "last", "key"])
+    return table.loc[order.index]
 
 
 def test_presence_map_matches_a_pandas_crosstab():
@@ -268,7 +308,10 @@ def test_presence_map_matches_a_pandas_crosstab():
                             .context)["presence"]
     assert presence["entities"] == list(expected.index)
     assert presence["periods"] == [str(y) for y in expected.columns]
-    assert presence["matrix"] == expected.to_numpy().tolist()
+    assert presence["states"] == expected.to_numpy().tolist()
+    assert {HOLE, PRESENT} <= set(expected.to_numpy().ravel().tolist())
+    assert presence["legend"] == {"0": "before entry", "1": "observed",
+                                  "2": "hole inside the span", "3": "after exit"}
     assert presence["entity_step"] == 1 and presence["period_block"] == 1
     assert "all 5 entities" in presence["rule"]
 
@@ -277,15 +320,23 @@ def test_presence_sampling_and_period_blocks_follow_the_stated_rule():
     expected = _plain_presence("gaps.csv")  # 5 entities x 8 years
     context = panelprep.audit_file(FIXTURES / "gaps.csv", "firm_id", "year").context
     presence = picture_data(context, max_entities=2, max_periods=3)["presence"]
-    k = math.ceil(5 / 2)   # every k-th entity from the first: rows 0 and 3
+    k = math.ceil(5 / 2)   # every k-th entity of the entry-exit order from the first
     m = math.ceil(8 / 3)   # blocks of m consecutive years
     assert presence["entity_step"] == k and presence["period_block"] == m
     assert presence["entities"] == list(expected.index[::k])
     blocks = np.arange(expected.shape[1]) // m
-    grouped = expected.T.groupby(blocks).any().T.iloc[::k]
-    assert presence["matrix"] == grouped.to_numpy().tolist()
+
+    def block_state(states: pd.Series) -> int:
+        # observed if any year of the block is; else outside the span if the whole block is
+        values = set(states.tolist())
+        if PRESENT in values:
+            return PRESENT
+        return HOLE if HOLE in values else values.pop()
+
+    grouped = expected.T.groupby(blocks).agg(block_state).T.iloc[::k]
+    assert presence["states"] == grouped.to_numpy().tolist()
     assert presence["periods"] == ["2010–2012", "2013–2015", "2016–2017"]
-    assert f"every k-th entity in key order (k = {k})" in presence["rule"]
+    assert f"then key (k = {k})" in presence["rule"]
     assert f"blocks of {m} consecutive periods" in presence["rule"]
 
 
@@ -316,6 +367,8 @@ def test_theta_distribution_and_alignment():
     summary, pictures = _preparation()
     theta = pictures["theta"]
     counts = pd.read_csv(FIXTURES / "gaps.csv", dtype={"firm_id": str}).groupby("firm_id").size()
+    # theta of the shown rows, in the presence map's order (by entry, then exit)
+    counts = counts.loc[pictures["presence"]["entities"]]
     c = summary["components"]
     # theta_i = 1 - sqrt(s2_e / (T_i s2_u + s2_e)) recomputed from the published components
     expected = 1 - np.sqrt(c["sigma2_idiosyncratic"]

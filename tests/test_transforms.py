@@ -68,6 +68,19 @@ def test_within_shapes_and_order(make_panel):
     np.testing.assert_array_equal(out1, out2[:, 0])
 
 
+def test_within_in_place_equals_a_fresh_result_and_refuses_a_wrong_buffer(make_panel):
+    p = make_panel(6)
+    fresh = within(p.X, p.entity, p.counts)
+    # outside check: pandas groupby transform("mean")
+    ref = p.X - pd.DataFrame(p.X).groupby(p.entity).transform("mean").to_numpy()
+    assert_rel(fresh, ref, rtol=1e-12)
+    block = np.asfortranarray(p.X).copy(order="F")
+    assert within(block, p.entity, p.counts, out=block) is block
+    np.testing.assert_array_equal(block, fresh)
+    with pytest.raises(ValueError, match="Fortran-ordered"):
+        within(p.X, p.entity, p.counts, out=np.ascontiguousarray(p.X))
+
+
 def test_between_equals_pandas_groupby_mean(make_panel):
     p = make_panel(5)
     ours = between(p.X, p.entity, p.counts)

@@ -46,15 +46,12 @@ class Thresholds:
         mean square deviation from its mean is at most this times the
         variable's largest absolute deviation from its overall mean
         (default 1e-9).
-    max_pattern_periods : presence patterns are summarised only for grids of
-        at most this many periods.
     max_grid_periods : a grid of more periods is reported as most likely
         mistyped (default ``limits.GRID_PERIODS``, 100,000).
     """
 
     low_within_ratio: float = 0.05
     constant_rtol: float = 1e-9
-    max_pattern_periods: int = 512
     max_grid_periods: int = GRID_PERIODS
 
 
@@ -132,8 +129,9 @@ class AuditContext:
                            self.decimal_comma, self.missing_tokens, origin=self.origin)
         shared = {"_duplicates": self._duplicates, "base": self.base, "complete": self.complete,
                   "sample": self.sample & keep}
-        if "_numeric" in self.__dict__:
-            shared["_numeric"] = self._numeric
+        for name in ("_numeric", "missing_by_period"):
+            if name in self.__dict__:
+                shared[name] = self.__dict__[name]
         out.__dict__.update(shared)
         return out
 
@@ -243,6 +241,24 @@ class AuditContext:
             per_entity = np.concatenate(([0], width))
             longest[entity[starts]] = np.maximum.reduceat(per_entity, starts)
         return holes, longest, missing
+
+    @cached_property
+    def missing_by_period(self) -> tuple[np.ndarray, np.ndarray]:
+        """Keyed rows (exact repeats collapsed) per period of the full grid, and per period
+        the missing cells of each selected variable: (rows (P,), missing (P, k)).
+
+        Taken once from the numeric block, so it survives ``release_values``;
+        ``narrowed`` contexts share it (it describes the rows read).
+        """
+        n_periods = max(self.index.n_periods, 1)
+        period = self.index.period_codes[self.base]
+        rows = np.bincount(period, minlength=n_periods)
+        missing = np.zeros((n_periods, len(self.variables)), dtype=np.int64)
+        block = self.values
+        for j in range(len(self.variables)):
+            absent = np.isnan(block[:, j])[self.base]
+            missing[:, j] = np.bincount(period[absent], minlength=n_periods)
+        return rows, missing
 
     @cached_property
     def periods_per_entity(self) -> np.ndarray:

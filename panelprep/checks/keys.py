@@ -8,6 +8,7 @@ import pandas as pd
 from panelprep.checks.base import Check, check
 from panelprep.checks.context import AuditContext
 from panelprep.findings import MAX_EXAMPLES
+from panelprep.words import plural, plural_word
 
 
 @check("key-missing", "error", "rows whose entity or time key is missing")
@@ -19,7 +20,7 @@ def missing_key(ctx: AuditContext, self: Check):
     no_time = int((ctx.index.period_codes < 0).sum())
     return self.finding(
         len(rows),
-        f"{len(rows)} row(s) lack a key: {no_entity} without entity, {no_time} without time",
+        f"{plural(len(rows), 'row')} {'lacks' if len(rows) == 1 else 'lack'} a key: {no_entity} without entity, {no_time} without time",
         ctx.row_key(rows[:MAX_EXAMPLES]),
         {"rows_without_entity": no_entity, "rows_without_time": no_time},
     )
@@ -43,7 +44,8 @@ def conflicting_keys(ctx: AuditContext, self: Check):
                          **{k: v for k, v in example.items() if k != "row"}})
     return self.finding(
         len(cells),
-        f"{len(cells)} key(s) appear on rows with differing values ({len(rows_in_conflict)} rows)",
+        f"{plural(len(cells), 'key')} {'appears' if len(cells) == 1 else 'appear'} on rows with "
+        f"differing values ({plural(len(rows_in_conflict), 'row')})",
         examples,
         {"rows_involved": len(rows_in_conflict)},
     )
@@ -62,7 +64,8 @@ def exact_repeats(ctx: AuditContext, self: Check):
                          **{k: v for k, v in example.items() if k != "row"}})
     return self.finding(
         len(rows),
-        f"{len(rows)} row(s) repeat an earlier row exactly; they are collapsed for all counts",
+        f"{plural(len(rows), 'row')} {plural_word(len(rows), 'repeats')} an earlier row exactly; "
+        f"{'it is' if len(rows) == 1 else 'they are'} collapsed for all counts",
         examples,
     )
 
@@ -108,7 +111,8 @@ def lookalike_ids(ctx: AuditContext, self: Check):
     ]
     return self.finding(
         n_groups,
-        f"{n_groups} group(s) of entity ids differ only by case or surrounding spaces "
+        f"{plural(n_groups, 'group')} of entity ids {plural_word(n_groups, 'differs')} only by "
+        "case or surrounding spaces "
         f"({len(involved)} ids); they are treated as different entities",
         examples,
         {"ids_involved": len(involved)},

@@ -13,8 +13,7 @@ from panelprep.checks.base import Check, check
 from panelprep.checks.context import AuditContext
 from panelprep.findings import MAX_EXAMPLES
 from panelprep.limits import grid_is_large
-
-PRESENT, ABSENT = "■", "·"
+from panelprep.words import plural, plural_word
 
 
 @check("period-holes", "warning", "periods missing between an entity's first and last observation")
@@ -32,8 +31,10 @@ def time_gaps(ctx: AuditContext, self: Check):
     ]
     return self.finding(
         len(with_gaps),
-        f"{len(with_gaps)} entit(ies) have holes in their time series "
-        f"({int(missing.sum())} periods missing inside spans, longest {int(longest.max())})",
+        f"{plural(len(with_gaps), 'entity')} {plural_word(len(with_gaps), 'has')} holes in "
+        f"{'its' if len(with_gaps) == 1 else 'their'} time series "
+        f"({plural(int(missing.sum()), 'period')} missing inside spans, longest "
+        f"{int(longest.max())})",
         examples,
         {"periods_missing": int(missing.sum()), "longest_gap": int(longest.max()),
          "gap_episodes": int(holes.sum())},
@@ -47,41 +48,88 @@ def off_grid(ctx: AuditContext, self: Check):
         return None
     return self.finding(
         len(rows),
-        f"{len(rows)} row(s) have time values off the {ctx.index.axis.name} grid; "
-        "each is counted in the period that contains it",
+        f"{plural(len(rows), 'row')} {plural_word(len(rows), 'has')} time values off the "
+        f"{ctx.index.axis.name} grid; each is counted in the period that contains it",
         ctx.row_key(rows[:MAX_EXAMPLES]),
     )
 
 
-def presence_patterns(ctx: AuditContext, top: int = 5) -> list[dict] | None:
-    """Most common presence patterns over the grid (None when the grid is too long)."""
-    n_periods = ctx.sample_index.n_periods
-    if n_periods <= 0 or n_periods > ctx.thresholds.max_pattern_periods:
-        return None
+# the coverage summary's size, whatever the grid's length
+MAX_SPELL_GROUPS = 8
+MAX_BANDS = 12
+
+
+def coverage(ctx: AuditContext) -> dict:
+    """How the sample's entities cover the period grid, in a size bounded by the grid.
+
+    Each entity has a spell: its first period (entry), its last period
+    (exit) and the holes inside (runs of absent periods).  Entities are
+    grouped by (entry, exit, holes) and the ``MAX_SPELL_GROUPS`` largest
+    groups are listed (``spells``, periods as labels; ties by entry, then
+    exit, then holes).  ``bands`` cuts the grid into at most ``MAX_BANDS``
+    runs of consecutive periods: per band the fewest and most entities
+    present in one of its periods, how many entities enter (first period in
+    the band) and how many are last seen there.  ``runs`` counts entities by
+    their number of observed runs (holes + 1).  One ``np.unique`` on
+    int64 group codes and a few bincounts: no loop over entities or periods.
+    """
+    ix = ctx.sample_index
+    n_entities, n_periods = int(ix.n_entities), int(ix.n_periods)
     entity, period, starts = ctx.sample_cells
-    if len(entity) == 0:
-        return []
-    words = (n_periods + 63) // 64
-    masks = np.empty((len(starts), words), dtype=np.uint64)
-    bit = np.left_shift(np.uint64(1), (period % 64).astype(np.uint64))
-    for w in range(words):
-        in_word = np.where(period // 64 == w, bit, np.uint64(0))
-        masks[:, w] = np.bitwise_or.reduceat(in_word, starts)
-    uniq, inverse, counts = np.unique(masks, axis=0, return_inverse=True, return_counts=True)
-    inverse = inverse.reshape(-1)
-    ranking = np.lexsort((np.arange(len(counts)), -counts))[:top]
-    out = []
-    for rank in ranking:
-        bits = np.unpackbits(uniq[rank].view(np.uint8), bitorder="little")[:n_periods]
-        out.append({
-            "pattern": "".join(PRESENT if b else ABSENT for b in bits),
-            "entities": int(counts[rank]),
-            "share": float(counts[rank] / len(starts)),
-        })
-    return out
+    if n_entities == 0 or n_periods <= 0 or len(entity) == 0:
+        return {"spells": [], "spell_groups": 0, "bands": [], "runs": {},
+                "entities_full": 0, "from_first": 0, "to_last": 0}
+    entry = period[starts]
+    stops = np.append(starts[1:], len(period)) - 1
+    leave = period[stops]
+    holes = ctx.gaps[0][entity[starts]]
+    code = (entry.astype(np.int64) * n_periods + leave) * (int(holes.max()) + 1) + holes
+    uniq, counts = np.unique(code, return_counts=True)
+    ranking = np.lexsort((uniq, -counts))[:MAX_SPELL_GROUPS]
+    top = uniq[ranking]
+    top_holes = top % (int(holes.max()) + 1)
+    span = top // (int(holes.max()) + 1)
+    top_entry, top_leave = span // n_periods, span % n_periods
+    entry_labels = ix.period_labels(top_entry) if len(top) else []
+    leave_labels = ix.period_labels(top_leave) if len(top) else []
+    spells = [
+        {"entry": a, "exit": b, "holes": int(h), "entities": int(c),
+         "share": float(c / n_entities), "from_first": bool(e == 0),
+         "to_last": bool(x == n_periods - 1)}
+        for a, b, h, c, e, x in zip(entry_labels, leave_labels, top_holes.tolist(),
+                                    counts[ranking].tolist(), top_entry.tolist(),
+                                    top_leave.tolist())
+    ]
+    present = np.bincount(period, minlength=n_periods)
+    entering = np.bincount(entry, minlength=n_periods)
+    leaving = np.bincount(leave, minlength=n_periods)
+    width = -(-n_periods // MAX_BANDS)
+    first = np.arange(0, n_periods, width, dtype=np.int64)
+    last = np.minimum(first + width - 1, n_periods - 1)
+    first_labels, last_labels = ix.period_labels(first), ix.period_labels(last)
+    bands = [
+        {"first": a, "last": b, "periods": int(z - f + 1), "present_fewest": int(lo),
+         "present_most": int(hi), "entering": int(i), "last_seen": int(o)}
+        for a, b, f, z, lo, hi, i, o in zip(
+            first_labels, last_labels, first.tolist(), last.tolist(),
+            np.minimum.reduceat(present, first).tolist(),
+            np.maximum.reduceat(present, first).tolist(),
+            np.add.reduceat(entering, first).tolist(), np.add.reduceat(leaving, first).tolist())
+    ]
+    run_values, run_counts = np.unique(holes + 1, return_counts=True)
+    full = int((ctx.periods_per_entity == n_periods).sum())
+    return {
+        "spells": spells,
+        "spell_groups": len(uniq),
+        "entities_full": full,
+        "from_first": int((entry == 0).sum()),
+        "to_last": int((leave == n_periods - 1).sum()),
+        "runs": {str(v): int(c) for v, c in zip(run_values.tolist(), run_counts.tolist())},
+        "bands": bands,
+    }
 
 
-@check("panel-shape", "info", "balance, observations per entity and presence patterns")
+@check("panel-shape", "info", "balance, observations per entity and coverage of the grid")
 def balance(ctx: AuditContext, self: Check):
     ix = ctx.sample_index
     per_entity = ctx.periods_per_entity
@@ -101,12 +149,14 @@ def balance(ctx: AuditContext, self: Check):
         "obs_per_entity": {"min": int(per_entity.min()), "median": float(np.median(per_entity)),
                            "max": int(per_entity.max())},
         "obs_per_entity_counts": {str(int(v)): int(c) for v, c in zip(values, counts)},
-        "patterns": presence_patterns(ctx),
+        "coverage": coverage(ctx),
     }
     shape = "balanced" if is_balanced else "unbalanced"
-    message = (f"{shape}: {ix.n_entities} entities over {ix.n_periods} periods ({first} to "
-               f"{last}); {int((per_entity < ix.n_periods).sum())} entit(ies) miss at least one "
-               "period")
+    missing_one = int((per_entity < ix.n_periods).sum())
+    message = (f"{shape}: {plural(int(ix.n_entities), 'entity')} over "
+               f"{plural(int(ix.n_periods), 'period')} ({first} to {last}); "
+               f"{plural(missing_one, 'entity')} {'misses' if missing_one == 1 else 'miss'} at "
+               "least one period")
     # shapes no panel method can use are warnings, so a gate on warnings stops them
     degenerate = _degenerate(ctx)
     if degenerate:
@@ -150,7 +200,8 @@ def singletons(ctx: AuditContext, self: Check):
         return None
     return self.finding(
         len(single),
-        f"{len(single)} entit(ies) have a single observation; a within transform removes them",
+        f"{plural(len(single), 'entity')} {plural_word(len(single), 'has')} a single "
+        f"observation; a within transform removes {'it' if len(single) == 1 else 'them'}",
         [{"entity": key} for key in ctx.sample_index.entity_key(single[:MAX_EXAMPLES])],
     )
 

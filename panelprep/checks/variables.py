@@ -11,6 +11,7 @@ from panelprep._groups import group_counts
 from panelprep.checks.base import Check, check
 from panelprep.checks.context import AuditContext
 from panelprep.findings import MAX_EXAMPLES
+from panelprep.words import plural, plural_word
 
 
 @check("values-not-numeric", "error",
@@ -35,7 +36,7 @@ def not_numeric(ctx: AuditContext, self: Check):
     names = ", ".join(f"{n} ({len(p.rows)})" for n, p in bad.items())
     return self.finding(
         total,
-        f"{total} value(s) that are not numbers in {names}; e.g. "
+        f"{plural(total, 'value')} that {plural_word(total, 'is')} not a number in {names}; e.g. "
         + ", ".join(repr(v) for p in bad.values() for v in p.values[:3])
         + f" ({'; '.join(_hints([v for p in bad.values() for v in p.values], ctx.decimal_comma))})",
         examples,
@@ -78,8 +79,8 @@ def declared_missing(ctx: AuditContext, self: Check):
     total = sum(hits.values())
     return self.finding(
         total,
-        f"{total} value(s) matching declared missing tokens {list(ctx.missing_tokens)} "
-        "were read as missing",
+        f"{plural(total, 'value')} matching declared missing tokens {list(ctx.missing_tokens)} "
+        f"{plural_word(total, 'was')} read as missing",
         [{"column": name, "rows": count} for name, count in hits.items()],
         {"per_variable": hits},
     )
@@ -98,7 +99,7 @@ def nan_missing(ctx: AuditContext, self: Check):
     names = ", ".join(f"{name} ({len(rows)})" for name, rows in hits.items())
     return self.finding(
         total,
-        f"{total} NaN value(s) read as missing in {names}; NaN is often the result of a failed "
+        f"{plural(total, 'NaN value')} read as missing in {names}; NaN is often the result of a failed "
         "computation (0/0) upstream rather than a value never observed: check where it comes "
         "from (--severity values-nan-missing=info when NaN is how the source writes missing)",
         examples,
@@ -110,6 +111,8 @@ def nan_missing(ctx: AuditContext, self: Check):
 def missing_values(ctx: AuditContext, self: Check):
     if not ctx.variables:
         return None
+    # kept for the report's picture of missing cells, before the block may be released
+    ctx.missing_by_period  # noqa: B018
     base = ctx.base
     absent = np.isnan(ctx.values[base])
     per_variable = {name: int(absent[:, j].sum()) for j, name in enumerate(ctx.variables)}
@@ -123,9 +126,10 @@ def missing_values(ctx: AuditContext, self: Check):
     worst = sorted((n for n in per_variable if per_variable[n]), key=lambda n: -per_variable[n])
     return self.finding(
         rows_lost,
-        f"{rows_lost} row(s) miss at least one selected variable; listwise deletion removes "
-        f"them, {lost['entities_lost']} entit(ies) entirely and makes "
-        f"{lost['new_singletons']} new singleton(s); most often missing: "
+        f"{plural(rows_lost, 'row')} {'misses' if rows_lost == 1 else 'miss'} at least one "
+        f"selected variable; listwise deletion removes {'it' if rows_lost == 1 else 'them'}, "
+        f"{plural(lost['entities_lost'], 'entity')} entirely and makes "
+        f"{plural(lost['new_singletons'], 'new singleton')}; most often missing: "
         + ", ".join(f"{n} ({per_variable[n]}, {only_missing[n]} alone)" for n in worst[:3]),
         [{"column": name, "missing": count} for name, count in per_variable.items() if count],
         {"per_variable": per_variable, "only_missing": only_missing, **lost},
@@ -139,8 +143,8 @@ def new_singletons(ctx: AuditContext, self: Check):
         return None
     return self.finding(
         lost["new_singletons"],
-        f"listwise deletion leaves {lost['new_singletons']} entit(ies) with a single row "
-        "that had two or more before",
+        f"listwise deletion leaves {plural(lost['new_singletons'], 'entity')} with a single "
+        "row that had two or more before",
         [{"entity": key} for key in lost["new_singleton_keys"]],
     )
 
@@ -166,8 +170,9 @@ def time_invariant(ctx: AuditContext, self: Check):
         return None
     return self.finding(
         len(names),
-        f"{len(names)} variable(s) never change within an entity; a within transform wipes "
-        f"them out: {', '.join(names)}",
+        f"{plural(len(names), 'variable')} never {'changes' if len(names) == 1 else 'change'} "
+        f"within an entity; a within transform wipes {'it' if len(names) == 1 else 'them'} "
+        f"out: {', '.join(names)}",
         [{"variable": n} for n in names],
     )
 
@@ -186,7 +191,8 @@ def low_within(ctx: AuditContext, self: Check):
         return None
     return self.finding(
         len(thin),
-        f"{len(thin)} variable(s) vary little within entities (within SD ratio = within SD / "
+        f"{plural(len(thin), 'variable')} {plural_word(len(thin), 'varies')} little within "
+        "entities (within SD ratio = within SD / "
         f"overall SD < {limit:g}); within estimates of their slopes will be imprecise",
         thin,
     )
@@ -199,8 +205,9 @@ def period_invariant(ctx: AuditContext, self: Check):
         return None
     return self.finding(
         len(names),
-        f"{len(names)} variable(s) are the same for every entity in each period; time effects "
-        f"wipe them out: {', '.join(names)}",
+        f"{plural(len(names), 'variable')} {plural_word(len(names), 'is')} the same for every "
+        f"entity in each period; time effects wipe {'it' if len(names) == 1 else 'them'} out: "
+        f"{', '.join(names)}",
         [{"variable": n} for n in names],
     )
 

@@ -9,9 +9,12 @@ or the user (ids, column names, paths, messages) goes through
 
 Sections carry stable ids: ``story``, ``findings``, ``panel``, ``variation``,
 ``components``, ``evidence``, ``cautions`` and ``files``; the pictures are
-``picture-presence``, ``picture-obs``, ``picture-share`` and
-``picture-theta``.  An audit has no ``story``, ``components``, ``evidence``,
-``picture-theta``, and has ``cautions``/``files`` only when its summary does.
+``picture-presence``, ``picture-flow``, ``picture-obs``, ``picture-missing``
+(when there is a variable), ``picture-share`` and ``picture-theta``; the
+panel section's coverage tables are ``table-spells`` and ``table-bands``, the
+variation section's ``table-describe`` and ``table-where``.  An audit has no
+``story``, ``components``, ``evidence``, ``picture-theta``, and has
+``cautions``/``files`` only when its summary does.
 """
 
 from __future__ import annotations
@@ -26,12 +29,21 @@ from typing import Any
 from panelprep.findings import SEVERITIES
 from panelprep.io import write_file
 from panelprep.report import (
+    BETWEEN_VARIANCE_SHARE,
     WITHIN_SD_RATIO,
     WITHIN_VARIANCE_SHARE,
+    describe_cells,
+    failing_ids,
+    hint_for,
     resolved_note,
     rows_words,
+    runs_words,
     sample_words,
+    spell_words,
+    transform_details,
 )
+from panelprep.report.text import verdict_line
+from panelprep.words import p_text, plural
 
 # Our palette: paper background, ink text, a deep teal for what is there and
 # copper for its counterpart (between variation), plus one hue per severity.
@@ -42,6 +54,9 @@ RULE = "#e2ddd2"
 TEAL = "#1f6f6b"
 COPPER = "#c2703d"
 ABSENT = "#ece6d9"
+# the presence map's four cell states (figures.STATE_WORDS): before entry a cool
+# grey, observed teal, a hole copper, after exit a warm grey
+STATE_COLOURS = {0: "#e3e9ee", 1: TEAL, 2: COPPER, 3: "#efe4d2"}
 SEVERITY_COLOURS = {"error": "#a8322d", "warning": "#a86a12", "info": "#3f6396"}
 
 AUDIT_SECTIONS = ("findings", "panel", "variation")
@@ -66,7 +81,7 @@ body {{
 }}
 code, .mono, td.num {{ font-family: ui-monospace, "SFMono-Regular", Menlo, Consolas,
   "Liberation Mono", monospace; font-size: 0.88em; }}
-td.num {{ text-align: right; white-space: nowrap; font-variant-numeric: tabular-nums; }}
+td.num {{ text-align: right; white-space: pre; font-variant-numeric: tabular-nums; }}
 header.top {{
   background: var(--ink); color: #f4f1ea; padding: 28px 0 22px;
   border-bottom: 5px solid var(--teal);
@@ -143,7 +158,10 @@ figure .plot svg {{ max-width: 100%; height: auto; display: block; }}
 figure .plot {{ max-width: 980px; }}
 figcaption {{ color: var(--muted); font-size: 13.5px; margin-top: 6px; }}
 figcaption b {{ color: var(--ink); }}
-.patterns {{ font-family: ui-monospace, Menlo, Consolas, monospace; font-size: 13px; }}
+.hint {{ color: var(--muted); font-size: 13px; margin: 4px 0 0; }}
+.hint.fails {{ color: var(--error); }}
+p.closing {{ margin: 10px 0 0; font-family: ui-monospace, Menlo, Consolas, monospace;
+  font-size: 13.5px; color: #f4f1ea; }}
 .nowrap {{ white-space: nowrap; }}
 .empty {{ color: var(--muted); font-style: italic; }}
 footer {{ color: var(--muted); font-size: 12.5px; padding: 0 0 40px; }}
@@ -173,6 +191,14 @@ def _num(value: Any, digits: int = 4) -> str:
     return _e(value)
 
 
+def _plain(value: Any) -> str:
+    """A value of the data (a year, a code, a mean): no thousands separators."""
+    if isinstance(value, float) and math.isfinite(value) and not (
+            value != 0 and (abs(value) >= 1e9 or abs(value) < 1e-3)):
+        return f"{value:.4f}".rstrip("0").rstrip(".")
+    return _num(value)
+
+
 def _pct(share: float | None) -> str:
     return "–" if share is None else f"{100 * share:.1f}%"
 
@@ -182,7 +208,7 @@ def _ratio(ratio: float | None) -> str:
 
 
 def _table(header: list[str], rows: list[list[str]], numeric: set[int] = frozenset(),
-           cls: str = "") -> str:
+           cls: str = "", tid: str = "") -> str:
     """A table from already escaped cells; columns in ``numeric`` align right."""
     head = "".join(f'<th class="num">{h}</th>' if i in numeric else f"<th>{h}</th>"
                    for i, h in enumerate(header))
@@ -191,7 +217,8 @@ def _table(header: list[str], rows: list[list[str]], numeric: set[int] = frozens
                          for i, c in enumerate(row)) + "</tr>"
         for row in rows
     )
-    return (f'<div class="scroll"><table class="{cls}"><thead><tr>{head}</tr></thead>'
+    ident = f' id="{tid}"' if tid else ""
+    return (f'<div class="scroll"><table{ident} class="{cls}"><thead><tr>{head}</tr></thead>'
             f"<tbody>{body}</tbody></table></div>")
 
 
@@ -226,7 +253,20 @@ def _palette():
 def _presence_svg(presence: dict[str, Any]) -> str:
     from panelprep.report import svg
 
-    return svg.presence(presence, _palette(), "presence", "Presence map of entities by period")
+    return svg.presence(presence, _palette(), "presence", "Presence map of entities by period",
+                        STATE_COLOURS)
+
+
+def _flow_svg(flow: dict[str, Any]) -> str:
+    from panelprep.report import svg
+
+    return svg.flow(flow, _palette(), "flow", "Entities present, entering and last seen per period")
+
+
+def _missing_svg(missing: dict[str, Any]) -> str:
+    from panelprep.report import svg
+
+    return svg.missing_map(missing, _palette(), "missing", "Missing cells per variable by period")
 
 
 def _obs_svg(obs: dict[str, Any]) -> str:
@@ -281,7 +321,10 @@ def _header(summary: dict[str, Any]) -> str:
         f'<div class="brand">{_e(tool.get("name", "panelprep"))} '
         f'{_e(tool.get("version", ""))}</div>'
         f'<h1>{kind}<span class="verdict {_e(verdict)}">{_e(verdict.upper())}</span></h1>'
-        f'<dl class="meta">{meta}</dl></div></header>'
+        f'<dl class="meta">{meta}</dl>'
+        + (f'<p class="closing">{_e(verdict_line(summary))}</p>' if summary.get("findings")
+           is not None and summary.get("verdict") else "")
+        + "</div></header>"
     )
 
 
@@ -350,6 +393,7 @@ def _findings(summary: dict[str, Any]) -> str:
         return _section("findings", "Findings",
                         f'<div class="counts">{counts}</div><p class="empty">No findings.</p>',
                         lead)
+    failing = set(failing_ids(summary))
     rows = []
     for f in found:
         severity = f.get("severity", "info")
@@ -357,11 +401,16 @@ def _findings(summary: dict[str, Any]) -> str:
         cell = _e(f.get("message"))
         if f.get("resolved_by"):
             cell += f'<p class="note resolved">{_e(resolved_note(f))}.</p>'
+        hint = hint_for(f.get("id", ""))
+        if hint and not f.get("resolved_by") and severity != "info":
+            fails = f.get("id") in failing
+            cell += (f'<p class="hint{" fails" if fails else ""}">'
+                     f'{"Fails the gate. " if fails else ""}What addresses it: {_e(hint)}</p>')
         if examples:
             items = "".join(
                 "<li>" + ", ".join(f"{_e(k)} <code>{_e(v)}</code>" for k, v in ex.items()) + "</li>"
                 for ex in examples)
-            cell += (f"<details><summary>{len(examples)} example(s)</summary>"
+            cell += (f"<details><summary>{plural(len(examples), 'example')}</summary>"
                      f"<ul>{items}</ul></details>")
         rows.append([f'<span class="badge {_e(severity)}">{_e(severity)}</span>',
                      f"<code>{_e(f.get('id'))}</code>", _num(f.get("count")), cell])
@@ -386,7 +435,7 @@ def _panel(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
         ("entities", _num(panel.get("entities"))),
         ("periods", _num(panel.get("periods")) + span),
         ("shape", "balanced" if panel.get("balanced") else "unbalanced"),
-        ("rows per entity (min / median / max)",
+        ("rows per entity (fewest / median / most)",
          f"{_num(obs.get('min'))} / {_num(obs.get('median'))} / {_num(obs.get('max'))}"),
         ("entities with a single row", _num(panel.get("singleton_entities"))),
         ("entities with holes in their series", _num(panel.get("entities_with_gaps"))),
@@ -394,52 +443,96 @@ def _panel(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
         ("conflicting duplicate keys", _num(panel.get("conflicting_duplicate_keys"))),
         ("rows without a full key", _num(panel.get("rows_without_key"))),
     ]
-    body = _kv(rows)
-    patterns = details.get("patterns") or []
-    if patterns:
-        body += ("<h3>Most common presence patterns</h3>"
-                 + _table(["pattern (■ observed, · absent)", "entities", "share"],
-                          [[f'<span class="patterns">{_e(p.get("pattern"))}</span>',
-                            _num(p.get("entities")), _pct(p.get("share"))] for p in patterns],
-                          numeric={1, 2}))
-    presence = pictures.get("presence")
-    if presence is not None:
-        body += _figure("picture-presence", _presence_svg(presence),
-                        "<b>Presence map.</b> One row per entity, one column per period; a dark "
-                        f"cell is a period with a row in the sample. {_e(presence.get('rule'))}")
-    obs_pic = pictures.get("obs_per_entity")
-    if obs_pic is not None:
-        body += _figure("picture-obs", _obs_svg(obs_pic),
-                        "<b>Rows per entity.</b> How many entities have each number of rows in "
-                        "the sample.")
+    body = _kv(rows) + _coverage(details)
+    presence = pictures.get("presence") or {}
+    captions = (
+        ("presence", _presence_svg,
+         ("<b>Presence map.</b> One row per entity, sorted by the period it enters, then the "
+         "period it is last seen; one column per period. Teal: a row in the sample; copper: a "
+         "hole inside the entity's span; the two greys: before its entry and after its exit. "
+         f"{_e(presence.get('rule'))}")),
+        ("flow", _flow_svg,
+         ("<b>Entries and exits.</b> Entities present in each period (the most in one period of a "
+         "column when periods are grouped), and below, how many enter the sample there and how "
+         "many are seen there for the last time. Everyone present in the first period enters "
+         "there and everyone present in the last is last seen there; those two counts are "
+         "written, not drawn.")),
+        ("missing", _missing_svg,
+         ("<b>Missing cells.</b> One row per variable, one column per period of the rows read "
+         "(keyed, exact repeats collapsed); the darker the cell, the larger the share of that "
+         "period's rows missing the variable (square-root scale). Listwise deletion removes "
+         "every such row from the sample.")),
+        ("obs_per_entity", _obs_svg,
+         "<b>Rows per entity.</b> How many entities have each number of rows in the sample."),
+    )
+    for key, draw, caption in captions:
+        if pictures.get(key) is not None:
+            name = "obs" if key == "obs_per_entity" else key
+            body += _figure(f"picture-{name}", draw(pictures[key]), caption)
     return _section("panel", "The panel", body, f"{_e(definition[:1].upper() + definition[1:])}.")
+
+
+def _coverage(details: dict[str, Any]) -> str:
+    """The coverage tables: the largest spell groups and the bands of periods."""
+    cover = details.get("coverage") or {}
+    if not cover.get("spells"):
+        return ""
+    body = ("<h3>Coverage of the grid</h3>"
+            f'<p class="note">{_num(cover.get("entities_full"))} entities are present in every '
+            f'period; {_num(cover.get("from_first"))} from the first period and '
+            f'{_num(cover.get("to_last"))} to the last. Entities grouped by the period they '
+            "enter, the period they are last seen and their number of holes: the largest "
+            f'{plural(len(cover["spells"]), "group")} of {_num(cover.get("spell_groups"))}.</p>')
+    body += _table(["entities", "share", "spell"],
+                   [[_num(sp.get("entities")), _pct(sp.get("share")), _e(spell_words(sp))]
+                    for sp in cover["spells"]], numeric={0, 1}, tid="table-spells")
+    runs = cover.get("runs") or {}
+    if runs:
+        body += f'<p class="note">Observed in {_e(runs_words(runs))}.</p>'
+    bands = cover.get("bands") or []
+    if bands:
+        rows = []
+        for b in bands:
+            span = b["first"] if b["first"] == b["last"] else f"{b['first']}–{b['last']}"
+            present = (_num(b["present_fewest"]) if b["present_fewest"] == b["present_most"]
+                       else f"{_num(b['present_fewest'])}–{_num(b['present_most'])}")
+            rows.append([_e(span), present, _num(b["entering"]), _num(b["last_seen"])])
+        body += _table(["periods", "entities present (fewest–most)", "entering", "last seen"],
+                       rows, numeric={1, 2, 3}, tid="table-bands")
+    return body
 
 
 def _variation(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
     variables = summary.get("variables") or {}
-    rows = []
+    cells = dict(zip(variables, describe_cells(variables)))
+    described, where = [], []
     for name, v in variables.items():
-        flags = [label for key, label in (("time_invariant", "constant within entities"),
+        notes = [label for key, label in (("time_invariant", "constant within entities"),
                                           ("period_invariant", "constant within periods"))
                  if v.get(key)]
-        rows.append([
-            f"<code>{_e(name)}</code>", _num(v.get("n")), _num(v.get("mean")), _num(v.get("min")),
-            _num(v.get("max")), _num(v.get("sd_overall")), _num(v.get("sd_between")),
-            _num(v.get("sd_within")), _ratio(v.get("within_sd_ratio")),
-            _pct(v.get("within_variance_share")), _pct(v.get("varying_share")),
-            _e("; ".join(flags)),
-        ])
-    if rows:
-        body = _table(["variable", "n", "mean", "min", "max", "sd overall", "sd between",
-                       "sd within", WITHIN_SD_RATIO, WITHIN_VARIANCE_SHARE, "entities varying",
-                       "flags"], rows, numeric=set(range(1, 11)))
+        share = v.get("within_variance_share")
+        described.append([f"<code>{_e(name)}</code>", _num(v.get("n")),
+                          *(_e(c) for c in cells[name])])
+        where.append([f"<code>{_e(name)}</code>", _pct(None if share is None else 1 - share),
+                      _pct(share), _ratio(v.get("within_sd_ratio")),
+                      _plain(v.get("sd_within")), _plain(v.get("sd_between")),
+                      _pct(v.get("varying_share")), _e("; ".join(notes))])
+    if described:
+        body = ("<h3>The variables</h3>"
+                + _table(["variable", "rows", "mean", "sd", "smallest", "largest"], described,
+                         numeric={1, 2, 3, 4, 5}, tid="table-describe")
+                + "<h3>Where the variation lies</h3>"
+                + _table(["variable", BETWEEN_VARIANCE_SHARE, WITHIN_VARIANCE_SHARE,
+                          WITHIN_SD_RATIO, "SD within entities", "SD of entity means",
+                          "entities varying", "note"], where, numeric=set(range(1, 7)),
+                         tid="table-where"))
     else:
         body = '<p class="empty">No numeric variables were selected.</p>'
-    body += ('<p class="note">SDs: overall with ddof 1; between over the entity means with ddof 1; '
-             "within from deviations from entity means over n − N. "
-             f"{WITHIN_SD_RATIO} = sd within / sd overall (the var-thin-within check compares it "
-             "with its threshold). "
-             f"{_e((pictures.get('share') or {}).get('definition', ''))}.</p>")
+    body += ('<p class="note">sd: over all rows, ddof 1. SD within entities: of the deviations '
+             "from entity means, over n − N. SD of entity means: unweighted, ddof 1. "
+             f"{WITHIN_SD_RATIO} = SD within entities / sd (the var-thin-within check compares it "
+             f"with its threshold); {WITHIN_VARIANCE_SHARE} = within² / (within² + "
+             f"entity means²) of those two SDs, {BETWEEN_VARIANCE_SHARE} = 1 − it.</p>")
     if pictures.get("share") is not None:
         body += _figure("picture-share", _share_svg(pictures["share"]),
                         f"<b>{WITHIN_VARIANCE_SHARE.capitalize()}.</b> How each variable's variance splits into "
@@ -448,8 +541,8 @@ def _variation(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
                         "within (fixed-effects) fit.")
     _, definition = sample_words(summary, "variables")
     return _section("variation", "Variation", body,
-                    "Spread of each variable overall, between entities and within entities, "
-                    f"on {_e(definition)}.")
+                    "Each variable described, then how its variance splits between entities "
+                    f"and within them, on {_e(definition)}.")
 
 
 def _components(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
@@ -459,13 +552,21 @@ def _components(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
         ("method", f"<code>{_e(c.get('method'))}</code>"),
         ("rows and entities used",
          f"{_num(c.get('n_obs'))} rows, {_num(c.get('n_entities'))} entities"),
-        ("entity effect variance s2_u", _num(c.get("sigma2_entity"), 6)),
-        ("idiosyncratic variance s2_e", _num(c.get("sigma2_idiosyncratic"), 6)),
-        ("entity share s2_u / (s2_u + s2_e)", _num(c.get("entity_share"))),
-        ("theta_i (min / median / max)",
-         f"{_num(theta.get('min'))} / {_num(theta.get('median'))} / {_num(theta.get('max'))}"),
+        ("at entity level: variance s2_u (SD)",
+         f"{_num(c.get('sigma2_entity'), 6)} ({_num(c.get('sigma_entity'), 6)})"),
+        ("row within entity: variance s2_e (SD)",
+         f"{_num(c.get('sigma2_idiosyncratic'), 6)} ({_num(c.get('sigma_idiosyncratic'), 6)})"),
+        ("share of the error variance at entity level, s2_u / (s2_u + s2_e)",
+         _pct(c.get("entity_share"))),
     ]
-    body = _kv(rows)
+    marks = [("lowest", "min"), ("10%", "p10"), ("25%", "p25"), ("median", "median"),
+             ("75%", "p75"), ("90%", "p90"), ("highest", "max")]
+    shown = [(label, theta[key]) for label, key in marks if theta.get(key) is not None]
+    weights = ("<h3>Demeaning weight theta_i across entities</h3>"
+               + _table([label for label, _ in shown], [[f"{v:.3f}" for _, v in shown]],
+                        numeric=set(range(len(shown))), tid="table-theta")
+               if shown else "")
+    body = _kv(rows) + weights
     notes = []
     if c.get("truncated_negative"):
         notes.append(f"The estimate of s2_u was negative ({_num(c.get('raw_sigma2_entity'), 6)}) "
@@ -483,9 +584,10 @@ def _components(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
                         f"{_e(pictures['theta'].get('definition'))}; entities with more rows get a "
                         "theta closer to 1, so their quasi-demeaned rows are closer to within "
                         "deviations.")
-    return _section("components", "Variance components and theta", body,
-                    "The split of the error variance into an entity part and an idiosyncratic "
-                    "part, and the quasi-demeaning weight it gives each entity.")
+    return _section("components", "Where the error variance sits", body,
+                    "How much of the error variance sits at entity level and how much row by "
+                    "row within entities, and the weight theta_i = 1 − sqrt(s2_e / (T_i s2_u + "
+                    "s2_e)) with which the quasi file subtracts each entity's mean.")
 
 
 def _evidence(summary: dict[str, Any]) -> str:
@@ -497,7 +599,7 @@ def _evidence(summary: dict[str, Any]) -> str:
             continue
         p_value = t.get("p_value")
         rows.append([f'<span class="nowrap">{label}</span>', _num(t.get("statistic")),
-                     _num(t.get("df")), "≈ 0" if p_value == 0 else _num(p_value),
+                     _num(t.get("df")), _e(p_text(p_value)),
                      _e(t.get("note") or "")])
     body = _table(["test", "statistic", "df", "p-value", "note"], rows, numeric={1, 2, 3})
     caution = ev.get("caution")
@@ -523,8 +625,7 @@ def _files(summary: dict[str, Any]) -> str:
     built = summary.get("transforms") or {}
     if built:
         rows = [[f"<code>{_e(name)}</code>", _num(info.get("rows")),
-                 _e(", ".join([*(f"{k.replace('_', ' ')} {_num(v)}" for k, v in info.items()
-                                 if k not in ("rows", "regressors_left_out")),
+                 _e(", ".join([*transform_details(info),
                                *(f"left out: {r['name']} ({r['why']})"
                                  for r in info.get("regressors_left_out") or [])]))]
                 for name, info in built.items()]

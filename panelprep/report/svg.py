@@ -87,8 +87,13 @@ def _empty(canvas: Canvas, message: str, palette: Palette) -> None:
     canvas.text(canvas.width / 2, canvas.height / 2, message, palette.muted, anchor="middle")
 
 
-def presence(data: dict[str, Any], palette: Palette, name: str, title: str) -> str:
-    """Entities (rows, key order) by periods (columns): filled where observed."""
+def presence(data: dict[str, Any], palette: Palette, name: str, title: str,
+             colours: dict[int, str]) -> str:
+    """Entities (rows, sorted by entry then exit) by periods (columns), one colour per state.
+
+    ``colours`` maps each cell state of ``figures.STATE_WORDS`` to a fill; a
+    legend above the map names them.
+    """
     entities, periods = list(data["entities"]), list(data["periods"])
     rows, columns = len(entities), len(periods)
     labelled = 0 < rows <= 40
@@ -98,40 +103,139 @@ def presence(data: dict[str, Any], palette: Palette, name: str, title: str) -> s
     cell_h = 14.0 if labelled else max(1.0, min(3.0, 420.0 / max(rows, 1)))
     plot_w = 900.0 - left - 12
     plot_h = max(cell_h * rows, 40.0)
-    canvas = Canvas(900.0, 10 + plot_h + bottom, crisp=True)
+    top = 30.0
+    canvas = Canvas(900.0, top + plot_h + bottom, crisp=True)
+    legend = data.get("legend") or {}
+    x = left
+    for state, words in legend.items():
+        canvas.rect(x, 8, 12, 12, colours[int(state)], f' stroke="{palette.rule}"')
+        canvas.text(x + 17, 18, words, palette.ink, size=10)
+        x += 30 + 6.2 * len(words)
     if rows == 0 or columns == 0:
         _empty(canvas, "no rows in the sample", palette)
         return canvas.render(name, title)
-    top, cell_w = 10.0, plot_w / columns
-    canvas.rect(left, top, plot_w, cell_h * rows, palette.absent)
-    matrix = np.asarray(data["matrix"], dtype=bool).reshape(rows, columns)
-    # one rectangle per run of observed periods in a row, found without a loop over cells
-    padded = np.zeros((rows, columns + 2), dtype=np.int8)
-    padded[:, 1:-1] = matrix
-    edges = np.diff(padded, axis=1)
-    start_r, start_c = np.nonzero(edges == 1)
-    _, stop_c = np.nonzero(edges == -1)
+    cell_w = plot_w / columns
+    states = np.asarray(data["states"], dtype=np.int8).reshape(rows, columns)
+    # one rectangle per run of equal states in a row, found without a loop over cells
+    change = np.ones((rows, columns), dtype=bool)
+    change[:, 1:] = states[:, 1:] != states[:, :-1]
+    start_r, start_c = np.nonzero(change)
+    flat = np.flatnonzero(change.ravel())
+    stop = np.append(flat[1:], rows * columns)
+    stop_c = np.where(stop // columns == start_r, stop % columns, columns)
     for r, c0, c1 in zip(start_r.tolist(), start_c.tolist(), stop_c.tolist()):
         canvas.rect(left + c0 * cell_w, top + r * cell_h, (c1 - c0) * cell_w, cell_h,
-                    palette.fill)
+                    colours[int(states[r, c0])])
     if labelled:
         for r, label in enumerate(entities):
             canvas.text(left - 6, top + (r + 0.72) * cell_h, _short(label, 18), palette.ink,
                         size=10, anchor="end")
     else:
         middle = top + cell_h * rows / 2
-        canvas.text(12, middle, f"{rows:,} entities, key order top to bottom", palette.muted,
+        canvas.text(12, middle, f"{rows:,} entities, by entry then exit", palette.muted,
                     size=10, anchor="middle", extra=f' transform="rotate(-90 12 {middle:.2f})"')
-    step = max(1, math.ceil(columns / 14))
-    base = top + cell_h * rows + 14
-    for c in range(0, columns, step):
+    _period_axis(canvas, periods, left, cell_w, top + cell_h * rows + 14, tilt, palette)
+    canvas.text(left + plot_w / 2, canvas.height - 6, "period", palette.ink, anchor="middle")
+    return canvas.render(name, title)
+
+
+def _period_axis(canvas: Canvas, periods: list[str], left: float, cell_w: float, base: float,
+                 tilt: bool, palette: Palette) -> None:
+    """At most 14 period labels under columns of width ``cell_w`` starting at ``left``."""
+    step = max(1, math.ceil(len(periods) / 14))
+    for c in range(0, len(periods), step):
         x = left + (c + 0.5) * cell_w
         if tilt:
             canvas.text(x, base, _short(periods[c], 14), palette.muted, size=10, anchor="end",
                         extra=f' transform="rotate(-40 {x:.2f} {base:.2f})"')
         else:
             canvas.text(x, base, periods[c], palette.muted, size=10, anchor="middle")
-    canvas.text(left + plot_w / 2, canvas.height - 6, "period", palette.ink, anchor="middle")
+
+
+def flow(data: dict[str, Any], palette: Palette, name: str, title: str) -> str:
+    """Entities present per period (top), and entering / last seen per period (bottom)."""
+    periods = list(data["periods"])
+    columns = len(periods)
+    canvas = Canvas(900.0, 330.0)
+    if columns == 0:
+        _empty(canvas, "no rows in the sample", palette)
+        return canvas.render(name, title)
+    left, right = 56.0, 16.0
+    plot_w = canvas.width - left - right
+    cell_w = plot_w / columns
+    tilt = columns > 8
+    panels = ((26.0, 120.0, [("present_most", palette.fill, 0.0, 1.0)], "present"),
+              (180.0, 80.0, [("entering", palette.accent, 0.0, 0.5),
+                             ("last_seen", palette.muted, 0.5, 1.0)], "entering / last seen"))
+    canvas.rect(left, 6, 12, 12, palette.fill)
+    canvas.text(left + 17, 16, "entities present", palette.ink, size=10)
+    canvas.rect(left + 130, 6, 12, 12, palette.accent)
+    canvas.text(left + 147, 16, "entering (first period)", palette.ink, size=10)
+    canvas.rect(left + 290, 6, 12, 12, palette.muted)
+    canvas.text(left + 307, 16, "last seen (last period)", palette.ink, size=10)
+    # every entity present in the first period enters there, and every one present in the
+    # last is last seen there: those two bars are the grid's edges, written as numbers instead
+    edges = {"entering": 0, "last_seen": columns - 1}
+    values = {key: list(data[key]) for key in ("present_most", "entering", "last_seen")}
+    for key, c in edges.items():
+        values[key][c] = 0
+    for top, height, series, label in panels:
+        tallest = max(max(values[key]) for key, *_ in series) if columns else 0
+        ystep = max(1.0, _nice_step(tallest, 3))
+        ymax = max(ystep, math.ceil(tallest / ystep) * ystep)
+        tick = 0.0
+        while tick <= ymax + 1e-9:
+            y = top + height - tick / ymax * height
+            canvas.line(left, y, left + plot_w, y, palette.rule, 0.8)
+            canvas.text(left - 6, y + 4, f"{tick:,.0f}", palette.muted, size=10, anchor="end")
+            tick += ystep
+        for key, colour, a, b in series:
+            for c, value in enumerate(values[key]):
+                if value > 0:
+                    h = value / ymax * height
+                    canvas.rect(left + (c + a) * cell_w + 0.1 * cell_w * (b - a),
+                                top + height - h, 0.8 * cell_w * (b - a), h, colour)
+        canvas.text(14, top + height / 2, label, palette.ink, size=10, anchor="middle",
+                    extra=f' transform="rotate(-90 14 {top + height / 2:.2f})"')
+    canvas.text(left + 2, 176, f"{data['entering'][0]:,} enter in the first column",
+                palette.accent, size=10)
+    canvas.text(left + plot_w - 2, 176, f"{data['last_seen'][-1]:,} last seen in the last",
+                palette.muted, size=10, anchor="end")
+    _period_axis(canvas, periods, left, cell_w, 280.0, tilt, palette)
+    return canvas.render(name, title)
+
+
+def missing_map(data: dict[str, Any], palette: Palette, name: str, title: str) -> str:
+    """Variables (rows) by periods (columns): darker where more of the rows miss the value."""
+    variables, periods = list(data["variables"]), list(data["periods"])
+    rows, columns = len(variables), len(periods)
+    left = 16 + min(max((len(v) for v in variables), default=4), 22) * 6.6
+    cell_h = 16.0
+    tilt = columns > 8
+    top = 30.0
+    canvas = Canvas(900.0, top + cell_h * max(rows, 1) + (62 if tilt else 34), crisp=True)
+    if rows == 0 or columns == 0:
+        _empty(canvas, "no variables", palette)
+        return canvas.render(name, title)
+    shares = np.array([[np.nan if v is None else v for v in row] for row in data["share"]],
+                      dtype=np.float64).reshape(rows, columns)
+    worst = float(np.nanmax(shares)) if np.isfinite(shares).any() else 0.0
+    plot_w = canvas.width - left - 16
+    cell_w = plot_w / columns
+    canvas.rect(left, 8, 12, 12, "white", f' stroke="{palette.rule}"')
+    canvas.text(left + 17, 18, "no cell missing", palette.ink, size=10)
+    canvas.rect(left + 120, 8, 12, 12, palette.accent)
+    canvas.text(left + 137, 18, f"{100 * worst:.1f}% of the period's rows missing (the most)",
+                palette.ink, size=10)
+    for r, label in enumerate(variables):
+        y = top + r * cell_h
+        canvas.text(left - 8, y + 12, _short(label, 22), palette.ink, size=10, anchor="end")
+        canvas.rect(left, y, plot_w, cell_h - 2, "white", f' stroke="{palette.rule}"')
+        for c in np.flatnonzero(shares[r] > 0).tolist():
+            # a square-root scale, so a few missing cells still show beside a column all missing
+            canvas.rect(left + c * cell_w, y, cell_w, cell_h - 2, palette.accent,
+                        f' fill-opacity="{0.15 + 0.85 * math.sqrt(shares[r, c] / worst):.3f}"')
+    _period_axis(canvas, periods, left, cell_w, top + cell_h * rows + 14, tilt, palette)
     return canvas.render(name, title)
 
 

@@ -1,35 +1,52 @@
 """Plain-text renderings of reports: the stdout summary and diagnostics.txt.
 
-A layout of our own: a verdict line, a short description of the panel, the
-most common presence patterns, findings from worst to mildest, and the
-variation table with each variable's spread split into between and within.
+A layout of our own, plain ASCII in every block panelprep writes: a verdict
+line, a short description of the panel, how the entities cover the period
+grid (spell groups, bands of periods, runs), the findings from worst to
+mildest under a header row with what addresses each, the variables
+described, where their variation lies, and a closing verdict line with the
+counts and the exit code.  Counts carry thousands separators; values of the
+data (years, codes, means) never do.
 """
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
-from panelprep.checks.shape import ABSENT, PRESENT
 from panelprep.findings import severity_rank
 from panelprep.report import (
+    BETWEEN_VARIANCE_SHARE,
     WITHIN_SD_RATIO,
     WITHIN_VARIANCE_SHARE,
+    align_point,
+    describe_cells,
+    failing_ids,
+    hint_for,
     resolved_note,
     rows_words,
+    runs_words,
     sample_words,
+    spell_words,
+    transform_details,
+    unresolved_counts,
 )
+from panelprep.words import plural
 
 
 def _num(value: Any, digits: int = 4) -> str:
+    """A single number: counts with separators, other values with ``digits`` significant digits."""
     if value is None:
         return "-"
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, int):
         return f"{value:,}"
-    if abs(value) >= 1e7 or (value != 0 and abs(value) < 1e-3):
+    if not math.isfinite(value):
+        return str(value)
+    if value != 0 and (abs(value) >= 1e7 or abs(value) < 1e-3):
         return f"{value:.{digits}g}"
-    return f"{value:,.{digits}f}".rstrip("0").rstrip(".")
+    return f"{value:.{digits}f}".rstrip("0").rstrip(".")
 
 
 def _table(rows: list[list[str]], right: set[int] = frozenset()) -> list[str]:
@@ -38,6 +55,99 @@ def _table(rows: list[list[str]], right: set[int] = frozenset()) -> list[str]:
     for row in rows:
         cells = [c.rjust(w) if i in right else c.ljust(w) for i, (c, w) in enumerate(zip(row, widths))]
         lines.append("  " + "  ".join(cells).rstrip())
+    return lines
+
+
+def _pct(share: float | None) -> str:
+    return "-" if share is None else f"{100 * share:.1f}%"
+
+
+def coverage_lines(details: dict[str, Any], periods: int, entities: int) -> list[str]:
+    """How entities cover the grid: spell groups, bands of periods, runs; bounded width."""
+    cover = details.get("coverage")
+    if not cover or not cover.get("spells"):
+        return []
+    first, last = details.get("first_period"), details.get("last_period")
+    lines = ["", f"Coverage of the grid ({first} to {last}, {plural(periods, 'period')})",
+             (f"  {plural(cover['entities_full'], 'entity')} present in every period; "
+             f"{cover['from_first']:,} from the first period, {cover['to_last']:,} to the last"),
+             (f"  largest of {plural(cover['spell_groups'], 'spell group')} "
+             "(same entry, exit and number of holes):")]
+    rows = [["entities", "share", "spell"]]
+    rows += [[f"{s['entities']:,}", _pct(s["share"]), spell_words(s)] for s in cover["spells"]]
+    lines += ["  " + line for line in _table(rows, right={0, 1})]
+    runs = cover.get("runs") or {}
+    if runs:
+        lines.append("  observed in " + runs_words(runs))
+    bands = cover.get("bands") or []
+    if bands:
+        width = bands[0]["periods"]
+        lines.append(f"  entities by band of {plural(width, 'period')}"
+                     if width > 1 else "  entities by period")
+        rows = [["periods", "present (fewest-most)", "entering", "last seen"]]
+        for b in bands:
+            span = b["first"] if b["first"] == b["last"] else f"{b['first']}-{b['last']}"
+            present = (f"{b['present_fewest']:,}" if b["present_fewest"] == b["present_most"]
+                       else f"{b['present_fewest']:,}-{b['present_most']:,}")
+            rows.append([span, present, f"{b['entering']:,}", f"{b['last_seen']:,}"])
+        lines += ["  " + line for line in _table(rows, right={1, 2, 3})]
+    return lines
+
+
+def findings_lines(report: dict[str, Any]) -> list[str]:
+    """The findings table (with a header row) and what addresses each finding that counts."""
+    lines = [(f"Findings (worst first; sample checks on the {sample_words(report, 'findings')[0]} "
+              "sample, key and value checks on the rows read)")]
+    # resolved findings last: they no longer count for the gate
+    found = sorted(report["findings"],
+                   key=lambda f: (bool(f.get("resolved_by")), -severity_rank(f["severity"])))
+    if not found:
+        return lines + ["  none"]
+    rows = [["severity", "finding", "count", "what was found"]]
+    rows += [[f["severity"].upper(), f["id"], f"{f['count']:,}",
+              f["message"] + (f" [{resolved_note(f)}]" if f.get("resolved_by") else "")]
+             for f in found]
+    lines += _table(rows, right={2})
+    failing = set(failing_ids(report))
+    to_address = [f for f in found if not f.get("resolved_by") and f["severity"] != "info"
+                  and hint_for(f["id"])]
+    if to_address:
+        lines += ["", "What addresses them"]
+        lines += _table([[f["id"], "fails the gate" if f["id"] in failing else "does not fail",
+                          hint_for(f["id"])] for f in {
+                              f["id"]: f for f in to_address}.values()])
+    return lines
+
+
+def variable_lines(report: dict[str, Any]) -> list[str]:
+    """Two tables: each variable described, then where its variation lies."""
+    sample = sample_words(report, "variables")[0]
+    variables = report["variables"]
+    if not variables:
+        return [f"Variables ({sample} sample)", "  no numeric variables selected"]
+    described = [[name, f"{v['n']:,}", *cells]
+                 for (name, v), cells in zip(variables.items(), describe_cells(variables))]
+    lines = [f"Variables ({sample} sample; sd with ddof 1)"]
+    lines += _table([["variable", "rows", "mean", "sd", "smallest", "largest"], *described],
+                    right={1, 2, 3, 4, 5})
+    lines += ["", f"Where the variation lies ({sample} sample)",
+              (f"  {WITHIN_VARIANCE_SHARE} = s_w^2 / (s_w^2 + s_b^2), {BETWEEN_VARIANCE_SHARE} "
+               f"= 1 - it; {WITHIN_SD_RATIO} = s_w / sd"),
+              ("  s_w: SD of deviations from entity means (n - N); s_b: SD of the entity means "
+              "(ddof 1)")]
+    header = ["variable", BETWEEN_VARIANCE_SHARE, WITHIN_VARIANCE_SHARE, WITHIN_SD_RATIO,
+              "entities varying", "note"]
+    rows = [header]
+    for name, v in variables.items():
+        ratio, share = v.get("within_sd_ratio"), v.get("within_variance_share")
+        notes = [label for key, label in (("time_invariant", "constant within entities"),
+                                          ("period_invariant", "constant within periods"))
+                 if v.get(key)]
+        rows.append([name, "-" if share is None else _pct(1 - share), _pct(share),
+                     "-" if ratio is None else f"{ratio:.3f}",
+                     "-" if v["varying_share"] is None else f"{100 * v['varying_share']:.0f}%",
+                     "; ".join(notes)])
+    lines += _table(rows, right={1, 2, 3, 4})
     return lines
 
 
@@ -51,7 +161,7 @@ def audit_lines(report: dict[str, Any]) -> list[str]:
     lines = [
         f"verdict: {report['verdict'].upper()}  (the gate fails on {report['fail_on']} and above)",
         f"input:   {source.get('path') or '(data frame)'}  rows {source['rows']:,}"
-        + (f"  sha256 {source['sha256'][:16]}…" if source.get("sha256") else ""),
+        + (f"  sha256 {source['sha256'][:16]}..." if source.get("sha256") else ""),
         f"key:     {' + '.join(keys['entity'])} over {keys['time']} ({freq})",
         "",
         f"Panel ({sample_words(report, 'panel')[1]})",
@@ -64,63 +174,61 @@ def audit_lines(report: dict[str, Any]) -> list[str]:
         ["entities", f"{panel['entities']:,}"],
         ["periods", f"{panel['periods']:,} ({span})"],
         ["shape", ("balanced" if panel["balanced"] else "unbalanced")
-         + f"; periods per entity {obs['min']} / {_num(obs['median'])} / {obs['max']} (min / median / max)"],
-        ["singletons", f"{panel['singleton_entities']:,}"],
-        ["with holes", f"{panel['entities_with_gaps']:,} entities"],
-        ["repeats", (f"{panel['exact_duplicate_rows']:,} exact repeated rows, "
-                    f"{panel['conflicting_duplicate_keys']:,} conflicting keys")],
+         + f"; periods per entity {obs['min']} / {_num(obs['median'])} / {obs['max']} "
+         "(fewest / median / most)"],
+        ["singletons", plural(panel["singleton_entities"], "entity")],
+        ["with holes", plural(panel["entities_with_gaps"], "entity")],
+        ["repeats", (f"{plural(panel['exact_duplicate_rows'], 'exact repeated row')}, "
+                     f"{plural(panel['conflicting_duplicate_keys'], 'conflicting key')}")],
     ])
-    patterns = details.get("patterns")
-    if patterns:
-        lines += ["", f"Presence over time ({PRESENT} observed, {ABSENT} absent), most common first"]
-        lines += _table([[p["pattern"], f"{p['entities']:,} entities", f"{100 * p['share']:.1f}%"]
-                         for p in patterns], right={1, 2})
-    lines += ["", (f"Findings (worst first; sample checks on the {sample_words(report, 'findings')[0]} "
-                   "sample, key and value checks on the rows read)")]
-    # resolved findings last: they no longer count for the gate
-    found = sorted(report["findings"],
-                   key=lambda f: (bool(f.get("resolved_by")), -severity_rank(f["severity"])))
-    if found:
-        lines += _table([[f["severity"].upper(), f["id"], f"{f['count']:,}",
-                          f["message"] + (f" [{resolved_note(f)}]" if f.get("resolved_by") else "")]
-                         for f in found], right={2})
-    else:
-        lines.append("  none")
-    lines += ["", (f"Variation ({sample_words(report, 'variables')[0]} sample; SDs: overall ddof 1, "
-                   "between over entity means ddof 1, within with n - N; "
-                   f"{WITHIN_SD_RATIO} = sd within / sd overall, {WITHIN_VARIANCE_SHARE} = "
-                   "sd within^2 / (sd within^2 + sd between^2))")]
-    header = ["variable", "n", "mean", "min", "max", "sd overall", "sd between", "sd within",
-              WITHIN_SD_RATIO, WITHIN_VARIANCE_SHARE, "entities varying"]
-    rows = [header]
-    for name, v in report["variables"].items():
-        ratio, share = v.get("within_sd_ratio"), v.get("within_variance_share")
-        rows.append([
-            name, _num(v["n"]), _num(v["mean"]), _num(v["min"]), _num(v["max"]), _num(v["sd_overall"]),
-            _num(v["sd_between"]), _num(v["sd_within"]),
-            "-" if ratio is None else f"{ratio:.3f}",
-            "-" if share is None else f"{100 * share:.1f}%",
-            "-" if v["varying_share"] is None else f"{100 * v['varying_share']:.0f}%",
-        ])
-    if len(rows) > 1:
-        lines += _table(rows, right=set(range(1, len(header))))
-    else:
-        lines.append("  no numeric variables selected")
+    lines += coverage_lines(details, panel["periods"], panel["entities"])
+    lines += [""] + findings_lines(report)
+    lines += [""] + variable_lines(report)
     return lines
 
 
+def verdict_line(report: dict[str, Any]) -> str:
+    """The closing line: ``FAIL: 2 errors (key-conflict, row-repeated), 4 warnings; exit 1``.
+
+    Counts are of the findings that count for the gate (a finding resolved
+    by a policy does not); the ids are those that fail it.
+    """
+    counts = unresolved_counts(report)
+    failing = failing_ids(report)
+    parts = []
+    for severity in ("error", "warning", "info"):
+        part = plural(counts[severity], severity if severity != "info" else "note")
+        ids = [i for i in failing if i in counts["ids"][severity]]
+        parts.append(part + (f" ({', '.join(ids)})" if ids else ""))
+    verdict = report["verdict"].upper()
+    code = 0 if report["verdict"] == "pass" else 1
+    return f"{verdict}: {', '.join(parts)}; exit {code}"
+
+
+def closing_lines(report: dict[str, Any], written: list[tuple[str, str]] = ()) -> list[str]:
+    """Where each output went (``(what, path)`` pairs), then the verdict line, last."""
+    lines = [""] + [f"wrote {what}: {path}" for what, path in written]
+    return lines + [verdict_line(report)]
+
+
 def components_lines(components: dict[str, Any]) -> list[str]:
-    """The variance components section."""
+    """Where the error variance sits, and the demeaning weight per entity."""
     theta = components.get("theta") or {}
-    lines = [f"Variance components ({components['method']})"]
-    lines += _table([
-        ["entity effect variance (s2_u)", _num(components["sigma2_entity"], 6)],
-        ["idiosyncratic variance (s2_e)", _num(components["sigma2_idiosyncratic"], 6)],
-        ["entity share s2_u / (s2_u + s2_e)", _num(components["entity_share"], 4)],
-        ["theta_i = 1 - sqrt(s2_e / (T_i s2_u + s2_e))",
-         (f"{_num(theta.get('min'))} / {_num(theta.get('median'))} / {_num(theta.get('max'))}"
-         " (min / median / max)")],
-    ])
+    s2u, s2e = components.get("sigma2_entity"), components.get("sigma2_idiosyncratic")
+    lines = [(f"Error variance, split by level ({components['method']}; "
+             f"{plural(components.get('n_obs', 0), 'row')}, "
+             f"{plural(components.get('n_entities', 0), 'entity')})")]
+    level = [["level", "variance", "SD"],
+             ["entity (s2_u)", _num(s2u, 6), _num(components.get("sigma_entity"), 6)],
+             ["row within entity (s2_e)", _num(s2e, 6),
+              _num(components.get("sigma_idiosyncratic"), 6)]]
+    for j in (1, 2):
+        column = align_point([row[j] for row in level[1:]])
+        for row, cell in zip(level[1:], column):
+            row[j] = cell
+    lines += _table(level, right={1, 2})
+    lines.append(f"  {_pct(components['entity_share'])} of the error variance sits at entity "
+                 "level, s2_u / (s2_u + s2_e)")
     if components.get("truncated_negative"):
         lines.append(f"  the estimate of s2_u was negative ({_num(components.get('raw_sigma2_entity'), 6)})"
                      " and was set to 0")
@@ -128,6 +236,15 @@ def components_lines(components: dict[str, Any]) -> list[str]:
                        ("dropped_between", "left out of the between regression")):
         if components.get(key):
             lines.append(f"  {label}: {', '.join(components[key])}")
+    lines += ["", "Demeaning weight per entity, theta_i = 1 - sqrt(s2_e / (T_i s2_u + s2_e)):",
+              ("  the quasi file subtracts theta_i times the entity mean (0: pooled rows, "
+              "1: within deviations)")]
+    marks = [("lowest", "min"), ("10%", "p10"), ("25%", "p25"), ("median", "median"),
+             ("75%", "p75"), ("90%", "p90"), ("highest", "max")]
+    shown = [(label, theta[key]) for label, key in marks if theta.get(key) is not None]
+    if shown:
+        lines += _table([[label for label, _ in shown],
+                         [f"{value:.3f}" for _, value in shown]], right=set(range(len(shown))))
     return lines
 
 
@@ -146,7 +263,7 @@ def _dropped_line(summary: dict[str, Any]) -> str:
 
 
 def preparation_lines(summary: dict[str, Any]) -> list[str]:
-    """diagnostics.txt: the whole preparation, top to bottom."""
+    """diagnostics.txt: the whole preparation, top to bottom, the verdict line last."""
     lines = ["panelprep preparation log", "=" * 25, ""]
     lines += audit_lines(summary)
     if summary.get("steps"):
@@ -161,9 +278,8 @@ def preparation_lines(summary: dict[str, Any]) -> list[str]:
     if summary.get("transforms"):
         lines += ["", "Files built"]
         for name, info in summary["transforms"].items():
-            extra = ", ".join(f"{k} {v}" for k, v in info.items()
-                              if k not in ("rows", "regressors_left_out"))
-            lines.append(f"  {name}: {info['rows']:,} rows" + (f" ({extra})" if extra else ""))
+            extra = ", ".join(transform_details(info))
+            lines.append(f"  {name}: {plural(info['rows'], 'row')}" + (f" ({extra})" if extra else ""))
             lines += [f"    left out of {name}: {r['name']} ({r['why']})"
                       for r in info.get("regressors_left_out") or []]
     if summary.get("evidence"):
@@ -171,9 +287,11 @@ def preparation_lines(summary: dict[str, Any]) -> list[str]:
         lines += [f"  {line}" for line in summary["evidence"].get("reading", [])]
     if summary.get("files"):
         lines += ["", "Files written"]
-        lines += _table([[f["name"], f"{f['rows']:,} rows", f["sha256"][:16] + "…"]
+        lines += _table([[f["name"], plural(f["rows"], "row"), f["sha256"][:16] + "..."]
                          for f in summary["files"]], right={1})
     if summary.get("cautions"):
         lines += ["", "Before you fit a model"]
         lines += [f"  - {c}" for c in summary["cautions"]]
+    lines += ["", verdict_line(summary)]
     return lines
+
