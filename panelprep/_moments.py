@@ -76,6 +76,23 @@ class EntityMoments:
     def k(self) -> int:
         return self.means.shape[1] - 1
 
+    def within_residuals(self, x_column: Callable[..., np.ndarray], y: np.ndarray,
+                         coef: np.ndarray) -> np.ndarray:
+        """``e = y_w - X_w coef`` (n,), the within residual, one regressor at a time.
+
+        ``x_column(j, out=buffer)`` gives regressor ``j`` of the (scaled)
+        sample (``StandardSample.x_column``); ``y`` is the scaled response.
+        """
+        k = self.k
+        resid = y - self.means[:, k][self.codes]
+        column = np.empty(len(y))
+        centre = np.empty(len(y))
+        for j in np.flatnonzero(coef):
+            x_column(j, out=column)
+            column -= np.take(self.means[:, j], self.codes, out=centre)
+            resid -= coef[j] * column
+        return resid
+
     def within_scores(self, x_column: Callable[..., np.ndarray], y: np.ndarray,
                       coef: np.ndarray) -> np.ndarray:
         """``sum_t w_it e_it`` per entity (G, k), ``e = y_w - X_w coef`` the within residual.
@@ -86,13 +103,9 @@ class EntityMoments:
         regressors are ever held whole.
         """
         n_groups, k = len(self.counts), self.k
-        resid = y - self.means[:, k][self.codes]
+        resid = self.within_residuals(x_column, y, coef)
         column = np.empty(len(y))
         centre = np.empty(len(y))
-        for j in np.flatnonzero(coef):
-            x_column(j, out=column)
-            column -= np.take(self.means[:, j], self.codes, out=centre)
-            resid -= coef[j] * column
         out = np.empty((n_groups, k), order="F")
         for j in range(k):
             x_column(j, out=column)
@@ -135,9 +148,7 @@ def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
     means[:, k] = group_sums(codes, column(y2, y_scaling, 0), n_groups) * inv
     within_ss = np.zeros(k + 1)
     total_ss = np.zeros(k + 1)
-    gram = n >= GRAM_MIN_ROWS
-    cross = np.zeros((k + 1, k + 1))
-    factors = []
+    factor = RowFactor(k + 1, n)
     for start in range(0, n, QR_BLOCK_ROWS):
         stop = min(start + QR_BLOCK_ROWS, n)
         block = np.empty((stop - start, k + 1), order="F")
@@ -146,19 +157,40 @@ def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
         total_ss += np.einsum("ij,ij->j", block, block)
         block -= means[codes[start:stop]]
         within_ss += np.einsum("ij,ij->j", block, block)
-        if gram:
-            cross += block.T @ block
-        else:
-            r = scipy.linalg.qr(block, mode="r", overwrite_a=True, check_finite=False)[0]
-            factors.append(r[: min(stop - start, k + 1)])
-    if gram:
-        values, vectors = np.linalg.eigh(cross)
-        root = np.sqrt(np.clip(values, 0.0, None))[:, None] * vectors.T
-        r_within = triangular(root, k + 1)
-    else:
-        r_within = triangular(np.vstack(factors) if factors else np.zeros((0, k + 1)), k + 1)
-    return EntityMoments(codes=codes, counts=t, means=means, r_within=r_within,
+        factor.add(block)
+    return EntityMoments(codes=codes, counts=t, means=means, r_within=factor.r(),
                          within_ss=within_ss, total_ss=total_ss, n=n)
+
+
+class RowFactor:
+    """A triangular factor of rows that arrive in blocks (``R'R`` = their cross product).
+
+    Below ``GRAM_MIN_ROWS`` rows in all, each block is reduced by a QR and
+    the partial factors are stacked; from there on the blocks' cross
+    products are summed and the factor is their square root, as in
+    ``_linalg.ols``.  A block may be overwritten by :meth:`add`.
+    """
+
+    def __init__(self, width: int, n: int):
+        self.width = width
+        self.gram = n >= GRAM_MIN_ROWS
+        self.cross = np.zeros((width, width))
+        self.factors: list[np.ndarray] = []
+
+    def add(self, block: np.ndarray) -> None:
+        if self.gram:
+            self.cross += block.T @ block
+        elif len(block):
+            r = scipy.linalg.qr(block, mode="r", overwrite_a=True, check_finite=False)[0]
+            self.factors.append(r[: min(len(block), self.width)])
+
+    def r(self) -> np.ndarray:
+        if self.gram:
+            values, vectors = np.linalg.eigh(self.cross)
+            root = np.sqrt(np.clip(values, 0.0, None))[:, None] * vectors.T
+            return triangular(root, self.width)
+        rows = np.vstack(self.factors) if self.factors else np.zeros((0, self.width))
+        return triangular(rows, self.width)
 
 
 @dataclass(eq=False)

@@ -6,6 +6,7 @@ line can refuse a missing or unreadable input before any heavy import.
 
 from __future__ import annotations
 
+import errno
 import os
 import stat
 from pathlib import Path
@@ -16,6 +17,34 @@ from panelprep.errors import InputError
 def shown_path(path: Path | str) -> str:
     """A path as written in a message: bytes that are not UTF-8 as escapes (``b\\xffd.csv``)."""
     return os.fsencode(path).decode("utf-8", errors="backslashreplace")
+
+
+def resolved(path: str | os.PathLike[str]) -> Path:
+    """``path`` made absolute with every symbolic link followed; one line for a link loop."""
+    try:
+        return Path(path).resolve()
+    except (RuntimeError, OSError) as err:
+        # Python raises RuntimeError (3.11, 3.12) or OSError ELOOP (3.13) on a loop
+        if isinstance(err, OSError) and err.errno != errno.ELOOP:
+            raise InputError(f"{shown_path(path)}: cannot follow the path: "
+                             f"{err.strerror or err}") from None
+        raise InputError(_loop_message(path)) from None
+
+
+def _loop_message(path: str | os.PathLike[str]) -> str:
+    return (f"{shown_path(path)}: is a symbolic link loop (following its links leads back to "
+            "where they start); fix or remove the link, or name another path")
+
+
+def refuse_link_loop(path: str | os.PathLike[str]) -> None:
+    """One line when following ``path`` runs into a symbolic link loop (else nothing)."""
+    try:
+        os.stat(path)
+    except OSError as err:
+        if err.errno == errno.ELOOP:
+            raise InputError(_loop_message(path)) from None
+    except ValueError:
+        pass
 
 
 def check_readable(path: Path) -> None:
@@ -29,6 +58,10 @@ def check_readable(path: Path) -> None:
         raise InputError(f"{name}: the file name is not UTF-8 text, so it cannot be written "
                          "into the reports; rename the file (or link to it under a UTF-8 name)")
     if not path.exists():
+        refuse_link_loop(path)
+        if path.is_symlink():
+            raise InputError(f"{path}: is a broken symbolic link (to {os.readlink(path)}, "
+                             "which does not exist)")
         raise InputError(f"{path}: no such file")
     if path.is_dir():
         raise InputError(f"{path}: is a directory, expected a data file")

@@ -74,7 +74,8 @@ def standardise(values: np.ndarray) -> Standardised:
     -----
     Two passes per column: ``v = x / 2^a`` with ``max |x| / 2 < 2^a <= max |x|`` (exact),
     ``m = mean(v)``, ``w = v - m``; then ``z = w / 2^b`` with ``2^b`` the power
-    of two nearest the root mean square of ``w`` (ddof 0).  ``centre =
+    of two nearest the root mean square of ``w`` (ddof 0), at most
+    ``2^(1023 - a)`` so that the scale is a finite float.  ``centre =
     2^a m`` and ``scale = 2^(a + b)``.  A column of one repeated value has
     ``w = 0`` and keeps ``b = 0``.
 
@@ -99,7 +100,9 @@ def standardise(values: np.ndarray) -> Standardised:
     mean = z.mean(axis=0)
     z -= mean
     spread = np.sqrt(np.einsum("ij,ij->j", z, z) / n)
-    second = power_of_two(spread)
+    # at most 2^(1024 - exponent), so that scale = first * second stays finite for
+    # columns spread near the largest float (z's root mean square is then up to 2)
+    second = _capped_second(spread, exponent)
     z /= second
     return Standardised(z=z, centre=first * mean, scale=first * second)
 
@@ -157,4 +160,9 @@ def scaling(values: np.ndarray) -> Scaling:
         mean[j] = buffer.mean()
         buffer -= mean[j]
         spread[j] = np.sqrt(np.dot(buffer, buffer) / n)
-    return Scaling(first, mean, power_of_two(spread))
+    return Scaling(first, mean, _capped_second(spread, exponent))
+
+
+def _capped_second(spread: np.ndarray, exponent: np.ndarray) -> np.ndarray:
+    """The power of two near ``spread``, at most 2^(1024 - exponent): the scale stays finite."""
+    return np.minimum(power_of_two(spread), np.ldexp(1.0, np.minimum(1024 - exponent, 1023)))

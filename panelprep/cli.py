@@ -2,7 +2,8 @@
 
 Exit codes are the contract for ETL gates: 0 the data passed, 1 the data
 failed the gate, 2 the command could not run (one line on stderr, never a
-traceback).
+traceback), 3 an internal error (a bug: one line on stderr naming the file
+where the traceback was saved).
 """
 
 from __future__ import annotations
@@ -10,6 +11,7 @@ from __future__ import annotations
 import json
 import os
 import sys
+import warnings
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
@@ -25,8 +27,11 @@ if TYPE_CHECKING:
 # with the command that needs them), so --help, --version and a failing
 # argument check answer at once.
 
-EXIT_PASS, EXIT_FAIL, EXIT_UNUSABLE = 0, 1, 2
+EXIT_PASS, EXIT_FAIL, EXIT_UNUSABLE, EXIT_INTERNAL = 0, 1, 2, 3
 EXIT_INTERRUPTED = 130  # 128 + SIGINT, as shells report a run stopped by Ctrl-C
+EXIT_CODES = ("Exit codes: 0 the data passed the gate; 1 the gate failed (a finding at or above "
+              "--fail-on); 2 bad input or usage (one line on stderr); 3 internal error (a bug: "
+              "the traceback is saved to a file named on stderr); 130 interrupted.")
 
 _NO_BREAK = "\u2011"  # a non-breaking hyphen, only while the help text is wrapped
 
@@ -61,6 +66,7 @@ app = typer.Typer(
     # plain help: rendering it with rich costs about 0.3 s of start-up
     rich_markup_mode=None,
     help="Audit, clean and transform entity-by-period panels before any model is fitted.",
+    epilog=EXIT_CODES,
 )
 
 EntityOpt = Annotated[str, typer.Option("--entity", "-e", help="Entity key column(s), comma-separated.")]
@@ -75,7 +81,17 @@ DelimOpt = Annotated[str | None, typer.Option(
 DecimalOpt = Annotated[bool, typer.Option("--decimal-comma", help="CSV numbers use ',' as decimal mark.")]
 TokenOpt = Annotated[str | None, typer.Option(
     "--missing-token", help="Comma-separated texts to read as missing in numeric variables, e.g. 'n/a,-'.")]
-QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress lines on stderr.")]
+QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress on stderr (--progress none).")]
+ProgressOpt = Annotated[str, typer.Option(
+    "--progress", envvar="PANELPREP_PROGRESS",
+    help="Progress on stderr: auto (a bar on a terminal, plain otherwise), bar, plain "
+         "(timestamped lines with step, elapsed seconds, rows) or none.")]
+LogJsonOpt = Annotated[bool, typer.Option(
+    "--log-json", help="Write one JSON line per step (and one at the end) to stderr, "
+                       "instead of progress and human lines.")]
+JsonOpt = Annotated[bool, typer.Option(
+    "--json", help="Print the verdict document (the JSON report) on stdout and nothing else; "
+                   "the summary goes to stderr.")]
 FailOpt = Annotated[str, typer.Option("--fail-on", help="Lowest severity that fails the gate: error or warning.")]
 
 
@@ -109,7 +125,7 @@ def _read_options(input_format, delimiter, decimal_comma, missing_token) -> Read
     )
 
 
-def _check_data(path: Path | None) -> None:
+def _check_data(path: Path | None, session: _Session | None = None) -> None:
     """Refuse a missing or unreadable data file before the flow's heavy imports."""
     from panelprep._paths import check_readable
 
@@ -117,7 +133,9 @@ def _check_data(path: Path | None) -> None:
         try:
             check_readable(path)
         except InputError as err:
-            _unusable(str(err))
+            if session is None:
+                _unusable(str(err))
+            session.fail(str(err))
 
 
 def _unusable(message: str) -> None:
@@ -125,7 +143,62 @@ def _unusable(message: str) -> None:
     raise typer.Exit(EXIT_UNUSABLE)
 
 
-@app.command("audit", cls=_Command)
+class _Session:
+    """Where a command's output goes: the run log on stderr, the summary, the JSON document.
+
+    With ``--json`` stdout holds only the verdict document and the summary
+    goes to stderr (unless ``--quiet``); with ``--log-json`` stderr holds
+    only JSON lines (steps, then the end or the error).
+    """
+
+    active: _Session | None = None
+
+    def __init__(self, progress: str, quiet: bool, log_json: bool = False,
+                 as_json: bool = False) -> None:
+        from panelprep.runlog import PROGRESS_MODES, stderr_log
+
+        if progress not in PROGRESS_MODES:
+            _unusable(f"--progress {progress!r} must be one of {', '.join(PROGRESS_MODES)}")
+        self.log_json, self.as_json, self.quiet = log_json, as_json, quiet
+        self.log = stderr_log(progress, quiet, log_json, sys.argv)
+        _Session.active = self
+
+    def summary(self, lines: list[str]) -> None:
+        """The human summary: stdout, or stderr when stdout holds the document."""
+        self.log.settle()
+        if not self.as_json:
+            typer.echo("\n".join(lines))
+        elif not (self.quiet or self.log_json):
+            typer.echo("\n".join(lines), err=True)
+
+    def note(self, line: str) -> None:
+        """A human line for stderr (not under --log-json, where the end event says it)."""
+        self.log.settle()
+        if not self.log_json:
+            typer.echo(line, err=True)
+
+    def document(self, document: dict) -> None:
+        if self.as_json:
+            typer.echo(json.dumps(document, indent=2, ensure_ascii=False, allow_nan=False))
+
+    def fail(self, message: str, code: int = EXIT_UNUSABLE) -> None:
+        """Stop with one line on stderr (a JSON error event under --log-json)."""
+        _Session.active = None
+        if self.log_json:
+            self.log.finish(exit_code=code, message=message)
+        else:
+            self.log.finish()
+            typer.echo(f"panelprep: error: {message}", err=True)
+        raise typer.Exit(code)
+
+    def end(self, verdict: str, failed_by: list[str], code: int | None = None) -> None:
+        code = (EXIT_PASS if verdict == "pass" else EXIT_FAIL) if code is None else code
+        _Session.active = None
+        self.log.finish(verdict=verdict, exit_code=code, failed_by=failed_by)
+        raise typer.Exit(code)
+
+
+@app.command("audit", cls=_Command, epilog=EXIT_CODES)
 def audit_command(
     data: Annotated[Path, typer.Argument(help="CSV, Parquet or Arrow/Feather file.")],
     entity: EntityOpt,
@@ -140,33 +213,45 @@ def audit_command(
     decimal_comma: DecimalOpt = False,
     missing_token: TokenOpt = None,
     quiet: QuietOpt = False,
+    as_json: JsonOpt = False,
+    progress: ProgressOpt = "auto",
+    log_json: LogJsonOpt = False,
 ) -> None:
     """Check a panel's structure and gate on what is found."""
-    _check_data(data)
+    session = _Session(progress, quiet, log_json, as_json)
+    _check_data(data, session)
     from panelprep import pipeline
     from panelprep.report.text import audit_lines, closing_lines
+
     try:
         _check_reports([report, report_html], data)
         result = pipeline.audit_file(
             data, entity, time, vars,
             options=_read_options(input_format, delimiter, decimal_comma, missing_token),
-            progress=pipeline.stderr_progress(quiet),
+            progress=session.log,
             freq=freq, fail_on=fail_on,
         )
+        result.options.update({"audit.report": None if report is None else str(report),
+                               "audit.report_html": None if report_html is None
+                               else str(report_html)})
+        if report_html is not None:
+            session.log("write.report-html", f"writing {report_html}")
+            _write_html(report_html, result.to_dict(), result, data)
+        if report is not None:
+            session.log("write.report", f"writing {report}")
         document = result.to_dict()
         if report is not None:
             _write_json(report, document, data)
-        if report_html is not None:
-            _write_html(report_html, document, result, data)
     except InputError as err:
-        _unusable(str(err))
+        session.fail(str(err))
+    session.document(document)
     written = [(what, str(path)) for what, path in (("the JSON report", report),
                                                      ("the HTML report", report_html)) if path]
-    typer.echo("\n".join(audit_lines(document) + closing_lines(document, written)))
-    raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
+    session.summary(audit_lines(document) + closing_lines(document, written))
+    session.end(result.verdict, document["gate"]["failed_by"])
 
 
-@app.command("prepare", cls=_Command)
+@app.command("prepare", cls=_Command, epilog=EXIT_CODES)
 def prepare_command(
     data: Annotated[Path | None, typer.Argument(help="CSV, Parquet or Arrow/Feather file (or input.path of --config).")] = None,
     config: Annotated[Path | None, typer.Option("--config", "-c", help="Run file (TOML); flags given here override it.")] = None,
@@ -200,10 +285,13 @@ def prepare_command(
     decimal_comma: Annotated[bool | None, typer.Option("--decimal-comma/--decimal-point", help="CSV numbers use ',' as decimal mark.")] = None,
     missing_token: TokenOpt = None,
     quiet: QuietOpt = False,
+    as_json: JsonOpt = False,
+    progress: ProgressOpt = "auto",
+    log_json: LogJsonOpt = False,
 ) -> None:
     """Clean, audit, then write estimation-ready files with provenance into --out."""
-    _check_data(data)
-    from panelprep import pipeline
+    session = _Session(progress, quiet, log_json, as_json)
+    _check_data(data, session)
     from panelprep.config import RunFile, load_run_file
     from panelprep.prepare import run_from_file
 
@@ -222,27 +310,30 @@ def prepare_command(
     try:
         overrides.update(_names_map(names))
         run = load_run_file(config, overrides) if config else RunFile().merged(overrides)
-        result = run_from_file(run, progress=pipeline.stderr_progress(quiet))
+        result = run_from_file(run, progress=session.log)
     except InputError as err:
-        _unusable(str(err))
-    _print_preparation(result, run.output.dir)
-    raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
+        session.fail(str(err))
+    session.document(result.summary)
+    _print_preparation(result, run.output.dir, session)
+    session.end(result.verdict, result.summary["gate"]["failed_by"])
 
 
-@app.command("demo", cls=_Command)
+@app.command("demo", cls=_Command, epilog=EXIT_CODES)
 def demo_command(
     folder: Annotated[Path, typer.Argument(help="Folder for the demo data, run file and outputs.")] = Path("panelprep-demo"),
     force: Annotated[bool, typer.Option("--force", help="Redo the demo in a folder that is not empty.")] = False,
     quiet: QuietOpt = False,
+    progress: ProgressOpt = "auto",
 ) -> None:
     """Write an invented demo panel with planted defects and prepare it from a run file."""
-    from panelprep import pipeline
     from panelprep.demo import run_demo
 
+    session = _Session(progress, quiet)
     try:
-        result, planted = run_demo(folder, force=force, progress=pipeline.stderr_progress(quiet))
+        result, planted = run_demo(folder, force=force, progress=session.log)
     except InputError as err:
-        _unusable(str(err))
+        session.fail(str(err))
+    session.log.finish()
     typer.echo(f"demo data (invented firms, not real companies): {folder / 'firms.csv'}, "
                f"{planted['rows']:,} rows, {planted['firms']} firms, 2005-2024")
     typer.echo(f"  planted: {planted['exact_duplicate_rows']} repeated rows, "
@@ -252,7 +343,7 @@ def demo_command(
                f"{sum(planted['missing_cells'].values())} missing cells")
     typer.echo(f"run file: {folder / 'run.toml'}")
     typer.echo("")
-    _print_preparation(result, folder / "out",
+    _print_preparation(result, folder / "out", session,
                        f"read {result.written_to / 'diagnostics.txt'} top to bottom; rerun with: "
                        f"panelprep prepare --config {folder / 'run.toml'} --force")
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
@@ -293,14 +384,13 @@ def draft_command(
 ) -> None:
     """Write a commented starter run file for DATA, with guessed keys marked."""
     from panelprep.config import starter_run_file
-    from panelprep.io import parent_folder, refuse_input_clash, write_file
+    from panelprep.io import check_file_destination, resolved, write_file
 
     try:
         if out is not None:
             # before anything is read or written: the run file may never be the data
-            refuse_input_clash(out, [data], "the run file")
-            parent_folder(out)
-        text = starter_run_file(data, run_dir=None if out is None else out.resolve().parent)
+            check_file_destination(out, [data], "the run file")
+        text = starter_run_file(data, run_dir=None if out is None else resolved(out).parent)
         if out is None:
             typer.echo(text, nl=False)
             return
@@ -313,35 +403,28 @@ def draft_command(
                f"panelprep prepare --config {out}", err=True)
 
 
-def _print_preparation(result, out: Path, note: str = "") -> None:
+def _print_preparation(result, out: Path, session: _Session, note: str = "") -> None:
     """The audit, the components, where the files went, ``note``, and the verdict line last."""
     from panelprep.report.text import audit_lines, components_lines, verdict_line
 
     summary = result.summary
-    typer.echo("\n".join(audit_lines(summary)))
+    lines = audit_lines(summary)
     if summary.get("components"):
-        typer.echo("")
-        typer.echo("\n".join(components_lines(summary["components"])))
-    typer.echo("")
+        lines += ["", *components_lines(summary["components"])]
     names = ", ".join(f["name"] for f in summary.get("files", [])) or "diagnostics only"
-    typer.echo(f"written to {result.written_to}: {names}, diagnostics.json, diagnostics.txt, "
-               "report.html")
+    extra = ", run.toml" if result.verdict == "pass" else ""
+    lines += ["", (f"written to {result.written_to}: {names}{extra}, diagnostics.json, "
+              "diagnostics.txt, report.html")]
     if note:
-        typer.echo(note)
-    typer.echo(verdict_line(summary))
+        lines.append(note)
+    session.summary([*lines, verdict_line(summary)])
     if result.verdict == "fail":
-        failing = ", ".join(dict.fromkeys(f["id"] for f in summary["findings"]
-                                          if _fails(f["severity"], summary)))
-        typer.echo(f"panelprep: the gate failed ({failing}); {out} was left as it was; the "
-                   f"diagnostics are in {result.written_to}", err=True)
+        failing = ", ".join(summary["gate"]["failed_by"])
+        session.note(f"panelprep: the gate failed ({failing}); {out} was left as it was; the "
+                     f"diagnostics are in {result.written_to}")
 
 
-def _fails(severity: str, summary: dict) -> bool:
-    levels = ("error", "warning") if summary.get("fail_on") == "warning" else ("error",)
-    return severity in levels
-
-
-@app.command("components", cls=_Command)
+@app.command("components", cls=_Command, epilog=EXIT_CODES)
 def components_command(
     data: Annotated[Path, typer.Argument(help="CSV, Parquet or Arrow/Feather file.")],
     entity: EntityOpt,
@@ -356,28 +439,33 @@ def components_command(
     decimal_comma: DecimalOpt = False,
     missing_token: TokenOpt = None,
     quiet: QuietOpt = False,
+    progress: ProgressOpt = "auto",
 ) -> None:
     """Print only the variance components of the estimation sample."""
     _check_data(data)
-    from panelprep import pipeline
     from panelprep.prepare import estimate_file_components
     from panelprep.report.text import components_lines
 
+    session = _Session(progress, quiet)
     try:
         found = estimate_file_components(
             data, entity, time, y, x, method=method, freq=freq,
             read_options=_read_options(input_format, delimiter, decimal_comma, missing_token),
-            progress=pipeline.stderr_progress(quiet),
+            progress=session.log,
         )
     except InputError as err:
-        _unusable(str(err))
+        session.fail(str(err))
+    session.log.finish()
     if found.components is None:
         failing = ", ".join(dict.fromkeys(f["id"] for f in found.summary["findings"]
                                           if f["severity"] == "error"))
         typer.echo(f"panelprep: the audit gate failed ({failing}); no components estimated "
                    "(panelprep audit shows why)", err=True)
         raise typer.Exit(EXIT_FAIL)
-    components = dict(found.summary["components"], verdict=found.verdict)
+    from panelprep._schema import SCHEMA_VERSION
+
+    components = {"schema_version": SCHEMA_VERSION, **found.summary["components"],
+                  "verdict": found.verdict}
     failed = [f for f in found.summary["findings"] if f["severity"] == "error"]
     if as_json:
         typer.echo(json.dumps(components, indent=2, allow_nan=False))
@@ -394,12 +482,11 @@ def components_command(
 
 def _check_reports(paths: list[Path | None], source: Path) -> None:
     """Before the audit runs: no report may be the input, nor go into a folder that is not one."""
-    from panelprep.io import parent_folder, refuse_input_clash
+    from panelprep.io import check_file_destination
 
     for path in paths:
         if path is not None:
-            refuse_input_clash(path, [source], "the report")
-            parent_folder(path)
+            check_file_destination(path, [source], "the report")
 
 
 def _write_html(path: Path, document: dict, result, source: Path) -> None:
@@ -417,9 +504,13 @@ def _write_json(path: Path, document: dict, source: Path) -> None:
 
 
 def main() -> None:
-    """Entry point: usage errors and unexpected failures become one line and exit 2."""
+    """Entry point: usage errors become one line and exit 2, internal errors exit 3."""
     try:
-        code = app(standalone_mode=False)
+        with warnings.catch_warnings():
+            # a library's warning never reaches stderr; the runs record theirs in the
+            # report (library-warnings), and this is the last line of defence
+            warnings.simplefilter("ignore")
+            code = app(standalone_mode=False)
     except typer.TyperException as err:  # usage errors: bad or missing options
         ctx = getattr(err, "ctx", None)
         where = f" ({ctx.command_path} --help shows the options)" if ctx is not None else ""
@@ -430,13 +521,43 @@ def main() -> None:
         typer.echo("panelprep: error: aborted", err=True)
         sys.exit(EXIT_UNUSABLE)
     except Exception as err:  # noqa: BLE001 - last line of defence: never a traceback for a user
-        message = " ".join(str(err).split())
-        typer.echo(f"panelprep: error: internal failure: {type(err).__name__}: {message}", err=True)
-        sys.exit(EXIT_UNUSABLE)
+        sys.exit(_internal_error(err))
+    if _Session.active is not None:
+        _Session.active.log.finish(exit_code=code)
     if code == EXIT_INTERRUPTED:
         # typer turns Ctrl-C into exit 130 (no command exits so itself)
         typer.echo(f"panelprep: {_interrupted()}", err=True)
     sys.exit(code or 0)
+
+
+def _internal_error(err: Exception) -> int:
+    """A bug: the traceback saved to a file, one line on stderr naming it; exit 3."""
+    import tempfile
+    import traceback
+
+    from panelprep._version import __version__
+
+    message = " ".join(str(err).split())[:300]
+    try:
+        handle, name = tempfile.mkstemp(prefix="panelprep-traceback-", suffix=".txt")
+        with os.fdopen(handle, "w", encoding="utf-8") as saved:
+            saved.write(f"panelprep {__version__}, Python {sys.version.split()[0]}\n")
+            saved.write(f"command: {' '.join(sys.argv)}\n\n")
+            saved.write("".join(traceback.format_exception(err)))
+        where = f"the traceback is saved in {name}"
+    except OSError as saving:
+        where = f"the traceback could not be saved ({saving.strerror})"
+    line = (f"internal error (a bug in panelprep, not a problem with your data): "
+            f"{type(err).__name__}: {message}; {where}; please report it as a bug with that "
+            "file and the command")
+    session, _Session.active = _Session.active, None
+    if session is not None and session.log_json:
+        session.log.finish(exit_code=EXIT_INTERNAL, message=line)
+    else:
+        if session is not None:
+            session.log.finish()
+        typer.echo(f"panelprep: {line}", err=True)
+    return EXIT_INTERNAL
 
 
 def _interrupted() -> str:

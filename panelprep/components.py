@@ -91,7 +91,8 @@ class _Moments:
         self.n_basis = m
 
     @cached_property
-    def _grams(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    def grams(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """``(gram_i, gram_p, gram_q, gram_z)``, made when a method first asks."""
         k, n, X = self.k, float(self.n), self.sample.X
         t, inv, sum_x = self.counts, self.inv, self.sum_x
         qx = within(X, self.codes, self.counts) if k else np.zeros((self.n, 0), order="F")
@@ -122,22 +123,6 @@ class _Moments:
         gz[xs, xs] = xzx
         return sym(gi), sym(gp), sym(gq), sym(gz)
 
-    @property
-    def gram_i(self) -> np.ndarray:
-        return self._grams[0]
-
-    @property
-    def gram_p(self) -> np.ndarray:
-        return self._grams[1]
-
-    @property
-    def gram_q(self) -> np.ndarray:
-        return self._grams[2]
-
-    @property
-    def gram_z(self) -> np.ndarray:
-        return self._grams[3]
-
     def entity_quadratic(self, e: np.ndarray) -> float:
         """``e'Pe = sum_i (sum_t e_it)^2 / T_i``."""
         s = group_sums(self.codes, e, len(self.counts))
@@ -157,15 +142,16 @@ class _Moments:
         ``q_e, q_u`` (A = Q: coefficients of s2_e and s2_u), ``p_e, p_u``.
         """
         n, big_n = float(self.n), float(self.n_entities)
-        v_i = ev.T @ self.gram_i @ ev
-        v_z = ev.T @ self.gram_z @ ev
-        u_q = eu.T @ self.gram_q @ eu
-        u_p = eu.T @ self.gram_p @ eu
+        gram_i, gram_p, gram_q, gram_z = self.grams
+        v_i = ev.T @ gram_i @ ev
+        v_z = ev.T @ gram_z @ ev
+        u_q = eu.T @ gram_q @ eu
+        u_p = eu.T @ gram_p @ eu
         return {
-            "q_e": (n - big_n) - 2 * np.trace(eu.T @ self.gram_q @ ev) + np.trace(u_q @ v_i),
+            "q_e": (n - big_n) - 2 * np.trace(eu.T @ gram_q @ ev) + np.trace(u_q @ v_i),
             "q_u": np.trace(u_q @ v_z),
-            "p_e": big_n - 2 * np.trace(eu.T @ self.gram_p @ ev) + np.trace(u_p @ v_i),
-            "p_u": n - 2 * np.trace(eu.T @ self.gram_z @ ev) + np.trace(u_p @ v_z),
+            "p_e": big_n - 2 * np.trace(eu.T @ gram_p @ ev) + np.trace(u_p @ v_i),
+            "p_u": n - 2 * np.trace(eu.T @ gram_z @ ev) + np.trace(u_p @ v_z),
         }
 
 
@@ -180,7 +166,7 @@ def _in_units(value: float, unit: float) -> float:
 
 
 def _finite(value):
-    """``value``, or None where a float is infinite (JSON has no infinity)."""
+    """``value``, or None where a float is infinite or NaN (JSON has neither)."""
     if isinstance(value, float) and not np.isfinite(value):
         return None
     return value
@@ -379,8 +365,9 @@ class VarianceComponents:
         s2u = max(s2u, 0.0)
         # standard deviations always fit in float64; variances of a response
         # beyond about 1e154 (or below 1e-154) do not
-        self.sigma_entity_ = float(np.sqrt(s2u) * unit)
-        self.sigma_idiosyncratic_ = float(np.sqrt(s2e) * unit)
+        with np.errstate(over="ignore"):  # an SD beyond float64 is null in to_dict
+            self.sigma_entity_ = float(np.sqrt(s2u) * unit)
+            self.sigma_idiosyncratic_ = float(np.sqrt(s2e) * unit)
         self.sigma2_entity_ = _in_units(s2u, unit)
         self.sigma2_idiosyncratic_ = _in_units(s2e, unit)
         self.entity_share_ = float(s2u / (s2u + s2e)) if s2u + s2e > 0 else 0.0
@@ -606,8 +593,8 @@ class VarianceComponents:
     def to_dict(self) -> dict[str, Any]:
         """Plain summary of the fitted components (JSON-serialisable)."""
         lost = self._unrepresentable
-        s2u = None if "s2_u" in lost else self.sigma2_entity_
-        s2e = None if "s2_e" in lost else self.sigma2_idiosyncratic_
+        s2u = None if "s2_u" in lost else _finite(self.sigma2_entity_)
+        s2e = None if "s2_e" in lost else _finite(self.sigma2_idiosyncratic_)
         theta = self.theta_[self._present]
         return {
             "method": self.method,
@@ -616,8 +603,8 @@ class VarianceComponents:
             "n_regressors": int(self.n_regressors_),
             "sigma2_entity": s2u,
             "sigma2_idiosyncratic": s2e,
-            "sigma_entity": self.sigma_entity_,
-            "sigma_idiosyncratic": self.sigma_idiosyncratic_,
+            "sigma_entity": _finite(self.sigma_entity_),
+            "sigma_idiosyncratic": _finite(self.sigma_idiosyncratic_),
             "entity_share": self.entity_share_,
             "theta": {
                 "min": float(theta.min()) if theta.size else 0.0,

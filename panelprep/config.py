@@ -46,7 +46,7 @@ Keys
 | `output.format` | `parquet`, `csv` | `parquet` | format of the data files |
 | `output.compression` | `zstd`, `lz4`, `snappy`, `gzip`, `none` | `zstd` | codec of the Parquet files (zstd: the fastest total time at the smallest size measured) |
 | `output.force` | bool | `false` | replace a non-empty output folder |
-| `output.evidence` | bool | `true` | compute the entity-effect and correlated-effects tests |
+| `output.evidence` | bool | `true` | compute the entity-effect, correlated-effects, serial-correlation and cross-sectional dependence tests |
 | `names.row` | text | `pp_row` | column of every row-level file holding each row's input row (from 1) |
 | `names.intercept` | text | `pp_intercept` | quasi file: the 1 - theta column that stands in for the constant |
 | `names.theta` | text | `pp_theta` | quasi file: theta of the row's entity |
@@ -94,6 +94,7 @@ from panelprep.findings import (
     SEVERITIES,
     SKIPPED_COLUMNS_ID,
     STEP_FINDING_ID,
+    UNCOMPUTABLE_ID,
 )
 from panelprep.io import (
     FORMATS,
@@ -104,6 +105,9 @@ from panelprep.io import (
     detect_format,
     integer_text_to_int,
     read_frame,
+    refuse_checksum_failure,
+    refuse_link_loop,
+    resolved,
     sniff_delimiter,
 )
 from panelprep.names import DEFAULT_NAMES, AddedNames
@@ -112,8 +116,8 @@ from panelprep.transforms import TRANSFORMS
 
 # Finding ids that modules other than the structural checks emit; a run file
 # may set their severity too.
-EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, CONTRACT_FINDING_ID, SKIPPED_COLUMNS_ID,
-                     STEP_FINDING_ID)
+EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, UNCOMPUTABLE_ID, CONTRACT_FINDING_ID,
+                     SKIPPED_COLUMNS_ID, STEP_FINDING_ID)
 FINDING_IDS: tuple[str, ...] = (*CHECK_IDS, *EXTRA_FINDING_IDS)
 
 FAIL_ON = ("error", "warning")
@@ -506,7 +510,8 @@ _KEYS: dict[str, dict[str, _Key]] = {
                             "smallest size measured)"),
         "force": _Key("bool", _bool, "replace a non-empty output folder"),
         "evidence": _Key("bool", _bool,
-                         "compute the entity-effect and correlated-effects tests"),
+                         "compute the entity-effect, correlated-effects, serial-correlation "
+                         "and cross-sectional dependence tests"),
     },
     "names": {
         "row": _Key("text", _column_name,
@@ -673,23 +678,39 @@ class RunFile:
             constant_rtol=self.checks.constant_rtol,
         )
 
-    def to_toml(self, base: str | Path | None = None) -> str:
+    def values(self) -> dict[str, Any]:
+        """Every key as ``section.key`` -> its value as JSON data (paths as text, lists as lists)."""
+        out: dict[str, Any] = {}
+        for section, keys in _KEYS.items():
+            for key in keys:
+                value = self.get(f"{section}.{key}")
+                if isinstance(value, Path):
+                    value = str(value)
+                elif isinstance(value, (list, tuple)):
+                    value = list(value)
+                elif isinstance(value, Mapping):
+                    value = dict(value)
+                out[f"{section}.{key}"] = value
+        return out
+
+    def to_toml(self, base: str | Path | None = None, header: list[str] | None = None) -> str:
         """The canonical run file: every key in a fixed order, each with a comment.
 
         Keys without a value (an inferred frequency, no contract) are
         written commented out.  Paths are written as held (absolute after
         ``load_run_file``) or, with ``base``, relative to that folder.
         Loading the text again gives an equal ``RunFile`` (its ``source`` aside).
+        ``header`` replaces the title comment.
         """
         values = {f"{s}.{k}": self.get(f"{s}.{k}") for s, keys in _KEYS.items() for k in keys}
         if base is not None:
             for dotted in _PATH_KEYS:
                 if values[dotted] is not None:
-                    values[dotted] = Path(os.path.relpath(Path(values[dotted]).resolve(),
-                                                          Path(base).resolve()))
+                    values[dotted] = Path(os.path.relpath(resolved(values[dotted]),
+                                                          resolved(base)))
         active = {dotted for dotted, value in values.items() if value is not None}
-        title = f"panelprep run file, canonical form (panelprep {__version__})"
-        return _render(values, active, {}, [title])
+        title = [f"panelprep run file, canonical form (panelprep {__version__})"]
+        return _render(values, active, {}, header or title)
 
 
 def _split_dotted(dotted: str) -> tuple[str, str]:
@@ -836,7 +857,7 @@ def load_run_file(path: str | Path, overrides: Mapping[str, Any] | None = None) 
                 raise fail(bad_path, f"{dotted} must be {bad.expected}, got {_shown(value)}"
                            ) from None
             if dotted in _PATH_KEYS and not parsed.is_absolute():
-                parsed = (source.parent / parsed).resolve()
+                parsed = resolved(source.parent / parsed)
             setattr(getattr(run, section), key, parsed)
             line = _line_of(lines, (section, key))
             if line is not None:
@@ -854,6 +875,7 @@ def _shown(value: Any) -> str:
 
 def _read_text(path: Path) -> str:
     if not path.exists():
+        refuse_link_loop(path)
         raise InputError(f"{path}: no such run file")
     if path.is_dir():
         raise InputError(f"{path}: is a directory, expected a run file")
@@ -989,13 +1011,16 @@ def _sample(path: Path, options: ReadOptions, names: list[str]) -> pd.DataFrame:
             return read_frame(part, None, names, None, options)
     try:
         if fmt == "parquet":
-            batches = pq.ParquetFile(path).iter_batches(batch_size=_SAMPLE_ROWS)
+            batches = pq.ParquetFile(path, page_checksum_verification=True).iter_batches(
+                batch_size=_SAMPLE_ROWS)
             first = next(batches, None)
             if first is None:
                 return pq.read_schema(path).empty_table().to_pandas()
             return first.to_pandas()
         return feather.read_table(path, memory_map=True).slice(0, _SAMPLE_ROWS).to_pandas()
     except (pa.ArrowException, OSError, ValueError) as err:
+        if fmt == "parquet":
+            refuse_checksum_failure(path, err, None)
         raise InputError(f"{path}: cannot read as {fmt}: {err}") from None
 
 
@@ -1235,8 +1260,8 @@ def starter_run_file(data_path: str | Path, frame_head: pd.DataFrame | None = No
     notes["model.x"] = "guessed: the other numeric columns"
 
     base = Path(run_dir) if run_dir is not None else None
-    data_written = (Path(os.path.relpath(path.resolve(), base.resolve())) if base is not None
-                    else path.resolve())
+    data_written = (Path(os.path.relpath(resolved(path), resolved(base))) if base is not None
+                    else resolved(path))
     values: dict[str, Any] = {f"{s}.{k}": _default(f"{s}.{k}")
                               for s, keys in _KEYS.items() for k in keys}
     values.update({

@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 import yaml
 
+from panelprep._paths import refuse_link_loop
 from panelprep.errors import InputError
 from panelprep.findings import CONTRACT_FINDING_ID, MAX_EXAMPLES, Finding
 
@@ -69,6 +70,7 @@ def load_contract(path: str | Path) -> pa.DataFrameSchema:
     """
     source = Path(path)
     if not source.is_file():
+        refuse_link_loop(source)
         raise InputError(f"{source}: no such contract file")
     try:
         text = source.read_text(encoding="utf-8-sig")

@@ -18,6 +18,12 @@ Three pieces of evidence are computed:
 * the classical Hausman contrast between the within and random-effects
   slopes.
 
+Given the period codes, :func:`error_structure` adds the evidence on the
+errors themselves (``panelprep.dependence``): Wooldridge's test for serial
+correlation on first differences, the Born-Breitung LM test for serial
+correlation with entity effects, and Pesaran's CD test for dependence across
+entities, with what each means for standard errors.
+
 :func:`read_evidence` turns them into plain sentences and
 :func:`collect_evidence` runs the lot and returns a JSON-serialisable dict
 (Python floats, ``None`` with a note wherever a number is undefined, never NaN
@@ -35,6 +41,14 @@ import numpy as np
 from panelprep._groups import group_sums
 from panelprep._linalg import default_rtol, ols_from_r, sandwich
 from panelprep._moments import StandardSample, standard_sample, triangular
+from panelprep.dependence import (
+    born_breitung_lm,
+    panel_steps,
+    pesaran_cd,
+    read_error_structure,
+    standard_error_advice,
+    wooldridge_serial,
+)
 from panelprep.transforms import theta_per_entity
 from panelprep.words import p_phrase, plural
 
@@ -47,7 +61,8 @@ CAUTION = (
     "data were generated, and a large sample rejects tiny departures while a small one "
     "misses large ones. After the within transform, standard errors must be clustered "
     "by entity whenever the errors may be serially correlated; the conventional ones "
-    "are then too small."
+    "are then too small. Clustering by entity allows for serial correlation, not for "
+    "dependence across entities within a period."
 )
 
 # Relative eigenvalue tolerance of the generalised inverses, on matrices scaled
@@ -558,6 +573,18 @@ def hausman_test(
                     theta, names, _cache)
 
 
+def _within_fit(sample: _Sample, cache: dict | None):
+    """The time-varying columns and the within regression of y on them, once per ``cache``."""
+    def compute():
+        cols = np.flatnonzero(_shared(cache, "varying", lambda: _varying(sample)))
+        r = sample.moments.r_within
+        fit = ols_from_r(triangular(r[:, [*cols, sample.k]], len(cols) + 1), sample.n,
+                         scale=np.sqrt(sample.moments.total_ss[cols]))
+        return cols, fit
+
+    return _shared(cache, "within", compute)
+
+
 def _hausman(sample: _Sample, sigma2_entity: float, s2_e: float, theta, names, cache) -> dict:
     """:func:`hausman_test` on the standardised sample (variances in its units)."""
     n, k = sample.n, sample.k
@@ -592,10 +619,7 @@ def _hausman(sample: _Sample, sigma2_entity: float, s2_e: float, theta, names, c
         result["note"] = " ".join(notes)
         return result
 
-    cols = np.flatnonzero(varying)
-    r = sample.moments.r_within
-    fit_w = ols_from_r(triangular(r[:, [*cols, k]], len(cols) + 1), n,
-                       scale=np.sqrt(sample.moments.total_ss[cols]))
+    cols, fit_w = _within_fit(sample, cache)
     stack = _random_effects_stack(sample, theta_g, [])
     fit_q = _shared(cache, "random_effects", lambda: _fit_stack(stack, list(range(1 + k)), n))
     y_norm = float(np.linalg.norm(stack[:, -1]))
@@ -771,8 +795,77 @@ def read_evidence(evidence: dict[str, Any]) -> list[str]:
     else:
         choice = "no estimator in particular: the tests could not be computed"
     lines.append(f"Overall, the evidence points to {choice}.")
+    lines += read_error_structure(evidence, LEVEL)
     lines.append(CAUTION)
     return lines
+
+
+def error_structure(
+    y: np.ndarray,
+    X: np.ndarray,
+    entity_codes: np.ndarray,
+    counts: np.ndarray,
+    period_codes: np.ndarray,
+    _cache: dict | None = None,
+) -> dict[str, dict[str, Any]]:
+    """Wooldridge, Born-Breitung and Pesaran CD tests (``panelprep.dependence``) on the sample.
+
+    Wooldridge's test fits its own first-differenced regression; the other two
+    use the residuals of the within regression of y on the time-varying
+    regressors (:func:`_within_fit`), formed once.  When the within regression
+    fits exactly (residuals are rounding) those two are undefined, with a note.
+
+    Parameters
+    ----------
+    y, X, entity_codes, counts
+        Estimation sample (see the module docstring).
+    period_codes : int array (n,)
+        Period codes on the grid, non-negative; consecutive codes are
+        consecutive periods, so a hole in an entity's codes is a gap.
+
+    Returns
+    -------
+    dict
+        ``wooldridge`` (:func:`~panelprep.dependence.wooldridge_serial`),
+        ``born_breitung`` (:func:`~panelprep.dependence.born_breitung_lm`),
+        ``pesaran_cd`` (:func:`~panelprep.dependence.pesaran_cd`).
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> entity, period = np.repeat(np.arange(30), 6), np.tile(np.arange(6), 30)
+    >>> x = rng.normal(size=(180, 1))
+    >>> y = x[:, 0] + rng.normal(size=30)[entity] + rng.normal(size=180)
+    >>> out = error_structure(y, x, entity, np.bincount(entity), period)
+    >>> sorted(out), out["pesaran_cd"]["pairs"]
+    (['born_breitung', 'pesaran_cd', 'wooldridge'], 435)
+    """
+    sample = _sample_of(y, X, entity_codes, counts, _cache)
+    periods = np.asarray(period_codes, dtype=np.int64)
+    if periods.shape != sample.codes.shape or (len(periods) and periods.min() < 0):
+        raise ValueError("period_codes must be non-negative codes, one per row of the sample")
+    steps = panel_steps(sample.codes, periods)
+    divisors = np.concatenate([sample.x_scaling.scale, sample.y_scaling.scale])
+    out = {"wooldridge": wooldridge_serial(sample.raw_X, sample.raw_y, sample.codes, steps,
+                                           divisors)}
+    cols, fit = _within_fit(sample, _cache)
+    n, k = sample.n, sample.k
+    if math.sqrt(fit.ssr) <= default_rtol(n, len(cols)) * math.sqrt(
+            float(sample.moments.within_ss[k])):
+        note = ("the within regression fits exactly (its residuals are rounding), so the "
+                "test is undefined")
+        lm = born_breitung_lm(np.zeros(n), sample.codes, sample.counts, steps)
+        cd = pesaran_cd(np.zeros(n), sample.codes, periods, sample.counts, steps.duplicated)
+        out["born_breitung"] = {**lm, "statistic": None, "p_value": None, "note": note}
+        out["pesaran_cd"] = {**cd, "statistic": None, "p_value": None, "note": note}
+        return out
+    slope = np.zeros(k)
+    slope[cols[fit.kept]] = fit.coef[fit.kept]
+    resid = sample.moments.within_residuals(sample.x_column, sample.y_column(), slope)
+    out["born_breitung"] = born_breitung_lm(resid, sample.codes, sample.counts, steps)
+    out["pesaran_cd"] = pesaran_cd(resid, sample.codes, periods, sample.counts,
+                                   steps.duplicated)
+    return out
 
 
 def collect_evidence(
@@ -783,6 +876,7 @@ def collect_evidence(
     components: Any,
     names: Sequence[str],
     sample: StandardSample | None = None,
+    period_codes: np.ndarray | None = None,
 ) -> dict[str, Any]:
     """Run all tests and return a JSON-serialisable summary.
 
@@ -796,14 +890,20 @@ def collect_evidence(
     sample : StandardSample, optional
         The same sample already standardised with its moments
         (``_moments.standard_sample``), as the components were fitted on it.
+    period_codes : int array (n,), optional
+        Period codes on the grid (consecutive codes are consecutive periods).
+        When given, the error-structure tests run too (:func:`error_structure`).
 
     Returns
     -------
     dict
         ``breusch_pagan, honda`` (:func:`entity_effect_lm` on the residuals of
         pooled OLS with a constant), ``mundlak`` (entity-clustered covariance),
-        ``hausman``, ``reading`` (:func:`read_evidence`) and ``caution``.  Numbers
-        are Python floats or ints; undefined ones are None with a note.
+        ``hausman``; with ``period_codes`` also ``wooldridge``,
+        ``born_breitung``, ``pesaran_cd`` and ``standard_errors`` (one sentence,
+        :func:`panelprep.dependence.standard_error_advice`); ``reading``
+        (:func:`read_evidence`) and ``caution``.  Numbers are Python floats or
+        ints; undefined ones are None with a note.
     """
     names = list(names)
     # every regression here has a constant (or the constant column 1 - theta_i)
@@ -816,13 +916,54 @@ def collect_evidence(
     if sd_entity is None or sd_idiosyncratic is None:
         sd_entity = math.sqrt(float(components.sigma2_entity_))
         sd_idiosyncratic = math.sqrt(float(components.sigma2_idiosyncratic_))
-    out: dict[str, Any] = dict(_pooled_lm(sample))
+    out: dict[str, Any] = _guarded(lambda: dict(_pooled_lm(sample)), ("breusch_pagan", "honda"),
+                                   {"breusch_pagan": {"df": 1}})
     # both correlated-effects tests run on the same quasi-demeaned regression
-    out["mundlak"] = mundlak_test(
+    out.update(_guarded(lambda: {"mundlak": mundlak_test(
         y, X, entity_codes, counts, components.theta_, names, cluster=True, _cache=shared
-    )
-    out["hausman"] = _hausman(sample, (sd_entity / sample.unit) ** 2,
-                              (sd_idiosyncratic / sample.unit) ** 2, components.theta_, names, shared)
+    )}, ("mundlak",), {"mundlak": {"covariance": "entity-clustered", "tested": names}}))
+    out.update(_guarded(lambda: {"hausman": _hausman(
+        sample, (sd_entity / sample.unit) ** 2, (sd_idiosyncratic / sample.unit) ** 2,
+        components.theta_, names, shared)}, ("hausman",), {"hausman": {"tested": names}}))
+    if period_codes is not None:
+        out.update(error_structure(y, X, entity_codes, counts, period_codes, _cache=shared))
+        out["standard_errors"] = standard_error_advice(out, LEVEL)
     out["reading"] = read_evidence(out)
     out["caution"] = CAUTION
     return out
+
+
+_UNCOMPUTABLE = "not computable: "
+
+
+def _guarded(compute: Any, tests: Sequence[str], known: dict[str, dict]) -> dict[str, dict]:
+    """``compute()`` with floating-point overflow and invalid operations raised, not warned.
+
+    A test whose arithmetic overflows (or whose statistic is not finite) gets a
+    null statistic and a note saying so, instead of a number computed from
+    infinities; ``known`` holds the fields such a block keeps.
+    """
+    try:
+        with np.errstate(over="raise", invalid="raise", divide="raise"):
+            found = compute()
+    except FloatingPointError as err:
+        reason = f"{_UNCOMPUTABLE}floating-point {err} in its arithmetic"
+        return {t: _uncomputable(reason, known.get(t, {})) for t in tests}
+    for test in tests:
+        statistic = found[test].get("statistic")
+        if statistic is not None and not math.isfinite(statistic):
+            found[test] = _uncomputable(f"{_UNCOMPUTABLE}its statistic came out {statistic}",
+                                        found[test])
+    return found
+
+
+def _uncomputable(reason: str, block: dict[str, Any]) -> dict[str, Any]:
+    note = (f"{reason} (values too extreme for float64 even after centring and scaling); "
+            "rescale the variables and run again")
+    return {**block, "statistic": None, "p_value": None, "note": note}
+
+
+def uncomputable_tests(evidence: dict[str, Any]) -> dict[str, str]:
+    """Test name -> note, for the tests :func:`collect_evidence` could not compute."""
+    return {name: block["note"] for name, block in evidence.items()
+            if isinstance(block, dict) and str(block.get("note") or "").startswith(_UNCOMPUTABLE)}

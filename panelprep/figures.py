@@ -137,12 +137,14 @@ def picture_data(
     states[position[entity[shown]], period[shown] // block] = PRESENT
     starts = np.arange(n_columns, dtype=np.int64) * block
     labels = _column_labels(index, starts, block, n_periods)
-    present_by_period = np.bincount(period, minlength=n_periods) if n_periods else np.zeros(0)
-    cut = starts if n_columns else np.zeros(0, dtype=np.int64)
     has = periods_per_entity > 0
+    # binned by column from the periods that occur: nothing walks the grid itself
+    occurring, present = np.unique(period, return_counts=True)
+    present_most = np.zeros(n_columns, dtype=np.int64)
+    np.maximum.at(present_most, occurring // block, present)
 
-    def per_column(counts: np.ndarray, reduce) -> list[int]:
-        return reduce.reduceat(counts, cut).astype(np.int64).tolist() if n_columns else []
+    def per_column(periods: np.ndarray) -> list[int]:
+        return np.bincount(periods // block, minlength=n_columns).astype(np.int64).tolist()
 
     out: dict[str, Any] = {
         "presence": {
@@ -159,9 +161,9 @@ def picture_data(
         },
         "flow": {
             "periods": labels,
-            "present_most": per_column(present_by_period, np.maximum),
-            "entering": per_column(np.bincount(entry[has], minlength=n_periods), np.add),
-            "last_seen": per_column(np.bincount(leave[has], minlength=n_periods), np.add),
+            "present_most": present_most.tolist(),
+            "entering": per_column(entry[has]),
+            "last_seen": per_column(leave[has]),
             "period_block": block,
         },
         "missing": missing if missing is not None else (
@@ -247,13 +249,16 @@ def missing_picture(ctx: AuditContext, max_periods: int = MAX_PERIODS) -> dict[s
     """
     if not ctx.variables:
         return None
-    rows, missing = ctx.missing_by_period
-    n_periods = len(rows)
+    present, rows, missing = ctx.missing_by_period
+    n_periods = max(ctx.index.n_periods, 1)
     block = max(1, math.ceil(n_periods / max_periods))
     starts = np.arange(0, n_periods, block, dtype=np.int64)
     labels = _column_labels(ctx.index, starts, block, n_periods)
-    column_rows = np.add.reduceat(rows, starts)
-    column_missing = np.add.reduceat(missing, starts, axis=0)
+    # each period that occurs adds to its column; the grid itself is never walked
+    column = present // block
+    column_rows = np.bincount(column, weights=rows, minlength=len(starts)).astype(np.int64)
+    column_missing = np.zeros((len(starts), missing.shape[1]), dtype=np.int64)
+    np.add.at(column_missing, column, missing)
     with np.errstate(invalid="ignore", divide="ignore"):
         share = column_missing / column_rows[:, None]
     return {

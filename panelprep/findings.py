@@ -8,7 +8,11 @@ decides once, over all of them, whether the data passed.
 
 from __future__ import annotations
 
+import contextlib
+import warnings
+from collections.abc import Iterator
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 SEVERITIES = ("info", "warning", "error")
@@ -18,6 +22,10 @@ CONTRACT_FINDING_ID = "contract-check-failed"
 SKIPPED_COLUMNS_ID = "columns-not-checked"
 # emitted by the audit when a stated step (--freq int:K) is not the data's own
 STEP_FINDING_ID = "period-step-stated"
+# emitted by panelprep.prepare for a test of the evidence float64 could not carry out
+UNCOMPUTABLE_ID = "evidence-not-computable"
+# warnings raised by a library during a run, kept in the report instead of on stderr
+LIBRARY_WARNINGS_ID = "library-warnings"
 MAX_EXAMPLES = 10
 
 
@@ -89,3 +97,64 @@ def gate(findings: list[Finding], fail_on: str = "error") -> str:
     failed = any(severity_rank(f.severity) >= threshold for f in findings
                  if f.resolved_by is None)
     return "fail" if failed else "pass"
+
+
+# the one order of findings in every report (JSON, text log, HTML)
+FINDINGS_ORDER = ("findings that count first, worst first (error, warning, info), ties in the "
+                  "order the checks ran; then the findings a policy resolved, in the same order")
+
+
+def ordered(findings: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Finding dicts in ``FINDINGS_ORDER`` (a stable sort)."""
+    return sorted(findings, key=lambda f: (bool(f.get("resolved_by")),
+                                           -severity_rank(f["severity"])))
+
+
+def gate_block(findings: list[dict[str, Any]], fail_on: str) -> dict[str, Any]:
+    """The gate as data: threshold, verdict, the ids that failed it, counts by severity.
+
+    ``counts`` are of the findings that count (not resolved by a policy);
+    ``resolved`` is how many a policy resolved.
+    """
+    threshold = severity_rank(fail_on)
+    counting = [f for f in findings if not f.get("resolved_by")]
+    failed = [f["id"] for f in ordered(counting) if severity_rank(f["severity"]) >= threshold]
+    return {
+        "fail_on": fail_on,
+        "verdict": "fail" if failed else "pass",
+        "failed_by": list(dict.fromkeys(failed)),
+        "counts": {s: sum(f["severity"] == s for f in counting) for s in reversed(SEVERITIES)},
+        "resolved": len(findings) - len(counting),
+    }
+
+
+@contextlib.contextmanager
+def recorded_warnings() -> Iterator[list[warnings.WarningMessage]]:
+    """Warnings raised inside the block, recorded (once per place) instead of printed."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("default")
+        yield caught
+
+
+def library_warnings_finding(caught: list[warnings.WarningMessage]) -> Finding | None:
+    """An info finding listing the distinct warnings recorded, or None.
+
+    It never counts for the gate: every warning that can change a result is
+    guarded in the code and reported by its own finding
+    (``evidence-not-computable``, ``variance-beyond-float-range``); one seen here
+    is an edge the code does not handle yet, said so the run is not silent.
+    """
+    seen = dict.fromkeys((w.category.__name__, str(w.message), Path(w.filename).name, w.lineno)
+                         for w in caught)
+    if not seen:
+        return None
+    examples = [{"warning": kind, "message": message, "where": f"{name}:{line}"}
+                for kind, message, name, line in seen]
+    first = examples[0]
+    return Finding(
+        id=LIBRARY_WARNINGS_ID, severity="info", count=len(seen),
+        message=(f"{len(seen)} warning(s) raised by a library during the run, recorded here "
+                 f"instead of on stderr (e.g. {first['warning']}: {first['message']} at "
+                 f"{first['where']}); each is an edge panelprep does not handle by itself yet: "
+                 "check the numbers it may touch, and please report it"),
+        examples=examples)

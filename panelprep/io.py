@@ -34,7 +34,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 from pyarrow import feather
 
-from panelprep._paths import check_readable
+from panelprep._paths import check_readable, refuse_link_loop, resolved
 from panelprep.errors import ColumnError, InputError
 from panelprep.limits import check_memory
 
@@ -274,15 +274,30 @@ def read_frame(
         if fmt == "csv":
             table = _read_csv(path, wanted, entity, time, options)
         elif fmt == "parquet":
-            table = pq.read_table(path, columns=wanted)
+            table = pq.read_table(path, columns=wanted, page_checksum_verification=True)
         else:
             table = feather.read_table(path, columns=wanted, memory_map=True)
     except InputError:
         raise
     except (pa.ArrowException, OSError, ValueError) as err:
+        if fmt == "parquet":
+            refuse_checksum_failure(path, err, wanted)
         raise InputError(f"{path}: cannot read as {fmt}: {_short(err)}") from None
-    frame = table.to_pandas()
     keys = {*entity, time}
+    _refuse_nested_keys(path, table.schema, [k for k in (*entity, time) if k])
+    table = _decimal_columns(table, time)
+    # decimals stay Arrow decimals (not Python Decimal objects): the audit reads them as
+    # float64 and reports the values float64 does not hold exactly (values-decimal-rounded)
+    try:
+        frame = table.to_pandas(types_mapper=_keep_decimal)
+    except pa.ArrowNotImplementedError:
+        raise ColumnError(_unconvertible(path, table)) from None
+    for name, column in zip(table.column_names, table.columns):
+        if pa.types.is_nested(column.type) and name not in keys:
+            # lists, structs and maps arrive as arrays and dicts, which cannot be compared
+            # or hashed; as their text they are reported like any other text in a variable
+            values = frame[name]
+            frame[name] = values.astype(str).where(values.notna(), None)
     for name, column in zip(table.column_names, table.columns):
         if name in keys or not column.null_count and not pa.types.is_floating(column.type):
             continue
@@ -296,6 +311,89 @@ def read_frame(
     del table
     release_arrow_memory()
     return frame[wanted]
+
+
+def refuse_checksum_failure(path: Path, err: BaseException, columns: list[str] | None) -> None:
+    """When ``err`` is a failed Parquet page checksum: one line naming the column and row group.
+
+    Pages are verified when the file has checksums (panelprep writes them); the
+    failing column and row group are found by reading each in turn, only here.
+    """
+    if "CRC checksum verification failed" not in str(err):
+        return
+    source = pq.ParquetFile(path, page_checksum_verification=True)
+    meta = source.metadata
+    names = columns or source.schema_arrow.names
+    first = 0
+    for group in range(meta.num_row_groups):
+        rows = meta.row_group(group).num_rows
+        for name in names:
+            try:
+                source.read_row_group(group, columns=[name])
+            except (OSError, pa.ArrowException):
+                raise InputError(
+                    f"{path}: column {name!r} fails its page checksum in row group {group + 1} "
+                    f"of {meta.num_row_groups} (rows {first + 1:,} to {first + rows:,}): the file "
+                    "was damaged after it was written; get a fresh copy") from None
+        first += rows
+    raise InputError(f"{path}: a data page fails its checksum: the file was damaged after it "
+                     "was written; get a fresh copy") from None
+
+
+def _unconvertible(path: Path, table: pa.Table) -> str:
+    """The message for a column pandas cannot hold (a union), found column by column."""
+    for name, column in zip(table.column_names, table.columns):
+        try:
+            column.slice(0, 1).to_pandas()
+        except pa.ArrowNotImplementedError:
+            return (f"{path}: column {name!r} holds {column.type} values, which panelprep "
+                    "cannot read; store one type per column, or leave the column out "
+                    "(--vars)")
+    return f"{path}: a column's type cannot be read into a table"
+
+
+def _keep_decimal(arrow_type: pa.DataType) -> pd.ArrowDtype | None:
+    return pd.ArrowDtype(arrow_type) if pa.types.is_decimal(arrow_type) else None
+
+
+def _decimal_columns(table: pa.Table, time: str | None) -> pa.Table:
+    """Decimals in types Arrow can group: a time column as float64, others as decimal128+.
+
+    A period is a whole number, a date or a label, so a decimal time column is read as
+    the number it holds (whole numbers beyond 2^53 are refused by the time axis);
+    32- and 64-bit decimals have no hashing kernels (ids, repeated rows), so they are
+    widened losslessly.
+    """
+    for i, name in enumerate(table.column_names):
+        kind = table.schema.field(i).type
+        if not pa.types.is_decimal(kind):
+            continue
+        if name == time:
+            wanted = pa.float64()
+        elif kind.bit_width < 128:
+            wanted = pa.decimal128(kind.precision, kind.scale)
+        else:
+            continue
+        table = table.set_column(i, name, pc.cast(table.column(i), wanted))
+    return table
+
+
+def _refuse_nested_keys(path: Path, schema: pa.Schema, keys: list[str]) -> None:
+    """One line for a key column of lists, structs, maps, unions or intervals.
+
+    A key is one value per row that can be compared and sorted; those are not.
+    """
+    for name in keys:
+        if name in schema.names:
+            kind = schema.field(name).type
+            if pa.types.is_dictionary(kind):
+                kind = kind.value_type
+            if pa.types.is_nested(kind) or pa.types.is_interval(kind) or pa.types.is_union(kind):
+                what = "nested values" if pa.types.is_nested(kind) else "values"
+                raise ColumnError(
+                    f"{path}: key column {name!r} holds {what} ({kind}); an entity or "
+                    "time key must hold one text, number or date per row: flatten the "
+                    "column upstream or name another column")
 
 
 def release_arrow_memory() -> None:
@@ -464,6 +562,7 @@ def write_table(
             schema = first.schema.with_metadata(schema_meta)
             writer = pq.ParquetWriter(
                 path, schema, compression=compression, write_statistics=True,
+                write_page_checksum=True,
                 use_dictionary=True if dictionary is None else [
                     c for c in dictionary if c in schema.names])
         elif fmt == "csv":
@@ -519,8 +618,8 @@ def _identity(path: str | os.PathLike[str]) -> tuple[int, int] | None:
 
 def _lineage(path: Path) -> set[tuple[int, int]]:
     """Identities of ``path`` and of every folder holding it (after resolving links)."""
-    resolved = Path(path).resolve()
-    found = {_identity(p) for p in (Path(path), resolved, *resolved.parents)}
+    absolute = resolved(path)
+    found = {_identity(p) for p in (Path(path), absolute, *absolute.parents)}
     found.discard(None)
     return found
 
@@ -536,14 +635,14 @@ def refuse_input_clash(path: Path, inputs: Sequence[Path], what: str) -> None:
     mine = _identity(path)
     for source in inputs:
         same = mine is not None and mine == _identity(source)
-        if same or path.resolve() == Path(source).resolve():
+        if same or resolved(path) == resolved(source):
             raise InputError(f"{path}: {what} would overwrite the input {source} "
                              "(the same file); choose another path")
 
 
 def _holds(folder: Path, source: Path) -> bool:
     """Whether ``folder`` is ``source`` or a folder above it, by identity or by path."""
-    folder_abs, source_abs = folder.resolve(), Path(source).resolve()
+    folder_abs, source_abs = resolved(folder), resolved(source)
     if folder_abs == source_abs or folder_abs in source_abs.parents:
         return True
     mine = _identity(folder)
@@ -555,12 +654,28 @@ def parent_folder(path: Path) -> Path:
     parent = Path(path).absolute().parent
     if parent.is_dir():
         return parent
+    refuse_link_loop(parent)
     above = parent
     while not above.exists() and above != above.parent:
         above = above.parent
     if above.exists() and not above.is_dir():
         raise InputError(f"{path}: {above} is a file, not a folder")
-    raise InputError(f"{path}: parent folder {parent} does not exist")
+    raise InputError(f"{path}: parent folder {parent} does not exist; create it first, or name "
+                     "another path")
+
+
+def check_file_destination(path: Path, inputs: Sequence[Path], what: str) -> Path:
+    """Refuse, before anything runs, a file destination that cannot be written; its folder.
+
+    Refused: one of ``inputs`` (``refuse_input_clash``), a link loop, a
+    folder, a path whose parent folder is missing or a file.
+    """
+    path = Path(path)
+    refuse_input_clash(path, inputs, what)
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder, and {what} is written as a file; name a "
+                         f"file (inside it, e.g. {path / 'NAME'}, or elsewhere)")
+    return parent_folder(path)
 
 
 def _fresh_name(parent: Path) -> Path:
@@ -579,8 +694,7 @@ def write_file(path: str | Path, content: str | bytes, inputs: Sequence[Path] = 
     """
     path = Path(path)
     payload = content.encode("utf-8") if isinstance(content, str) else content
-    refuse_input_clash(path, inputs, what)
-    parent = parent_folder(path)
+    parent = check_file_destination(path, inputs, what)
     _remove_abandoned(parent)
     try:
         while True:
@@ -613,12 +727,14 @@ def check_output_folder(target: Path, inputs: Sequence[Path], force: bool = Fals
                         protect: Sequence[Path] = ()) -> None:
     """Refuse, with one line, an output folder that may not be written.
 
-    Refused: a ``target`` that is or holds one of ``inputs`` (even with
-    ``force``), one that is, holds or lies inside a folder in ``protect``,
+    Refused: the current folder or one above it, a ``target`` that is or
+    holds one of ``inputs`` (even with ``force``), one that is, holds or
+    lies inside a folder in ``protect``,
     a broken link, a file, and a non-empty folder unless ``force`` or it
     holds only names in ``replaceable``.
     """
     target = Path(target)
+    _refuse_working_folder(target)
     parent_folder(target)
     try:
         for source in inputs:
@@ -635,6 +751,16 @@ def check_output_folder(target: Path, inputs: Sequence[Path], force: bool = Fals
     if problem:
         reason, hint = problem
         raise InputError(f"{target}: {reason}{hint}")
+
+
+def _refuse_working_folder(target: Path) -> None:
+    """An output folder is replaced as a whole: never the current folder or one above it."""
+    where, here = resolved(target), resolved(Path.cwd())
+    if where == here or where in here.parents:
+        which = "the current folder" if where == here else "a folder above the current one"
+        raise InputError(f"{str(target) or '.'}: is {which} ({where}); an output folder is "
+                         "replaced as a whole, so name a new folder for it (e.g. "
+                         "--out prepared)")
 
 
 def _unacceptable(path: Path, force: bool,

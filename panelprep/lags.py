@@ -119,10 +119,28 @@ def add_shifts(
                 f"--{shift.kind} {shift.variable!r}: {len(problem.rows):,} value(s) of the column "
                 f"are not numbers (e.g. {shown}); declare texts that mean missing with "
                 "--missing-token, or use --decimal-comma if ',' is the decimal mark")
-        if shift.kind == "lag":
-            out[shift.name] = shifted_values(index, values, shift.k)
-        elif shift.kind == "lead":
-            out[shift.name] = shifted_values(index, values, -shift.k)
-        else:
-            out[shift.name] = values - shifted_values(index, values, shift.k)
+        _refuse_beyond_grid(index, shift)
+        other = shifted_values(index, values, -shift.k if shift.kind == "lead" else shift.k)
+        if np.isnan(other).all():
+            raise InputError(
+                f"{shift.option}: no row has a value of {shift.variable!r} for the same entity "
+                f"{_distance(shift)}, so {shift.name!r} would be missing on every row; use a "
+                "shorter distance")
+        out[shift.name] = values - other if shift.kind == "diff" else other
     return out
+
+
+def _distance(shift: Shift) -> str:
+    periods = "period" if shift.k == 1 else "periods"
+    return f"{shift.k:,} {periods} {'later' if shift.kind == 'lead' else 'earlier'}"
+
+
+def _refuse_beyond_grid(index: PanelIndex, shift: Shift) -> None:
+    """A distance as long as the whole grid finds nothing (and would overflow int64)."""
+    if shift.k < index.n_periods:
+        return
+    first, last = index.period_labels([0, max(index.n_periods - 1, 0)])
+    raise InputError(
+        f"{shift.option}: {_distance(shift)} lies beyond the data, whose {index.n_periods:,} "
+        f"period(s) run {first} to {last}, so {shift.name!r} would be missing on every row; "
+        f"use a distance below {index.n_periods:,}")

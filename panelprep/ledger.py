@@ -21,8 +21,10 @@ from panelprep.names import DEFAULT_NAMES, AddedNames
 
 @dataclass
 class StepRecord:
-    """One line of the story: a step with rows and entities before and after."""
+    """One line of the story: a step (a stable ``id``, and ``step`` in words) with rows
+    and entities before and after.  The ledger's step column holds the ``id``."""
 
+    id: str
     step: str
     rows_before: int
     rows_after: int
@@ -32,6 +34,7 @@ class StepRecord:
 
     def to_dict(self) -> dict:
         return {
+            "id": self.id,
             "step": self.step,
             "rows_before": self.rows_before,
             "rows_after": self.rows_after,
@@ -52,7 +55,7 @@ class Ledger:
     story: list[StepRecord] = field(default_factory=list)
 
     def drop(self, input_rows: np.ndarray, reason: str, step: str) -> None:
-        """Record removed rows (0-based input row numbers) under one reason."""
+        """Record removed rows (0-based input row numbers) under one reason and step id."""
         rows = np.asarray(input_rows, dtype=np.int64)
         if len(rows):
             self._rows.append(rows)

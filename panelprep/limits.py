@@ -117,7 +117,8 @@ def _parquet_bytes(meta: pq.FileMetaData, wanted: set[str] | None) -> int:
             width = 8
             if chunk.physical_type in ("BYTE_ARRAY", "FIXED_LEN_BYTE_ARRAY"):
                 stats = chunk.statistics
-                if stats is not None and stats.has_min_max:
+                # decimals are stored as byte arrays too, but their statistics are numbers
+                if stats is not None and stats.has_min_max and isinstance(stats.min, (str, bytes)):
                     width += (len(stats.min) + len(stats.max)) // 2
             total += max(group.num_rows * width, chunk.total_uncompressed_size)
     return total

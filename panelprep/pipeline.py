@@ -7,26 +7,31 @@ text and HTML.
 
 from __future__ import annotations
 
-import sys
-from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field, replace
+from collections.abc import Sequence
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
+from panelprep._schema import SCHEMA_VERSION
 from panelprep._version import __version__
 from panelprep.checks import CHECKS, SAMPLE_CHECKS, AuditContext, Thresholds
 from panelprep.checks.context import looks_numeric
 from panelprep.errors import ColumnError, InputError
 from panelprep.findings import (
+    FINDINGS_ORDER,
     SEVERITIES,
     SKIPPED_COLUMNS_ID,
     STEP_FINDING_ID,
     Finding,
     apply_severities,
     gate,
+    gate_block,
+    library_warnings_finding,
+    ordered,
+    recorded_warnings,
     severity_rank,
 )
 from panelprep.index import PanelIndex, build_index
@@ -39,13 +44,11 @@ from panelprep.io import (
     release_arrow_memory,
     sha256_file,
 )
+from panelprep.runlog import RunLog
 from panelprep.words import plural
 
-Progress = Callable[[str], None]
-
-
-def _silent(_: str) -> None:
-    return None
+# every flow takes a RunLog: called at each step start, it measures and tells the steps
+Progress = RunLog
 
 
 # the samples a report's blocks can describe
@@ -85,6 +88,8 @@ class AuditReport:
     context: AuditContext = field(repr=False)
     sample: str = ESTIMATION_SAMPLE
     policies: list[str] = field(default_factory=list)
+    log: RunLog | None = field(default=None, repr=False)
+    options: dict[str, Any] = field(default_factory=dict)
 
     def finding(self, finding_id: str) -> Finding | None:
         """The finding with this id that counts (one resolved by a policy only when alone)."""
@@ -92,14 +97,18 @@ class AuditReport:
         return next((f for f in found if f.resolved_by is None), found[0] if found else None)
 
     def to_dict(self) -> dict[str, Any]:
+        findings = ordered([f.to_dict() for f in self.findings])
         return {
+            "schema_version": SCHEMA_VERSION,
             "tool": {"name": "panelprep", "version": __version__},
             "verdict": self.verdict,
             "fail_on": self.fail_on,
+            "gate": gate_block(findings, self.fail_on),
             "keys": self.keys,
             "input": self.input,
             "panel": self.panel,
-            "findings": [f.to_dict() for f in self.findings],
+            "findings_order": FINDINGS_ORDER,
+            "findings": findings,
             "variables": self.variables,
             "samples": {
                 "panel": self.sample,
@@ -108,7 +117,15 @@ class AuditReport:
                 "definition": sample_definition(self.sample, self.policies),
                 "policies": list(self.policies),
             },
+            **({} if self.log is None else {"run": self.run_block()}),
         }
+
+    def run_block(self) -> dict[str, Any]:
+        """The ``run`` block as of now: start, duration, steps, the resolved options."""
+        inferred = {} if self.options.get("panel.freq") else {"panel.freq": self.keys["freq"]}
+        if self.options.get("input.path") and not self.options.get("input.format"):
+            inferred["input.format"] = self.input.get("format")
+        return self.log.block(self.options, inferred, self.input.get("sha256"))
 
 
 def split_names(value: str | Sequence[str] | None) -> list[str] | None:
@@ -149,7 +166,7 @@ def audit(
     missing_tokens: Sequence[str] = (),
     input_info: dict[str, Any] | None = None,
     index: PanelIndex | None = None,
-    progress: Progress = _silent,
+    progress: Progress | None = None,
     prior_findings: Sequence[Finding] = (),
     origin: np.ndarray | None = None,
 ) -> AuditReport:
@@ -192,35 +209,47 @@ def audit(
         raise InputError("no entity column given")
     chosen = split_names(vars)
     names = choose_variables(frame, entity, time, chosen, decimal_comma)
-    progress(f"indexing {len(frame):,} rows on ({', '.join(entity)}) x {time}")
-    if index is None:
-        index = build_index(frame, entity, time, freq)
-        release_arrow_memory()  # what factorising Arrow strings left in the pool
-    context = AuditContext(
-        frame=frame,
-        index=index,
-        variables=names,
-        thresholds=thresholds or Thresholds(),
-        decimal_comma=decimal_comma,
-        missing_tokens=tuple(missing_tokens),
-        origin=origin,
-    )
+    progress = progress if progress is not None else RunLog()
     findings: list[Finding] = list(prior_findings)
-    if chosen is None:
-        skipped = _skipped_columns(frame, [*entity, time], names)
-        if skipped is not None:
-            findings.append(skipped)
-    stated = _stated_step_finding(index.axis)
-    if stated is not None:
-        findings.append(stated)
-    for check in CHECKS:
-        progress(f"check {check.id}")
-        found = check.run(context)
-        if found is not None:
-            findings.append(found)
+    with recorded_warnings() as caught:
+        if index is None:
+            progress("index", f"indexing on ({', '.join(entity)}) x {time}", rows=len(frame))
+            index = build_index(frame, entity, time, freq)
+            release_arrow_memory()  # what factorising Arrow strings left in the pool
+        context = AuditContext(
+            frame=frame,
+            index=index,
+            variables=names,
+            thresholds=thresholds or Thresholds(),
+            decimal_comma=decimal_comma,
+            missing_tokens=tuple(missing_tokens),
+            origin=origin,
+        )
+        if chosen is None:
+            skipped = _skipped_columns(frame, [*entity, time], names)
+            if skipped is not None:
+                findings.append(skipped)
+        stated = _stated_step_finding(index.axis)
+        if stated is not None:
+            findings.append(stated)
+        for check in CHECKS:
+            progress(f"check.{check.id}", f"check {check.id}")
+            found = check.run(context)
+            if found is not None:
+                findings.append(found)
     findings = apply_severities(findings, severities or {})
     verdict = gate(findings, fail_on)
+    # after the gate: a library's warning is said, never judged (see library_warnings_finding)
+    findings += filter(None, [library_warnings_finding(caught)])
+    thresholds = thresholds or context.thresholds
+    options = {
+        "panel.entity": entity, "panel.time": time, "panel.freq": freq, "audit.vars": chosen,
+        "input.decimal_comma": decimal_comma, "input.missing_tokens": list(missing_tokens),
+        "checks.fail_on": fail_on, "checks.severity": dict(severities or {}),
+        **{f"checks.{k}": v for k, v in asdict(thresholds).items()},
+    }
     return AuditReport(
+        log=progress, options=options,
         verdict=verdict,
         fail_on=fail_on,
         findings=findings,
@@ -292,6 +321,7 @@ def judge_final_sample(
     findings += [f for f_id, f in final.items() if f_id not in known] + resolved
     context = contexts[-1]
     return AuditReport(
+        log=report.log, options=report.options,
         verdict=gate(findings, report.fail_on), fail_on=report.fail_on, findings=findings,
         keys=report.keys, input=report.input, panel=_panel_summary(context),
         variables=context.variation, context=context, sample=FINAL_SAMPLE,
@@ -409,15 +439,16 @@ def audit_file(
     time: str,
     vars: str | Sequence[str] | None = None,
     options: ReadOptions = DEFAULT_READ,
-    progress: Progress = _silent,
+    progress: Progress | None = None,
     **audit_options: Any,
 ) -> AuditReport:
     """Read a data file and audit it (see ``audit``)."""
     entity = split_names(entity) or []
     variables = split_names(vars)
-    progress(f"reading {path}")
+    progress = progress if progress is not None else RunLog()
+    progress("read", f"reading {path}")
     frame, info = load(path, entity, time, variables, options)
-    return audit(
+    report = audit(
         frame, entity, time, variables,
         decimal_comma=options.decimal_comma,
         missing_tokens=options.missing_tokens,
@@ -425,14 +456,7 @@ def audit_file(
         progress=progress,
         **audit_options,
     )
-
-
-def stderr_progress(quiet: bool) -> Progress:
-    """Per-step lines on stderr when it is a terminal and not ``quiet``."""
-    if quiet or not sys.stderr.isatty():
-        return _silent
-
-    def say(message: str) -> None:
-        print(f"panelprep: {message}", file=sys.stderr, flush=True)
-
-    return say
+    report.options = {"input.path": str(Path(path).absolute()),
+                      "input.format": options.input_format,
+                      "input.delimiter": options.delimiter, **report.options}
+    return report

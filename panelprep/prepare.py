@@ -13,7 +13,7 @@ import os
 import threading
 from collections.abc import Iterator, Sequence
 from concurrent.futures import Future
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from functools import cached_property
 from pathlib import Path
 from typing import Any
@@ -27,6 +27,7 @@ from panelprep._groups import group_counts
 from panelprep._linalg import independent_columns
 from panelprep._moments import standard_sample
 from panelprep._scale import standardise
+from panelprep._schema import SCHEMA_VERSION
 from panelprep._version import __version__
 from panelprep.checks import AuditContext, Thresholds
 from panelprep.clean import (
@@ -40,11 +41,31 @@ from panelprep.clean import (
     window_removal,
 )
 from panelprep.components import METHODS, VarianceComponents
-from panelprep.config import RunFile
+from panelprep.config import (
+    ChecksSection,
+    CleanSection,
+    ContractSection,
+    DeriveSection,
+    InputSection,
+    ModelSection,
+    NamesSection,
+    OutputSection,
+    PanelSection,
+    RunFile,
+)
 from panelprep.errors import InputError
-from panelprep.evidence import collect_evidence
+from panelprep.evidence import collect_evidence, uncomputable_tests
 from panelprep.figures import missing_picture, picture_data
-from panelprep.findings import Finding, apply_severities, gate
+from panelprep.findings import (
+    UNCOMPUTABLE_ID,
+    Finding,
+    apply_severities,
+    gate,
+    gate_block,
+    library_warnings_finding,
+    ordered,
+    recorded_warnings,
+)
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
@@ -76,12 +97,12 @@ from panelprep.names import (
 from panelprep.pipeline import (
     AuditReport,
     Progress,
-    _silent,
     audit,
     judge_final_sample,
     load,
     split_names,
 )
+from panelprep.runlog import RunLog
 from panelprep.transforms import TRANSFORMS
 
 DEFAULT_TRANSFORMS = ("within", "between", "quasi")
@@ -188,8 +209,10 @@ def prepare_frame(
     options: PrepareOptions,
     input_info: dict[str, Any] | None = None,
     read_options: ReadOptions = DEFAULT_READ,
-    progress: Progress = _silent,
+    progress: Progress | None = None,
     check_names: bool = True,
+    record: RunFile | None = None,
+    owns_frame: bool = False,
 ) -> Preparation:
     """Clean, audit and transform a panel held in memory; nothing is written.
 
@@ -197,7 +220,13 @@ def prepare_frame(
     transform and ``dropped`` (the ledger), and whose ``summary`` is the
     diagnostics document.  When the gate fails, ``tables`` is empty.
     ``check_names`` refuses added columns whose names the frame already uses
-    (off only where no table is built, or the caller checked them already).
+    (off only where no table is built).  ``record`` is the run as a run
+    file (``run_record``), for the ``run`` block of the summary.
+    ``owns_frame`` says the frame was read for this run
+    (``run_preparation``): its variable columns are then dropped, in place,
+    once the sample block is taken.  A caller's frame is never changed.
+    Warnings a library raises on the way are recorded in a
+    ``library-warnings`` finding, never printed.
 
     Examples
     --------
@@ -211,7 +240,23 @@ def prepare_frame(
     >>> prep.verdict, sorted(prep.tables), len(prep.tables["within"])
     ('pass', ['between', 'clean', 'dropped', 'quasi', 'within'], 6)
     """
+    with recorded_warnings() as caught:
+        prep = _prepare_frame(frame, options, input_info, read_options, progress, check_names,
+                              owns_frame, record)
+    said = library_warnings_finding(caught)
+    if said is not None:
+        prep.audit.findings.append(said)
+        prep.summary["findings"].append(said.to_dict())
+    return prep
+
+
+def _prepare_frame(
+    frame: pd.DataFrame, options: PrepareOptions, input_info: dict[str, Any] | None,
+    read_options: ReadOptions, progress: Progress | None, check_names: bool, owns_frame: bool,
+    record: RunFile | None,
+) -> Preparation:
     options.validate()
+    progress = progress if progress is not None else RunLog()
     if check_names:
         options.check_names(list(frame.columns), "the data")
     policies = options.policies
@@ -220,29 +265,35 @@ def prepare_frame(
     if options.contract is not None:
         from panelprep.contracts import check_contract
 
-        progress("checking the schema contract")
+        progress("contract", "checking the schema contract", rows=len(frame))
         contract_findings = check_contract(frame, options.contract, where="input")
 
     if policies.normalise_ids != "none":
+        progress("normalise-ids", f"normalise entity ids ({policies.normalise_ids})",
+                 rows=len(flow.frame))
         before = _distinct_entities(flow.frame, options.entity)
         flow.frame, changed = normalise_ids(flow.frame, options.entity, policies.normalise_ids)
-        flow.note(f"normalise entity ids ({policies.normalise_ids})", before,
+        flow.note("normalise-ids", f"normalise entity ids ({policies.normalise_ids})", before,
                   _distinct_entities(flow.frame, options.entity), f"{changed:,} ids changed")
-    progress(f"indexing {len(flow.frame):,} rows")
+    progress("index", "indexing", rows=len(flow.frame))
     flow.index = build_index(flow.frame, options.entity, options.time, options.freq)
     release_arrow_memory()  # what factorising Arrow strings left in the pool
     if policies.duplicates != "fail":
+        progress("duplicates", f"duplicates policy {policies.duplicates}", rows=len(flow.frame))
         ctx = _context(flow, options, read_options)
-        flow.apply(duplicate_removal(flow.frame, flow.index, ctx.repeat, policies.duplicates))
+        flow.apply(duplicate_removal(flow.frame, flow.index, ctx.repeat, policies.duplicates),
+                   "duplicates")
         if policies.duplicates == "mean":
             ctx = _context(flow, options, read_options)
             flow.frame, removal = merge_means(flow.frame, flow.index, ctx.values, ctx.variables)
-            flow.apply(removal)
+            flow.apply(removal, "duplicates-mean")
     if options.shifts:
+        progress("derive", f"{len(options.shifts)} lags, leads or differences",
+                 rows=len(flow.frame))
         flow.frame = add_shifts(flow.frame, flow.index, options.shifts,
                                 read_options.decimal_comma, read_options.missing_tokens)
     # after the lags, so a lag at the window's first period may reach before it
-    flow.apply(window_removal(flow.index, policies.window))
+    flow.apply(window_removal(flow.index, policies.window), "window")
 
     severities = dict(options.severities)
     if policies.duplicates == "fail":
@@ -257,20 +308,20 @@ def prepare_frame(
         origin=flow.origin,
     )
     audited = report.context
-    progress("building the estimation sample")
-    flow.drop(~audited.keyed, "key-missing", "drop rows without a full key")
-    flow.drop(audited.repeat, "exact-repeat", "collapse exact repeated rows")
+    progress("sample", "building the estimation sample", rows=len(flow.frame))
+    flow.drop(~audited.keyed, "key-missing", "drop rows without a full key", "sample-keys")
+    flow.drop(audited.repeat, "exact-repeat", "collapse exact repeated rows", "sample-repeats")
     flow.drop(~audited.complete, "listwise-missing",
-              f"listwise deletion over {', '.join(options.variables)}")
+              f"listwise deletion over {', '.join(options.variables)}", "sample-listwise")
     # the post-audit policies, each with the sample it leaves, so that the
     # audit is judged on the rows the files will hold
     stages: list[tuple[str, np.ndarray]] = []
     if policies.balance != "keep":
         flow.narrow(balance_removal(flow.index, flow.alive, policies.balance, policies.window),
-                    stages, f"clean.balance = {policies.balance}")
+                    stages, f"clean.balance = {policies.balance}", "balance")
     if policies.singletons == "drop":
         flow.narrow(singleton_removal(flow.index, flow.alive, "twoway" in options.transforms),
-                    stages, "clean.singletons = drop")
+                    stages, "clean.singletons = drop", "singletons")
     listwise = _listwise_summary(audited)
     if flow.alive.any():
         # an emptied sample keeps the estimation sample's report: it fails the
@@ -284,6 +335,8 @@ def prepare_frame(
         summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
         summary["files"] = []
         summary["cautions"] = [_gate_caution(report)]
+        summary["run"] = run_block(progress, record or run_record(options, read_options),
+                                   summary, options)
         return Preparation(report, flow.ledger, None, None, summary)
 
     if len(ctx.conflicting_cells):
@@ -301,9 +354,13 @@ def prepare_frame(
     counts = group_counts(codes, sample_ix.n_entities)
     values = ctx.sample_values
     ctx.release_values()
+    if owns_frame:
+        # a frame read for this run (never a caller's): from here on the flow reads its
+        # variables only from the sample block, so their columns are freed
+        _free_variable_columns([frame, flow.frame], ctx.variables, options)
     y, X = values[:, 0], values[:, 1:]
 
-    progress(f"variance components ({options.method})")
+    progress("components", f"variance components ({options.method})", rows=len(y))
     # standardised and summed per entity once: the components, the evidence and the
     # files' column decisions all read these
     standard = standard_sample(y, X, codes, counts)
@@ -329,17 +386,25 @@ def prepare_frame(
         clean = clean.drop(columns=[options.names.row]).set_index(
             pd.Index(clean[options.names.row], name=None))
         findings += check_contract(clean, options.contract, where="output clean")
-    summary["findings"] = [f.to_dict() for f in findings]
+    summary["findings"] = ordered([f.to_dict() for f in findings])
     summary["verdict"] = gate(findings, options.fail_on)
+    summary["gate"] = gate_block(summary["findings"], options.fail_on)
     summary["sample"] = {"rows": len(codes), "entities": int(sample_ix.n_entities), **listwise,
                          "y": options.y, "x": options.x}
     summary["steps"] = [s.to_dict() for s in flow.ledger.story]
     summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
     summary["components"] = components.to_dict()
     if options.evidence:
-        progress("evidence on the entity effect")
+        progress("evidence", "evidence on the entity effect and the error structure",
+                 rows=len(y))
         summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x,
-                                               sample=standard)
+                                               sample=standard,
+                                               period_codes=sample_ix.period_codes)
+        lost = _uncomputable_finding(summary["evidence"], options)
+        if lost is not None:
+            findings += apply_severities([lost], options.severities)
+            summary["findings"] = [f.to_dict() for f in findings]
+            summary["verdict"] = gate(findings, options.fail_on)
     summary["transforms"] = outputs.info
     summary["cautions"] = [
         *_cautions(outputs.info, components, sample_ix, options.names),
@@ -349,9 +414,29 @@ def prepare_frame(
         *cautions.lag_period_cautions(options.shifts, options.x, options.y, summary["findings"]),
         *cautions.listwise_cautions(summary["findings"]),
     ]
+    if summary.get("evidence", {}).get("standard_errors"):
+        # what the error-structure tests of this run say, beside the general advice
+        summary["cautions"].append(summary["evidence"]["standard_errors"])
+    summary["run"] = run_block(progress, record or run_record(options, read_options), summary,
+                               options)
     if summary["verdict"] == "fail":
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
+
+
+def _uncomputable_finding(evidence: dict[str, Any], options: PrepareOptions) -> Finding | None:
+    """A warning naming each test float64 arithmetic could not carry out, and its variables."""
+    lost = uncomputable_tests(evidence)
+    if not lost:
+        return None
+    variables = {"breusch_pagan": [options.y], "honda": [options.y]}
+    named = [f"{test} ({', '.join(variables.get(test, [options.y, *options.x]))})"
+             for test in lost]
+    return Finding(
+        id=UNCOMPUTABLE_ID, severity="warning", count=len(lost),
+        message=(f"{len(lost)} test(s) of the evidence could not be computed in float64 and "
+                 f"are left null: {', '.join(named)}; {next(iter(lost.values()))}"),
+        examples=[{"test": test, "note": note} for test, note in lost.items()])
 
 
 def _distinct_entities(frame: pd.DataFrame, entity: list[str]) -> int:
@@ -402,7 +487,7 @@ class OutputTables:
     ledger: Ledger
     raw: pd.DataFrame
     rows: np.ndarray
-    progress: Progress = _silent
+    progress: Progress
     # ||x - mean(x)|| of each regressor on the whole sample (StandardSample.centred_norms)
     norms: np.ndarray | None = None
     info: dict[str, Any] = field(init=False)
@@ -470,7 +555,7 @@ class OutputTables:
     def _demeaned_pieces(self, name: str) -> Iterator[pa.Table]:
         codes, names, values = self.index.entity_codes, self.options.variables, self.values
         added = self.options.names
-        self.progress(f"transform {name}")
+        self.progress(f"transform.{name}", f"transform {name}", rows=len(self.keys))
         if name == "within":
             multi = self.counts[codes] > 1
             rows = None if multi.all() else np.flatnonzero(multi)
@@ -516,7 +601,7 @@ class OutputTables:
             frame = self.ledger.to_frame(self.raw, [*self.options.entity, self.options.time],
                                          added)
             return pa.Table.from_pandas(frame, preserve_index=False)
-        self.progress(f"transform {name}")
+        self.progress(f"transform.{name}", f"transform {name}", rows=len(self.keys))
         multi = self.counts[codes] > 1
         if name == "between":
             labels = pa.Table.from_pandas(self.index.entity_labels, preserve_index=False)
@@ -613,46 +698,48 @@ class _Flow:
     def __post_init__(self) -> None:
         self.origin = np.arange(len(self.frame))
 
-    def note(self, step: str, entities_before: int, entities_after: int, note: str) -> None:
+    def note(self, step_id: str, step: str, entities_before: int, entities_after: int,
+             note: str) -> None:
         """A step that changes values but removes no row."""
         rows = len(self.frame)
-        self.ledger.story.append(StepRecord(step, rows, rows, entities_before, entities_after,
-                                            note))
+        self.ledger.story.append(StepRecord(step_id, step, rows, rows, entities_before,
+                                            entities_after, note))
 
-    def apply(self, removal: Removal | None) -> None:
+    def apply(self, removal: Removal | None, step_id: str) -> None:
         """Before the audit: remove rows from the frame and the index."""
         if removal is None:
             return
         keep = ~removal.mask
-        self._story(removal.step, np.ones(len(self.frame), dtype=bool), keep)
-        self.ledger.drop(self.origin[removal.mask], removal.reason, removal.step)
+        self._story(step_id, removal.step, np.ones(len(self.frame), dtype=bool), keep)
+        self.ledger.drop(self.origin[removal.mask], removal.reason, step_id)
         self.frame = self.frame.iloc[np.flatnonzero(keep)].reset_index(drop=True)
         self.origin = self.origin[keep]
         self.index = self.index.subset(keep)
 
     def narrow(self, removal: Removal | None, stages: list[tuple[str, np.ndarray]],
-               policy: str) -> None:
+               policy: str, step_id: str) -> None:
         """After the audit: a policy's removal narrows ``alive``; ``stages`` gets (policy, alive)."""
         if removal is not None:
-            self.drop(removal.mask, removal.reason, removal.step)
+            self.drop(removal.mask, removal.reason, removal.step, step_id)
             stages.append((policy, self.alive))
 
-    def drop(self, removed: np.ndarray, reason: str, step: str) -> None:
+    def drop(self, removed: np.ndarray, reason: str, step: str, step_id: str) -> None:
         """Narrow ``alive`` (all rows at first) by ``removed``, recording the rows."""
         if self.alive is None:
             self.alive = np.ones(len(self.frame), dtype=bool)
         gone = removed & self.alive
         after = self.alive & ~gone
-        self._story(step, self.alive, after)
-        self.ledger.drop(self.origin[gone], reason, step)
+        self._story(step_id, step, self.alive, after)
+        self.ledger.drop(self.origin[gone], reason, step_id)
         self.alive = after
 
     def _entities(self, mask: np.ndarray) -> int:
         codes = self.index.entity_codes[mask]
         return int((group_counts(codes[codes >= 0], self.index.n_entities) > 0).sum())
 
-    def _story(self, step: str, before: np.ndarray, after: np.ndarray) -> None:
+    def _story(self, step_id: str, step: str, before: np.ndarray, after: np.ndarray) -> None:
         self.ledger.story.append(StepRecord(
+            id=step_id,
             step=step,
             rows_before=int(before.sum()),
             rows_after=int(after.sum()),
@@ -741,7 +828,7 @@ def prepare(
     output_format: str = "parquet",
     force: bool = False,
     read_options: ReadOptions = DEFAULT_READ,
-    progress: Progress = _silent,
+    progress: Progress | None = None,
     failed_out: str | Path | None = None,
     **options: Any,
 ) -> Preparation:
@@ -784,8 +871,9 @@ def failed_folder(out: str | Path) -> Path:
 
 def run_preparation(
     data: str | Path | pd.DataFrame, out: str | Path, options: PrepareOptions,
-    read_options: ReadOptions = DEFAULT_READ, force: bool = False, progress: Progress = _silent,
+    read_options: ReadOptions = DEFAULT_READ, force: bool = False, progress: Progress | None = None,
     keep: Sequence[str | Path] = (), failed_out: str | Path | None = None,
+    contract_path: str | Path | None = None,
 ) -> Preparation:
     """Read (or take a DataFrame), prepare and write into a folder that appears complete or
     not at all.
@@ -796,19 +884,24 @@ def run_preparation(
     exactly as it was and the diagnostics go to ``failed_out`` (default
     ``failed_folder(out)``), which replaces an earlier failed run's folder
     there; ``Preparation.written_to`` says which folder was written.
+    ``contract_path`` is the file ``options.contract`` was read from, for
+    the record of the run (``run.options`` and ``run.toml``).
     """
     options.validate()
     given = isinstance(data, pd.DataFrame)
     if not given and not isinstance(data, (str, os.PathLike)):
         raise InputError(f"data must be a file path or a pandas DataFrame, not "
                          f"{type(data).__name__}")
+    progress = progress if progress is not None else RunLog()
+    record = run_record(options, read_options, None if given else data, out, force, failed_out,
+                        contract_path)
     # before the folder and before any data is read: the header names suffice
     options.check_names(list(data.columns) if given else column_names(Path(data), read_options),
                         "the data" if given else str(data))
     inputs = [*([] if given else [Path(data)]), *map(Path, keep)]
     out = Path(out)
-    failed = failed_folder(out) if failed_out is None else Path(failed_out)
     folder = OutputFolder(out, inputs, force=force)
+    failed = failed_folder(out) if failed_out is None else Path(failed_out)
     try:
         if failed_out is not None or _name_fits(failed):
             # a default name too long for the file system is reported only if the gate fails
@@ -816,15 +909,17 @@ def run_preparation(
         if given:
             frame, info = data, {"path": None, "sha256": None, "rows": len(data)}
         else:
-            progress(f"reading {data}")
+            progress("read", f"reading {data}")
             frame, info = load(data, options.entity, options.time, options.columns_to_read,
                                read_options)
-        prep = prepare_frame(frame, options, info, read_options, progress, check_names=not given)
+        prep = prepare_frame(frame, options, info, read_options, progress, check_names=not given,
+                             record=record, owns_frame=not given)
+        del frame
         if prep.verdict == "fail":
             # a failed gate never replaces or empties the output folder
             folder.abandon()
             folder = _failed_output(failed, inputs, out, failed_out is None)
-        write_outputs(prep, folder, options, progress)
+        write_outputs(prep, folder, options, progress, record)
         folder.commit()
     except BaseException:
         folder.abandon()
@@ -850,21 +945,30 @@ def _failed_output(failed: Path, inputs: list[Path], out: Path, default: bool) -
 
 
 def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptions,
-                  progress: Progress = _silent) -> None:
-    """Data files, then diagnostics.json and diagnostics.txt, into the temporary folder."""
+                  progress: Progress | None = None, record: RunFile | None = None) -> None:
+    """Data files, run.toml, then diagnostics.json, diagnostics.txt and report.html,
+    into the temporary folder (a failed gate: the diagnostics only).
+
+    ``record`` is the run as a run file (``run_record``); without it one is
+    made from ``options``.
+    """
     from panelprep.report.html import render_html
     from panelprep.report.text import preparation_lines
 
+    progress = progress if progress is not None else RunLog()
+    record = record if record is not None else run_record(options)
     suffix = "parquet" if options.output_format == "parquet" else "csv"
     files: list[dict[str, Any]] = []
     base_meta = {
+        "schema_version": SCHEMA_VERSION,
         "version": __version__,
         "input_sha256": prep.summary["input"].get("sha256"),
         "method": options.method,
         "components": prep.summary.get("components"),
-        "options": {"entity": options.entity, "time": options.time, "y": options.y,
-                    "x": options.x, "freq": options.freq, "transforms": options.transforms,
-                    "fail_on": options.fail_on},
+        # what defines the content, without where files were: inputs go by sha256
+        "options": {k: v for k, v in record.values().items() if k not in _LOCATION_KEYS},
+        "fixed_settings": fixed_settings(options),
+        "contract_sha256": _contract_sha256(record),
     }
     for name in prep.outputs.names if prep.outputs is not None else []:
         # built, written and freed one at a time: peak memory holds one table
@@ -874,7 +978,7 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
         columns = prep.outputs.columns[name]
         fmt = "parquet" if name == "dropped" else options.output_format
         path = folder.path(f"{name}.{'parquet' if name == 'dropped' else suffix}")
-        progress(f"writing {path.name}")
+        progress(f"write.{name}", f"writing {path.name}")
         meta = {"panelprep": json.dumps({**base_meta, "file": name,
                                          "transform": name if name in TRANSFORMS else None,
                                          "transform_info": prep.summary.get("transforms", {}).get(name),
@@ -888,12 +992,110 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
         del table
     for entry in files:
         entry["sha256"] = entry["sha256"].result()
+    if prep.outputs is not None:
+        # the run again: this file on the same input gives the same data files
+        progress("write.run-file", "writing run.toml")
+        _write_text(folder.path(RUN_FILE), _run_file_text(record, folder.target))
     prep.summary["files"] = files
+    prep.summary["run"] = run_block(progress, record, prep.summary, options)
     text = json.dumps(prep.summary, indent=2, ensure_ascii=False, allow_nan=False)
     _write_text(folder.path("diagnostics.json"), text + "\n")
     _write_text(folder.path("diagnostics.txt"), "\n".join(preparation_lines(prep.summary)) + "\n")
-    progress("writing report.html")
+    progress("write.report", "writing report.html")
     _write_text(folder.path("report.html"), render_html(prep.summary, pictures_of(prep)))
+
+
+def _free_variable_columns(frames: list[pd.DataFrame], variables: list[str],
+                           options: PrepareOptions) -> None:
+    """Drop the variable columns from frames the run owns, in place (about n x k x 8 bytes)."""
+    keys = {*options.entity, options.time}
+    for frame in {id(f): f for f in frames}.values():
+        for name in [v for v in variables if v in frame.columns and v not in keys]:
+            del frame[name]
+
+
+RUN_FILE = "run.toml"
+# run-file keys that say where things are, not what the data files hold
+_LOCATION_KEYS = ("input.path", "contract.schema", "output.dir", "output.failed_dir",
+                  "output.force")
+
+
+def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ,
+               data: str | Path | None = None, out: str | Path | None = None,
+               force: bool = False, failed_out: str | Path | None = None,
+               contract_path: str | Path | None = None) -> RunFile:
+    """The run as a run file: every option of the preparation, paths made absolute.
+
+    Its ``values()`` are the resolved options recorded in ``diagnostics.json``
+    (``run.options``) and, without the location keys, in every Parquet file's
+    metadata; ``_run_file_text`` writes it as ``run.toml``.
+    """
+    def absolute(path: str | Path | None) -> Path | None:
+        return None if path is None else Path(path).absolute()
+
+    shifts = {kind: [f"{s.variable}:{s.k}" for s in options.shifts if s.kind == kind]
+              for kind in ("lag", "lead", "diff")}
+    policies, names = options.policies, options.names
+    return RunFile(
+        input=InputSection(path=absolute(data), format=read_options.input_format,
+                           delimiter=read_options.delimiter,
+                           decimal_comma=read_options.decimal_comma,
+                           missing_tokens=list(read_options.missing_tokens)),
+        panel=PanelSection(entity=list(options.entity), time=options.time, freq=options.freq),
+        model=ModelSection(y=options.y, x=list(options.x)),
+        contract=ContractSection(schema=absolute(contract_path),
+                                 validate_outputs=options.validate_outputs),
+        checks=ChecksSection(fail_on=options.fail_on,
+                             low_within_ratio=options.thresholds.low_within_ratio,
+                             constant_rtol=options.thresholds.constant_rtol,
+                             severity=dict(options.severities)),
+        clean=CleanSection(duplicates=policies.duplicates, normalise_ids=policies.normalise_ids,
+                           singletons=policies.singletons, balance=policies.balance,
+                           window=tuple(policies.window)),
+        derive=DeriveSection(**shifts),
+        output=OutputSection(dir=absolute(out), failed_dir=absolute(failed_out),
+                             transforms=list(options.transforms), method=options.method,
+                             format=options.output_format, compression=options.compression,
+                             force=force, evidence=options.evidence),
+        names=NamesSection(**asdict(names)),
+    )
+
+
+def fixed_settings(options: PrepareOptions) -> dict[str, Any]:
+    """Settings a run file does not set, recorded beside the options."""
+    limits = {f"checks.{k}": v for k, v in asdict(options.thresholds).items()
+              if k not in ("low_within_ratio", "constant_rtol")}
+    return {**limits, "output.twoway_tol": options.twoway_tol,
+            "contract.given": options.contract is not None}
+
+
+def run_block(log: RunLog, record: RunFile, summary: dict[str, Any],
+              options: PrepareOptions) -> dict[str, Any]:
+    """The ``run`` block: the log's steps and times with the resolved options."""
+    inferred = {}
+    if options.freq is None:
+        inferred["panel.freq"] = summary["keys"]["freq"]
+    if record.input.format is None and summary["input"].get("format"):
+        inferred["input.format"] = summary["input"]["format"]
+    return log.block(record.values(), inferred, summary["input"].get("sha256"),
+                     fixed_settings(options))
+
+
+def _contract_sha256(record: RunFile) -> str | None:
+    schema = record.contract.schema
+    return None if schema is None else sha256_file(schema)
+
+
+def _run_file_text(record: RunFile, target: Path) -> str:
+    """run.toml for the folder ``target``: paths relative to it; no output folder, so a
+    rerun names a new one (this folder holds the run file and cannot be replaced by it)."""
+    again = replace(record, output=replace(record.output, dir=None, failed_dir=None,
+                                           force=False))
+    header = [(f"panelprep run file written by the run that made this folder (panelprep "
+              f"{__version__})."),
+              ("The same input gives the same data files: panelprep prepare --config "
+              "run.toml --out NEW_FOLDER")]
+    return again.to_toml(base=target, header=header)
 
 
 def _primed(pieces: Iterator[pa.Table]) -> Iterator[pa.Table]:
@@ -943,7 +1145,7 @@ def pictures_of(prep: Preparation) -> dict[str, Any]:
     return picture_data(prep.audit.context, missing=missing)
 
 
-def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
+def run_from_file(run: RunFile, progress: Progress | None = None) -> Preparation:
     """Run the preparation a run file describes (after command-line overrides)."""
     contract = None
     if run.contract.schema:
@@ -970,13 +1172,13 @@ def run_from_file(run: RunFile, progress: Progress = _silent) -> Preparation:
     return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
                            force=run.output.force, progress=progress,
                            keep=[p for p in (run.source, run.contract.schema) if p is not None],
-                           failed_out=run.output.failed_dir)
+                           failed_out=run.output.failed_dir, contract_path=run.contract.schema)
 
 
 def estimate_file_components(
     data: str | Path, entity: str | Sequence[str], time: str, y: str, x: str | Sequence[str],
     method: str = "swamy-arora", freq: str | None = None,
-    read_options: ReadOptions = DEFAULT_READ, progress: Progress = _silent,
+    read_options: ReadOptions = DEFAULT_READ, progress: Progress | None = None,
 ) -> Preparation:
     """Audit a file and estimate the variance components of its estimation sample.
 

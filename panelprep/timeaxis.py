@@ -395,14 +395,31 @@ def _string_grid(kind, text, blank, freq, codes, column, stated_step=None):
                 f"time column {column!r}: value {text[k]!r} at row {_first_row(codes, k)} "
                 "has no such week"
             )
-        monday = pd.to_datetime(
-            [f"{y}-W{w:02d}-1" for y, w in zip(np.where(blank, 2000, year), np.where(blank, 1, sub))],
-            format="%G-W%V-%u",
-        )
-        days = (monday.values.astype("datetime64[D]").astype(np.int64))
+        year, sub = np.where(blank, 2000, year), np.where(blank, 1, sub)
+        days = iso_week_monday(year, sub)
+        # week 53 exists only in the ISO years whose week 53 starts before the next year's week 1
+        missing = (days >= iso_week_monday(year + 1, np.ones_like(sub))) & ~blank
+        if missing.any():
+            k = int(np.flatnonzero(missing)[0])
+            raise TimeParseError(
+                f"time column {column!r}: value {text[k]!r} at row {_first_row(codes, k)} "
+                f"has no such week: ISO year {year[k]} has 52 weeks (week 53 exists only in "
+                "years that start or end on a Thursday)"
+            )
         ordinal = (days + _EPOCH_WEEKDAY) // 7
     ordinal = ordinal.astype(np.int64)
     return kind, ordinal, np.zeros(n, bool), 1, 0, kind, ordinal
+
+
+def iso_week_monday(year: np.ndarray, week: np.ndarray) -> np.ndarray:
+    """Days since 1970-01-01 of the Monday of ISO week ``week`` of ISO year ``year``.
+
+    Week 1 is the week holding 4 January (ISO 8601), so its Monday is 4 January
+    less that day's weekday (Monday = 0).
+    """
+    first = (np.asarray(year, dtype=np.int64) - 1970).astype("datetime64[Y]")
+    january_4 = first.astype("datetime64[D]").astype(np.int64) + 3
+    return january_4 - (january_4 + _EPOCH_WEEKDAY) % 7 + 7 * (np.asarray(week) - 1)
 
 
 def _date_strings(text, blank, freq, codes, column):

@@ -70,8 +70,7 @@ def _check_codes(codes: np.ndarray, n_rows: int, n_groups: int, what: str) -> np
     return codes
 
 
-def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray,
-           out: np.ndarray | None = None) -> np.ndarray:
+def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndarray:
     """Deviations from entity means, ``x_it - xbar_i``.
 
     Parameters
@@ -82,9 +81,6 @@ def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray,
         Entity codes 0..G-1.
     counts : int array (G,)
         Rows per entity ``T_i`` (``group_counts(codes, G)``).
-    out : array like ``values``, optional
-        Where to write the result (Fortran-ordered when 2-D); may be
-        ``values`` itself, to demean in place.
 
     Returns
     -------
@@ -92,7 +88,7 @@ def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray,
         Same shape as ``values``; 2-D output is Fortran-ordered.  The mean is
         ``sum / T_i`` (no ddof; this is a projection, not a variance).
     """
-    return _subtract_group_sums(values, codes, counts, _safe_inverse_counts(counts), out)
+    return _subtract_group_sums(values, codes, counts, _safe_inverse_counts(counts))
 
 
 @dataclass(frozen=True)
@@ -157,8 +153,32 @@ def between(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.nda
     inv = _safe_inverse_counts(counts)
     out = np.empty((len(counts), k), dtype=np.float64, order="F")
     for j in range(k):
-        out[:, j] = group_sums(codes, block[:, j], len(counts)) * inv
+        out[:, j] = _weighted_group_sums(codes, block[:, j], len(counts), inv)
     return out[:, 0] if flat else out
+
+
+# 2^-64: a sum of fewer than 2^64 scaled values stays below the largest float
+_SUM_SCALE = 2.0**-64
+
+
+def _weighted_group_sums(codes: np.ndarray, col: np.ndarray, n_groups: int,
+                         weight: np.ndarray) -> np.ndarray:
+    """``weight_i * sum_i(x)``, finite whenever the result is (values near 1e308 included).
+
+    A group whose plain sum overflows (two values near -1e308) is summed again
+    with every value scaled by 2^-64 and the weighted sum scaled back; scaling
+    by a power of two is exact apart from values far below the group's own
+    magnitude, which the weighted sum cannot show anyway.
+    """
+    with np.errstate(over="ignore", invalid="ignore"):
+        sums = group_sums(codes, col, n_groups)
+    overflow = ~np.isfinite(sums)
+    if not overflow.any():
+        return sums * weight
+    out = np.where(overflow, 0.0, sums) * weight
+    scaled = group_sums(codes, col * _SUM_SCALE, n_groups)[overflow]
+    out[overflow] = scaled * weight[overflow] / _SUM_SCALE
+    return out
 
 
 def quasi(
@@ -193,26 +213,19 @@ def quasi(
     return _subtract_group_sums(values, codes, counts, theta * _safe_inverse_counts(counts))
 
 
-def _subtract_group_sums(values, codes, counts, weight: np.ndarray,
-                         out: np.ndarray | None = None) -> np.ndarray:
+def _subtract_group_sums(values, codes, counts, weight: np.ndarray) -> np.ndarray:
     """``x - weight_i * sum_i(x)`` column by column: within (weight 1/T_i), quasi (theta_i/T_i).
 
-    One bincount and one take per column into reused buffers; ``out`` may be
-    ``values`` (each column's sum is taken before the column is overwritten).
+    One bincount and one take per column into reused buffers.
     """
     block, flat = _as_block(values)
     n, k = block.shape
     codes = _check_codes(codes, n, len(counts), "codes")
-    if out is None:
-        out = np.empty((n, k), dtype=np.float64, order="F")
-    elif out.ndim == 1:
-        out = out[:, None]
-    if out.shape != (n, k) or not (out.flags.f_contiguous or k == 1):
-        raise ValueError(f"out must be a Fortran-ordered ({n}, {k}) float64 array")
+    out = np.empty((n, k), dtype=np.float64, order="F")
     buf = np.empty(n, dtype=np.float64)
     for j in range(k):
         col = block[:, j]
-        shift = group_sums(codes, col, len(counts)) * weight
+        shift = _weighted_group_sums(codes, col, len(counts), weight)
         np.take(shift, codes, out=buf, mode="clip")
         np.subtract(col, buf, out=out[:, j])
     return out[:, 0] if flat else out
@@ -247,7 +260,9 @@ class DemeanedBlock:
         codes = _check_codes(codes, block.shape[0], len(counts), "codes")
         self.values, self.rows = block, rows
         self.codes = codes if rows is None else codes[rows]
-        self.shift = group_sums(codes, block, len(counts)) * weight[:, None]
+        self.shift = np.empty((len(counts), block.shape[1]), order="F")
+        for j in range(block.shape[1]):
+            self.shift[:, j] = _weighted_group_sums(codes, block[:, j], len(counts), weight)
         self.shape = (len(self.codes), block.shape[1])
 
     def _source(self, start: int, stop: int, j: int) -> np.ndarray:

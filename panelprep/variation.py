@@ -73,9 +73,9 @@ def variation_table(
         out[name] = {
             "n": int(n),
             "mean": float(centre + unit * col.mean()),
-            "sd_overall": float(col.std(ddof=1) * unit) if n > 1 else None,
-            "sd_between": float(means.std(ddof=1) * unit) if n_entities > 1 else None,
-            "sd_within": (float(np.sqrt(entity_ss.sum() / (n - n_entities)) * unit)
+            "sd_overall": _in_units(col.std(ddof=1), unit) if n > 1 else None,
+            "sd_between": _in_units(means.std(ddof=1), unit) if n_entities > 1 else None,
+            "sd_within": (_in_units(np.sqrt(entity_ss.sum() / (n - n_entities)), unit)
                           if n > n_entities else None),
             "min": float(raw.min()),
             "max": float(raw.max()),
@@ -84,6 +84,13 @@ def variation_table(
             "period_invariant": bool(multi_period.any() and not period_varying[multi_period].any()),
         }
     return out
+
+
+def _in_units(scaled: float, unit: float) -> float | None:
+    """An SD of the scaled column in the variable's units; None beyond float64 (near 1e308)."""
+    with np.errstate(over="ignore"):
+        value = float(scaled * unit)
+    return value if np.isfinite(value) else None
 
 
 def _empty_row() -> dict:

@@ -63,7 +63,7 @@ def _check_story(frame: pd.DataFrame, prep, kept_rows: int, time: str = "year") 
     per_step = dropped.groupby("step").size().to_dict()
     lost = {}
     for step in steps:
-        lost[step["step"]] = lost.get(step["step"], 0) + step["rows_before"] - step["rows_after"]
+        lost[step["id"]] = lost.get(step["id"], 0) + step["rows_before"] - step["rows_after"]
     assert {k: v for k, v in lost.items() if v} == per_step
     assert len(frame) == kept_rows + len(dropped)
     # every ledger row carries the keys of the input row it names

@@ -41,6 +41,8 @@ BROKEN = {
     "values-not-numeric": ("non_numeric.csv", ()),
     "values-declared-missing": ("non_numeric.csv", ("n/a", "-")),
     "values-nan-missing": ("messages/nan_values.csv", ()),
+    # capital in decimal128(38, 2) with 22 significant digits (invented firms)
+    "values-decimal-rounded": ("messages/decimal_wide.parquet", ()),
     "values-missing": ("missing_values.csv", ()),
     "sample-new-singletons": ("missing_values.csv", ()),
     "var-fixed-within": ("time_invariant.csv", ()),

@@ -156,3 +156,39 @@ def test_flow_picture_counts_match_pandas(yearly):
         grid, fill_value=0).tolist()
     assert flow["entering"] == spells["entry"].value_counts().reindex(grid, fill_value=0).tolist()
     assert flow["last_seen"] == spells["exit"].value_counts().reindex(grid, fill_value=0).tolist()
+
+
+_LONG_GRID = """
+import resource, sys
+import pandas as pd
+import panelprep
+from panelprep.figures import picture_data
+# 2 GiB of address space: a per-period array over the grid below would need about 24 GiB
+resource.setrlimit(resource.RLIMIT_AS, (2 << 30, 2 << 30))
+frame = pd.DataFrame({"id": ["a", "a", "a", "b"], "t": [0, 1, 3_000_000_000, 1],
+                      "y": [1.0, 2.0, 4.0, 3.0]})
+report = panelprep.audit(frame, entity="id", time="t", vars=["y"])
+picture_data(report.context)
+coverage = next(f for f in report.findings if f.id == "panel-shape").details["coverage"]
+print(len(coverage["bands"]), coverage["bands"][0]["present_fewest"], coverage["entities_full"])
+# the whole preparation too: components, evidence (Pesaran's CD groups rows by period), files
+from panelprep.prepare import PrepareOptions, prepare_frame
+frame = pd.DataFrame({"id": list("aaabbcc"), "t": [0, 1, 3_000_000_000, 1, 2, 0, 2],
+                      "y": [1.0, 2.0, 4.0, 3.0, 5.0, 2.5, 0.5],
+                      "x": [0.5, 1.5, 1.0, 2.0, 0.3, 4.0, 2.2]})
+prep = prepare_frame(frame, PrepareOptions(entity=["id"], time="t", y="y", x=["x"]))
+print(prep.verdict, "pesaran_cd" in prep.summary["evidence"], len(prep.tables["quasi"]))
+"""
+
+
+def test_a_grid_of_billions_of_periods_costs_what_its_rows_cost():
+    # found by the fuzz test: every per-period count is taken over the periods that occur
+    import subprocess
+    import sys
+
+    done = subprocess.run([sys.executable, "-c", _LONG_GRID], capture_output=True, text=True,
+                          check=False,
+                          timeout=120)
+    assert done.returncode == 0, done.stderr[-2000:]
+    # 12 bands of 250,000,001 periods; the first holds periods 0 and 1 and absent ones
+    assert done.stdout.split() == [str(MAX_BANDS), "0", "0", "pass", "True", "7"]

@@ -331,7 +331,7 @@ def test_generated_csv_bytes_in_a_real_process(tmp_path_factory, data):
     if done.returncode == 2:
         lines = done.stderr.strip().splitlines()
         assert len(lines) == 1 and lines[0].startswith("panelprep: error: ")
-        assert "internal failure" not in lines[0], lines[0]
+        assert "internal error" not in lines[0], lines[0]
 
 
 def test_strict_json_refuses_nan():

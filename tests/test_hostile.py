@@ -254,7 +254,7 @@ def _check_unusable(stderr: str, words: tuple[str, ...]) -> None:
     lines = stderr.strip().splitlines()
     assert len(lines) == 1, stderr
     assert lines[0].startswith("panelprep: error: ")
-    assert "internal failure" not in lines[0], lines[0]
+    assert "internal error" not in lines[0], lines[0]
     for word in words:
         assert word in lines[0], (word, lines[0])
 

@@ -74,7 +74,8 @@ def _finding_key(summary: dict) -> list[tuple]:
 def _statistics(summary: dict) -> dict[str, float | None]:
     evidence = summary["evidence"]
     return {name: evidence[name]["statistic"]
-            for name in ("breusch_pagan", "honda", "mundlak", "hausman")}
+            for name in ("breusch_pagan", "honda", "mundlak", "hausman", "wooldridge",
+                         "born_breitung", "pesaran_cd")}
 
 
 def _close(actual, expected, rtol, atol=0.0) -> bool:

@@ -78,10 +78,15 @@ def test_lag_lead_diff_match_full_grid_reindex(seed, quarterly, two_part_key, k)
     time = "quarter" if quarterly else "year"
     index = build_index(frame, entity, time)
     assert index.n_periods <= len(grid)
-    out = add_shifts(frame, index, [Shift("sales", k, "lag"), Shift("sales", k, "lead"),
-                                    Shift("sales", k, "diff")])
+    shifts = [Shift("sales", k, "lag"), Shift("sales", k, "lead"), Shift("sales", k, "diff")]
     lag = _reference_shift(frame, entity, time, grid, "sales", k)
     lead = _reference_shift(frame, entity, time, grid, "sales", -k)
+    if np.isnan(lag).all() or np.isnan(lead).all():
+        # a shift that finds no value anywhere is refused, not an all-missing column
+        with pytest.raises(InputError, match="would be missing on every row"):
+            add_shifts(frame, index, shifts)
+        return
+    out = add_shifts(frame, index, shifts)
     np.testing.assert_array_equal(out[f"sales_lag{k}"].to_numpy(), lag)
     np.testing.assert_array_equal(out[f"sales_lead{k}"].to_numpy(), lead)
     np.testing.assert_allclose(out[f"sales_diff{k}"].to_numpy(), frame["sales"] - lag,

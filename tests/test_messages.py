@@ -197,7 +197,7 @@ def unusable(run: Run, *words: str) -> str:
     lines = run.stderr.strip().splitlines()
     assert len(lines) == 1, run.stderr
     line = lines[0]
-    assert line.startswith("panelprep: error: ") and "internal failure" not in line, line
+    assert line.startswith("panelprep: error: ") and "internal error" not in line, line
     for word in words:
         assert word in line, (word, line)
     assert run.report is None and not run.out.exists()

@@ -148,7 +148,7 @@ def unusable(run: Run) -> str:
     assert run.returncode == 2, run.stderr
     lines = run.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("panelprep: error: "), run.stderr
-    assert "Traceback" not in run.stderr and "internal failure" not in run.stderr
+    assert "Traceback" not in run.stderr and "internal error" not in run.stderr
     assert not run.out.exists()
     return lines[0]
 

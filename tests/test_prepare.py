@@ -97,7 +97,7 @@ def diagnostics(grunfeld_run) -> dict:
 
 def test_writes_every_file(grunfeld_run):
     expected = {f"{name}.parquet" for name in (*DATA_FILES, "dropped")}
-    assert {p.name for p in grunfeld_run.iterdir()} == expected | DIAGNOSTICS
+    assert {p.name for p in grunfeld_run.iterdir()} == expected | DIAGNOSTICS | {"run.toml"}
 
 
 def test_swamy_arora_components_match_the_published_example(diagnostics):
@@ -192,7 +192,8 @@ def test_every_parquet_file_carries_provenance(grunfeld_run, grunfeld_csv, diagn
         assert meta["input_sha256"] == _sha256(grunfeld_csv)
         assert meta["components"] == diagnostics["components"]
         assert meta["theta"] == diagnostics["components"]["theta"]
-        assert meta["options"]["y"] == "invest" and meta["options"]["x"] == ["value", "capital"]
+        assert meta["options"]["model.y"] == "invest"
+        assert meta["options"]["model.x"] == ["value", "capital"]
         if path.stem in diagnostics["transforms"]:
             assert meta["transform"] == path.stem
             assert meta["transform_info"] == diagnostics["transforms"][path.stem]

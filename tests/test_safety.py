@@ -15,6 +15,7 @@ import hashlib
 import os
 import subprocess
 import sys
+import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -70,15 +71,21 @@ def test_a_failing_last_data_file_leaves_the_earlier_folder_intact(tmp_path, dat
                                                                     monkeypatch):
     before = snapshot(earlier)
     calls = []
-    real_write = pq.write_table
 
-    def full_disk(table, where, **kwargs):
-        calls.append(Path(where).name)
-        if Path(where).name == "dropped.parquet":  # the last data file written
-            raise OSError(errno.ENOSPC, "No space left on device")
-        return real_write(table, where, **kwargs)
+    class FullDisk(pq.ParquetWriter):
+        """The disk fills while the last data file is written."""
 
-    monkeypatch.setattr(pq, "write_table", full_disk)
+        def __init__(self, where, *args, **kwargs):
+            self.name = Path(where).name
+            calls.append(self.name)
+            super().__init__(where, *args, **kwargs)
+
+        def write_table(self, table, *args, **kwargs):
+            if self.name == "dropped.parquet":  # the last data file written
+                raise OSError(errno.ENOSPC, "No space left on device")
+            return super().write_table(table, *args, **kwargs)
+
+    monkeypatch.setattr(pq, "ParquetWriter", FullDisk)
     result = CliRunner().invoke(app, ["prepare", str(data), *ARGS, "--out", str(earlier),
                                       "--force", "--quiet"])
     assert result.exit_code == 2, result.output
@@ -113,30 +120,41 @@ def test_an_unexpected_failure_is_one_line_through_main(tmp_path, data, earlier,
                         lambda *a, **k: (_ for _ in ()).throw(ValueError("bad\nvalue")))
     monkeypatch.setattr(sys, "argv", ["panelprep", "prepare", str(data), *ARGS, "--out",
                                       str(earlier), "--force", "--quiet"])
+    saved = tmp_path / "saved"
+    saved.mkdir()
+    monkeypatch.setattr(tempfile, "tempdir", str(saved))
     from panelprep.cli import main
 
     with pytest.raises(SystemExit) as stop:
         main()
-    assert stop.value.code == 2
+    # a bug is exit 3: one line naming the file that holds the traceback
+    assert stop.value.code == 3
     err = capsys.readouterr().err
-    assert err.count("\n") == 1 and err.startswith("panelprep: error: internal failure: ")
+    assert err.count("\n") == 1 and err.startswith("panelprep: internal error (a bug")
     assert "Traceback" not in err
+    (traceback_file,) = saved.iterdir()
+    assert str(traceback_file) in err and "Traceback" in traceback_file.read_text()
     assert snapshot(earlier) == before
     assert leftovers(tmp_path) == []
 
 
 def test_an_interrupt_during_the_writes_leaves_no_partial_folder(tmp_path, data, monkeypatch):
     out = tmp_path / "out"
-    real_write = pq.write_table
     written = []
 
-    def interrupted(table, where, **kwargs):
-        written.append(Path(where).name)
-        if len(written) == 3:
-            raise KeyboardInterrupt
-        return real_write(table, where, **kwargs)
+    class Interrupted(pq.ParquetWriter):
+        """Ctrl-C arrives while the third data file is written."""
 
-    monkeypatch.setattr(pq, "write_table", interrupted)
+        def __init__(self, where, *args, **kwargs):
+            written.append(Path(where).name)
+            super().__init__(where, *args, **kwargs)
+
+        def write_table(self, table, *args, **kwargs):
+            if len(written) == 3:
+                raise KeyboardInterrupt
+            return super().write_table(table, *args, **kwargs)
+
+    monkeypatch.setattr(pq, "ParquetWriter", Interrupted)
     with pytest.raises(KeyboardInterrupt):
         prepare(data, out, **KEYS)
     assert not out.exists()

@@ -68,17 +68,22 @@ def test_within_shapes_and_order(make_panel):
     np.testing.assert_array_equal(out1, out2[:, 0])
 
 
-def test_within_in_place_equals_a_fresh_result_and_refuses_a_wrong_buffer(make_panel):
+def test_demeaned_blocks_read_in_pieces_equal_within_quasi_and_pandas(make_panel):
     p = make_panel(6)
     fresh = within(p.X, p.entity, p.counts)
     # outside check: pandas groupby transform("mean")
     ref = p.X - pd.DataFrame(p.X).groupby(p.entity).transform("mean").to_numpy()
     assert_rel(fresh, ref, rtol=1e-12)
-    block = np.asfortranarray(p.X).copy(order="F")
-    assert within(block, p.entity, p.counts, out=block) is block
-    np.testing.assert_array_equal(block, fresh)
-    with pytest.raises(ValueError, match="Fortran-ordered"):
-        within(p.X, p.entity, p.counts, out=np.ascontiguousarray(p.X))
+    block = tr.within_block(p.X, p.entity, p.counts)
+    cut = p.n // 3
+    pieces = np.vstack([block.piece(0, cut), block.piece(cut, p.n)])
+    np.testing.assert_array_equal(pieces, fresh)
+    np.testing.assert_array_equal(block[:, 1][cut:p.n], fresh[cut:, 1])
+    theta = np.linspace(0.1, 0.9, p.n_entities)
+    np.testing.assert_array_equal(tr.quasi_block(p.X, p.entity, p.counts, theta).piece(0, p.n),
+                                  quasi(p.X, p.entity, p.counts, theta))
+    with pytest.raises(IndexError):
+        block[1:, 0]
 
 
 def test_between_equals_pandas_groupby_mean(make_panel):

@@ -62,7 +62,9 @@ class NonNumeric:
     ``rows`` are the positions of values that are not numbers;
     ``read_as_missing`` counts declared missing tokens; ``nan_rows`` are the
     positions of NaN values read as missing (the text ``nan`` in CSV, a NaN
-    stored in a Parquet or Arrow float column).
+    stored in a Parquet or Arrow float column); ``rounded_rows`` those of
+    decimals (Parquet/Arrow ``decimal`` columns) that float64 does not hold
+    exactly at the column's scale, read as the nearest float64 all the same.
     """
 
     column: str
@@ -70,6 +72,7 @@ class NonNumeric:
     values: list[str]
     read_as_missing: int
     nan_rows: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    rounded_rows: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
 
 
 @dataclass(eq=False)
@@ -243,22 +246,25 @@ class AuditContext:
         return holes, longest, missing
 
     @cached_property
-    def missing_by_period(self) -> tuple[np.ndarray, np.ndarray]:
-        """Keyed rows (exact repeats collapsed) per period of the full grid, and per period
-        the missing cells of each selected variable: (rows (P,), missing (P, k)).
+    def missing_by_period(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Per period that occurs, keyed rows (exact repeats collapsed) and the missing
+        cells of each selected variable: (period codes (P,), rows (P,), missing (P, k)).
 
-        Taken once from the numeric block, so it survives ``release_values``;
-        ``narrowed`` contexts share it (it describes the rows read).
+        Only the periods that occur are listed, so the cost follows the rows,
+        not the length of the grid.  Taken once from the numeric block, so it
+        survives ``release_values``; ``narrowed`` contexts share it (it
+        describes the rows read).
         """
-        n_periods = max(self.index.n_periods, 1)
         period = self.index.period_codes[self.base]
-        rows = np.bincount(period, minlength=n_periods)
-        missing = np.zeros((n_periods, len(self.variables)), dtype=np.int64)
+        present, compact = np.unique(period, return_inverse=True)
+        compact = compact.reshape(-1)
+        rows = np.bincount(compact, minlength=len(present))
+        missing = np.zeros((len(present), len(self.variables)), dtype=np.int64)
         block = self.values
         for j in range(len(self.variables)):
             absent = np.isnan(block[:, j])[self.base]
-            missing[:, j] = np.bincount(period[absent], minlength=n_periods)
-        return rows, missing
+            missing[:, j] = np.bincount(compact[absent], minlength=len(present))
+        return present, rows, missing
 
     @cached_property
     def periods_per_entity(self) -> np.ndarray:
@@ -322,13 +328,14 @@ def to_float(
         unusable = np.isinf(out)
         unusable |= _inexact_integers(values, out)
         bad_rows = np.flatnonzero(unusable)
-        if len(bad_rows) == 0 and not token_missing.any() and not nan.any():
+        rounded = _rounded_decimals(values, out) & ~token_missing
+        if len(bad_rows) == 0 and not token_missing.any() and not nan.any() and not rounded.any():
             return out, None
         out[token_missing | unusable] = np.nan
         shown = list(dict.fromkeys(str(v) for v in values.iloc[bad_rows[:200]]))[:10]
         return out, NonNumeric(
             column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum()),
-            nan_rows=np.flatnonzero(nan),
+            nan_rows=np.flatnonzero(nan), rounded_rows=np.flatnonzero(rounded),
         )
     text = values.astype("str")
     present = values.notna().to_numpy()
@@ -354,6 +361,31 @@ def to_float(
         column=name, rows=bad_rows, values=shown, read_as_missing=int(token_missing.sum()),
         nan_rows=np.flatnonzero(nan),
     )
+
+
+def _rounded_decimals(values: pd.Series, as_float: np.ndarray) -> np.ndarray:
+    """Rows of a decimal column whose float64 does not give back the decimal at its scale.
+
+    The float64 values are cast back to a decimal of the column's scale (76
+    digits wide, so nothing overflows) and compared with the stored decimals:
+    ``0.10`` comes back as ``0.10``, ``99999999999999.99`` as ``...98``.
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    kind = getattr(values.dtype, "pyarrow_dtype", None)
+    if kind is None or not pa.types.is_decimal(kind):
+        return np.zeros(len(values), dtype=bool)
+    wide = pa.decimal256(76, kind.scale)
+    stored = pc.cast(pa.array(values.array), wide)
+    present = ~np.isnan(as_float)
+    try:
+        back = pc.cast(pa.array(as_float, mask=~present), wide, safe=False)
+    except pa.ArrowInvalid:
+        # a float64 rounded past 76 digits: none of the column can be vouched for
+        return present
+    same = pc.fill_null(pc.equal(stored, back), True)
+    return ~same.to_numpy(zero_copy_only=False)
 
 
 def _inexact_integers(values: pd.Series, as_float: np.ndarray) -> np.ndarray:

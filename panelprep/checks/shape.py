@@ -83,15 +83,19 @@ def coverage(ctx: AuditContext) -> dict:
     stops = np.append(starts[1:], len(period)) - 1
     leave = period[stops]
     holes = ctx.gaps[0][entity[starts]]
-    code = (entry.astype(np.int64) * n_periods + leave) * (int(holes.max()) + 1) + holes
-    uniq, counts = np.unique(code, return_counts=True)
-    ranking = np.lexsort((uniq, -counts))[:MAX_SPELL_GROUPS]
-    top = uniq[ranking]
-    top_holes = top % (int(holes.max()) + 1)
-    span = top // (int(holes.max()) + 1)
-    top_entry, top_leave = span // n_periods, span % n_periods
-    entry_labels = ix.period_labels(top_entry) if len(top) else []
-    leave_labels = ix.period_labels(top_leave) if len(top) else []
+    # groups of equal (entry, exit, holes) from one lexsort: no code mixing the three can
+    # overflow, whatever the grid's length
+    order = np.lexsort((holes, leave, entry))
+    spell = np.column_stack([entry[order], leave[order], holes[order]])
+    new = np.ones(len(spell), dtype=bool)
+    new[1:] = (spell[1:] != spell[:-1]).any(axis=1)
+    firsts = np.flatnonzero(new)
+    groups = spell[firsts]
+    counts = np.diff(np.append(firsts, len(spell)))
+    ranking = np.lexsort((groups[:, 2], groups[:, 1], groups[:, 0], -counts))[:MAX_SPELL_GROUPS]
+    top_entry, top_leave, top_holes = groups[ranking].T
+    entry_labels = ix.period_labels(top_entry) if len(ranking) else []
+    leave_labels = ix.period_labels(top_leave) if len(ranking) else []
     spells = [
         {"entry": a, "exit": b, "holes": int(h), "entities": int(c),
          "share": float(c / n_entities), "from_first": bool(e == 0),
@@ -100,27 +104,34 @@ def coverage(ctx: AuditContext) -> dict:
                                     counts[ranking].tolist(), top_entry.tolist(),
                                     top_leave.tolist())
     ]
-    present = np.bincount(period, minlength=n_periods)
-    entering = np.bincount(entry, minlength=n_periods)
-    leaving = np.bincount(leave, minlength=n_periods)
     width = -(-n_periods // MAX_BANDS)
     first = np.arange(0, n_periods, width, dtype=np.int64)
     last = np.minimum(first + width - 1, n_periods - 1)
+    n_bands = len(first)
+    # per period that occurs (never per period of the grid): entities present, by band
+    occurring, present = np.unique(period, return_counts=True)
+    band = occurring // width
+    most = np.zeros(n_bands, dtype=np.int64)
+    np.maximum.at(most, band, present)
+    fewest = np.full(n_bands, np.iinfo(np.int64).max)
+    np.minimum.at(fewest, band, present)
+    # a band with a period nobody is present in has 0 at its fewest
+    fewest[np.bincount(band, minlength=n_bands) < last - first + 1] = 0
+    entering = np.bincount(entry // width, minlength=n_bands)
+    leaving = np.bincount(leave // width, minlength=n_bands)
     first_labels, last_labels = ix.period_labels(first), ix.period_labels(last)
     bands = [
         {"first": a, "last": b, "periods": int(z - f + 1), "present_fewest": int(lo),
          "present_most": int(hi), "entering": int(i), "last_seen": int(o)}
         for a, b, f, z, lo, hi, i, o in zip(
-            first_labels, last_labels, first.tolist(), last.tolist(),
-            np.minimum.reduceat(present, first).tolist(),
-            np.maximum.reduceat(present, first).tolist(),
-            np.add.reduceat(entering, first).tolist(), np.add.reduceat(leaving, first).tolist())
+            first_labels, last_labels, first.tolist(), last.tolist(), fewest.tolist(),
+            most.tolist(), entering.tolist(), leaving.tolist())
     ]
     run_values, run_counts = np.unique(holes + 1, return_counts=True)
     full = int((ctx.periods_per_entity == n_periods).sum())
     return {
         "spells": spells,
-        "spell_groups": len(uniq),
+        "spell_groups": len(groups),
         "entities_full": full,
         "from_first": int((entry == 0).sum()),
         "to_last": int((leave == n_periods - 1).sum()),

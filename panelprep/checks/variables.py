@@ -107,6 +107,34 @@ def nan_missing(ctx: AuditContext, self: Check):
     )
 
 
+@check("values-decimal-rounded", "warning",
+       "decimals (Parquet or Arrow decimal columns) that float64 does not hold exactly")
+def decimal_rounded(ctx: AuditContext, self: Check):
+    hits = {name: p.rounded_rows for name, p in ctx.non_numeric.items() if len(p.rounded_rows)}
+    if not hits:
+        return None
+    total = sum(len(rows) for rows in hits.values())
+    examples = []
+    for name, rows in hits.items():
+        for row in rows[:MAX_EXAMPLES]:
+            examples.append({"column": name, "row": int(ctx.input_rows([row])[0]),
+                             "value": str(ctx.frame[name].iloc[int(row)]),
+                             "read_as": repr(float(ctx.values[int(row), ctx.variables.index(name)]))})
+    examples = examples[:MAX_EXAMPLES]
+    names = ", ".join(f"{name} ({len(rows)}, {ctx.frame[name].dtype.pyarrow_dtype})"
+                      for name, rows in hits.items())
+    first = examples[0]
+    return self.finding(
+        total,
+        f"{total} decimal value(s) in {names} have more digits than float64 holds, so every "
+        f"computation uses the nearest float64 (e.g. row {first['row']}: {first['value']} is "
+        f"read as {first['read_as']}); round or rescale the column upstream if those digits "
+        "matter",
+        examples,
+        {"per_variable": {name: len(rows) for name, rows in hits.items()}},
+    )
+
+
 @check("values-missing", "info", "missing values per variable and what listwise deletion removes")
 def missing_values(ctx: AuditContext, self: Check):
     if not ctx.variables:
@@ -216,6 +244,7 @@ CHECKS = [
     not_numeric,
     declared_missing,
     nan_missing,
+    decimal_rounded,
     missing_values,
     new_singletons,
     time_invariant,

@@ -63,6 +63,7 @@ HINTS = {
     "sample-new-singletons": "--singletons drop [clean.singletons]",
     "values-not-numeric": "--missing-token [input.missing_tokens] or --decimal-comma "
                           "[input.decimal_comma]",
+    "values-decimal-rounded": "round or rescale the column upstream if the lost digits matter",
     "values-nan-missing": "--severity values-nan-missing=info [checks.severity] when NaN is "
                           "how the source writes missing",
     "values-missing": "--vars / --x [model.x] to leave out a variable that is mostly missing",

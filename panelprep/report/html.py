@@ -64,7 +64,9 @@ PREPARATION_SECTIONS = ("story", "findings", "panel", "variation", "components",
                         "cautions", "files")
 
 _TESTS = (("breusch_pagan", "Breusch-Pagan LM"), ("honda", "Honda"), ("mundlak", "Mundlak"),
-          ("hausman", "Hausman"))
+          ("hausman", "Hausman"), ("wooldridge", "Wooldridge serial correlation (F)"),
+          ("born_breitung", "Born-Breitung LM serial correlation"),
+          ("pesaran_cd", "Pesaran CD cross-sectional dependence"))
 
 _CSS = f"""
 :root {{
@@ -598,9 +600,12 @@ def _evidence(summary: dict[str, Any]) -> str:
         if not isinstance(t, dict):
             continue
         p_value = t.get("p_value")
+        df = _num(t.get("df"))
+        if t.get("df_denominator") is not None:
+            df += f", {_num(t['df_denominator'])}"
         rows.append([f'<span class="nowrap">{label}</span>', _num(t.get("statistic")),
-                     _num(t.get("df")), _e(p_text(p_value)),
-                     _e(t.get("note") or "")])
+                     df, _e(p_text(p_value)),
+                     _e(t.get("note") or t.get("basis") or "")])
     body = _table(["test", "statistic", "df", "p-value", "note"], rows, numeric={1, 2, 3})
     caution = ev.get("caution")
     reading = [line for line in ev.get("reading") or [] if line != caution]
@@ -610,7 +615,8 @@ def _evidence(summary: dict[str, Any]) -> str:
     body += (f'<div class="caution"><b>Evidence, not a verdict.</b> '
              f"{_e(caution or 'These tests are evidence, not a verdict.')}</div>")
     return _section("evidence", "Evidence on the choice of estimator", body,
-                    "Tests for entity effects and for their correlation with the regressors.")
+                    "Tests for entity effects and for their correlation with the regressors, "
+                    "and for serial correlation and dependence across entities in the errors.")
 
 
 def _cautions(summary: dict[str, Any]) -> str:

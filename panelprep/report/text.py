@@ -283,7 +283,7 @@ def preparation_lines(summary: dict[str, Any]) -> list[str]:
             lines += [f"    left out of {name}: {r['name']} ({r['why']})"
                       for r in info.get("regressors_left_out") or []]
     if summary.get("evidence"):
-        lines += ["", "Evidence on the choice of estimator (not a verdict)"]
+        lines += ["", "Evidence on the choice of estimator and on the errors (not a verdict)"]
         lines += [f"  {line}" for line in summary["evidence"].get("reading", [])]
     if summary.get("files"):
         lines += ["", "Files written"]
