@@ -22,7 +22,7 @@ Keys
 | `input.missing_tokens` | list of text | `[]` | texts read as missing in numeric variables, e.g. `["n/a", "-"]` |
 | `panel.entity` | text or list of text | *required* | entity key column(s) |
 | `panel.time` | text | *required* | time column |
-| `panel.freq` | `year`, `quarter`, `month`, `week`, `day`, `int` | inferred | period frequency |
+| `panel.freq` | `year`, `quarter`, `month`, `week`, `day`, `int`, `int:K` | inferred | period frequency; `int:K`: whole-number periods K apart (waves 80, 90: `int:10`) |
 | `model.y` | text | *required* | dependent variable |
 | `model.x` | list of text | *required* | regressors (at least one) |
 | `contract.schema` | path | none | pandera YAML contract checked before the panel checks |
@@ -41,7 +41,7 @@ Keys
 | `derive.diff` | list of `var` or `var:k` | `[]` | gap-aware differences x(t) - x(t-k), k = 1 when absent |
 | `output.dir` | path | *required* | output folder; a relative path is read from the run file's folder |
 | `output.failed_dir` | path | `DIR.failed` beside `output.dir` | folder for a failed gate's diagnostics, replacing an earlier failed run's (output.dir is left as it was); a relative path is read from the run file's folder |
-| `output.transforms` | list among `within`, `between`, `quasi`, `twoway` | `["within", "between", "quasi"]` | transformed files to write |
+| `output.transforms` | list among `within`, `between`, `quasi`, `twoway`, `diff` | `["within", "between", "quasi"]` | transformed files to write |
 | `output.method` | `swamy-arora`, `wallace-hussain`, `amemiya`, `nerlove` | `swamy-arora` | variance components for theta |
 | `output.format` | `parquet`, `csv` | `parquet` | format of the data files |
 | `output.compression` | `zstd`, `lz4`, `snappy`, `gzip`, `none` | `zstd` | codec of the Parquet files (zstd: the fastest total time at the smallest size measured) |
@@ -93,6 +93,7 @@ from panelprep.findings import (
     CONTRACT_FINDING_ID,
     SEVERITIES,
     SKIPPED_COLUMNS_ID,
+    STEP_FINDING_ID,
     UNCOMPUTABLE_ID,
 )
 from panelprep.io import (
@@ -110,13 +111,13 @@ from panelprep.io import (
     sniff_delimiter,
 )
 from panelprep.names import DEFAULT_NAMES, AddedNames
-from panelprep.timeaxis import FREQUENCIES, build_time_axis
+from panelprep.timeaxis import FREQ_CHOICES, FREQUENCIES, build_time_axis, parse_freq
 from panelprep.transforms import TRANSFORMS
 
 # Finding ids that modules other than the structural checks emit; a run file
 # may set their severity too.
 EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, UNCOMPUTABLE_ID, CONTRACT_FINDING_ID,
-                     SKIPPED_COLUMNS_ID)
+                     SKIPPED_COLUMNS_ID, STEP_FINDING_ID)
 FINDING_IDS: tuple[str, ...] = (*CHECK_IDS, *EXTRA_FINDING_IDS)
 
 FAIL_ON = ("error", "warning")
@@ -287,6 +288,16 @@ def _choice(allowed: tuple[str, ...]) -> Callable[[Any, bool], str]:
     return parse
 
 
+def _freq(value: Any, cli: bool) -> str:
+    """A frequency, or ``int:K`` for whole-number periods K apart (kept as written, trimmed)."""
+    try:
+        if isinstance(value, str) and parse_freq(value.strip())[0] is not None:
+            return value.strip().replace(" ", "")
+    except InputError:
+        pass
+    raise _Bad(f"one of {FREQ_CHOICES}, K a whole number from 1")
+
+
 def _items(value: Any, cli: bool, what: str) -> list[Any]:
     """A list from the file; on the command line a comma-separated text is a list too."""
     if cli and isinstance(value, str):
@@ -440,8 +451,9 @@ _KEYS: dict[str, dict[str, _Key]] = {
     "panel": {
         "entity": _Key("text or list of text", _names, "entity key column(s)"),
         "time": _Key("text", _text, "time column"),
-        "freq": _Key(", ".join(f"`{f}`" for f in FREQUENCIES), _choice(FREQUENCIES),
-                     "period frequency"),
+        "freq": _Key(", ".join(f"`{f}`" for f in FREQUENCIES) + ", `int:K`", _freq,
+                     "period frequency; `int:K`: whole-number periods K apart (waves 80, 90: "
+                     "`int:10`)"),
     },
     "model": {
         "y": _Key("text", _text, "dependent variable"),
@@ -965,7 +977,9 @@ def _plain(text: str) -> str:
 _SAMPLE_ROWS = 1000
 _ID_WORDS = {"id", "ids", "firm", "entity", "code", "name", "company", "country", "person",
              "individual", "household", "unit", "ident", "identifier", "key", "ticker", "isin",
-             "region", "state", "plant", "store", "school", "group"}
+             "region", "state", "plant", "store", "school", "group", "city", "town", "county",
+             "district", "province", "municipality", "village", "farm", "bank", "branch",
+             "hospital", "worker", "employee", "respondent", "patient", "student", "member"}
 _TIME_WORDS = {"year", "yr", "date", "period", "quarter", "qtr", "month", "week", "day", "time",
                "wave", "t", "fyear", "fiscal"}
 
@@ -1027,7 +1041,7 @@ def _parses_as_time(values: pd.Series, name: str) -> str | None:
     if _is_text(present):
         present = integer_text_to_int(present)
     try:
-        return build_time_axis(present.reset_index(drop=True), None, name).freq
+        return build_time_axis(present.reset_index(drop=True), None, name).name
     except (InputError, ValueError, TypeError, OverflowError):
         return None
 
@@ -1057,19 +1071,97 @@ def _guess_time(frame: pd.DataFrame, decimal_comma: bool) -> tuple[str | None, s
     return (named[0] if named else None), None
 
 
-def _guess_entity(frame: pd.DataFrame, time: str | None, decimal_comma: bool) -> str | None:
-    """A text column named like an id, else an id-named column of whole numbers,
-    else the first text column."""
-    columns = [c for c in frame.columns if c != time]
-    text = [c for c in columns if _is_text(frame[c]) and not looks_numeric(frame[c], decimal_comma)]
-    id_named = [c for c in columns if _named_like(c, _ID_WORDS)]
-    for name in id_named:
-        if name in text:
-            return name
-    for name in id_named:
-        if _whole_numbers(frame[name]):
-            return name
-    return text[0] if text else None
+# a key with at most this share of duplicate (entity, time) pairs is near unique
+_NEAR_UNIQUE = 0.05
+
+
+@dataclass(frozen=True)
+class _EntityGuess:
+    """A candidate entity column and how it fares as a key with the time column."""
+
+    name: str
+    duplicate_keys: int  # distinct rows sharing an (entity, time) pair with an earlier one
+    rows: int            # distinct rows with both values present
+    entities: int
+    text: bool
+    id_named: bool
+
+    def rank(self, position: int) -> tuple:
+        near_unique = self.duplicate_keys <= _NEAR_UNIQUE * self.rows
+        # an entity seen on about one row each (a row number, a measure) is no panel entity
+        repeats = self.rows >= 1.5 * self.entities
+        return (not (near_unique and repeats), not self.id_named, not self.text,
+                self.duplicate_keys, position)
+
+
+def _entity_kind(values: pd.Series, decimal_comma: bool) -> str | None:
+    """``text`` (not numbers), ``integer`` (whole numbers, however stored) or None.
+
+    Judged on the values, not the storage, so a CSV (read as text) and a
+    Parquet copy (typed) of the same data give the same kind.
+    """
+    if pd.api.types.is_bool_dtype(values.dtype):
+        return None
+    present = values.dropna()
+    if len(present) == 0:
+        return None
+    if _is_text(present) and (not looks_numeric(present, decimal_comma)
+                              or present.astype(str).str.strip().str.match(r"0\d").any()):
+        # digits with a leading zero (00123) are codes, read and written as text
+        return "text"
+    numbers = pd.to_numeric(present.astype(str).str.strip() if _is_text(present) else present,
+                            errors="coerce")
+    if numbers.isna().any() or (numbers.abs() == float("inf")).any():
+        return None
+    return "integer" if (numbers == numbers.round()).all() else None
+
+
+def _guess_entity(frame: pd.DataFrame, time: str | None,
+                  decimal_comma: bool) -> _EntityGuess | None:
+    """The text or whole-number column that, with ``time``, makes the most nearly unique key.
+
+    Ranked by: a near-unique key (duplicate pairs at most 5% of the distinct
+    rows; exact repeated rows are not duplicates) whose entities are seen on
+    1.5 rows or more on average, then a name like an id (``firm_id``,
+    ``city``, ``code``), text before whole numbers, fewer duplicate pairs,
+    then column order.  The
+    values decide, not how the file stores them, so a CSV and a Parquet copy
+    of the same data get the same guess.
+    """
+    distinct = frame.astype(str).drop_duplicates()
+    timed = frame.loc[distinct.index, time].notna() if time else None
+    guesses = []
+    for name in frame.columns:
+        if name == time:
+            continue
+        kind = _entity_kind(frame[name], decimal_comma)
+        if kind is None:
+            continue
+        present = frame.loc[distinct.index, name].notna()
+        if timed is not None:
+            present &= timed
+        keyed = distinct.loc[present.to_numpy(), [name, *([time] if time else [])]]
+        if len(keyed) == 0:
+            continue
+        if kind == "integer":
+            # 7 and 7.0 are one entity, in a CSV as in a Parquet copy
+            keyed = keyed.assign(**{name: pd.to_numeric(keyed[name]).astype(float).astype(str)})
+        if time:
+            keyed = keyed.assign(**{time: _period_key(keyed[time])})
+        guesses.append(_EntityGuess(
+            name=name, duplicate_keys=int(keyed.duplicated().sum()), rows=len(keyed),
+            entities=int(keyed[name].nunique()), text=kind == "text",
+            id_named=_named_like(name, _ID_WORDS)))
+    if not guesses:
+        return None
+    order = {name: i for i, name in enumerate(frame.columns)}
+    return min(guesses, key=lambda g: g.rank(order[g.name]))
+
+
+def _period_key(values: pd.Series) -> pd.Series:
+    """Time values as text, whole numbers written one way (1935 and 1935.0 alike)."""
+    numbers = pd.to_numeric(values, errors="coerce")
+    return numbers.astype(float).astype(str).where(numbers.notna(), values)
 
 
 _DECIMAL_COMMA = re.compile(r"^\s*[-+]?\d+,\d+\s*$")
@@ -1142,7 +1234,8 @@ def starter_run_file(data_path: str | Path, frame_head: pd.DataFrame | None = No
     decimal_comma = delimiter is not None and _guess_decimal_comma(frame, delimiter)
 
     time, freq = _guess_time(frame, decimal_comma)
-    entity = _guess_entity(frame, time, decimal_comma)
+    guess = _guess_entity(frame, time, decimal_comma)
+    entity = None if guess is None else guess.name
     notes = {}
     if time is None:
         time = next(c for c in frame.columns if c != entity)
@@ -1150,11 +1243,13 @@ def starter_run_file(data_path: str | Path, frame_head: pd.DataFrame | None = No
     else:
         notes["panel.time"] = "guessed: " + (f"looks like {freq} periods" if freq
                                              else "named like a period")
-    if entity is None:
+    if guess is None:
         entity = next(c for c in frame.columns if c != time)
-        notes["panel.entity"] = "guessed: no text column; check it"
+        notes["panel.entity"] = "guessed: no text or whole-number column; check it"
     else:
-        notes["panel.entity"] = "guessed"
+        notes["panel.entity"] = (
+            f"guessed: {guess.duplicate_keys:,} duplicate ({entity}, {time}) keys in "
+            f"{guess.rows:,} distinct rows read, {guess.entities:,} entities")
     rest = [c for c in frame.columns if c not in (entity, time)]
     numeric = [c for c in rest if looks_numeric(frame[c], decimal_comma)]
     chosen = numeric if len(numeric) >= 2 else numeric + [c for c in rest if c not in numeric]
@@ -1174,7 +1269,7 @@ def starter_run_file(data_path: str | Path, frame_head: pd.DataFrame | None = No
         "input.decimal_comma": decimal_comma,
         "panel.entity": [entity],
         "panel.time": time,
-        "panel.freq": freq if freq in FREQUENCIES else None,
+        "panel.freq": freq,
         "model.y": chosen[0],
         "model.x": chosen[1:],
         "output.dir": Path(f"{path.stem}-prepared"),
@@ -1186,7 +1281,7 @@ def starter_run_file(data_path: str | Path, frame_head: pd.DataFrame | None = No
     if delimiter not in (None, ","):
         values["input.delimiter"] = delimiter
         notes["input.delimiter"] = "sniffed from the header; set it to be sure"
-    if freq in FREQUENCIES:
+    if freq is not None:
         notes["panel.freq"] = "as the sample looks; inferred when absent"
     tokens = _seen_tokens(frame, chosen)
     if tokens:
