@@ -30,6 +30,7 @@ from panelprep._scale import standardise
 from panelprep._schema import SCHEMA_VERSION
 from panelprep._version import __version__
 from panelprep.checks import AuditContext, Thresholds
+from panelprep.choices import METHODS, OUTPUT_FORMATS, PARQUET_COMPRESSIONS, TRANSFORMS
 from panelprep.clean import (
     Policies,
     Removal,
@@ -40,7 +41,7 @@ from panelprep.clean import (
     singleton_removal,
     window_removal,
 )
-from panelprep.components import METHODS, VarianceComponents
+from panelprep.components import VarianceComponents
 from panelprep.config import (
     ChecksSection,
     CleanSection,
@@ -70,8 +71,6 @@ from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
     DIAGNOSTIC_FILES,
-    OUTPUT_FORMATS,
-    PARQUET_COMPRESSIONS,
     OutputFolder,
     ReadOptions,
     check_output_folder,
@@ -103,7 +102,6 @@ from panelprep.pipeline import (
     split_names,
 )
 from panelprep.runlog import RunLog
-from panelprep.transforms import TRANSFORMS
 
 DEFAULT_TRANSFORMS = ("within", "between", "quasi")
 

@@ -27,7 +27,7 @@ import pandas as pd
 from panelprep._groups import group_counts, occurring, segment_bounds, select_rows
 from panelprep._scale import Scaling, scaled_group_means
 from panelprep.index import PanelIndex
-from panelprep.limits import GRID_PERIODS
+from panelprep.limits import Thresholds
 from panelprep.variation import variation_table, with_within_measures
 
 # every whole number below 2^53 in magnitude is exact in float64; from there on some are not
@@ -35,25 +35,6 @@ _EXACT_INTEGER = 2.0**53
 _NUMBER = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
 # NaN as text, as Python, numpy and pandas write it (nan, NaN, -nan)
 _NAN_TEXT = re.compile(r"^\s*[-+]?[nN][aA][nN]\s*$")
-
-
-@dataclass(frozen=True)
-class Thresholds:
-    """Tunable limits of the checks.
-
-    low_within_ratio : a variable is reported as thin within entities when
-        its within SD ratio (within SD / overall SD) is below this (default 0.05).
-    constant_rtol : a group counts as constant in a variable when the root
-        mean square deviation from its mean is at most this times the
-        variable's largest absolute deviation from its overall mean
-        (default 1e-9).
-    max_grid_periods : a grid of more periods is reported as most likely
-        mistyped (default ``limits.GRID_PERIODS``, 100,000).
-    """
-
-    low_within_ratio: float = 0.05
-    constant_rtol: float = 1e-9
-    max_grid_periods: int = GRID_PERIODS
 
 
 @dataclass(frozen=True)
