@@ -692,6 +692,8 @@ class _Flow:
     index: PanelIndex | None = None
     origin: np.ndarray = field(init=False)
     alive: np.ndarray | None = None
+    # the mask the last recorded step left (its entity count is the next step's before)
+    _last_after: np.ndarray | None = field(default=None, init=False, repr=False)
 
     def __post_init__(self) -> None:
         self.origin = np.arange(len(self.frame))
@@ -700,6 +702,7 @@ class _Flow:
              note: str) -> None:
         """A step that changes values but removes no row."""
         rows = len(self.frame)
+        self._last_after = None
         self.ledger.story.append(StepRecord(step_id, step, rows, rows, entities_before,
                                             entities_after, note))
 
@@ -736,13 +739,23 @@ class _Flow:
         return int((group_counts(codes[codes >= 0], self.index.n_entities) > 0).sum())
 
     def _story(self, step_id: str, step: str, before: np.ndarray, after: np.ndarray) -> None:
+        rows_before, rows_after = int(before.sum()), int(after.sum())
+        # a step's entities before are the previous step's after; a step that removes no
+        # row keeps them
+        last = self.ledger.story[-1] if self.ledger.story else None
+        entities_before = (last.entities_after if last is not None
+                           and last.rows_after == rows_before and self._last_after is before
+                           else self._entities(before))
+        entities_after = (entities_before if rows_after == rows_before
+                          else self._entities(after))
+        self._last_after = after
         self.ledger.story.append(StepRecord(
             id=step_id,
             step=step,
-            rows_before=int(before.sum()),
-            rows_after=int(after.sum()),
-            entities_before=self._entities(before),
-            entities_after=self._entities(after),
+            rows_before=rows_before,
+            rows_after=rows_after,
+            entities_before=entities_before,
+            entities_after=entities_after,
         ))
 
 
