@@ -5,6 +5,7 @@ from __future__ import annotations
 import re
 
 import numpy as np
+import pandas as pd
 
 from panelprep._groups import group_counts
 from panelprep.checks.base import Check, check
@@ -23,9 +24,14 @@ def not_numeric(ctx: AuditContext, self: Check):
     total = sum(len(p.rows) for p in bad.values())
     examples = []
     for name, problem in bad.items():
-        for row in problem.rows[:MAX_EXAMPLES]:
-            examples.append({"column": name, "row": int(ctx.input_rows([row])[0]),
-                             "value": str(ctx.frame[name].iloc[int(row)])})
+        # one example per distinct text: how many rows hold it (count) and the first (row)
+        texts = ctx.frame[name].iloc[problem.rows].astype(str).to_numpy()
+        codes, uniques = pd.factorize(texts)
+        counts = np.bincount(codes, minlength=len(uniques))
+        first = np.unique(codes, return_index=True)[1]
+        rows = ctx.input_rows(problem.rows[first[:MAX_EXAMPLES]])
+        examples += [{"column": name, "value": str(value), "count": int(count), "row": int(row)}
+                     for value, count, row in zip(uniques[:MAX_EXAMPLES], counts, rows)]
     details = {name: {"rows": len(p.rows), "values": p.values} for name, p in bad.items()}
     names = ", ".join(f"{n} ({len(p.rows)})" for n, p in bad.items())
     return self.finding(
@@ -142,14 +148,19 @@ def missing_values(ctx: AuditContext, self: Check):
     if rows_lost == 0:
         return None
     lost = _listwise(ctx)
+    # rows where a column is the only one missing: what dropping that column alone would keep
+    alone = absent & (absent.sum(axis=1) == 1)[:, None]
+    only_missing = {name: int(alone[:, j].sum()) for j, name in enumerate(ctx.variables)}
+    worst = sorted((n for n in per_variable if per_variable[n]), key=lambda n: -per_variable[n])
     return self.finding(
         rows_lost,
         f"{plural(rows_lost, 'row')} {'misses' if rows_lost == 1 else 'miss'} at least one "
         f"selected variable; listwise deletion removes {'it' if rows_lost == 1 else 'them'}, "
         f"{plural(lost['entities_lost'], 'entity')} entirely and makes "
-        f"{plural(lost['new_singletons'], 'new singleton')}",
+        f"{plural(lost['new_singletons'], 'new singleton')}; most often missing: "
+        + ", ".join(f"{n} ({per_variable[n]}, {only_missing[n]} alone)" for n in worst[:3]),
         [{"column": name, "missing": count} for name, count in per_variable.items() if count],
-        {"per_variable": per_variable, **lost},
+        {"per_variable": per_variable, "only_missing": only_missing, **lost},
     )
 
 
