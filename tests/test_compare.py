@@ -418,6 +418,22 @@ def test_prepare_compares_with_the_previous_vintage(vintage_files):
     assert "vintage-restated-over-limit" in {f["id"] for f in failed["findings"]}
 
 
+def test_a_dataframe_prepared_in_python_is_compared_with_the_previous_file(vintage_files):
+    from panelprep.compare import PreviousVintage
+    from panelprep.prepare import PrepareOptions, run_preparation
+
+    options = PrepareOptions(entity=["firm"], time="year", y="sales", x=["capital"],
+                             previous=PreviousVintage(path=vintage_files / "old.csv"))
+    new = pd.read_parquet(vintage_files / "new.parquet")
+    prep = run_preparation(new, vintage_files / "out", options)
+    assert prep.verdict == "pass"
+    summary = json.loads((vintage_files / "out" / "diagnostics.json").read_text())
+    # the same counts as the run file's run on the same pair
+    assert summary["comparison"]["rows"]["added"] == 24
+    assert summary["comparison"]["new"]["path"] is None
+    assert len(pq.read_table(vintage_files / "out" / "restated.parquet")) == 23
+
+
 def test_run_file_severity_applies_to_comparison_findings(vintage_files):
     run = vintage_files / "run.toml"
     run.write_text('[input]\npath = "new.parquet"\n[panel]\nentity = "firm"\ntime = "year"\n'
