@@ -224,13 +224,14 @@ def index_on_entity_codes(
     axis = build_time_axis(time_values, freq=freq, column=time)
     has_time = ~axis.missing
     if has_time.any():
-        first = int(axis.ordinal[has_time].min())
-        last = int(axis.ordinal[has_time].max())
+        # no copy of the ordinals when every row has a time
+        placed = axis.ordinal if has_time.all() else axis.ordinal[has_time]
+        first, last = int(placed.min()), int(placed.max())
+        del placed
+        check_grid(len(entity_labels), last - first + 1, time, *axis.label([first, last]))
     else:
         first, last = 0, -1
-    if has_time.any():
-        check_grid(len(entity_labels), last - first + 1, time, *axis.label([first, last]))
-    period_codes = np.where(has_time, axis.ordinal - first, -1).astype(np.int64)
+    period_codes = np.where(has_time, axis.ordinal - first, -1).astype(np.int64, copy=False)
     return PanelIndex(
         entity=entity,
         time=time,
