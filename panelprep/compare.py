@@ -142,13 +142,25 @@ class PreviousVintage:
 
 @dataclass(frozen=True)
 class _Side:
-    """One vintage reduced to its distinct cells (ascending), first row per cell."""
+    """One vintage reduced to its distinct cells (ascending), first row per cell.
+
+    ``rows`` None: the cells are the rows themselves, in order (every row
+    keyed, already ascending, no repeat), as in a file sorted by its key.
+    """
 
     cells: np.ndarray
-    rows: np.ndarray
+    rows: np.ndarray | None
     read: int
     unkeyed: int
     repeated: int
+
+    def row(self, at: np.ndarray) -> np.ndarray:
+        """The rows of the cells at positions ``at``."""
+        return at if self.rows is None else self.rows[at]
+
+    def of_rows(self, per_row: np.ndarray) -> np.ndarray:
+        """A per-row array of this side read per cell (a view when the cells are the rows)."""
+        return per_row if self.rows is None else per_row[self.rows]
 
 
 @dataclass(eq=False)
@@ -298,15 +310,11 @@ def _differs_from_above(values: pd.Series) -> np.ndarray:
 
 def _side(cell: np.ndarray) -> _Side:
     has_key = cell >= 0
-    if has_key.all():
-        keyed, keyed_cells = np.arange(len(cell)), cell
-    else:
-        keyed = np.flatnonzero(has_key)
-        keyed_cells = cell[keyed]
-    if (keyed_cells[1:] > keyed_cells[:-1]).all():
+    if has_key.all() and (cell[1:] > cell[:-1]).all():
         # already ascending without a repeat (a file sorted by its key): nothing to sort
-        return _Side(cells=keyed_cells, rows=keyed, read=len(cell),
-                     unkeyed=len(cell) - len(keyed), repeated=0)
+        return _Side(cells=cell, rows=None, read=len(cell), unkeyed=0, repeated=0)
+    keyed = np.flatnonzero(has_key)
+    keyed_cells = cell[keyed]
     cells, first = np.unique(keyed_cells, return_index=True)
     return _Side(cells=cells, rows=keyed[first], read=len(cell), unkeyed=len(cell) - len(keyed),
                  repeated=len(keyed) - len(cells))
@@ -544,10 +552,14 @@ def compare_frames(
     at = _positions(a.cells, b.cells, index.n_entities * periods)
     matched = at >= 0
     in_old = np.zeros(len(b.cells), dtype=bool)
-    in_old[at[matched]] = True
-    pair_old, pair_new = a.rows[matched], b.rows[at[matched]]
-    ent_a, per_a = np.divmod(a.cells, periods)
-    ent_b, per_b = np.divmod(b.cells, periods)
+    found = at[matched]
+    in_old[found] = True
+    pair_old, pair_new = a.row(np.flatnonzero(matched)), b.row(found)
+    del at, found
+    ent_a = a.of_rows(index.entity_codes[:n_old])
+    per_a = a.of_rows(index.period_codes[:n_old])
+    ent_b = b.of_rows(index.entity_codes[n_old:])
+    per_b = b.of_rows(index.period_codes[n_old:])
     pair_entity, pair_period = ent_a[matched], per_a[matched]
     removed, added = a.cells[~matched], b.cells[~in_old]
 
@@ -585,8 +597,8 @@ def compare_frames(
         progress("compare.values", f"comparing {name}", rows=len(pair_old))
         old_all = _numbers(old[name], name, decimal_comma, tokens)
         new_all = _numbers(new[name], name, decimal_comma, tokens)
-        gone_values.append(old_all[a.rows[gone_at]])
-        new_values.append(new_all[b.rows[new_at]])
+        gone_values.append(old_all[a.row(gone_at)])
+        new_values.append(new_all[b.row(new_at)])
         o, n = old_all[pair_old], new_all[pair_new]
         del old_all, new_all
         summary, hit, kind, units, shares = _compare_variable(

@@ -63,8 +63,11 @@ class PanelIndex:
     @cached_property
     def cell(self) -> np.ndarray:
         """One int64 per row for the (entity, period) pair; -1 where not keyed."""
-        cell = self.entity_codes * np.int64(self.n_periods) + self.period_codes
-        return np.where(self.keyed, cell, -1)
+        cell = self.entity_codes * np.int64(self.n_periods)
+        cell += self.period_codes
+        if not self.keyed.all():
+            cell[~self.keyed] = -1
+        return cell
 
     @cached_property
     def sorted_cells(self) -> np.ndarray:
@@ -231,7 +234,8 @@ def index_on_entity_codes(
         check_grid(len(entity_labels), last - first + 1, time, *axis.label([first, last]))
     else:
         first, last = 0, -1
-    period_codes = np.where(has_time, axis.ordinal - first, -1).astype(np.int64, copy=False)
+    period_codes = (axis.ordinal - first).astype(np.int64, copy=False)
+    period_codes[axis.missing] = -1
     return PanelIndex(
         entity=entity,
         time=time,
