@@ -3,10 +3,13 @@
 Both vintages are keyed by one ``PanelIndex`` built on their key columns
 stacked (so an entity or a period has the same integer code in both), and
 each side is reduced to its distinct (entity, period) cells, first row per
-cell.  Everything after that is arithmetic on int64 cell codes: a sorted
-search pairs the cells both vintages hold, ``np.bincount`` counts per
-period and per entity, and values are compared column by column on the
-paired rows with the audit's own reading of numbers (``checks.context.to_float``).
+cell.  Everything after that is arithmetic on int64 cell codes: a lookup
+table over the cell grid (or a sorted search) pairs the cells both
+vintages hold, ``np.bincount`` counts per period and per entity, and values
+are compared column by column on the paired rows with the audit's own
+reading of numbers (``checks.context.to_float``).  A file sorted by its key
+costs least: its entity key is factorised once per entity, not per row, and
+its cells need no sort.
 
 What is reported (each a finding with a stable id, gated like the audit):
 
