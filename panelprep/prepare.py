@@ -304,6 +304,10 @@ def _prepare_frame(
         missing_tokens=read_options.missing_tokens, input_info=input_info,
         index=flow.index, progress=progress, prior_findings=contract_findings,
         origin=flow.origin,
+        # a frame read for this run keeps its variables only in the audit's float block
+        release_columns=((lambda names: _free_variable_columns([frame, flow.frame], names,
+                                                               options))
+                         if owns_frame else None),
     )
     audited = report.context
     progress("sample", "building the estimation sample", rows=len(flow.frame))
@@ -352,10 +356,6 @@ def _prepare_frame(
     counts = group_counts(codes, sample_ix.n_entities)
     values = ctx.sample_values
     ctx.release_values()
-    if owns_frame:
-        # a frame read for this run (never a caller's): from here on the flow reads its
-        # variables only from the sample block, so their columns are freed
-        _free_variable_columns([frame, flow.frame], ctx.variables, options)
     y, X = values[:, 0], values[:, 1:]
 
     progress("components", f"variance components ({options.method})", rows=len(y))
@@ -1018,11 +1018,16 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
 
 def _free_variable_columns(frames: list[pd.DataFrame], variables: list[str],
                            options: PrepareOptions) -> None:
-    """Drop the variable columns from frames the run owns, in place (about n x k x 8 bytes)."""
+    """Drop the variable columns from frames the run owns, in place (about n x k x 8 bytes).
+
+    A frame converted from Arrow holds its columns in Arrow's memory pool,
+    which keeps freed memory until asked to return it.
+    """
     keys = {*options.entity, options.time}
     for frame in {id(f): f for f in frames}.values():
         for name in [v for v in variables if v in frame.columns and v not in keys]:
             del frame[name]
+    release_arrow_memory()
 
 
 RUN_FILE = "run.toml"
