@@ -47,6 +47,7 @@ from panelprep.components import VarianceComponents
 from panelprep.config import (
     ChecksSection,
     CleanSection,
+    CompareSection,
     ContractSection,
     DeriveSection,
     InputSection,
@@ -131,6 +132,8 @@ class PrepareOptions:
     validate_outputs: bool = False
     evidence: bool = True
     names: AddedNames = field(default_factory=AddedNames)
+    # the previous vintage to compare the input with (compare.PreviousVintage), or None
+    previous: Any = None
 
     def validate(self) -> None:
         self.policies.validate()
@@ -189,6 +192,8 @@ class Preparation:
     written_to: Path | None = None
     # the evidence while it is computed beside the writes (run_preparation)
     evidence_job: _EvidenceJob | None = None
+    # the input against its previous vintage (compare.Comparison), when one was given
+    comparison: Any = None
 
     @cached_property
     def tables(self) -> dict[str, pd.DataFrame]:
@@ -216,6 +221,7 @@ def prepare_frame(
     record: RunFile | None = None,
     owns_frame: bool = False,
     defer_evidence: bool = False,
+    comparison: Any = None,
 ) -> Preparation:
     """Clean, audit and transform a panel held in memory; nothing is written.
 
@@ -230,9 +236,11 @@ def prepare_frame(
     once the sample block is taken.  A caller's frame is never changed.
     ``defer_evidence`` computes the evidence in a thread of its own
     (``Preparation.evidence_job``), for ``run_preparation`` to settle after
-    writing the data files.
-    Warnings a library raises on the way are recorded in a
-    ``library-warnings`` finding, never printed.
+    writing the data files.  ``comparison`` (a ``compare.Comparison`` of
+    this frame against its previous vintage) adds its findings to the gate
+    and its report to the summary (``comparison``).  Warnings a library
+    raises on the way are recorded in a ``library-warnings`` finding, never
+    printed.
 
     Examples
     --------
@@ -248,7 +256,7 @@ def prepare_frame(
     """
     with recorded_warnings() as caught:
         prep = _prepare_frame(frame, options, input_info, read_options, progress, check_names,
-                              owns_frame, record, defer_evidence)
+                              owns_frame, record, defer_evidence, comparison)
     said = library_warnings_finding(caught)
     if said is not None:
         prep.audit.findings.append(said)
@@ -259,7 +267,7 @@ def prepare_frame(
 def _prepare_frame(
     frame: pd.DataFrame, options: PrepareOptions, input_info: dict[str, Any] | None,
     read_options: ReadOptions, progress: Progress | None, check_names: bool, owns_frame: bool,
-    record: RunFile | None, defer_evidence: bool = False,
+    record: RunFile | None, defer_evidence: bool = False, comparison: Any = None,
 ) -> Preparation:
     options.validate()
     progress = progress if progress is not None else RunLog()
@@ -273,6 +281,8 @@ def _prepare_frame(
 
         progress("contract", "checking the schema contract", rows=len(frame))
         contract_findings = check_contract(frame, options.contract, where="input")
+    if comparison is not None:
+        contract_findings += comparison.findings
 
     if policies.normalise_ids != "none":
         progress("normalise-ids", f"normalise entity ids ({policies.normalise_ids})",
@@ -340,6 +350,8 @@ def _prepare_frame(
     del audited
     ctx = report.context
     summary = report.to_dict()
+    if comparison is not None:
+        summary["comparison"] = comparison.report()
     if report.verdict == "fail":
         summary["steps"] = [s.to_dict() for s in flow.ledger.story]
         summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
@@ -347,7 +359,7 @@ def _prepare_frame(
         summary["cautions"] = [_gate_caution(report)]
         summary["run"] = run_block(progress, record or run_record(options, read_options),
                                    summary, options)
-        return Preparation(report, flow.ledger, None, None, summary)
+        return Preparation(report, flow.ledger, None, None, summary, comparison=comparison)
 
     if len(ctx.conflicting_cells):
         raise InputError(
@@ -409,7 +421,8 @@ def _prepare_frame(
         *cautions.lag_period_cautions(options.shifts, options.x, options.y, summary["findings"]),
         *cautions.listwise_cautions(summary["findings"]),
     ]
-    prep = Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
+    prep = Preparation(report, flow.ledger, components, outputs, summary, sample_ix,
+                       comparison=comparison)
     if options.evidence:
         evidence = _EvidenceJob(
             lambda: collect_evidence(y, X, codes, counts, components, options.x,
@@ -981,7 +994,9 @@ def run_preparation(
     # before the folder and before any data is read: the header names suffice
     options.check_names(list(data.columns) if given else column_names(Path(data), read_options),
                         "the data" if given else str(data))
-    inputs = [*([] if given else [Path(data)]), *map(Path, keep)]
+    previous = options.previous
+    inputs = [*([] if given else [Path(data)]), *map(Path, keep),
+              *([Path(previous.path)] if previous else [])]
     out = Path(out)
     folder = OutputFolder(out, inputs, force=force)
     failed = failed_folder(out) if failed_out is None else Path(failed_out)
@@ -995,8 +1010,11 @@ def run_preparation(
             progress("read", f"reading {data}")
             frame, info = load(data, options.entity, options.time, options.columns_to_read,
                                read_options)
+        comparison = None if previous is None else _compare_previous(
+            frame, info, options, read_options, progress)
         prep = prepare_frame(frame, options, info, read_options, progress, check_names=not given,
-                             record=record, owns_frame=not given, defer_evidence=True)
+                             record=record, owns_frame=not given, defer_evidence=True,
+                             comparison=comparison)
         del frame
         files: list[dict[str, Any]] = []
         if prep.verdict != "fail":
@@ -1022,6 +1040,29 @@ def run_preparation(
         raise
     prep.written_to = folder.target
     return prep
+
+
+def _compare_previous(frame: pd.DataFrame, info: dict[str, Any], options: PrepareOptions,
+                      read_options: ReadOptions, progress: Progress):
+    """The input against the previous vintage ``options.previous`` (read with the same options)."""
+    from panelprep.compare import compare_frames
+
+    previous = options.previous
+    wanted = previous.vars or [v for v in options.columns_to_read if v in frame.columns]
+    absent = [v for v in wanted if v not in frame.columns]
+    if absent:
+        raise InputError(f"compare.vars {absent} are not read from {info['path']}; compare "
+                         "only variables the run reads (model.y, model.x, lag sources)")
+    held = column_names(Path(previous.path), read_options)
+    progress("read.previous", f"reading the previous vintage {previous.path}")
+    old, old_info = load(previous.path, options.entity, options.time,
+                         [v for v in wanted if v in held], read_options)
+    # severities come from the run's checks.severity, applied with the audit's
+    compare_options = replace(previous.options, fail_on=options.fail_on, severities={})
+    return compare_frames(old, frame, options.entity, options.time, wanted, freq=options.freq,
+                          options=compare_options, old_info=old_info, new_info=info,
+                          decimal_comma=read_options.decimal_comma,
+                          missing_tokens=read_options.missing_tokens, progress=progress)
 
 
 def _name_fits(path: Path) -> bool:
@@ -1083,6 +1124,8 @@ def write_data_files(prep: Preparation, folder: OutputFolder, options: PrepareOp
         files.append({"name": path.name, "rows": rows,
                       "sha256": _hash_in_background(path), "columns": columns})
         del table
+    if prep.comparison is not None and prep.outputs is not None:
+        files.append(_write_restated(prep, folder, base_meta, options, progress))
     for entry in files:
         entry["sha256"] = entry["sha256"].result()
     if prep.outputs is not None:
@@ -1114,6 +1157,21 @@ def write_diagnostics(prep: Preparation, folder: OutputFolder, options: PrepareO
     _write_text(folder.path("report.html"), render_html(prep.summary, pictures_of(prep)))
 
 
+def _write_restated(prep: Preparation, folder: OutputFolder, base_meta: dict[str, Any],
+                    options: PrepareOptions, progress: Progress) -> dict[str, Any]:
+    """restated.parquet: every cell of the input that differs from the previous vintage."""
+    path = folder.path("restated.parquet")
+    progress("write.restated", f"writing {path.name}", rows=prep.comparison.n_changed)
+    table = prep.comparison.restated_table()
+    provenance = prep.comparison.restated_provenance(
+        **{k: v for k, v in base_meta.items() if k not in ("schema_version", "version")})
+    meta = {"panelprep": json.dumps(provenance, sort_keys=True, allow_nan=False)}
+    rows = write_table(table, path, "parquet", meta, compression=options.compression,
+                       dictionary=[*options.entity, options.time])
+    return {"name": path.name, "rows": rows, "sha256": _hash_in_background(path),
+            "columns": provenance["columns"]}
+
+
 def _free_variable_columns(frames: list[pd.DataFrame], variables: list[str],
                            options: PrepareOptions) -> None:
     """Drop the variable columns from frames the run owns, in place (about n x k x 8 bytes).
@@ -1131,7 +1189,7 @@ def _free_variable_columns(frames: list[pd.DataFrame], variables: list[str],
 RUN_FILE = "run.toml"
 # run-file keys that say where things are, not what the data files hold
 _LOCATION_KEYS = ("input.path", "contract.schema", "output.dir", "output.failed_dir",
-                  "output.force")
+                  "output.force", "compare.previous")
 
 
 def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ,
@@ -1149,7 +1207,7 @@ def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ
 
     shifts = {kind: [f"{s.variable}:{s.k}" for s in options.shifts if s.kind == kind]
               for kind in ("lag", "lead", "diff")}
-    policies, names = options.policies, options.names
+    policies, names, previous = options.policies, options.names, options.previous
     return RunFile(
         input=InputSection(path=absolute(data), format=read_options.input_format,
                            delimiter=read_options.delimiter,
@@ -1172,6 +1230,9 @@ def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ
                              format=options.output_format, compression=options.compression,
                              force=force, evidence=options.evidence),
         names=NamesSection(**asdict(names)),
+        compare=CompareSection() if previous is None else CompareSection(
+            previous=absolute(previous.path), vars=previous.vars, rtol=previous.options.rtol,
+            atol=previous.options.atol, max_restated_share=previous.options.max_restated_share),
     )
 
 
@@ -1281,12 +1342,23 @@ def run_from_file(run: RunFile, progress: Progress | None = None) -> Preparation
                 *parse_shifts("lead", run.derive.lead, names),
                 *parse_shifts("diff", run.derive.diff, names)],
         contract=contract, validate_outputs=run.contract.validate_outputs,
-        evidence=run.output.evidence, names=names,
+        evidence=run.output.evidence, names=names, previous=_previous_vintage(run),
     )
     return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
                            force=run.output.force, progress=progress,
                            keep=[p for p in (run.source, run.contract.schema) if p is not None],
                            failed_out=run.output.failed_dir, contract_path=run.contract.schema)
+
+
+def _previous_vintage(run: RunFile):
+    if run.compare.previous is None:
+        return None
+    from panelprep.compare import CompareOptions, PreviousVintage
+
+    options = CompareOptions(rtol=run.compare.rtol, atol=run.compare.atol,
+                             max_restated_share=run.compare.max_restated_share)
+    return PreviousVintage(path=Path(run.compare.previous), vars=run.compare.vars,
+                           options=options)
 
 
 def estimate_file_components(
