@@ -607,6 +607,27 @@ def test_the_stacked_index_codes_every_row_as_build_index_does(rows, split, kind
         np.arange(reference.n_entities))
 
 
+@pytest.mark.parametrize("in_order", [True, False])
+def test_rows_without_a_full_key_are_counted_and_left_out(in_order):
+    # rows with a missing or blank entity, or a missing year, in both vintages; sorted by key
+    # (the no-sort path) or not; reference: pandas merges on the rows with a full key
+    old = pd.DataFrame({"f": ["a", "a", None, "b", "b", "  ", "c"],
+                        "t": [1.0, 2.0, 1.0, 1.0, np.nan, 2.0, 1.0],
+                        "v": [1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0]})
+    new = pd.DataFrame({"f": ["a", "a", "b", None, "c", "c"],
+                        "t": [1.0, 2.0, 1.0, 2.0, 1.0, np.nan],
+                        "v": [1.0, 2.5, 4.0, 9.0, 7.0, 8.0]})
+    if not in_order:
+        old, new = old.iloc[::-1].reset_index(drop=True), new.iloc[::-1].reset_index(drop=True)
+    doc = compare_frames(old, new, "f", "t", ["v"]).to_dict()
+    assert (doc["rows"]["old_without_key"], doc["rows"]["new_without_key"]) == (3, 2)
+    reference = _pandas_counts(old.replace({"f": {"  ": None}}), new, ["f", "t"], ["v"],
+                               1e-9, 0.0)
+    assert (doc["rows"]["removed"], doc["rows"]["added"], doc["rows"]["both"]) == (
+        reference["removed"], reference["added"], reference["both"]) == (0, 0, 4)
+    assert doc["variables"]["v"]["restated"] == reference["v"]["restated"] == 1
+
+
 def test_cells_are_found_by_table_and_by_sorted_search_alike():
     from panelprep.compare import _positions
 
