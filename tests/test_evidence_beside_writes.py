@@ -26,7 +26,7 @@ def _grunfeld() -> pd.DataFrame:
         {"firm": str, "year": int})
 
 
-OPTIONS = dict(entity=["firm"], time="year", y="invest", x=["value", "capital"])
+OPTIONS = {"entity": ["firm"], "time": "year", "y": "invest", "x": ["value", "capital"]}
 
 
 def _parquet(tmp_path: Path) -> Path:
