@@ -134,10 +134,11 @@ def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
 
 
 def sha256_in_background(path: Path) -> Future:
-    """SHA-256 of ``path`` in a thread of its own, while the caller goes on (``result()``).
+    """SHA-256 of ``path`` in a thread of its own, while other work goes on.
 
     hashlib and file reads release the GIL, so on two cores the hash costs
     no wall time (about 0.35 s per 2.5 M row file when done in line).
+    ``result()`` gives the hex digest, or raises what hashing raised.
     """
     future: Future = Future()
 

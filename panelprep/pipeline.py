@@ -42,7 +42,7 @@ from panelprep.io import (
     detect_format,
     read_frame,
     release_arrow_memory,
-    sha256_file,
+    sha256_in_background,
 )
 from panelprep.runlog import RunLog
 from panelprep.words import plural
@@ -422,23 +422,19 @@ def load(
     vars: Sequence[str] | None,
     options: ReadOptions = DEFAULT_READ,
     extra: Sequence[str] = (),
-    digest: bool = True,
 ) -> tuple[pd.DataFrame, dict[str, Any]]:
-    """Read the columns a run needs and describe the input for provenance.
-
-    ``digest`` False leaves ``sha256`` None, for a caller that hashes the
-    file in the background (``io.sha256_in_background``).
-    """
+    """Read the columns a run needs and describe the input for provenance."""
     path = Path(path)
     names = column_names(path, options)
     for column in [*entity, time]:
         if column not in names:
             raise ColumnError(f"{path}: key column {column!r} not found; columns are {names}")
     columns = None if vars is None else list(dict.fromkeys([*entity, time, *vars, *extra]))
+    digest = sha256_in_background(path)  # hashed while the columns are read
     frame = read_frame(path, columns, list(entity), time, options)
     if frame.empty:
         raise InputError(f"{path}: no data rows, only a header")
-    info = {"path": str(path), "sha256": sha256_file(path) if digest else None, "rows": len(frame),
+    info = {"path": str(path), "sha256": digest.result(), "rows": len(frame),
             "format": detect_format(path, options.input_format)}
     return frame, info
 
