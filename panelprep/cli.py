@@ -601,6 +601,30 @@ def main() -> None:
     sys.exit(code or 0)
 
 
+def script() -> None:
+    """The ``panelprep`` command: ``main``, then an exit without the interpreter's teardown.
+
+    When ``main`` returns, every output is complete and renamed into place
+    and no thread is left working, so what remains of Python's exit is
+    freeing the run's arrays and modules one by one: about 0.3 s after a run
+    of 2.5 M rows, for nothing.  The standard streams are flushed first.
+    (``main`` itself exits normally, for callers in the same process.)
+    """
+    try:
+        main()
+        code = 0
+    except SystemExit as done:
+        code = done.code if isinstance(done.code, int) else (0 if done.code is None else 1)
+        if done.code is not None and not isinstance(done.code, int):
+            print(done.code, file=sys.stderr)
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):  # a closed pipe (| head) or stream: nothing to keep
+            pass
+    os._exit(code)
+
+
 def _internal_error(err: Exception) -> int:
     """A bug: the traceback saved to a file, one line on stderr naming it; exit 3."""
     import tempfile
