@@ -78,5 +78,8 @@ def test_failed_gate_counts_agree_and_claim_no_ledger(tmp_path):
     assert "dropped.parquet" not in text and "dropped.parquet" not in page
     assert "no ledger of dropped rows was written" in text
     assert "no ledger of dropped rows was written" in page
+    # the panel block names the rows the files would have held, not files that exist
+    assert "the rows the data files hold" not in text + page
+    assert "the gate failed, so none was written" in text and "none was written" in page
     assert sorted(p.name for p in folder.iterdir()) == ["diagnostics.json", "diagnostics.txt",
                                                           "report.html"]
