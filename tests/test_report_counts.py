@@ -19,14 +19,20 @@ from panelprep.prepare import prepare
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 
 
-def _texts(folder: Path) -> tuple[dict, str, str]:
+def _texts(folder: Path) -> tuple[dict, str, str, str]:
+    """The JSON, the text log, the page as words, and the page's raw markup."""
     summary = json.loads((folder / "diagnostics.json").read_text())
     text = (folder / "diagnostics.txt").read_text()
-    page = html.unescape(re.sub(r"<[^>]+>", " ", (folder / "report.html").read_text()))
-    return summary, text, " ".join(page.split())
+    raw = (folder / "report.html").read_text()
+    page = html.unescape(re.sub(r"<[^>]+>", " ", raw))
+    return summary, text, " ".join(page.split()), raw
 
 
-def _assert_counts_agree(summary: dict, text: str, page: str) -> None:
+def _plural(n: int, word: str) -> str:
+    return f"{n:,} {word}" + ("" if n == 1 else "s")
+
+
+def _assert_counts_agree(summary: dict, text: str, page: str, raw: str) -> None:
     read, panel = summary["input"]["rows"], summary["panel"]
     # one source for "rows read": the header of both and the panel block of both
     assert f"rows {read:,}" in text
@@ -36,13 +42,36 @@ def _assert_counts_agree(summary: dict, text: str, page: str) -> None:
     if panel["rows_read"] != read:
         assert f"{panel['rows_read']:,} audited" in text and f"{panel['rows_read']:,} audited" in page
     assert f"{read:,} rows read" in page  # the story's first number
+    # the panel block: entities and periods, in the text table and the page's table
+    for label in ("entities", "periods"):
+        assert re.search(rf"^  {label} +{panel[label]:,}\b", text, re.MULTILINE), label
+        assert re.search(rf"<th>{label}</th><td[^>]*>{panel[label]:,}\b", raw), label
+    # every finding with its count, beside its id, in both
+    for finding in summary["findings"]:
+        fid, count = finding["id"], finding["count"]
+        assert re.search(rf"\b{fid} +{count:,} ", text), (fid, count)
+        assert re.search(rf"<code>{fid}</code></td><td class=\"num\">{count:,}</td>", raw), fid
+    # the counts by severity: the closing line of the text, the counters of the page
+    counts = summary["gate"]["counts"]
+    closing = text.rstrip().splitlines()[-1]
+    assert closing.startswith(f"{summary['verdict'].upper()}: {_plural(counts['error'], 'error')}")
+    assert f"{_plural(counts['warning'], 'warning')}, {_plural(counts['info'], 'note')}" in closing
+    for level in ("error", "warning", "info"):
+        assert f'<div class="count {level}"><b>{counts[level]:,}</b>' in raw, level
+    # each step's rows and entities before and after, on one line of the text and one table
+    # row of the page
+    for step in summary["steps"]:
+        numbers = [step["rows_before"], step["rows_after"], step["entities_before"],
+                   step["entities_after"]]
+        assert re.search(re.escape(step["step"]) + "".join(rf" +{n:,}" for n in numbers), text)
+        cells = [f'<td class="num">{n:,}</td>' for n in numbers[:2]]
+        assert f"<td>{html.escape(step['step'])}</td>{''.join(cells)}" in raw, step["id"]
+    # rows removed in all, and by reason
     dropped = summary["dropped"]["rows"]
     assert f"{dropped:,} (" in text
     assert re.search(rf"(Rows dropped in all|Rows the steps removed): {dropped:,} ", page)
-    for step in summary["steps"]:
-        assert f"{step['rows_before']:,}" in text and f"{step['rows_after']:,}" in text
-    for finding in summary["findings"]:
-        assert finding["id"] in text and finding["id"] in page
+    for reason, rows in summary["dropped"]["by_reason"].items():
+        assert f"{reason}: {rows:,}" in text and f"{reason} {rows:,}" in page, reason
 
 
 @pytest.fixture(scope="module")
@@ -53,8 +82,8 @@ def demo(tmp_path_factory):
 
 
 def test_demo_counts_agree(demo):
-    summary, text, page = _texts(demo / "out")
-    _assert_counts_agree(summary, text, page)
+    summary, text, page, raw = _texts(demo / "out")
+    _assert_counts_agree(summary, text, page, raw)
     # the demo's pre-audit steps remove rows, so the audited count differs from the rows read
     assert summary["panel"]["rows_read"] < summary["input"]["rows"]
     assert "each is listed in dropped.parquet" in text
@@ -72,9 +101,9 @@ def test_failed_gate_counts_agree_and_claim_no_ledger(tmp_path):
                    x="capital,staff")
     assert prep.verdict == "fail"
     folder = prep.written_to
-    summary, text, page = _texts(folder)
+    summary, text, page, raw = _texts(folder)
     assert summary["dropped"]["rows"] >= 1
-    _assert_counts_agree(summary, text, page)
+    _assert_counts_agree(summary, text, page, raw)
     assert "dropped.parquet" not in text and "dropped.parquet" not in page
     assert "no ledger of dropped rows was written" in text
     assert "no ledger of dropped rows was written" in page
