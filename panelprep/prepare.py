@@ -311,8 +311,11 @@ def _prepare_frame(
     progress("sample", "building the estimation sample", rows=len(flow.frame))
     flow.drop(~audited.keyed, "key-missing", "drop rows without a full key", "sample-keys")
     flow.drop(audited.repeat, "exact-repeat", "collapse exact repeated rows", "sample-repeats")
+    before_listwise = flow.alive.copy() if options.shifts else None
     flow.drop(~audited.complete, "listwise-missing",
               f"listwise deletion over {', '.join(options.variables)}", "sample-listwise")
+    lost = (None if before_listwise is None
+            else cautions.periods_lost(flow.index, before_listwise, flow.alive))
     # the post-audit policies, each with the sample it leaves, so that the
     # audit is judged on the rows the files will hold
     stages: list[tuple[str, np.ndarray]] = []
@@ -411,7 +414,8 @@ def _prepare_frame(
         *cautions.time_invariant_cautions(components, y, X, codes, counts, options.x),
         *cautions.lagged_response_cautions(options.shifts, options.y, options.x,
                                            options.transforms, counts),
-        *cautions.lag_period_cautions(options.shifts, options.x, options.y, summary["findings"]),
+        *([] if lost is None else cautions.lag_period_cautions(
+            options.shifts, options.x, options.y, summary["findings"], lost)),
         *cautions.listwise_cautions(summary["findings"]),
     ]
     if summary.get("evidence", {}).get("standard_errors"):

@@ -289,9 +289,14 @@ def preparation_lines(summary: dict[str, Any]) -> list[str]:
         lines += ["", "Files written"]
         lines += _table([[f["name"], plural(f["rows"], "row"), f["sha256"][:16] + "..."]
                          for f in summary["files"]], right={1})
-    if summary.get("cautions"):
-        lines += ["", "Before you fit a model"]
-        lines += [f"  - {c}" for c in summary["cautions"]]
+    lines += cautions_lines(summary)
     lines += ["", verdict_line(summary)]
     return lines
+
+
+def cautions_lines(summary: dict[str, Any]) -> list[str]:
+    """The cautions of a preparation (with its numbers), for the log and the summary."""
+    if not summary.get("cautions"):
+        return []
+    return ["", "Before you fit a model", *(f"  - {c}" for c in summary["cautions"])]
 
