@@ -314,8 +314,8 @@ def _prepare_frame(
     before_listwise = flow.alive.copy() if options.shifts else None
     flow.drop(~audited.complete, "listwise-missing",
               f"listwise deletion over {', '.join(options.variables)}", "sample-listwise")
-    lost = (None if before_listwise is None
-            else cautions.periods_lost(flow.index, before_listwise, flow.alive))
+    emptied = (None if before_listwise is None
+               else cautions.periods_lost(flow.index, before_listwise, flow.alive))
     # the post-audit policies, each with the sample it leaves, so that the
     # audit is judged on the rows the files will hold
     stages: list[tuple[str, np.ndarray]] = []
@@ -337,7 +337,7 @@ def _prepare_frame(
         summary["steps"] = [s.to_dict() for s in flow.ledger.story]
         summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
         summary["files"] = []
-        summary["cautions"] = [_gate_caution(report)]
+        summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
         summary["run"] = run_block(progress, record or run_record(options, read_options),
                                    summary, options)
         return Preparation(report, flow.ledger, None, None, summary)
@@ -378,8 +378,8 @@ def _prepare_frame(
     )
 
     # a severity given for a components finding counts like one given for a check
-    findings = report.findings + apply_severities(
-        [Finding(**f) for f in components.findings_], options.severities)
+    judged = apply_severities(_components_findings(components, options), options.severities)
+    findings = report.findings + judged
     if options.validate_outputs and options.contract is not None:
         from panelprep.contracts import check_contract
 
@@ -396,7 +396,8 @@ def _prepare_frame(
                          "y": options.y, "x": options.x}
     summary["steps"] = [s.to_dict() for s in flow.ledger.story]
     summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
-    summary["components"] = components.to_dict()
+    # the components' findings as judged here, the same as in summary.findings
+    summary["components"] = {**components.to_dict(), "findings": [f.to_dict() for f in judged]}
     if options.evidence:
         progress("evidence", "evidence on the entity effect and the error structure",
                  rows=len(y))
@@ -406,16 +407,17 @@ def _prepare_frame(
         lost = _uncomputable_finding(summary["evidence"], options)
         if lost is not None:
             findings += apply_severities([lost], options.severities)
-            summary["findings"] = [f.to_dict() for f in findings]
+            summary["findings"] = ordered([f.to_dict() for f in findings])
             summary["verdict"] = gate(findings, options.fail_on)
+            summary["gate"] = gate_block(summary["findings"], options.fail_on)
     summary["transforms"] = outputs.info
     summary["cautions"] = [
         *_cautions(outputs.info, components, sample_ix, options.names),
         *cautions.time_invariant_cautions(components, y, X, codes, counts, options.x),
         *cautions.lagged_response_cautions(options.shifts, options.y, options.x,
                                            options.transforms, counts),
-        *([] if lost is None else cautions.lag_period_cautions(
-            options.shifts, options.x, options.y, summary["findings"], lost)),
+        *([] if emptied is None else cautions.lag_period_cautions(
+            options.shifts, options.x, options.y, summary["findings"], emptied)),
         *cautions.listwise_cautions(summary["findings"]),
     ]
     if summary.get("evidence", {}).get("standard_errors"):
@@ -424,6 +426,9 @@ def _prepare_frame(
     summary["run"] = run_block(progress, record or run_record(options, read_options), summary,
                                options)
     if summary["verdict"] == "fail":
+        # failed after the gate (components, evidence, the contract on the outputs): the
+        # cautions about the files would be about files never written
+        summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
 
@@ -764,10 +769,21 @@ def _with_columns(keys: pa.Table, names: list[str], block: np.ndarray,
     return pa.Table.from_arrays(arrays, names=[*keys.column_names, *(names[j] for j in chosen)])
 
 
-def _gate_caution(report: AuditReport) -> str:
-    worst = [f.id for f in report.findings if f.resolved_by is None and (
-             f.severity == "error" or (report.fail_on == "warning" and f.severity == "warning"))]
-    return (f"the gate failed ({', '.join(dict.fromkeys(worst))}); no data files were written. "
+def _components_findings(components: VarianceComponents,
+                         options: PrepareOptions) -> list[Finding]:
+    """The components' findings; an unidentified component fails the gate only when the quasi
+    file, the one file whose numbers (theta) come from the components, is asked for."""
+    found = [Finding(**f) for f in components.findings_]
+    if "quasi" not in options.transforms:
+        for finding in found:
+            if finding.id == "components-underidentified":
+                finding.severity = "warning"
+                finding.message += "; no quasi file is asked for, so no file uses the components"
+    return found
+
+
+def _gate_caution(failed_by: list[str]) -> str:
+    return (f"the gate failed ({', '.join(failed_by)}); no data files were written. "
             "Fix the input, or state a cleaning policy, and run again.")
 
 

@@ -213,3 +213,13 @@ def runs_words(runs: dict[str, int], most: int = 3) -> str:
         total = sum(v for _, v in rest)
         parts.append(f"{rest[0][0]:,} or more runs: {total:,} entit{'y' if total == 1 else 'ies'}")
     return ", ".join(parts)
+
+
+def unidentified_note(components: dict[str, Any]) -> str:
+    """The words that say the components are not estimates ('' when they are identified)."""
+    found = next((f for f in components.get("findings") or []
+                  if f.get("id") == "components-underidentified"), None)
+    if found is None:
+        return ""
+    return (f"Not identified on this sample (components-underidentified: {found['message']}): "
+            "these numbers are not estimates to use.")

@@ -29,6 +29,7 @@ from panelprep.report import (
     sample_words,
     spell_words,
     transform_details,
+    unidentified_note,
     unresolved_counts,
 )
 from panelprep.words import plural
@@ -229,6 +230,8 @@ def components_lines(components: dict[str, Any]) -> list[str]:
     lines += _table(level, right={1, 2})
     lines.append(f"  {_pct(components['entity_share'])} of the error variance sits at entity "
                  "level, s2_u / (s2_u + s2_e)")
+    if unidentified_note(components):
+        lines.append(f"  {unidentified_note(components)}")
     if components.get("truncated_negative"):
         lines.append(f"  the estimate of s2_u was negative ({_num(components.get('raw_sigma2_entity'), 6)})"
                      " and was set to 0")
