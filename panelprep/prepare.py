@@ -100,6 +100,7 @@ from panelprep.pipeline import (
     audit,
     judge_final_sample,
     load,
+    sample_definition,
     split_names,
 )
 from panelprep.runlog import RunLog
@@ -429,6 +430,9 @@ def _prepare_frame(
         # failed after the gate (components, evidence, the contract on the outputs): the
         # cautions about the files would be about files never written
         summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
+        samples = summary["samples"]
+        samples["definition"] = sample_definition(samples["panel"], samples["policies"],
+                                                  written=False)
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
 

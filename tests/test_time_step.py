@@ -144,6 +144,7 @@ def test_two_waves_end_to_end_with_a_difference(tmp_path):
     assert result.exit_code == 1 and "components-underidentified" in result.output
     failed = json.loads((tmp_path / "quasi.failed" / "diagnostics.json").read_text())
     assert failed["gate"]["failed_by"] == ["components-underidentified"]
+    assert failed["samples"]["definition"].endswith("the gate failed, so none was written")
     assert failed["cautions"] == [("the gate failed (components-underidentified); no data "
                                    "files were written. Fix the input, or state a cleaning "
                                    "policy, and run again.")]
