@@ -1119,6 +1119,9 @@ def _run_file_text(record: RunFile, target: Path) -> str:
               f"{__version__})."),
               ("The same input gives the same data files: panelprep prepare --config "
               "run.toml --out NEW_FOLDER")]
+    if record.input.path is None:
+        header.append("The data came from a DataFrame in Python, not a file: set input.path "
+                      "to a file that holds it.")
     return again.to_toml(base=target, header=header)
 
 
