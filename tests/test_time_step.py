@@ -7,6 +7,7 @@ cut to waves ten years apart, with the within transform recomputed by pandas gro
 from __future__ import annotations
 
 import json
+import re
 
 import numpy as np
 import pandas as pd
@@ -18,6 +19,7 @@ from panelprep.cli import app
 from panelprep.config import load_run_file
 from panelprep.pipeline import audit
 from panelprep.prepare import PrepareOptions, prepare_frame
+from panelprep.report.text import audit_lines
 from panelprep.timeaxis import build_time_axis
 
 RUNNER = CliRunner()
@@ -75,6 +77,9 @@ def test_stated_step_finer_than_the_data_is_a_finding_and_makes_holes():
     assert "holes" in stated.message
     assert report.panel["periods"] == 3
     assert report.finding("period-holes").count == 6
+    # the summary says what addresses it
+    lines = "\n".join(audit_lines(report.to_dict()))
+    assert re.search(r"period-step-stated +does not fail +--freq int:K \[panel.freq\]", lines)
 
 
 def test_stated_step_coarser_than_the_data_puts_values_off_grid():

@@ -57,6 +57,8 @@ HINTS = {
     "period-holes": "--balance complete-entities or largest-block [clean.balance], or "
                     "--severity period-holes=info [checks.severity] when holes are expected",
     "period-off-grid": "--freq [panel.freq] names the grid; or correct the time values",
+    "period-step-stated": ("--freq int:K [panel.freq] with the data's step (in the message), or "
+                           "no --freq to infer it; keep it when the waves are meant to have holes"),
     "panel-shape": "--window FIRST,LAST [clean.window] for a mistyped date far out; "
                    "--balance [clean.balance] for an unbalanced panel",
     "entity-single-obs": "--singletons drop [clean.singletons]",
