@@ -135,6 +135,10 @@ class Scaling:
         out /= self.second[j]
         return out
 
+    def take(self, columns: list[int] | slice) -> Scaling:
+        """The scaling of some of the columns, in the order given."""
+        return Scaling(self.first[columns], self.mean[columns], self.second[columns])
+
     def rows(self, values: np.ndarray, start: int, stop: int) -> np.ndarray:
         """Rows ``start:stop`` of the scaled block, Fortran-ordered."""
         out = np.divide(values[start:stop], self.first, order="F")
@@ -143,24 +147,41 @@ class Scaling:
         return out
 
 
-def scaling(values: np.ndarray) -> Scaling:
-    """:func:`standardise`'s parameters of an (n, k) block, column by column with one buffer."""
+def scaled_group_means(values: np.ndarray, codes: np.ndarray, counts: np.ndarray
+                       ) -> tuple[Scaling, np.ndarray]:
+    """:func:`standardise`'s parameters of an (n, k) block and the group means of its
+    scaled columns, column by column with one buffer (no scaled copy of the block).
+
+    One sweep per column: the scaling's pass leaves ``x / first - mean`` in
+    the buffer, one division by the (power of two) ``second`` makes it the
+    scaled column :meth:`Scaling.column` gives, and one ``bincount`` sums it
+    per group.  ``codes`` are dense group codes, ``counts`` (G,) the rows of
+    each; a group without rows has mean 0.  The means are the ones the
+    variation table, the variance components and the evidence all read.
+    """
     block = np.asarray(values, dtype=np.float64)
     n, k = block.shape
+    n_groups = len(counts)
     first, mean, second = np.ones(k), np.zeros(k), np.ones(k)
+    means = np.zeros((n_groups, k), order="F")
     if n == 0:
-        return Scaling(first, mean, second)
+        return Scaling(first, mean, second), means
     largest = np.abs(block).max(axis=0)
     _, exponent = np.frexp(np.where(largest > 0, largest, 1.0))
     first = np.ldexp(1.0, exponent - 1)
+    sizes = np.asarray(counts, dtype=np.float64)
+    inverse = np.zeros(n_groups)
+    np.divide(1.0, sizes, out=inverse, where=sizes > 0)
     buffer = np.empty(n)
-    spread = np.zeros(k)
     for j in range(k):
         np.divide(block[:, j], first[j], out=buffer)
         mean[j] = buffer.mean()
         buffer -= mean[j]
-        spread[j] = np.sqrt(np.dot(buffer, buffer) / n)
-    return Scaling(first, mean, _capped_second(spread, exponent))
+        spread = np.sqrt(np.dot(buffer, buffer) / n)
+        second[j] = _capped_second(np.array([spread]), exponent[j:j + 1])[0]
+        buffer /= second[j]
+        means[:, j] = np.bincount(codes, weights=buffer, minlength=n_groups) * inverse
+    return Scaling(first, mean, second), means
 
 
 def _capped_second(spread: np.ndarray, exponent: np.ndarray) -> np.ndarray:

@@ -293,7 +293,6 @@ def prepare_command(
     session = _Session(progress, quiet, log_json, as_json)
     _check_data(data, session)
     from panelprep.config import RunFile, load_run_file
-    from panelprep.prepare import run_from_file
 
     overrides = {
         "input.path": data, "input.format": input_format, "input.delimiter": delimiter,
@@ -310,6 +309,10 @@ def prepare_command(
     try:
         overrides.update(_names_map(names))
         run = load_run_file(config, overrides) if config else RunFile().merged(overrides)
+        # the run file is checked before the numeric stack loads: a bad value is answered
+        # at once
+        from panelprep.prepare import run_from_file
+
         result = run_from_file(run, progress=session.log)
     except InputError as err:
         session.fail(str(err))
@@ -383,7 +386,7 @@ def draft_command(
     force: Annotated[bool, typer.Option("--force", help="Overwrite an existing run file.")] = False,
 ) -> None:
     """Write a commented starter run file for DATA, with guessed keys marked."""
-    from panelprep.config import starter_run_file
+    from panelprep.draft import starter_run_file
     from panelprep.io import check_file_destination, resolved, write_file
 
     try:

@@ -30,6 +30,7 @@ from panelprep._scale import standardise
 from panelprep._schema import SCHEMA_VERSION
 from panelprep._version import __version__
 from panelprep.checks import AuditContext, Thresholds
+from panelprep.choices import METHODS, OUTPUT_FORMATS, PARQUET_COMPRESSIONS, TRANSFORMS
 from panelprep.clean import (
     Policies,
     Removal,
@@ -40,7 +41,7 @@ from panelprep.clean import (
     singleton_removal,
     window_removal,
 )
-from panelprep.components import METHODS, VarianceComponents
+from panelprep.components import VarianceComponents
 from panelprep.config import (
     ChecksSection,
     CleanSection,
@@ -70,8 +71,6 @@ from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
     DIAGNOSTIC_FILES,
-    OUTPUT_FORMATS,
-    PARQUET_COMPRESSIONS,
     OutputFolder,
     ReadOptions,
     check_output_folder,
@@ -104,7 +103,6 @@ from panelprep.pipeline import (
     split_names,
 )
 from panelprep.runlog import RunLog
-from panelprep.transforms import TRANSFORMS
 
 DEFAULT_TRANSFORMS = ("within", "between", "quasi")
 
@@ -367,7 +365,7 @@ def _prepare_frame(
     progress("components", f"variance components ({options.method})", rows=len(y))
     # standardised and summed per entity once: the components, the evidence and the
     # files' column decisions all read these
-    standard = standard_sample(y, X, codes, counts)
+    standard = standard_sample(y, X, codes, counts, shared=ctx.sample_means)
     components = VarianceComponents(method=options.method).fit(
         y, X, codes, counts, names=options.x, sample=standard)
     keys = flow.frame[[*options.entity, options.time]].iloc[np.flatnonzero(sample)]
@@ -707,6 +705,8 @@ class _Flow:
     index: PanelIndex | None = None
     origin: np.ndarray = field(init=False)
     alive: np.ndarray | None = None
+    # the mask the last recorded step left (its entity count is the next step's before)
+    _last_after: np.ndarray | None = field(default=None, init=False, repr=False)
 
     def __post_init__(self) -> None:
         self.origin = np.arange(len(self.frame))
@@ -715,6 +715,7 @@ class _Flow:
              note: str) -> None:
         """A step that changes values but removes no row."""
         rows = len(self.frame)
+        self._last_after = None
         self.ledger.story.append(StepRecord(step_id, step, rows, rows, entities_before,
                                             entities_after, note))
 
@@ -751,13 +752,23 @@ class _Flow:
         return int((group_counts(codes[codes >= 0], self.index.n_entities) > 0).sum())
 
     def _story(self, step_id: str, step: str, before: np.ndarray, after: np.ndarray) -> None:
+        rows_before, rows_after = int(before.sum()), int(after.sum())
+        # a step's entities before are the previous step's after; a step that removes no
+        # row keeps them
+        last = self.ledger.story[-1] if self.ledger.story else None
+        entities_before = (last.entities_after if last is not None
+                           and last.rows_after == rows_before and self._last_after is before
+                           else self._entities(before))
+        entities_after = (entities_before if rows_after == rows_before
+                          else self._entities(after))
+        self._last_after = after
         self.ledger.story.append(StepRecord(
             id=step_id,
             step=step,
-            rows_before=int(before.sum()),
-            rows_after=int(after.sum()),
-            entities_before=self._entities(before),
-            entities_after=self._entities(after),
+            rows_before=rows_before,
+            rows_after=rows_after,
+            entities_before=entities_before,
+            entities_after=entities_after,
         ))
 
 

@@ -25,11 +25,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from panelprep.choices import parse_freq
 from panelprep.errors import TimeParseError
-
-FREQUENCIES = ("year", "quarter", "month", "week", "day", "int")
-FREQ_CHOICES = "year, quarter, month, week, day, int or int:K (whole-number periods K apart)"
-_STATED_STEP = re.compile(r"^\s*int\s*:\s*(\d{1,18})\s*$")
 
 _PATTERNS: dict[str, re.Pattern[str]] = {
     # whole numbers, also as written by tools that store years as floats ("1935.0")
@@ -128,21 +125,6 @@ class TimeAxis:
             iso = pd.DatetimeIndex(dates).isocalendar()
             return [f"{y}-W{w:02d}" for y, w in zip(iso["year"], iso["week"])]
         return [str(d) for d in dates]
-
-
-def parse_freq(freq: str | None) -> tuple[str | None, int | None]:
-    """``"int:10"`` -> ``("int", 10)``, ``"month"`` -> ``("month", None)``, None -> (None, None).
-
-    Raises ``TimeParseError`` for anything else (``int:0`` included).
-    """
-    if freq is None:
-        return None, None
-    stated = _STATED_STEP.fullmatch(str(freq))
-    if stated is not None and int(stated.group(1)) >= 1:
-        return "int", int(stated.group(1))
-    if freq in FREQUENCIES:
-        return freq, None
-    raise TimeParseError(f"--freq {freq!r} is not one of {FREQ_CHOICES}, K at least 1")
 
 
 def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "time") -> TimeAxis:

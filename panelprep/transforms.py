@@ -27,8 +27,6 @@ import scipy.linalg
 from panelprep._groups import compact_codes, group_counts, group_sums
 from panelprep._scale import standardise
 
-TRANSFORMS = ("within", "between", "quasi", "twoway", "diff")
-
 # Above this many levels in the smaller of the two groupings the (levels x
 # levels) normal equations are solved by preconditioned conjugate gradients
 # instead of a dense Cholesky factorisation.

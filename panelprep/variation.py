@@ -5,12 +5,13 @@ from __future__ import annotations
 import numpy as np
 
 from panelprep._groups import compact_codes, group_counts, group_sums
-from panelprep._scale import standardise
+from panelprep._scale import Scaling, scaled_group_means
 from panelprep.index import PanelIndex
 
 
 def variation_table(
-    index: PanelIndex, values: np.ndarray, names: list[str], constant_rtol: float = 1e-9
+    index: PanelIndex, values: np.ndarray, names: list[str], constant_rtol: float = 1e-9,
+    shared: tuple[Scaling, np.ndarray] | None = None,
 ) -> dict[str, dict]:
     """Spread of each variable on a sample whose ``index`` has dense codes.
 
@@ -28,7 +29,8 @@ def variation_table(
       ``period_invariant``: no period with two or more rows varies.
 
     Every sum of squares is taken on the columns centred on their mean and
-    scaled by a power of two (:func:`panelprep._scale.standardise`), so
+    scaled by a power of two (:func:`panelprep._scale.scaled_group_means`,
+    whose result may be passed as ``shared`` when the caller has it), so
     shifting a variable by a constant changes only its mean, min and max,
     and scaling it scales the SDs, at any magnitude float64 holds.
 
@@ -43,7 +45,8 @@ def variation_table(
     if n == 0:
         return {name: _empty_row() for name in names}
     counts = group_counts(codes, n_entities)
-    inv_counts = 1.0 / np.maximum(counts, 1)
+    scaled, entity_means = shared if shared is not None else scaled_group_means(
+        values, codes, counts)
     period, n_periods = compact_codes(index.period_codes, index.n_periods)
     period_counts = group_counts(period, n_periods)
     inv_period = 1.0 / np.maximum(period_counts, 1)
@@ -55,10 +58,9 @@ def variation_table(
     out: dict[str, dict] = {}
     for j, name in enumerate(names):
         raw = values[:, j]
-        standard = standardise(raw)
-        col[:] = standard.z[:, 0]
-        unit, centre = float(standard.scale[0]), float(standard.centre[0])
-        means = group_sums(codes, col, n_entities) * inv_counts
+        scaled.column(values, j, out=col)
+        unit, centre = float(scaled.scale[j]), float(scaled.centre[j])
+        means = entity_means[:, j]
         np.subtract(col, means.take(codes), out=squares)
         np.square(squares, out=squares)
         entity_ss = group_sums(codes, squares, n_entities)

@@ -15,7 +15,8 @@ import pandas as pd
 import pytest
 from statsmodels.datasets import grunfeld
 
-from panelprep.config import load_run_file, starter_run_file
+from panelprep.config import load_run_file
+from panelprep.draft import starter_run_file
 
 
 def _guess(path: Path, tmp_path: Path) -> tuple[list[str], str, str]:

@@ -24,9 +24,10 @@ from functools import cached_property
 import numpy as np
 import pandas as pd
 
-from panelprep._groups import group_counts, segment_bounds, select_rows
+from panelprep._groups import group_counts, occurring, segment_bounds, select_rows
+from panelprep._scale import Scaling, scaled_group_means
 from panelprep.index import PanelIndex
-from panelprep.limits import GRID_PERIODS
+from panelprep.limits import Thresholds
 from panelprep.variation import variation_table, with_within_measures
 
 # every whole number below 2^53 in magnitude is exact in float64; from there on some are not
@@ -34,25 +35,6 @@ _EXACT_INTEGER = 2.0**53
 _NUMBER = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
 # NaN as text, as Python, numpy and pandas write it (nan, NaN, -nan)
 _NAN_TEXT = re.compile(r"^\s*[-+]?[nN][aA][nN]\s*$")
-
-
-@dataclass(frozen=True)
-class Thresholds:
-    """Tunable limits of the checks.
-
-    low_within_ratio : a variable is reported as thin within entities when
-        its within SD ratio (within SD / overall SD) is below this (default 0.05).
-    constant_rtol : a group counts as constant in a variable when the root
-        mean square deviation from its mean is at most this times the
-        variable's largest absolute deviation from its overall mean
-        (default 1e-9).
-    max_grid_periods : a grid of more periods is reported as most likely
-        mistyped (default ``limits.GRID_PERIODS``, 100,000).
-    """
-
-    low_within_ratio: float = 0.05
-    constant_rtol: float = 1e-9
-    max_grid_periods: int = GRID_PERIODS
 
 
 @dataclass(frozen=True)
@@ -256,9 +238,7 @@ class AuditContext:
         describes the rows read).
         """
         period = self.index.period_codes[self.base]
-        present, compact = np.unique(period, return_inverse=True)
-        compact = compact.reshape(-1)
-        rows = np.bincount(compact, minlength=len(present))
+        present, compact, rows = occurring(period, self.index.n_periods)
         missing = np.zeros((len(present), len(self.variables)), dtype=np.int64)
         block = self.values
         for j in range(len(self.variables)):
@@ -273,10 +253,21 @@ class AuditContext:
         return group_counts(entity, self.sample_index.n_entities)
 
     @cached_property
+    def sample_means(self) -> tuple[Scaling, np.ndarray]:
+        """Scaling and entity means of the sample block (``_scale.scaled_group_means``).
+
+        Read by the variation table here and, for the final sample, by the
+        variance components and the evidence (``_moments.standard_sample``).
+        """
+        return scaled_group_means(self.sample_values, self.sample_index.entity_codes,
+                                  self.sample_counts)
+
+    @cached_property
     def variation(self) -> dict[str, dict]:
         """The variation table of the estimation sample (``variation_table``, ``within_measures``)."""
         return with_within_measures(variation_table(
-            self.sample_index, self.sample_values, self.variables, self.thresholds.constant_rtol
+            self.sample_index, self.sample_values, self.variables, self.thresholds.constant_rtol,
+            shared=self.sample_means,
         ))
 
     def row_key(self, rows: np.ndarray) -> list[dict[str, object]]:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from panelprep._groups import occurring
 from panelprep.checks.base import Check, check
 from panelprep.checks.context import AuditContext
 from panelprep.findings import MAX_EXAMPLES
@@ -70,8 +71,8 @@ def coverage(ctx: AuditContext) -> dict:
     runs of consecutive periods: per band the fewest and most entities
     present in one of its periods, how many entities enter (first period in
     the band) and how many are last seen there.  ``runs`` counts entities by
-    their number of observed runs (holes + 1).  One ``np.unique`` on
-    int64 group codes and a few bincounts: no loop over entities or periods.
+    their number of observed runs (holes + 1).  One lexsort of the
+    spells and a few bincounts: no loop over entities or periods.
     """
     ix = ctx.sample_index
     n_entities, n_periods = int(ix.n_entities), int(ix.n_periods)
@@ -109,8 +110,8 @@ def coverage(ctx: AuditContext) -> dict:
     last = np.minimum(first + width - 1, n_periods - 1)
     n_bands = len(first)
     # per period that occurs (never per period of the grid): entities present, by band
-    occurring, present = np.unique(period, return_counts=True)
-    band = occurring // width
+    occurs, _, present = occurring(period, n_periods)
+    band = occurs // width
     most = np.zeros(n_bands, dtype=np.int64)
     np.maximum.at(most, band, present)
     fewest = np.full(n_bands, np.iinfo(np.int64).max)
