@@ -150,6 +150,8 @@ def test_two_waves_end_to_end_with_a_difference(tmp_path):
     failed = json.loads((tmp_path / "quasi.failed" / "diagnostics.json").read_text())
     assert failed["gate"]["failed_by"] == ["components-underidentified"]
     assert failed["samples"]["definition"].endswith("the gate failed, so none was written")
+    log = (tmp_path / "quasi.failed" / "diagnostics.txt").read_text()
+    assert "Files built (none written: the gate failed)" in log
     assert failed["cautions"] == [("the gate failed (components-underidentified); no data "
                                    "files were written. Fix the input, or state a cleaning "
                                    "policy, and run again.")]

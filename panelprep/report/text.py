@@ -279,7 +279,8 @@ def preparation_lines(summary: dict[str, Any]) -> list[str]:
     if summary.get("components"):
         lines += [""] + components_lines(summary["components"])
     if summary.get("transforms"):
-        lines += ["", "Files built"]
+        lines += ["", "Files built" + (" (none written: the gate failed)"
+                                       if summary.get("verdict") == "fail" else "")]
         for name, info in summary["transforms"].items():
             extra = ", ".join(transform_details(info))
             lines.append(f"  {name}: {plural(info['rows'], 'row')}" + (f" ({extra})" if extra else ""))
