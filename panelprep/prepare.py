@@ -786,10 +786,11 @@ def _with_columns(keys: pa.Table, names: list[str], block: np.ndarray,
 
 def _components_findings(components: VarianceComponents,
                          options: PrepareOptions) -> list[Finding]:
-    """The components' findings; an unidentified component fails the gate only when the quasi
-    file, the one file whose numbers (theta) come from the components, is asked for."""
+    """The components' findings; an unidentified component fails the gate when the components
+    are used: by the quasi file (theta), or as the whole output (no file asked for, as the
+    ``components`` command runs)."""
     found = [Finding(**f) for f in components.findings_]
-    if "quasi" not in options.transforms:
+    if options.transforms and "quasi" not in options.transforms:
         for finding in found:
             if finding.id == "components-underidentified":
                 finding.severity = "warning"
