@@ -166,7 +166,9 @@ def scaled_group_means(values: np.ndarray, codes: np.ndarray, counts: np.ndarray
     means = np.zeros((n_groups, k), order="F")
     if n == 0:
         return Scaling(first, mean, second), means
-    largest = np.abs(block).max(axis=0)
+    # |x| at its largest from the extremes: no block-sized array of magnitudes
+    largest = np.array([max(-float(block[:, j].min()), float(block[:, j].max()))
+                        for j in range(k)])
     _, exponent = np.frexp(np.where(largest > 0, largest, 1.0))
     first = np.ldexp(1.0, exponent - 1)
     sizes = np.asarray(counts, dtype=np.float64)

@@ -7,7 +7,7 @@ text and HTML.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
@@ -173,6 +173,7 @@ def audit(
     progress: Progress | None = None,
     prior_findings: Sequence[Finding] = (),
     origin: np.ndarray | None = None,
+    release_columns: Callable[[list[str]], None] | None = None,
 ) -> AuditReport:
     """Run every structural check on a panel held in a DataFrame.
 
@@ -192,6 +193,9 @@ def audit(
         gate judges together with the checks'.
     origin : 0-based input position of each row of ``frame``, when earlier
         steps removed rows; examples then name the rows of the input file.
+    release_columns : for a frame read for this run only: called with the
+        variables once their float block is taken, to drop the frame's copies
+        (``AuditContext.release_columns``).
 
     Returns
     -------
@@ -228,6 +232,7 @@ def audit(
             decimal_comma=decimal_comma,
             missing_tokens=tuple(missing_tokens),
             origin=origin,
+            release_columns=release_columns,
         )
         if chosen is None:
             skipped = _skipped_columns(frame, [*entity, time], names)

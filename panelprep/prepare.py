@@ -11,9 +11,11 @@ from __future__ import annotations
 import json
 import os
 import threading
+import time
 from collections.abc import Iterator, Sequence
 from concurrent.futures import Future
 from dataclasses import asdict, dataclass, field, replace
+from datetime import UTC, datetime
 from functools import cached_property
 from pathlib import Path
 from typing import Any
@@ -45,6 +47,7 @@ from panelprep.components import VarianceComponents
 from panelprep.config import (
     ChecksSection,
     CleanSection,
+    CompareSection,
     ContractSection,
     DeriveSection,
     InputSection,
@@ -102,7 +105,7 @@ from panelprep.pipeline import (
     sample_definition,
     split_names,
 )
-from panelprep.runlog import RunLog
+from panelprep.runlog import RunLog, utc_stamp
 
 DEFAULT_TRANSFORMS = ("within", "between", "quasi")
 
@@ -130,6 +133,8 @@ class PrepareOptions:
     validate_outputs: bool = False
     evidence: bool = True
     names: AddedNames = field(default_factory=AddedNames)
+    # the previous vintage to compare the input with (compare.PreviousVintage), or None
+    previous: Any = None
 
     def validate(self) -> None:
         self.policies.validate()
@@ -186,6 +191,10 @@ class Preparation:
     summary: dict[str, Any]
     sample_index: PanelIndex | None = None
     written_to: Path | None = None
+    # the evidence while it is computed beside the writes (run_preparation)
+    evidence_job: _EvidenceJob | None = None
+    # the input against its previous vintage (compare.Comparison), when one was given
+    comparison: Any = None
 
     @cached_property
     def tables(self) -> dict[str, pd.DataFrame]:
@@ -212,6 +221,8 @@ def prepare_frame(
     check_names: bool = True,
     record: RunFile | None = None,
     owns_frame: bool = False,
+    defer_evidence: bool = False,
+    comparison: Any = None,
 ) -> Preparation:
     """Clean, audit and transform a panel held in memory; nothing is written.
 
@@ -224,8 +235,13 @@ def prepare_frame(
     ``owns_frame`` says the frame was read for this run
     (``run_preparation``): its variable columns are then dropped, in place,
     once the sample block is taken.  A caller's frame is never changed.
-    Warnings a library raises on the way are recorded in a
-    ``library-warnings`` finding, never printed.
+    ``defer_evidence`` computes the evidence in a thread of its own
+    (``Preparation.evidence_job``), for ``run_preparation`` to settle after
+    writing the data files.  ``comparison`` (a ``compare.Comparison`` of
+    this frame against its previous vintage) adds its findings to the gate
+    and its report to the summary (``comparison``).  Warnings a library
+    raises on the way are recorded in a ``library-warnings`` finding, never
+    printed.
 
     Examples
     --------
@@ -241,7 +257,7 @@ def prepare_frame(
     """
     with recorded_warnings() as caught:
         prep = _prepare_frame(frame, options, input_info, read_options, progress, check_names,
-                              owns_frame, record)
+                              owns_frame, record, defer_evidence, comparison)
     said = library_warnings_finding(caught)
     if said is not None:
         prep.audit.findings.append(said)
@@ -252,7 +268,7 @@ def prepare_frame(
 def _prepare_frame(
     frame: pd.DataFrame, options: PrepareOptions, input_info: dict[str, Any] | None,
     read_options: ReadOptions, progress: Progress | None, check_names: bool, owns_frame: bool,
-    record: RunFile | None,
+    record: RunFile | None, defer_evidence: bool = False, comparison: Any = None,
 ) -> Preparation:
     options.validate()
     progress = progress if progress is not None else RunLog()
@@ -266,6 +282,8 @@ def _prepare_frame(
 
         progress("contract", "checking the schema contract", rows=len(frame))
         contract_findings = check_contract(frame, options.contract, where="input")
+    if comparison is not None:
+        contract_findings += comparison.findings
 
     if policies.normalise_ids != "none":
         progress("normalise-ids", f"normalise entity ids ({policies.normalise_ids})",
@@ -305,6 +323,10 @@ def _prepare_frame(
         missing_tokens=read_options.missing_tokens, input_info=input_info,
         index=flow.index, progress=progress, prior_findings=contract_findings,
         origin=flow.origin,
+        # a frame read for this run keeps its variables only in the audit's float block
+        release_columns=((lambda names: _free_variable_columns([frame, flow.frame], names,
+                                                               options))
+                         if owns_frame else None),
     )
     audited = report.context
     progress("sample", "building the estimation sample", rows=len(flow.frame))
@@ -332,6 +354,8 @@ def _prepare_frame(
     del audited
     ctx = report.context
     summary = report.to_dict()
+    if comparison is not None:
+        summary["comparison"] = comparison.report()
     if report.verdict == "fail":
         summary["steps"] = [s.to_dict() for s in flow.ledger.story]
         summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
@@ -339,7 +363,7 @@ def _prepare_frame(
         summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
         summary["run"] = run_block(progress, record or run_record(options, read_options),
                                    summary, options)
-        return Preparation(report, flow.ledger, None, None, summary)
+        return Preparation(report, flow.ledger, None, None, summary, comparison=comparison)
 
     if len(ctx.conflicting_cells):
         raise InputError(
@@ -356,10 +380,6 @@ def _prepare_frame(
     counts = group_counts(codes, sample_ix.n_entities)
     values = ctx.sample_values
     ctx.release_values()
-    if owns_frame:
-        # a frame read for this run (never a caller's): from here on the flow reads its
-        # variables only from the sample block, so their columns are freed
-        _free_variable_columns([frame, flow.frame], ctx.variables, options)
     y, X = values[:, 0], values[:, 1:]
 
     progress("components", f"variance components ({options.method})", rows=len(y))
@@ -397,18 +417,6 @@ def _prepare_frame(
     summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
     # the components' findings as judged here, the same as in summary.findings
     summary["components"] = {**components.to_dict(), "findings": [f.to_dict() for f in judged]}
-    if options.evidence:
-        progress("evidence", "evidence on the entity effect and the error structure",
-                 rows=len(y))
-        summary["evidence"] = collect_evidence(y, X, codes, counts, components, options.x,
-                                               sample=standard,
-                                               period_codes=sample_ix.period_codes)
-        lost = _uncomputable_finding(summary["evidence"], options)
-        if lost is not None:
-            findings += apply_severities([lost], options.severities)
-            summary["findings"] = ordered([f.to_dict() for f in findings])
-            summary["verdict"] = gate(findings, options.fail_on)
-            summary["gate"] = gate_block(summary["findings"], options.fail_on)
     summary["transforms"] = outputs.info
     summary["cautions"] = [
         *_cautions(outputs.info, components, sample_ix, options.names),
@@ -419,20 +427,101 @@ def _prepare_frame(
             options.shifts, options.x, options.y, summary["findings"], emptied)),
         *cautions.listwise_cautions(summary["findings"]),
     ]
-    if summary.get("evidence", {}).get("standard_errors"):
-        # what the error-structure tests of this run say, beside the general advice
-        summary["cautions"].append(summary["evidence"]["standard_errors"])
+    prep = Preparation(report, flow.ledger, components, outputs, summary, sample_ix,
+                       comparison=comparison)
+    if options.evidence:
+        evidence = _EvidenceJob(
+            lambda: collect_evidence(y, X, codes, counts, components, options.x,
+                                     sample=standard, period_codes=sample_ix.period_codes),
+            findings, options, rows=len(y))
+        if defer_evidence and summary["verdict"] != "fail":
+            # computed in a thread of its own while the data files are written
+            # (run_preparation settles it before the diagnostics)
+            prep.evidence_job = evidence.start()
+        else:
+            progress("evidence", _EvidenceJob.WHAT, rows=len(y))
+            evidence.settle(prep, evidence.compute())
     summary["run"] = run_block(progress, record or run_record(options, read_options), summary,
                                options)
     if summary["verdict"] == "fail":
-        # failed after the gate (components, evidence, the contract on the outputs): the
-        # cautions about the files would be about files never written
-        summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
-        samples = summary["samples"]
-        samples["definition"] = sample_definition(samples["panel"], samples["policies"],
-                                                  written=False)
-        outputs = None
-    return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
+        _failed_after_gate(summary)
+        prep.outputs = None
+    return prep
+
+
+def _failed_after_gate(summary: dict[str, Any]) -> None:
+    """A run that failed after the gate (components, evidence, the contract on the outputs):
+    its cautions about the files would be about files never written, and its sample's
+    files are not written."""
+    summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
+    samples = summary["samples"]
+    samples["definition"] = sample_definition(samples["panel"], samples["policies"],
+                                              written=False)
+
+
+class _EvidenceJob:
+    """The evidence of a preparation: computed in line, or in a thread while files are written.
+
+    ``settle`` adds it to the preparation as the in-line computation does:
+    the ``evidence`` block, a warning for each test float64 could not carry
+    out (which may fail the gate), and the caution on standard errors the
+    tests support.  The tests only read the sample's arrays, which nothing
+    writes to, so they can run beside the writing of the data files; on two
+    cores that hides most of their time.
+    """
+
+    WHAT = "evidence on the entity effect and the error structure"
+
+    def __init__(self, compute: Any, findings: list[Finding], options: PrepareOptions,
+                 rows: int) -> None:
+        self.compute = compute
+        self.findings = findings
+        self.options = options
+        self.rows = rows
+        self.future: Future | None = None
+        self.started_at = ""
+        self.began = 0.0
+        self.seconds = 0.0
+
+    def start(self) -> _EvidenceJob:
+        self.future = Future()
+        self.started_at = utc_stamp(datetime.now(UTC))
+        self.began = began = time.perf_counter()
+
+        def run() -> None:
+            try:
+                self.future.set_result(self.compute())
+            except BaseException as err:  # noqa: BLE001 (raised again by result())
+                self.future.set_exception(err)
+            finally:
+                self.seconds = time.perf_counter() - began
+
+        threading.Thread(target=run, daemon=True).start()
+        return self
+
+    def wait(self, prep: Preparation, progress: Progress) -> None:
+        """Join the thread, record its step (``run.steps``) and settle the evidence."""
+        evidence = self.future.result()
+        record = getattr(progress, "concurrent", None)
+        if record is not None:
+            record("evidence", self.WHAT, self.rows, self.started_at, self.began, self.seconds)
+        self.settle(prep, evidence)
+
+    def settle(self, prep: Preparation, evidence: dict[str, Any]) -> None:
+        summary, options = prep.summary, self.options
+        summary["evidence"] = evidence
+        lost = _uncomputable_finding(evidence, options)
+        if lost is not None:
+            for finding in apply_severities([lost], options.severities):
+                self.findings.append(finding)
+                summary["findings"].append(finding.to_dict())
+            summary["verdict"] = gate(self.findings, options.fail_on)
+            summary["gate"] = gate_block(summary["findings"], options.fail_on)
+        if evidence.get("standard_errors"):
+            # what the error-structure tests of this run say, beside the general advice
+            summary["cautions"].append(evidence["standard_errors"])
+        if summary["verdict"] == "fail":
+            prep.outputs = None
 
 
 def _uncomputable_finding(evidence: dict[str, Any], options: PrepareOptions) -> Finding | None:
@@ -934,7 +1023,9 @@ def run_preparation(
     # before the folder and before any data is read: the header names suffice
     options.check_names(list(data.columns) if given else column_names(Path(data), read_options),
                         "the data" if given else str(data))
-    inputs = [*([] if given else [Path(data)]), *map(Path, keep)]
+    previous = options.previous
+    inputs = [*([] if given else [Path(data)]), *map(Path, keep),
+              *([Path(previous.path)] if previous else [])]
     out = Path(out)
     folder = OutputFolder(out, inputs, force=force)
     failed = failed_folder(out) if failed_out is None else Path(failed_out)
@@ -948,20 +1039,60 @@ def run_preparation(
             progress("read", f"reading {data}")
             frame, info = load(data, options.entity, options.time, options.columns_to_read,
                                read_options)
+        comparison = None if previous is None else _compare_previous(
+            frame, info, options, read_options, progress)
         prep = prepare_frame(frame, options, info, read_options, progress, check_names=not given,
-                             record=record, owns_frame=not given)
+                             record=record, owns_frame=not given, defer_evidence=True,
+                             comparison=comparison)
         del frame
+        files: list[dict[str, Any]] = []
+        if prep.verdict != "fail":
+            # the data files are written while the evidence is computed; a test float64
+            # cannot carry out may still fail the gate, and then they are abandoned
+            with recorded_warnings() as caught:
+                files = write_data_files(prep, folder, options, progress, record)
+                if prep.evidence_job is not None:
+                    prep.evidence_job.wait(prep, progress)
+            said = library_warnings_finding(caught)
+            if said is not None:
+                prep.audit.findings.append(said)
+                prep.summary["findings"].append(said.to_dict())
         if prep.verdict == "fail":
             # a failed gate never replaces or empties the output folder
+            _failed_after_gate(prep.summary)  # again, for evidence computed beside the writes
             folder.abandon()
             folder = _failed_output(failed, inputs, out, failed_out is None)
-        write_outputs(prep, folder, options, progress, record)
+            files = []
+        write_diagnostics(prep, folder, options, progress, record, files)
         folder.commit()
     except BaseException:
         folder.abandon()
         raise
     prep.written_to = folder.target
     return prep
+
+
+def _compare_previous(frame: pd.DataFrame, info: dict[str, Any], options: PrepareOptions,
+                      read_options: ReadOptions, progress: Progress):
+    """The input against the previous vintage ``options.previous`` (read with the same options)."""
+    from panelprep.compare import compare_frames
+
+    previous = options.previous
+    wanted = previous.vars or [v for v in options.columns_to_read if v in frame.columns]
+    absent = [v for v in wanted if v not in frame.columns]
+    if absent:
+        raise InputError(f"compare.vars {absent} are not read from {info['path']}; compare "
+                         "only variables the run reads (model.y, model.x, lag sources)")
+    held = column_names(Path(previous.path), read_options)
+    progress("read.previous", f"reading the previous vintage {previous.path}")
+    old, old_info = load(previous.path, options.entity, options.time,
+                         [v for v in wanted if v in held], read_options)
+    # severities come from the run's checks.severity, applied with the audit's
+    compare_options = replace(previous.options, fail_on=options.fail_on, severities={})
+    return compare_frames(old, frame, options.entity, options.time, wanted, freq=options.freq,
+                          options=compare_options, old_info=old_info, new_info=info,
+                          decimal_comma=read_options.decimal_comma,
+                          missing_tokens=read_options.missing_tokens, progress=progress)
 
 
 def _name_fits(path: Path) -> bool:
@@ -980,17 +1111,14 @@ def _failed_output(failed: Path, inputs: list[Path], out: Path, default: bool) -
     return OutputFolder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
 
 
-def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptions,
-                  progress: Progress | None = None, record: RunFile | None = None) -> None:
-    """Data files, run.toml, then diagnostics.json, diagnostics.txt and report.html,
-    into the temporary folder (a failed gate: the diagnostics only).
+def write_data_files(prep: Preparation, folder: OutputFolder, options: PrepareOptions,
+                     progress: Progress | None = None,
+                     record: RunFile | None = None) -> list[dict[str, Any]]:
+    """The data files and run.toml into the temporary folder; their entries for ``files``.
 
     ``record`` is the run as a run file (``run_record``); without it one is
-    made from ``options``.
+    made from ``options``.  Nothing is written when the gate failed.
     """
-    from panelprep.report.html import render_html
-    from panelprep.report.text import preparation_lines
-
     progress = progress if progress is not None else RunLog()
     record = record if record is not None else run_record(options)
     suffix = "parquet" if options.output_format == "parquet" else "csv"
@@ -1026,13 +1154,31 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
         files.append({"name": path.name, "rows": rows,
                       "sha256": _hash_in_background(path), "columns": columns})
         del table
+    if prep.comparison is not None and prep.outputs is not None:
+        files.append(_write_restated(prep, folder, base_meta, options, progress))
     for entry in files:
         entry["sha256"] = entry["sha256"].result()
     if prep.outputs is not None:
         # the run again: this file on the same input gives the same data files
         progress("write.run-file", "writing run.toml")
         _write_text(folder.path(RUN_FILE), _run_file_text(record, folder.target))
-    prep.summary["files"] = files
+    return files
+
+
+def write_diagnostics(prep: Preparation, folder: OutputFolder, options: PrepareOptions,
+                      progress: Progress | None = None, record: RunFile | None = None,
+                      files: list[dict[str, Any]] | None = None) -> None:
+    """diagnostics.json, diagnostics.txt and report.html into the temporary folder.
+
+    ``files`` are the entries of the data files written (none when the gate
+    failed).
+    """
+    from panelprep.report.html import render_html
+    from panelprep.report.text import preparation_lines
+
+    progress = progress if progress is not None else RunLog()
+    record = record if record is not None else run_record(options)
+    prep.summary["files"] = files or []
     prep.summary["run"] = run_block(progress, record, prep.summary, options)
     text = json.dumps(prep.summary, indent=2, ensure_ascii=False, allow_nan=False)
     _write_text(folder.path("diagnostics.json"), text + "\n")
@@ -1041,19 +1187,39 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
     _write_text(folder.path("report.html"), render_html(prep.summary, pictures_of(prep)))
 
 
+def _write_restated(prep: Preparation, folder: OutputFolder, base_meta: dict[str, Any],
+                    options: PrepareOptions, progress: Progress) -> dict[str, Any]:
+    """restated.parquet: every cell of the input that differs from the previous vintage."""
+    path = folder.path("restated.parquet")
+    progress("write.restated", f"writing {path.name}", rows=prep.comparison.n_changed)
+    table = prep.comparison.restated_table()
+    provenance = prep.comparison.restated_provenance(
+        **{k: v for k, v in base_meta.items() if k not in ("schema_version", "version")})
+    meta = {"panelprep": json.dumps(provenance, sort_keys=True, allow_nan=False)}
+    rows = write_table(table, path, "parquet", meta, compression=options.compression,
+                       dictionary=[*options.entity, options.time])
+    return {"name": path.name, "rows": rows, "sha256": _hash_in_background(path),
+            "columns": provenance["columns"]}
+
+
 def _free_variable_columns(frames: list[pd.DataFrame], variables: list[str],
                            options: PrepareOptions) -> None:
-    """Drop the variable columns from frames the run owns, in place (about n x k x 8 bytes)."""
+    """Drop the variable columns from frames the run owns, in place (about n x k x 8 bytes).
+
+    A frame converted from Arrow holds its columns in Arrow's memory pool,
+    which keeps freed memory until asked to return it.
+    """
     keys = {*options.entity, options.time}
     for frame in {id(f): f for f in frames}.values():
         for name in [v for v in variables if v in frame.columns and v not in keys]:
             del frame[name]
+    release_arrow_memory()
 
 
 RUN_FILE = "run.toml"
 # run-file keys that say where things are, not what the data files hold
 _LOCATION_KEYS = ("input.path", "contract.schema", "output.dir", "output.failed_dir",
-                  "output.force")
+                  "output.force", "compare.previous")
 
 
 def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ,
@@ -1071,7 +1237,7 @@ def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ
 
     shifts = {kind: [f"{s.variable}:{s.k}" for s in options.shifts if s.kind == kind]
               for kind in ("lag", "lead", "diff")}
-    policies, names = options.policies, options.names
+    policies, names, previous = options.policies, options.names, options.previous
     return RunFile(
         input=InputSection(path=absolute(data), format=read_options.input_format,
                            delimiter=read_options.delimiter,
@@ -1094,6 +1260,9 @@ def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ
                              format=options.output_format, compression=options.compression,
                              force=force, evidence=options.evidence),
         names=NamesSection(**asdict(names)),
+        compare=CompareSection() if previous is None else CompareSection(
+            previous=absolute(previous.path), vars=previous.vars, rtol=previous.options.rtol,
+            atol=previous.options.atol, max_restated_share=previous.options.max_restated_share),
     )
 
 
@@ -1206,12 +1375,23 @@ def run_from_file(run: RunFile, progress: Progress | None = None) -> Preparation
                 *parse_shifts("lead", run.derive.lead, names),
                 *parse_shifts("diff", run.derive.diff, names)],
         contract=contract, validate_outputs=run.contract.validate_outputs,
-        evidence=run.output.evidence, names=names,
+        evidence=run.output.evidence, names=names, previous=_previous_vintage(run),
     )
     return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
                            force=run.output.force, progress=progress,
                            keep=[p for p in (run.source, run.contract.schema) if p is not None],
                            failed_out=run.output.failed_dir, contract_path=run.contract.schema)
+
+
+def _previous_vintage(run: RunFile):
+    if run.compare.previous is None:
+        return None
+    from panelprep.compare import CompareOptions, PreviousVintage
+
+    options = CompareOptions(rtol=run.compare.rtol, atol=run.compare.atol,
+                             max_restated_share=run.compare.max_restated_share)
+    return PreviousVintage(path=Path(run.compare.previous), vars=run.compare.vars,
+                           options=options)
 
 
 def estimate_file_components(

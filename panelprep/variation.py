@@ -61,21 +61,25 @@ def variation_table(
         scaled.column(values, j, out=col)
         unit, centre = float(scaled.scale[j]), float(scaled.centre[j])
         means = entity_means[:, j]
-        np.subtract(col, means.take(codes), out=squares)
+        np.subtract(col, np.take(means, codes, out=squares), out=squares)
         np.square(squares, out=squares)
         entity_ss = group_sums(codes, squares, n_entities)
         period_means = group_sums(period, col, n_periods) * inv_period
-        np.subtract(col, period_means.take(period), out=squares)
+        np.subtract(col, np.take(period_means, period, out=squares), out=squares)
         np.square(squares, out=squares)
         period_ss = group_sums(period, squares, n_periods)
-        scale = max(float(np.abs(col).max()), np.finfo(float).tiny)
+        scale = max(float(np.abs(col, out=squares).max()), np.finfo(float).tiny)
+        # the overall SD as ndarray.std(ddof=1) takes it, in the buffer
+        np.subtract(col, col.mean(), out=squares)
+        np.square(squares, out=squares)
+        overall = float(np.sqrt(squares.sum() / (n - 1))) if n > 1 else None
         tol = (constant_rtol * scale) ** 2
         varying = entity_ss > tol * counts
         period_varying = period_ss > tol * period_counts
         out[name] = {
             "n": int(n),
             "mean": float(centre + unit * col.mean()),
-            "sd_overall": _in_units(col.std(ddof=1), unit) if n > 1 else None,
+            "sd_overall": _in_units(overall, unit) if n > 1 else None,
             "sd_between": _in_units(means.std(ddof=1), unit) if n_entities > 1 else None,
             "sd_within": (_in_units(np.sqrt(entity_ss.sum() / (n - n_entities)), unit)
                           if n > n_entities else None),

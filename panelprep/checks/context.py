@@ -18,6 +18,7 @@ Counts after the key checks are taken on ``sample``.
 from __future__ import annotations
 
 import re
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from functools import cached_property
 
@@ -69,6 +70,9 @@ class AuditContext:
     missing_tokens: tuple[str, ...] = ()
     # 0-based input position of each frame row, when earlier steps removed rows
     origin: np.ndarray | None = None
+    # when the frame was read for this run: called with the variables once their float
+    # block is taken, to drop the frame's copies of them (about n x k x 8 bytes)
+    release_columns: Callable[[list[str]], None] | None = None
 
     def input_rows(self, rows: np.ndarray) -> np.ndarray:
         """Row numbers in the input (data rows from 1) of frame positions ``rows``."""
@@ -77,6 +81,9 @@ class AuditContext:
 
     @cached_property
     def _numeric(self) -> tuple[np.ndarray, dict[str, NonNumeric]]:
+        if self.release_columns is None and "_released" in self.__dict__:
+            raise RuntimeError("the numeric block was released with the frame's variable "
+                               "columns and cannot be rebuilt")
         n, k = len(self.frame), len(self.variables)
         values = np.empty((n, k), dtype=np.float64, order="F")
         bad: dict[str, NonNumeric] = {}
@@ -86,6 +93,15 @@ class AuditContext:
             )
             if problem is not None:
                 bad[name] = problem
+        # a column with text that is not a number, or decimals rounded, keeps it: the
+        # findings quote the values as written (the repeated-row examples, which compare
+        # rows on the columns too, come from checks that run before this block is taken)
+        if self.release_columns is not None and not any(
+                p.rows.size or p.rounded_rows.size for p in bad.values()):
+            _ = self._duplicates  # compares rows sharing a key on the columns: before they go
+            release, self.release_columns = self.release_columns, None
+            self.__dict__["_released"] = True
+            release(list(self.variables))
         return values, bad
 
     @property
@@ -94,12 +110,18 @@ class AuditContext:
         return self._numeric[0]
 
     def release_values(self) -> None:
-        """Free the full numeric block once the sample has been taken from it.
+        """Free the full numeric block, and the checks' sorted cells, once the audit is done.
 
-        It is a cache: ``values`` rebuilds it from the frame if asked again.
-        The sample's own block and every mask stay.
+        It is a cache: ``values`` rebuilds it from the frame if asked again
+        (unless ``release_columns`` dropped the frame's columns).  The
+        sample's own block and every mask stay.
         """
         self.__dict__.pop("_numeric", None)
+        # the checks' row-sized arrays of the sample; cached, so rebuilt if asked again
+        self.__dict__.pop("sample_cells", None)
+        if "sample_index" in self.__dict__:
+            for name in ("cell", "order", "sorted_cells"):
+                self.sample_index.__dict__.pop(name, None)
 
     def narrowed(self, keep: np.ndarray) -> AuditContext:
         """The same audit on a smaller estimation sample: ``sample & keep``.
@@ -381,8 +403,11 @@ def _rounded_decimals(values: pd.Series, as_float: np.ndarray) -> np.ndarray:
 
 def _inexact_integers(values: pd.Series, as_float: np.ndarray) -> np.ndarray:
     """Rows of an integer column whose value float64 cannot hold exactly (beyond 2^53)."""
+    if not pd.api.types.is_integer_dtype(values.dtype):
+        # a float column holds what it holds: no pass over it
+        return np.zeros(len(values), dtype=bool)
     big = np.abs(as_float) >= _EXACT_INTEGER
-    if not pd.api.types.is_integer_dtype(values.dtype) or not big.any():
+    if not big.any():
         return np.zeros(len(values), dtype=bool)
     kind = np.uint64 if pd.api.types.is_unsigned_integer_dtype(values.dtype) else np.int64
     exact = values.to_numpy(dtype=kind, na_value=0)[big]

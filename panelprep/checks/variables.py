@@ -141,16 +141,23 @@ def missing_values(ctx: AuditContext, self: Check):
         return None
     # kept for the report's picture of missing cells, before the block may be released
     ctx.missing_by_period  # noqa: B018
-    base = ctx.base
-    absent = np.isnan(ctx.values[base])
-    per_variable = {name: int(absent[:, j].sum()) for j, name in enumerate(ctx.variables)}
-    rows_lost = int((absent.any(axis=1)).sum())
+    base, values = ctx.base, ctx.values
+    # column by column: no copy of the block, one count of missing cells per row
+    per_row = np.zeros(len(base), dtype=np.int32)
+    per_variable = {}
+    for j, name in enumerate(ctx.variables):
+        absent = np.isnan(values[:, j])
+        absent &= base
+        per_variable[name] = int(np.count_nonzero(absent))
+        per_row += absent
+    rows_lost = int(np.count_nonzero(per_row))
     if rows_lost == 0:
         return None
     lost = _listwise(ctx)
     # rows where a column is the only one missing: what dropping that column alone would keep
-    alone = absent & (absent.sum(axis=1) == 1)[:, None]
-    only_missing = {name: int(alone[:, j].sum()) for j, name in enumerate(ctx.variables)}
+    alone = per_row == 1
+    only_missing = {name: int(np.count_nonzero(np.isnan(values[:, j]) & alone))
+                    for j, name in enumerate(ctx.variables)}
     worst = sorted((n for n in per_variable if per_variable[n]), key=lambda n: -per_variable[n])
     return self.finding(
         rows_lost,
