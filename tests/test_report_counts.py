@@ -112,3 +112,39 @@ def test_failed_gate_counts_agree_and_claim_no_ledger(tmp_path):
     assert "the gate failed, so none was written" in text and "none was written" in page
     assert sorted(p.name for p in folder.iterdir()) == ["diagnostics.json", "diagnostics.txt",
                                                           "report.html"]
+
+
+@pytest.mark.parametrize("in_files", [True, False])
+def test_a_run_failed_by_its_evidence_claims_no_files(tmp_path, monkeypatch, in_files):
+    """The gate can fail after the files are built (a test float64 cannot carry out, made an
+    error): the diagnostics then speak of no file, whether the evidence ran beside the writes
+    (a run into a folder) or in line (in memory)."""
+    import numpy as np
+
+    from panelprep import evidence
+    from panelprep.prepare import PrepareOptions, prepare_frame
+
+    def overflowing(*args, **kwargs):
+        return np.float64(1e300) * np.float64(1e300)
+
+    monkeypatch.setattr(evidence, "mundlak_test", overflowing)
+    frame = pd.read_csv(FIXTURES / "clean_balanced.csv", dtype={"firm_id": str})
+    settings = {"entity": "firm_id", "time": "year", "y": "sales", "x": "capital,staff",
+                "severities": {"evidence-not-computable": "error"}}
+    if in_files:
+        prep = prepare(frame, tmp_path / "out", **settings)
+        assert prep.written_to == tmp_path / "out.failed" and not (tmp_path / "out").exists()
+        summary, text, page, _ = _texts(prep.written_to)
+        assert "the rows the data files hold" not in text + page
+    else:
+        prep = prepare_frame(frame, PrepareOptions(
+            entity=["firm_id"], time="year", y="sales", x=["capital", "staff"],
+            severities={"evidence-not-computable": "error"}))
+        summary = prep.summary
+        assert prep.tables == {}
+    assert summary["verdict"] == "fail"
+    assert summary["gate"]["failed_by"] == ["evidence-not-computable"]
+    assert summary["cautions"] == [("the gate failed (evidence-not-computable); no data files "
+                                    "were written. Fix the input, or state a cleaning policy, "
+                                    "and run again.")]
+    assert summary["samples"]["definition"].endswith("the gate failed, so none was written")
