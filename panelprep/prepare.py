@@ -80,6 +80,7 @@ from panelprep.io import (
     column_names,
     release_arrow_memory,
     sha256_file,
+    sha256_in_background,
     write_table,
 )
 from panelprep.lags import Shift, add_shifts, parse_shifts
@@ -1152,7 +1153,7 @@ def write_data_files(prep: Preparation, folder: OutputFolder, options: PrepareOp
         rows = write_table(table, path, fmt, meta, compression=options.compression,
                            dictionary=[*options.entity, options.time])
         files.append({"name": path.name, "rows": rows,
-                      "sha256": _hash_in_background(path), "columns": columns})
+                      "sha256": sha256_in_background(path), "columns": columns})
         del table
     if prep.comparison is not None and prep.outputs is not None:
         files.append(_write_restated(prep, folder, base_meta, options, progress))
@@ -1198,7 +1199,7 @@ def _write_restated(prep: Preparation, folder: OutputFolder, base_meta: dict[str
     meta = {"panelprep": json.dumps(provenance, sort_keys=True, allow_nan=False)}
     rows = write_table(table, path, "parquet", meta, compression=options.compression,
                        dictionary=[*options.entity, options.time])
-    return {"name": path.name, "rows": rows, "sha256": _hash_in_background(path),
+    return {"name": path.name, "rows": rows, "sha256": sha256_in_background(path),
             "columns": provenance["columns"]}
 
 
@@ -1315,24 +1316,6 @@ def _primed(pieces: Iterator[pa.Table]) -> Iterator[pa.Table]:
         yield from pieces
 
     return passed_on()
-
-
-def _hash_in_background(path: Path) -> Future:
-    """SHA-256 of ``path`` in a thread of its own, while the next table is built.
-
-    hashlib and file reads release the GIL, so on two cores the hash costs
-    no wall time (about 0.35 s per 2.5 M row file when done in line).
-    """
-    future: Future = Future()
-
-    def run() -> None:
-        try:
-            future.set_result(sha256_file(path))
-        except Exception as err:  # noqa: BLE001 (raised again by result())
-            future.set_exception(err)
-
-    threading.Thread(target=run, daemon=True).start()
-    return future
 
 
 def _write_text(path: Path, text: str) -> None:
