@@ -475,13 +475,15 @@ def draft_command(
 
 
 def _print_preparation(result, out: Path, session: _Session, note: str = "") -> None:
-    """The audit, the components, where the files went, ``note``, and the verdict line last."""
-    from panelprep.report.text import audit_lines, components_lines, verdict_line
+    """The audit, the components, the cautions, where the files went, ``note``, and the verdict
+    line last."""
+    from panelprep.report.text import audit_lines, cautions_lines, components_lines, verdict_line
 
     summary = result.summary
     lines = audit_lines(summary)
     if summary.get("components"):
         lines += ["", *components_lines(summary["components"])]
+    lines += cautions_lines(summary)
     names = ", ".join(f["name"] for f in summary.get("files", [])) or "diagnostics only"
     extra = ", run.toml" if result.verdict == "pass" else ""
     lines += ["", (f"written to {result.written_to}: {names}{extra}, diagnostics.json, "
