@@ -516,6 +516,7 @@ class _EvidenceJob:
             for finding in apply_severities([lost], options.severities):
                 self.findings.append(finding)
                 summary["findings"].append(finding.to_dict())
+            summary["findings"] = ordered(summary["findings"])  # worst first, as everywhere
             summary["verdict"] = gate(self.findings, options.fail_on)
             summary["gate"] = gate_block(summary["findings"], options.fail_on)
         if evidence.get("standard_errors"):
