@@ -103,6 +103,7 @@ from panelprep.pipeline import (
     audit,
     judge_final_sample,
     load,
+    sample_definition,
     split_names,
 )
 from panelprep.runlog import RunLog, utc_stamp
@@ -332,8 +333,11 @@ def _prepare_frame(
     progress("sample", "building the estimation sample", rows=len(flow.frame))
     flow.drop(~audited.keyed, "key-missing", "drop rows without a full key", "sample-keys")
     flow.drop(audited.repeat, "exact-repeat", "collapse exact repeated rows", "sample-repeats")
+    before_listwise = flow.alive.copy() if options.shifts else None
     flow.drop(~audited.complete, "listwise-missing",
               f"listwise deletion over {', '.join(options.variables)}", "sample-listwise")
+    emptied = (None if before_listwise is None
+               else cautions.periods_lost(flow.index, before_listwise, flow.alive))
     # the post-audit policies, each with the sample it leaves, so that the
     # audit is judged on the rows the files will hold
     stages: list[tuple[str, np.ndarray]] = []
@@ -357,7 +361,7 @@ def _prepare_frame(
         summary["steps"] = [s.to_dict() for s in flow.ledger.story]
         summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
         summary["files"] = []
-        summary["cautions"] = [_gate_caution(report)]
+        summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
         summary["run"] = run_block(progress, record or run_record(options, read_options),
                                    summary, options)
         return Preparation(report, flow.ledger, None, None, summary, comparison=comparison)
@@ -394,8 +398,8 @@ def _prepare_frame(
     )
 
     # a severity given for a components finding counts like one given for a check
-    findings = report.findings + apply_severities(
-        [Finding(**f) for f in components.findings_], options.severities)
+    judged = apply_severities(_components_findings(components, options), options.severities)
+    findings = report.findings + judged
     if options.validate_outputs and options.contract is not None:
         from panelprep.contracts import check_contract
 
@@ -412,14 +416,16 @@ def _prepare_frame(
                          "y": options.y, "x": options.x}
     summary["steps"] = [s.to_dict() for s in flow.ledger.story]
     summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
-    summary["components"] = components.to_dict()
+    # the components' findings as judged here, the same as in summary.findings
+    summary["components"] = {**components.to_dict(), "findings": [f.to_dict() for f in judged]}
     summary["transforms"] = outputs.info
     summary["cautions"] = [
         *_cautions(outputs.info, components, sample_ix, options.names),
         *cautions.time_invariant_cautions(components, y, X, codes, counts, options.x),
         *cautions.lagged_response_cautions(options.shifts, options.y, options.x,
                                            options.transforms, counts),
-        *cautions.lag_period_cautions(options.shifts, options.x, options.y, summary["findings"]),
+        *([] if emptied is None else cautions.lag_period_cautions(
+            options.shifts, options.x, options.y, summary["findings"], emptied)),
         *cautions.listwise_cautions(summary["findings"]),
     ]
     prep = Preparation(report, flow.ledger, components, outputs, summary, sample_ix,
@@ -439,8 +445,19 @@ def _prepare_frame(
     summary["run"] = run_block(progress, record or run_record(options, read_options), summary,
                                options)
     if summary["verdict"] == "fail":
+        _failed_after_gate(summary)
         prep.outputs = None
     return prep
+
+
+def _failed_after_gate(summary: dict[str, Any]) -> None:
+    """A run that failed after the gate (components, evidence, the contract on the outputs):
+    its cautions about the files would be about files never written, and its sample's
+    files are not written."""
+    summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
+    samples = summary["samples"]
+    samples["definition"] = sample_definition(samples["panel"], samples["policies"],
+                                              written=False)
 
 
 class _EvidenceJob:
@@ -499,6 +516,7 @@ class _EvidenceJob:
             for finding in apply_severities([lost], options.severities):
                 self.findings.append(finding)
                 summary["findings"].append(finding.to_dict())
+            summary["findings"] = ordered(summary["findings"])  # worst first, as everywhere
             summary["verdict"] = gate(self.findings, options.fail_on)
             summary["gate"] = gate_block(summary["findings"], options.fail_on)
         if evidence.get("standard_errors"):
@@ -857,10 +875,22 @@ def _with_columns(keys: pa.Table, names: list[str], block: np.ndarray,
     return pa.Table.from_arrays(arrays, names=[*keys.column_names, *(names[j] for j in chosen)])
 
 
-def _gate_caution(report: AuditReport) -> str:
-    worst = [f.id for f in report.findings if f.resolved_by is None and (
-             f.severity == "error" or (report.fail_on == "warning" and f.severity == "warning"))]
-    return (f"the gate failed ({', '.join(dict.fromkeys(worst))}); no data files were written. "
+def _components_findings(components: VarianceComponents,
+                         options: PrepareOptions) -> list[Finding]:
+    """The components' findings; an unidentified component fails the gate when the components
+    are used: by the quasi file (theta), or as the whole output (no file asked for, as the
+    ``components`` command runs)."""
+    found = [Finding(**f) for f in components.findings_]
+    if options.transforms and "quasi" not in options.transforms:
+        for finding in found:
+            if finding.id == "components-underidentified":
+                finding.severity = "warning"
+                finding.message += "; no quasi file is asked for, so no file uses the components"
+    return found
+
+
+def _gate_caution(failed_by: list[str]) -> str:
+    return (f"the gate failed ({', '.join(failed_by)}); no data files were written. "
             "Fix the input, or state a cleaning policy, and run again.")
 
 
@@ -1031,6 +1061,7 @@ def run_preparation(
                 prep.summary["findings"].append(said.to_dict())
         if prep.verdict == "fail":
             # a failed gate never replaces or empties the output folder
+            _failed_after_gate(prep.summary)  # again, for evidence computed beside the writes
             folder.abandon()
             folder = _failed_output(failed, inputs, out, failed_out is None)
             files = []
@@ -1272,6 +1303,9 @@ def _run_file_text(record: RunFile, target: Path) -> str:
               f"{__version__})."),
               ("The same input gives the same data files: panelprep prepare --config "
               "run.toml --out NEW_FOLDER")]
+    if record.input.path is None:
+        header.append("The data came from a DataFrame in Python, not a file: set input.path "
+                      "to a file that holds it.")
     return again.to_toml(base=target, header=header)
 
 
