@@ -260,10 +260,15 @@ def prepare_command(
     as_json: JsonOpt = False,
     progress: ProgressOpt = "auto",
     log_json: LogJsonOpt = False,
+    engine: Annotated[str | None, typer.Option("--engine", help="local (default) or dask: partition by partition on a Dask cluster (pip install 'panelprep[dask]').")] = None,
+    cluster: Annotated[str | None, typer.Option("--cluster", help="Address of a running Dask scheduler (default: a local cluster is started).")] = None,
+    partitions: Annotated[int | None, typer.Option("--partitions", help="Partitions of the dask engine's shuffle by entity (default automatic).")] = None,
 ) -> None:
     """Clean, audit, then write estimation-ready files with provenance into --out."""
     session = _Session(progress, quiet, log_json, as_json)
-    _check_data(data, session)
+    if engine != "dask":
+        # the dask engine also reads folders and globs; it checks its inputs itself
+        _check_data(data, session)
     from panelprep.config import RunFile, load_run_file
     from panelprep.prepare import run_from_file
 
@@ -278,6 +283,7 @@ def prepare_command(
         "derive.lag": lag, "derive.lead": lead, "derive.diff": diff,
         "output.dir": out, "output.failed_dir": failed_out, "output.transforms": transform, "output.method": method,
         "output.format": output_format, "output.compression": compression, "output.force": force, "output.evidence": evidence,
+        "engine.kind": engine, "engine.cluster": cluster, "engine.partitions": partitions,
     }
     try:
         overrides.update(_names_map(names))

@@ -20,7 +20,7 @@ import pandas as pd
 from panelprep._groups import group_counts, segment_bounds
 from panelprep.errors import ColumnError
 from panelprep.limits import check_grid
-from panelprep.timeaxis import TimeAxis, build_time_axis
+from panelprep.timeaxis import Grid, TimeAxis, build_time_axis
 
 
 @dataclass(eq=False)
@@ -165,11 +165,16 @@ def entity_runs(index: PanelIndex, rows: np.ndarray | None = None) -> EntityRuns
 
 
 def build_index(
-    frame: pd.DataFrame, entity: list[str] | str, time: str, freq: str | None = None
+    frame: pd.DataFrame, entity: list[str] | str, time: str, freq: str | None = None,
+    grid: Grid | None = None,
 ) -> PanelIndex:
     """Factorise the key columns of ``frame`` once.
 
     Blank strings (empty or only whitespace) in key columns count as missing.
+    With ``grid`` (the time axis of a whole input read in partitions,
+    ``timeaxis.time_grid``) the rows are placed on it and period codes count
+    from its first period, so every partition shares one grid; its size is
+    then checked once on the whole input, not here.
     Raises ``ColumnError`` for an absent column and ``TimeParseError`` for
     time values that cannot be placed on a grid.
     """
@@ -209,14 +214,19 @@ def build_index(
     np.minimum.at(first_rows, entity_codes[keyed_entity], np.flatnonzero(keyed_entity))
     labels = frame[entity].iloc[first_rows].reset_index(drop=True)
 
-    axis = build_time_axis(frame[time], freq=freq, column=time)
-    has_time = ~axis.missing
-    if has_time.any():
-        first = int(axis.ordinal[has_time].min())
-        last = int(axis.ordinal[has_time].max())
+    if grid is not None:
+        axis = grid.axis_for(frame[time])
+        has_time = ~axis.missing
+        first, last = grid.span
     else:
-        first, last = 0, -1
-    if has_time.any():
+        axis = build_time_axis(frame[time], freq=freq, column=time)
+        has_time = ~axis.missing
+        if has_time.any():
+            first = int(axis.ordinal[has_time].min())
+            last = int(axis.ordinal[has_time].max())
+        else:
+            first, last = 0, -1
+    if has_time.any() and grid is None:
         check_grid(len(uniq_combined), last - first + 1, time, *axis.label([first, last]))
     period_codes = np.where(has_time, axis.ordinal - first, -1).astype(np.int64)
     return PanelIndex(

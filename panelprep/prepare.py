@@ -26,6 +26,7 @@ from panelprep import transforms
 from panelprep._groups import group_counts
 from panelprep._linalg import independent_columns
 from panelprep._moments import standard_sample
+from panelprep._paths import check_readable
 from panelprep._scale import standardise
 from panelprep._schema import SCHEMA_VERSION
 from panelprep._version import __version__
@@ -46,6 +47,7 @@ from panelprep.config import (
     CleanSection,
     ContractSection,
     DeriveSection,
+    EngineSection,
     InputSection,
     ModelSection,
     NamesSection,
@@ -955,13 +957,14 @@ def _free_variable_columns(frames: list[pd.DataFrame], variables: list[str],
 RUN_FILE = "run.toml"
 # run-file keys that say where things are, not what the data files hold
 _LOCATION_KEYS = ("input.path", "contract.schema", "output.dir", "output.failed_dir",
-                  "output.force")
+                  "output.force", "engine.cluster")
 
 
 def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ,
                data: str | Path | None = None, out: str | Path | None = None,
                force: bool = False, failed_out: str | Path | None = None,
-               contract_path: str | Path | None = None) -> RunFile:
+               contract_path: str | Path | None = None,
+               engine: EngineSection | None = None) -> RunFile:
     """The run as a run file: every option of the preparation, paths made absolute.
 
     Its ``values()`` are the resolved options recorded in ``diagnostics.json``
@@ -995,6 +998,7 @@ def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ
                              transforms=list(options.transforms), method=options.method,
                              format=options.output_format, compression=options.compression,
                              force=force, evidence=options.evidence),
+        engine=engine or EngineSection(),
         names=NamesSection(**asdict(names)),
     )
 
@@ -1107,10 +1111,18 @@ def run_from_file(run: RunFile, progress: Progress | None = None) -> Preparation
         contract=contract, validate_outputs=run.contract.validate_outputs,
         evidence=run.output.evidence, names=names,
     )
+    keep = [p for p in (run.source, run.contract.schema) if p is not None]
+    if run.engine.kind == "dask":
+        from panelprep.partitioned import run_partitioned
+
+        return run_partitioned(run.input.path, run.output.dir, options, run.read_options(),
+                               run.engine, force=run.output.force, progress=progress, keep=keep,
+                               failed_out=run.output.failed_dir)
+    check_readable(Path(run.input.path))
     return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
                            force=run.output.force, progress=progress,
-                           keep=[p for p in (run.source, run.contract.schema) if p is not None],
-                           failed_out=run.output.failed_dir, contract_path=run.contract.schema)
+                           keep=keep, failed_out=run.output.failed_dir,
+                           contract_path=run.contract.schema)
 
 
 def estimate_file_components(

@@ -5,25 +5,36 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from panelprep.checks.base import Check, check
+from panelprep.checks.base import Check, check, examples_of, row_ordered
 from panelprep.checks.context import AuditContext
 from panelprep.findings import MAX_EXAMPLES
 from panelprep.words import plural, plural_word
 
 
-@check("key-missing", "error", "rows whose entity or time key is missing")
-def missing_key(ctx: AuditContext, self: Check):
+def missing_key_tally(ctx: AuditContext) -> dict:
+    """Rows without a full key: counts and the first examples (rows in file order)."""
     rows = np.flatnonzero(~ctx.keyed)
-    if len(rows) == 0:
+    return {"rows": len(rows), "no_entity": int((ctx.index.entity_codes < 0).sum()),
+            "no_time": int((ctx.index.period_codes < 0).sum()),
+            "examples": row_ordered(ctx.row_key(rows[:MAX_EXAMPLES]))}
+
+
+def missing_key_finding(self: Check, tally: dict):
+    rows, no_entity, no_time = tally["rows"], tally["no_entity"], tally["no_time"]
+    if rows == 0:
         return None
-    no_entity = int((ctx.index.entity_codes < 0).sum())
-    no_time = int((ctx.index.period_codes < 0).sum())
     return self.finding(
-        len(rows),
-        f"{plural(len(rows), 'row')} {'lacks' if len(rows) == 1 else 'lack'} a key: {no_entity} without entity, {no_time} without time",
-        ctx.row_key(rows[:MAX_EXAMPLES]),
+        rows,
+        f"{plural(rows, 'row')} {'lacks' if rows == 1 else 'lack'} a key: {no_entity} without entity, {no_time} without time",
+        examples_of(tally),
         {"rows_without_entity": no_entity, "rows_without_time": no_time},
     )
+
+
+@check("key-missing", "error", "rows whose entity or time key is missing",
+       tally=missing_key_tally, finish=missing_key_finding)
+def missing_key(ctx: AuditContext, self: Check):
+    return missing_key_finding(self, missing_key_tally(ctx))
 
 
 @check("key-conflict", "error", "the same (entity, time) key on rows whose values differ")
@@ -51,23 +62,34 @@ def conflicting_keys(ctx: AuditContext, self: Check):
     )
 
 
-@check("row-repeated", "warning", "rows that repeat an earlier row exactly")
-def exact_repeats(ctx: AuditContext, self: Check):
+def exact_repeats_tally(ctx: AuditContext) -> dict:
+    """Rows repeating an earlier row: the count and the first examples (rows in file order)."""
     rows = np.flatnonzero(ctx.repeat)
-    if len(rows) == 0:
-        return None
     shown = rows[:MAX_EXAMPLES]
     examples = []
     for example, row, original in zip(ctx.row_key(shown), shown, _originals(ctx, shown)):
         first = {} if original is None else {"repeats_row": int(ctx.input_rows([original])[0])}
         examples.append({"row": example["row"], **first,
                          **{k: v for k, v in example.items() if k != "row"}})
+    return {"rows": len(rows), "examples": row_ordered(examples)}
+
+
+def exact_repeats_finding(self: Check, tally: dict):
+    rows = tally["rows"]
+    if rows == 0:
+        return None
     return self.finding(
-        len(rows),
-        f"{plural(len(rows), 'row')} {plural_word(len(rows), 'repeats')} an earlier row exactly; "
-        f"{'it is' if len(rows) == 1 else 'they are'} collapsed for all counts",
-        examples,
+        rows,
+        f"{plural(rows, 'row')} {plural_word(rows, 'repeats')} an earlier row exactly; "
+        f"{'it is' if rows == 1 else 'they are'} collapsed for all counts",
+        examples_of(tally),
     )
+
+
+@check("row-repeated", "warning", "rows that repeat an earlier row exactly",
+       tally=exact_repeats_tally, finish=exact_repeats_finding)
+def exact_repeats(ctx: AuditContext, self: Check):
+    return exact_repeats_finding(self, exact_repeats_tally(ctx))
 
 
 _MISSING_MARK = "\x00missing"
