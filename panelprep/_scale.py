@@ -144,23 +144,62 @@ class Scaling:
 
 
 def scaling(values: np.ndarray) -> Scaling:
-    """:func:`standardise`'s parameters of an (n, k) block, column by column with one buffer."""
+    """:func:`standardise`'s parameters of an (n, k) block, column by column with one buffer.
+
+    The three column passes are :func:`largest`, :func:`level_sums` and
+    :func:`spread_sums`; each is a sum or a maximum over rows, so the dask
+    engine takes them partition by partition and adds them up
+    (:func:`scaling_from`) to the same parameters up to the order of additions.
+    """
     block = np.asarray(values, dtype=np.float64)
     n, k = block.shape
-    first, mean, second = np.ones(k), np.zeros(k), np.ones(k)
     if n == 0:
-        return Scaling(first, mean, second)
-    largest = np.abs(block).max(axis=0)
-    _, exponent = np.frexp(np.where(largest > 0, largest, 1.0))
-    first = np.ldexp(1.0, exponent - 1)
-    buffer = np.empty(n)
-    spread = np.zeros(k)
-    for j in range(k):
+        return Scaling(np.ones(k), np.zeros(k), np.ones(k))
+    first = first_divisor(largest(block))
+    mean = level_sums(block, first) / n
+    return scaling_from(first, mean, spread_sums(block, first, mean), n)
+
+
+def largest(block: np.ndarray) -> np.ndarray:
+    """Largest magnitude per column (k,); 0 for a block without rows."""
+    if block.shape[0] == 0:
+        return np.zeros(block.shape[1])
+    return np.abs(block).max(axis=0)
+
+
+def first_divisor(largest_magnitude: np.ndarray) -> np.ndarray:
+    """A power of two within a factor 2 of each column's largest magnitude: |x / it| < 2, so
+    no sum overflows (2^exponent itself overflows for values near the largest float)."""
+    _, exponent = np.frexp(np.where(largest_magnitude > 0, largest_magnitude, 1.0))
+    return np.ldexp(1.0, exponent - 1)
+
+
+def level_sums(block: np.ndarray, first: np.ndarray) -> np.ndarray:
+    """``sum x / first`` per column (k,)."""
+    buffer = np.empty(block.shape[0])
+    out = np.zeros(block.shape[1])
+    for j in range(block.shape[1]):
         np.divide(block[:, j], first[j], out=buffer)
-        mean[j] = buffer.mean()
+        out[j] = buffer.sum()
+    return out
+
+
+def spread_sums(block: np.ndarray, first: np.ndarray, mean: np.ndarray) -> np.ndarray:
+    """``sum (x / first - mean)^2`` per column (k,)."""
+    buffer = np.empty(block.shape[0])
+    out = np.zeros(block.shape[1])
+    for j in range(block.shape[1]):
+        np.divide(block[:, j], first[j], out=buffer)
         buffer -= mean[j]
-        spread[j] = np.sqrt(np.dot(buffer, buffer) / n)
-    return Scaling(first, mean, _capped_second(spread, exponent))
+        out[j] = np.dot(buffer, buffer)
+    return out
+
+
+def scaling_from(first: np.ndarray, mean: np.ndarray, spread_sum: np.ndarray, n: int) -> Scaling:
+    """The :class:`Scaling` of ``n`` rows from :func:`spread_sums` (added up over parts)."""
+    _, exponent = np.frexp(first)
+    # first = 2^(exponent - 1): the exponent frexp gave the largest magnitude
+    return Scaling(first, mean, _capped_second(np.sqrt(spread_sum / n), exponent))
 
 
 def _capped_second(spread: np.ndarray, exponent: np.ndarray) -> np.ndarray:

@@ -7,8 +7,9 @@ import re
 import numpy as np
 
 from panelprep._groups import group_counts
-from panelprep.checks.base import Check, check
+from panelprep.checks.base import Check, check, examples_of
 from panelprep.checks.context import AuditContext
+from panelprep.checks.shape import entity_ranks
 from panelprep.findings import MAX_EXAMPLES
 from panelprep.words import plural, plural_word
 
@@ -129,19 +130,44 @@ def decimal_rounded(ctx: AuditContext, self: Check):
     )
 
 
-@check("values-missing", "info", "missing values per variable and what listwise deletion removes")
-def missing_values(ctx: AuditContext, self: Check):
+def listwise_tally(ctx: AuditContext) -> dict:
+    """Missing cells per variable and what listwise deletion removes, with ranked examples."""
     if not ctx.variables:
-        return None
+        return {"variables": 0}
     # kept for the report's picture of missing cells, before the block may be released
     ctx.missing_by_period  # noqa: B018
     base = ctx.base
     absent = np.isnan(ctx.values[base])
-    per_variable = {name: int(absent[:, j].sum()) for j, name in enumerate(ctx.variables)}
-    rows_lost = int((absent.any(axis=1)).sum())
-    if rows_lost == 0:
+    codes = ctx.index.entity_codes
+    n = ctx.index.n_entities
+    before = group_counts(codes[base], n)
+    after = group_counts(codes[ctx.sample], n)
+    new_single = np.flatnonzero((before >= 2) & (after == 1))
+    shown = new_single[:MAX_EXAMPLES]
+    return {
+        "variables": 1,
+        "per_variable": {name: int(absent[:, j].sum()) for j, name in enumerate(ctx.variables)},
+        "rows_lost": int(absent.any(axis=1).sum()),
+        "rows_removed": int(base.sum() - ctx.sample.sum()),
+        "entities_lost": int(((before > 0) & (after == 0)).sum()),
+        "new_singletons": len(new_single),
+        "new_singleton_keys": [(rank, {"entity": key}) for rank, key in
+                               zip(entity_ranks(ctx.index, shown), ctx.index.entity_key(shown))],
+    }
+
+
+def _listwise(tally: dict) -> dict:
+    return {"rows_removed": tally["rows_removed"], "entities_lost": tally["entities_lost"],
+            "new_singletons": tally["new_singletons"],
+            "new_singleton_keys": [e["entity"] for e in
+                                   examples_of(tally, "new_singleton_keys")]}
+
+
+def missing_values_finding(self: Check, tally: dict):
+    if not tally["variables"] or tally["rows_lost"] == 0:
         return None
-    lost = _listwise(ctx)
+    rows_lost, per_variable = tally["rows_lost"], tally["per_variable"]
+    lost = _listwise(tally)
     return self.finding(
         rows_lost,
         f"{plural(rows_lost, 'row')} {'misses' if rows_lost == 1 else 'miss'} at least one "
@@ -153,11 +179,16 @@ def missing_values(ctx: AuditContext, self: Check):
     )
 
 
-@check("sample-new-singletons", "warning", "entities that listwise deletion leaves with one row")
-def new_singletons(ctx: AuditContext, self: Check):
-    lost = _listwise(ctx)
-    if lost["new_singletons"] == 0:
+@check("values-missing", "info", "missing values per variable and what listwise deletion removes",
+       tally=listwise_tally, finish=missing_values_finding)
+def missing_values(ctx: AuditContext, self: Check):
+    return missing_values_finding(self, listwise_tally(ctx))
+
+
+def new_singletons_finding(self: Check, tally: dict):
+    if not tally["variables"] or tally["new_singletons"] == 0:
         return None
+    lost = _listwise(tally)
     return self.finding(
         lost["new_singletons"],
         f"listwise deletion leaves {plural(lost['new_singletons'], 'entity')} with a single "
@@ -166,18 +197,10 @@ def new_singletons(ctx: AuditContext, self: Check):
     )
 
 
-def _listwise(ctx: AuditContext) -> dict:
-    codes = ctx.index.entity_codes
-    n = ctx.index.n_entities
-    before = group_counts(codes[ctx.base], n)
-    after = group_counts(codes[ctx.sample], n)
-    new_single = np.flatnonzero((before >= 2) & (after == 1))
-    return {
-        "rows_removed": int(ctx.base.sum() - ctx.sample.sum()),
-        "entities_lost": int(((before > 0) & (after == 0)).sum()),
-        "new_singletons": len(new_single),
-        "new_singleton_keys": ctx.index.entity_key(new_single[:MAX_EXAMPLES]),
-    }
+@check("sample-new-singletons", "warning", "entities that listwise deletion leaves with one row",
+       tally=listwise_tally, finish=new_singletons_finding)
+def new_singletons(ctx: AuditContext, self: Check):
+    return new_singletons_finding(self, listwise_tally(ctx))
 
 
 @check("var-fixed-within", "warning", "variables with no variation within any entity")
