@@ -24,7 +24,7 @@ import pyarrow as pa
 
 from panelprep import transforms
 from panelprep._groups import group_counts
-from panelprep._linalg import independent_columns
+from panelprep._linalg import column_factor, independent_columns, reference_scale
 from panelprep._moments import standard_sample
 from panelprep._paths import check_readable
 from panelprep._scale import standardise
@@ -471,6 +471,10 @@ class OutputTables:
     progress: Progress
     # ||x - mean(x)|| of each regressor on the whole sample (StandardSample.centred_norms)
     norms: np.ndarray | None = None
+    # the dask engine: each file's reference sizes and column decisions, taken on the whole
+    # sample (see _design and _regressors)
+    scales: dict[str, np.ndarray] | None = None
+    decided: dict[str, tuple[np.ndarray, np.ndarray]] | None = None
     info: dict[str, Any] = field(init=False)
     columns: dict[str, list[dict[str, str]]] = field(init=False)
 
@@ -527,19 +531,11 @@ class OutputTables:
         yield table
 
     def _demeaned_pieces(self, name: str) -> Iterator[pa.Table]:
-        codes, names, values = self.index.entity_codes, self.options.variables, self.values
+        codes, names = self.index.entity_codes, self.options.variables
         added = self.options.names
         self.progress(f"transform.{name}", f"transform {name}", rows=len(self.keys))
-        if name == "within":
-            multi = self.counts[codes] > 1
-            rows = None if multi.all() else np.flatnonzero(multi)
-            block = transforms.within_block(values, codes, self.counts, rows)
-            kept = self._regressors(name, block, values, multi, "no-within-variation")
-        else:
-            rows = None
-            block = transforms.quasi_block(values, codes, self.counts, self.theta)
-            kept = self._regressors(name, block, values, None, "collinear",
-                                    first=1.0 - self.theta[codes])
+        block, multi, rows, design = self._transformed(name)
+        kept = self._regressors(name, *design)
         n = block.shape[0]
         for start in range(0, max(n, 1), PIECE_ROWS):
             stop = min(start + PIECE_ROWS, n)
@@ -579,9 +575,8 @@ class OutputTables:
         multi = self.counts[codes] > 1
         if name == "between":
             labels = pa.Table.from_pandas(self.index.entity_labels, preserve_index=False)
-            block = transforms.between(values, codes, self.counts)
-            ones = np.ones(len(block))
-            kept = self._regressors(name, block, None, None, "collinear", first=ones)
+            block, _, _, design = self._transformed(name)
+            kept = self._regressors(name, *design)
             table = _with_columns(labels, names, block, kept)
             return table.append_column(added.entity_rows, pa.array(self.counts))
         sub = self.index.subset(multi)
@@ -590,24 +585,46 @@ class OutputTables:
             tol=self.options.twoway_tol,
         )
         self.info["twoway"].update(asdict(result))
-        kept = self._regressors(name, block, values, multi, "no-twoway-variation")
+        kept = self._regressors(name, *self._design(name, block, values, multi, None),
+                                "no-twoway-variation")
         return _with_columns(self._key_table.filter(pa.array(multi)), names, block, kept)
 
-    def _regressors(self, name: str, block: np.ndarray, raw: np.ndarray | None,
-                    rows: np.ndarray | None, wiped: str,
-                    first: np.ndarray | None = None) -> np.ndarray:
-        """Which columns of ``block`` (y, then x) the file keeps; the rest are recorded.
+    def _transformed(self, name: str) -> tuple[Any, np.ndarray | None, np.ndarray | None,
+                                               tuple]:
+        """The block of the within, quasi or between file, its rows (within: the mask of
+        rows of entities with two rows or more, and their positions unless that is all of
+        them) and the arguments of ``_regressors`` that judge its columns."""
+        codes, values = self.index.entity_codes, self.values
+        if name == "within":
+            multi = self.counts[codes] > 1
+            rows = None if multi.all() else np.flatnonzero(multi)
+            block = transforms.within_block(values, codes, self.counts, rows)
+            return block, multi, rows, (*self._design(name, block, values, multi, None),
+                                        "no-within-variation")
+        if name == "quasi":
+            block = transforms.quasi_block(values, codes, self.counts, self.theta)
+            first = 1.0 - self.theta[codes]
+            return block, None, None, (*self._design(name, block, values, None, first),
+                                       "collinear")
+        block = transforms.between(values, codes, self.counts)
+        first = np.ones(len(block))
+        return block, None, None, (*self._design(name, block, None, None, first), "collinear")
 
-        A regressor is left out when the transform left nothing of it
-        (``wiped``, judged against the norm of the untransformed column on
-        the same rows) or when it is a combination of the columns before it
-        (``first``, the constant or intercept column, then the earlier
-        regressors), so OLS on every regressor column is well defined.
+    def _design(self, name: str, block: Any, raw: np.ndarray | None, rows: np.ndarray | None,
+                first: np.ndarray | None) -> tuple[list[np.ndarray], np.ndarray, bool, bool]:
+        """The columns of a file's design (the constant or intercept column first, when it
+        has one, then its regressors) and their reference sizes.
+
+        A size is the norm of the untransformed column about its mean on the same rows,
+        taken on scaled values: a level (x + 1e9) or a magnitude (1e200) must not change
+        a decision.  ``scales`` (the dask engine) gives them for the whole sample.
         """
         k = block.shape[1] - 1
         columns = [block[:, j] for j in range(1, k + 1)]
-        # reference sizes about the column's mean, taken on scaled values: a
-        # level (x + 1e9) or a magnitude (1e200) must not change the decision
+        if first is not None:
+            columns.insert(0, first)
+        if self.scales is not None and name in self.scales:
+            return columns, self.scales[name], first is not None, raw is not None
         source = block if raw is None else raw
         if raw is not None and self.norms is not None and (rows is None or rows.all()):
             scale = self.norms
@@ -615,14 +632,36 @@ class OutputTables:
             scale = np.array([_centred_norm(source[:, j] if raw is None or rows is None
                                             else source[rows, j]) for j in range(1, k + 1)])
         if first is not None:
-            columns.insert(0, first)
             scale = np.concatenate([[np.sqrt(len(first))], scale])
-        independent, negligible = independent_columns(columns, scale)
-        if first is not None:
+        return columns, scale, first is not None, raw is not None
+
+    def factor(self, name: str) -> np.ndarray:
+        """A factor of the within, quasi or between file's design on these rows
+        (``_linalg.column_factor``): the dask engine stacks the partitions' factors and
+        decides the columns once (``decided``)."""
+        _, _, _, (columns, scale, _, _, _) = self._transformed(name)
+        return column_factor(columns, reference_scale(scale, len(columns)), gram_route=False)
+
+    def _regressors(self, name: str, columns: list[np.ndarray], scale: np.ndarray,
+                    has_first: bool, has_raw: bool, wiped: str) -> np.ndarray:
+        """Which columns of the file (y, then x) it keeps; the rest are recorded.
+
+        A regressor is left out when the transform left nothing of it
+        (``wiped``, judged against the norm of the untransformed column on
+        the same rows) or when it is a combination of the columns before it
+        (the constant or intercept column, then the earlier regressors), so
+        OLS on every regressor column is well defined.  ``decided`` (the dask
+        engine) holds the decision taken on the whole sample.
+        """
+        if self.decided is not None and name in self.decided:
+            independent, negligible = self.decided[name]
+        else:
+            independent, negligible = independent_columns(columns, scale)
+        if has_first:
             independent, negligible = independent[1:], negligible[1:]
         left_out = []
         for j in np.flatnonzero(~independent):
-            reason = wiped if negligible[j] and raw is not None else "collinear"
+            reason = wiped if negligible[j] and has_raw else "collinear"
             left_out.append({"name": self.options.x[j], "reason": reason,
                              "why": _LEFT_OUT[reason]})
         self.info[name]["regressors_left_out"] = left_out

@@ -11,8 +11,8 @@ import numpy as np
 
 from panelprep.checks.base import Check, check, examples_of
 from panelprep.checks.context import AuditContext, _plain
-from panelprep.index import PanelIndex
 from panelprep.findings import MAX_EXAMPLES, Finding
+from panelprep.index import PanelIndex
 from panelprep.limits import grid_is_large
 from panelprep.words import plural, plural_word
 
