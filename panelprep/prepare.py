@@ -931,24 +931,10 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
     ``record`` is the run as a run file (``run_record``); without it one is
     made from ``options``.
     """
-    from panelprep.report.html import render_html
-    from panelprep.report.text import preparation_lines
-
     progress = progress if progress is not None else RunLog()
     record = record if record is not None else run_record(options)
     suffix = "parquet" if options.output_format == "parquet" else "csv"
     files: list[dict[str, Any]] = []
-    base_meta = {
-        "schema_version": SCHEMA_VERSION,
-        "version": __version__,
-        "input_sha256": prep.summary["input"].get("sha256"),
-        "method": options.method,
-        "components": prep.summary.get("components"),
-        # what defines the content, without where files were: inputs go by sha256
-        "options": {k: v for k, v in record.values().items() if k not in _LOCATION_KEYS},
-        "fixed_settings": fixed_settings(options),
-        "contract_sha256": _contract_sha256(record),
-    }
     for name in prep.outputs.names if prep.outputs is not None else []:
         # built, written and freed one at a time: peak memory holds one table
         # the first piece is built here, so the file's columns are known for its metadata
@@ -958,12 +944,7 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
         fmt = "parquet" if name == "dropped" else options.output_format
         path = folder.path(f"{name}.{'parquet' if name == 'dropped' else suffix}")
         progress(f"write.{name}", f"writing {path.name}")
-        meta = {"panelprep": json.dumps({**base_meta, "file": name,
-                                         "transform": name if name in TRANSFORMS else None,
-                                         "transform_info": prep.summary.get("transforms", {}).get(name),
-                                         "theta": (prep.summary.get("components") or {}).get("theta"),
-                                         "columns": columns, "rows_counted": ROW_CONVENTION},
-                                        sort_keys=True, allow_nan=False)}
+        meta = file_metadata(prep.summary, options, record, name, columns)
         rows = write_table(table, path, fmt, meta, compression=options.compression,
                            dictionary=[*options.entity, options.time])
         files.append({"name": path.name, "rows": rows,
@@ -971,7 +952,39 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
         del table
     for entry in files:
         entry["sha256"] = entry["sha256"].result()
-    if prep.outputs is not None:
+    write_diagnostics(prep, folder, options, files, progress, record)
+
+
+def file_metadata(summary: dict[str, Any], options: PrepareOptions, record: RunFile,
+                  name: str, columns: list[dict[str, str]]) -> dict[str, str]:
+    """The key-value metadata of a data file (``panelprep``: the provenance JSON)."""
+    return {"panelprep": json.dumps({
+        "schema_version": SCHEMA_VERSION,
+        "version": __version__,
+        "input_sha256": summary["input"].get("sha256"),
+        "method": options.method,
+        "components": summary.get("components"),
+        # what defines the content, without where files were: inputs go by sha256
+        "options": {k: v for k, v in record.values().items() if k not in _LOCATION_KEYS},
+        "fixed_settings": fixed_settings(options),
+        "contract_sha256": _contract_sha256(record),
+        "file": name,
+        "transform": name if name in TRANSFORMS else None,
+        "transform_info": summary.get("transforms", {}).get(name),
+        "theta": (summary.get("components") or {}).get("theta"),
+        "columns": columns, "rows_counted": ROW_CONVENTION}, sort_keys=True, allow_nan=False)}
+
+
+def write_diagnostics(prep: Preparation, folder: OutputFolder, options: PrepareOptions,
+                      files: list[dict[str, Any]], progress: Progress, record: RunFile,
+                      pictures: dict[str, Any] | None = None) -> None:
+    """run.toml (when data files were written), diagnostics.json, diagnostics.txt and
+    report.html into the temporary folder; ``files`` describes the data files written.
+    ``pictures`` (default ``pictures_of(prep)``) is the data behind the report's pictures."""
+    from panelprep.report.html import render_html
+    from panelprep.report.text import preparation_lines
+
+    if prep.outputs is not None or files:
         # the run again: this file on the same input gives the same data files
         progress("write.run-file", "writing run.toml")
         _write_text(folder.path(RUN_FILE), _run_file_text(record, folder.target))
@@ -981,7 +994,8 @@ def write_outputs(prep: Preparation, folder: OutputFolder, options: PrepareOptio
     _write_text(folder.path("diagnostics.json"), text + "\n")
     _write_text(folder.path("diagnostics.txt"), "\n".join(preparation_lines(prep.summary)) + "\n")
     progress("write.report", "writing report.html")
-    _write_text(folder.path("report.html"), render_html(prep.summary, pictures_of(prep)))
+    _write_text(folder.path("report.html"), render_html(
+        prep.summary, pictures_of(prep) if pictures is None else pictures))
 
 
 def _free_variable_columns(frames: list[pd.DataFrame], variables: list[str],
