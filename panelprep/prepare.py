@@ -299,10 +299,8 @@ def _prepare_frame(
     )
     audited = report.context
     progress("sample", "building the estimation sample", rows=len(flow.frame))
-    flow.drop(~audited.keyed, "key-missing", "drop rows without a full key", "sample-keys")
-    flow.drop(audited.repeat, "exact-repeat", "collapse exact repeated rows", "sample-repeats")
-    flow.drop(~audited.complete, "listwise-missing",
-              f"listwise deletion over {', '.join(options.variables)}", "sample-listwise")
+    for removed, reason, step, step_id in sample_steps(audited, options.variables):
+        flow.drop(removed, reason, step, step_id)
     # the post-audit policies, each with the sample it leaves, so that the
     # audit is judged on the rows the files will hold
     stages: list[tuple[str, np.ndarray]] = []
@@ -321,11 +319,8 @@ def _prepare_frame(
     ctx = report.context
     summary = report.to_dict()
     if report.verdict == "fail":
-        summary["steps"] = [s.to_dict() for s in flow.ledger.story]
-        summary["files"] = []
-        summary["cautions"] = [_gate_caution(report)]
-        summary["run"] = run_block(progress, record or run_record(options, read_options),
-                                   summary, options)
+        failed_summary(summary, report, flow.ledger.story, progress,
+                       record or run_record(options, read_options), options)
         return Preparation(report, flow.ledger, None, None, summary)
 
     if len(ctx.conflicting_cells):
@@ -375,14 +370,10 @@ def _prepare_frame(
         clean = clean.drop(columns=[options.names.row]).set_index(
             pd.Index(clean[options.names.row], name=None))
         findings += check_contract(clean, options.contract, where="output clean")
-    summary["findings"] = ordered([f.to_dict() for f in findings])
-    summary["verdict"] = gate(findings, options.fail_on)
-    summary["gate"] = gate_block(summary["findings"], options.fail_on)
-    summary["sample"] = {"rows": len(codes), "entities": int(sample_ix.n_entities), **listwise,
-                         "y": options.y, "x": options.x}
-    summary["steps"] = [s.to_dict() for s in flow.ledger.story]
-    summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
-    summary["components"] = components.to_dict()
+    fitted_summary(summary, findings, options, {"rows": len(codes),
+                                                "entities": int(sample_ix.n_entities),
+                                                **listwise},
+                   flow.ledger.story, flow.ledger.by_reason(), components)
     if options.evidence:
         progress("evidence", "evidence on the entity effect and the error structure",
                  rows=len(y))
@@ -394,16 +385,57 @@ def _prepare_frame(
             findings += apply_severities([lost], options.severities)
             summary["findings"] = [f.to_dict() for f in findings]
             summary["verdict"] = gate(findings, options.fail_on)
-    summary["transforms"] = outputs.info
-    summary["cautions"] = _cautions(outputs.info, components, sample_ix, options.names)
-    if summary.get("evidence", {}).get("standard_errors"):
-        # what the error-structure tests of this run say, beside the general advice
-        summary["cautions"].append(summary["evidence"]["standard_errors"])
-    summary["run"] = run_block(progress, record or run_record(options, read_options), summary,
-                               options)
+    closed_summary(summary, outputs.info, components, sample_ix.n_periods, progress,
+                   record or run_record(options, read_options), options)
     if summary["verdict"] == "fail":
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
+
+
+def sample_steps(audited: AuditContext, variables: list[str]
+                 ) -> list[tuple[np.ndarray, str, str, str]]:
+    """The steps from the rows read to the estimation sample: (rows removed, reason id,
+    step, step id), in order."""
+    return [
+        (~audited.keyed, "key-missing", "drop rows without a full key", "sample-keys"),
+        (audited.repeat, "exact-repeat", "collapse exact repeated rows", "sample-repeats"),
+        (~audited.complete, "listwise-missing", f"listwise deletion over {', '.join(variables)}",
+         "sample-listwise"),
+    ]
+
+
+def failed_summary(summary: dict[str, Any], report: AuditReport, story: list[StepRecord],
+                   progress: Progress, record: RunFile, options: PrepareOptions) -> None:
+    """A summary whose gate failed: the steps, no file, the caution, the run."""
+    summary["steps"] = [s.to_dict() for s in story]
+    summary["files"] = []
+    summary["cautions"] = [_gate_caution(report)]
+    summary["run"] = run_block(progress, record, summary, options)
+
+
+def fitted_summary(summary: dict[str, Any], findings: list[Finding], options: PrepareOptions,
+                   sample: dict[str, int], story: list[StepRecord], by_reason: dict[str, int],
+                   components: VarianceComponents) -> None:
+    """The findings (with the components'), gate, sample, steps, drops and components."""
+    summary["findings"] = ordered([f.to_dict() for f in findings])
+    summary["verdict"] = gate(findings, options.fail_on)
+    summary["gate"] = gate_block(summary["findings"], options.fail_on)
+    summary["sample"] = {**sample, "y": options.y, "x": options.x}
+    summary["steps"] = [s.to_dict() for s in story]
+    summary["dropped"] = {"rows": sum(by_reason.values()), "by_reason": by_reason}
+    summary["components"] = components.to_dict()
+
+
+def closed_summary(summary: dict[str, Any], info: dict[str, Any],
+                   components: VarianceComponents, n_periods: int, progress: Progress,
+                   record: RunFile, options: PrepareOptions) -> None:
+    """What the transforms did, the cautions and the run block."""
+    summary["transforms"] = info
+    summary["cautions"] = _cautions(info, components, n_periods, options.names)
+    if summary.get("evidence", {}).get("standard_errors"):
+        # what the error-structure tests of this run say, beside the general advice
+        summary["cautions"].append(summary["evidence"]["standard_errors"])
+    summary["run"] = run_block(progress, record, summary, options)
 
 
 def _uncomputable_finding(evidence: dict[str, Any], options: PrepareOptions) -> Finding | None:
@@ -772,7 +804,7 @@ def _gate_caution(report: AuditReport) -> str:
             "Fix the input, or state a cleaning policy, and run again.")
 
 
-def _cautions(info: dict, components: VarianceComponents, index: PanelIndex,
+def _cautions(info: dict, components: VarianceComponents, n_periods: int,
               names: AddedNames) -> list[str]:
     out = []
     if "within" in info:
@@ -784,7 +816,7 @@ def _cautions(info: dict, components: VarianceComponents, index: PanelIndex,
         )
     if "twoway" in info:
         out.append(
-            f"OLS on the twoway file has also absorbed up to {index.n_periods} period effects: "
+            f"OLS on the twoway file has also absorbed up to {n_periods} period effects: "
             "reduce the degrees of freedom by entities + periods - 1 (per connected block)."
         )
     if "quasi" in info:
