@@ -88,6 +88,7 @@ from panelprep.io import (
 from panelprep.ledger import Ledger, StepRecord, require_rows
 from panelprep.pipeline import AuditReport, Progress, judge_final_sample, panel_summary, panel_tally
 from panelprep.prepare import (
+    LEFT_OUT,
     OutputTables,
     Preparation,
     PrepareOptions,
@@ -106,7 +107,13 @@ from panelprep.prepare import (
 from panelprep.runlog import RunLog
 from panelprep.timeaxis import Grid, time_grid
 from panelprep.transforms import between, theta_per_entity
-from panelprep.variation import pooled, spread_part, variation_row, with_within_measures
+from panelprep.variation import (
+    empty_row,
+    pooled,
+    spread_part,
+    variation_row,
+    with_within_measures,
+)
 
 # internal columns of the shuffled rows: the 0-based input row and the entity's hash
 ROW = "__panelprep_row__"
@@ -552,8 +559,30 @@ def _run_on(client: Any, source: Source, options: PrepareOptions, read_options: 
     shuffled = frames.shuffle(on=HASH, npartitions=n_partitions)
     states = client.compute([_audit_delayed(p, spec) for p in shuffled.to_delayed()])
     tallies = _run_pass(client, progress, "audit", "the checks' tallies", tally_of, states)
-    report, story, by_reason, listwise = _audit_report(tallies, options, grid, source,
-                                                       rows_read, progress)
+    findings, panel, story, by_reason, listwise = _audit_findings(tallies, options, grid,
+                                                                  progress)
+    n_rows = sum(t["rows"] for t in tallies)
+    if n_rows:
+        # the variation table before the gate: its findings count like the others'
+        scalings = _scalings(client, progress, states)
+        sample_scale = scalings["sample"][0]
+        tol = _constancy_bounds(sample_scale, scalings["sample"][1], options)
+        parts = _run_pass(client, progress, "moments", "entity moments and variation sums",
+                          moments_part, states, ("scale", sample_scale), ("tol", tol))
+        table = _variation(client, progress, states, parts, sample_scale,
+                           scalings["sample"][1], tol, options)
+    else:
+        table = {name: empty_row() for name in options.variables}
+    findings = _with_variation_findings(findings, table, options)
+    report = judge_final_sample(AuditReport(
+        log=progress, options={}, verdict=gate(findings, options.fail_on),
+        fail_on=options.fail_on, findings=findings,
+        keys={"entity": options.entity, "time": options.time, "freq": grid.axis.name,
+              "freq_inferred": grid.axis.inferred},
+        input={"path": source.given,
+               "sha256": sha256_of([sha256_file(p) for p in source.paths]), "rows": rows_read,
+               "format": source.fmt, "files": len(source.paths)},
+        panel=panel, variables=table, context=None), [])
     summary = report.to_dict()
     if report.verdict == "fail":
         failed_summary(summary, report, story, progress, record, options)
@@ -562,20 +591,10 @@ def _run_on(client: Any, source: Source, options: PrepareOptions, read_options: 
         raise InputError(
             "conflicting duplicate keys remain but the gate let them through; "
             "choose a duplicates policy or keep key-conflict an error")
-    n_rows = sum(t["rows"] for t in tallies)
     require_rows(n_rows, "cleaning")
     if rows_read != n_rows + sum(t["dropped"] for t in tallies):
         raise RuntimeError("drop ledger out of balance across partitions")
 
-    scalings = _scalings(client, progress, states)
-    sample_scale = scalings["sample"][0]
-    tol = _constancy_bounds(sample_scale, scalings["sample"][1], options)
-    parts = _run_pass(client, progress, "moments", "entity moments and variation sums",
-                      moments_part, states, ("scale", sample_scale), ("tol", tol))
-    table = _variation(client, progress, states, parts, sample_scale, scalings["sample"][1], tol,
-                       options)
-    summary["variables"] = report.variables = table
-    findings = _with_variation_findings(report.findings, table, options)
     moments = combined_moments([p["moments"] for p in parts])
     progress("components", f"variance components ({options.method})", rows=n_rows)
     x_scale = Scaling(sample_scale.first[1:], sample_scale.mean[1:], sample_scale.second[1:])
@@ -590,34 +609,38 @@ def _run_on(client: Any, source: Source, options: PrepareOptions, read_options: 
     scales = {"within": norms if multi_rows == n_rows else scalings["multi"][2][1:],
               "quasi": np.concatenate([[np.sqrt(n_rows)], norms]),
               "between": np.concatenate([[np.sqrt(n_entities)], scalings["between"][2][1:]])}
-    factors = _run_pass(client, progress, "designs", "the files' designs", design_part, states,
-                        ("spec", spec), ("components", scaled), ("scales", scales))
-    sizes = {"within": multi_rows, "quasi": n_rows, "between": n_entities}
-    decided = {}
-    for name in options.transforms:
-        stacked = [f[name] for f in factors]
-        width = stacked[0].shape[1]
-        if sizes[name] == 0:
-            decided[name] = (np.zeros(width, dtype=bool), np.zeros(width, dtype=bool))
-        else:
-            inner = triangular(np.vstack(stacked), width)
-            decided[name] = independent_from_inner(inner, decision_rtol(sizes[name], width))
-
     findings = findings + apply_severities(
         [Finding(**f) for f in components.findings_], options.severities)
     singletons = sum(t["singletons"] for t in tallies)
     fitted_summary(summary, findings, options,
                    {"rows": n_rows, "entities": n_entities, **listwise}, story, by_reason,
                    components)
-    info = _plan(options, multi_rows, n_entities, n_rows, singletons, decided)
+    info = _plan(options, multi_rows, n_entities, n_rows, singletons)
+    prep = Preparation(report, Ledger(rows_read), components, None, summary)
+    written: list[dict[str, Any]] = []
+    if summary["verdict"] != "fail":
+        # which regressors each file keeps, decided once on the whole sample
+        factors = _run_pass(client, progress, "designs", "the files' designs", design_part,
+                            states, ("spec", spec), ("components", scaled), ("scales", scales))
+        sizes = {"within": multi_rows, "quasi": n_rows, "between": n_entities}
+        decided = {name: _decision([f[name] for f in factors], sizes[name])
+                   for name in options.transforms}
+        _left_out(info, decided, options)
     closed_summary(summary, info, components, int(report.panel["periods"]), progress, record,
                    options)
-    prep = Preparation(report, Ledger(rows_read), components, None, summary)
-    if summary["verdict"] == "fail":
-        return prep, []
-    written = _write(client, progress, states, tallies, spec, scaled, scales, decided, summary,
-                     record, folder)
+    if summary["verdict"] != "fail":
+        written = _write(client, progress, states, tallies, spec, scaled, scales, decided,
+                         summary, record, folder)
     return prep, written
+
+
+def _decision(factors: list[np.ndarray], rows: int) -> tuple[np.ndarray, np.ndarray]:
+    """``(kept, negligible)`` of a file's columns from its partitions' design factors."""
+    width = factors[0].shape[1]
+    if rows == 0:
+        return np.zeros(width, dtype=bool), np.zeros(width, dtype=bool)
+    inner = triangular(np.vstack(factors), width)
+    return independent_from_inner(inner, decision_rtol(rows, width))
 
 
 def _audit_delayed(part: Any, spec: Spec) -> Any:
@@ -626,19 +649,17 @@ def _audit_delayed(part: Any, spec: Spec) -> Any:
     return delayed(audit_part)(part, spec)
 
 
-def _audit_report(tallies: list[dict], options: PrepareOptions, grid: Grid, source: Source,
-                  rows_read: int, progress: Progress
-                  ) -> tuple[AuditReport, list[StepRecord], dict[str, int], dict[str, int]]:
-    """The audit's findings, panel block and steps from the partitions' tallies."""
+def _audit_findings(tallies: list[dict], options: PrepareOptions, grid: Grid,
+                    progress: Progress) -> tuple[list[Finding], dict, list[StepRecord],
+                                                 dict[str, int], dict[str, int]]:
+    """The checks' findings (but those of the variation table), the panel block, the steps
+    and the drops from the partitions' tallies."""
     progress("findings", "adding up the partitions' tallies")
     found = sorted({i for t in tallies for i in t["uncombined"]})
     if found:
         raise InputError(
             f"the dask engine cannot yet add up the finding {found[0]} across partitions, and "
             f"the data has it; run with --engine local (or fix the input first)")
-    severities = dict(options.severities)
-    # a preparation never drops repeated rows unless a policy says so
-    severities.setdefault("row-repeated", "error")
     findings = []
     for check in CHECKS:
         if check.tally is None:
@@ -650,7 +671,6 @@ def _audit_report(tallies: list[dict], options: PrepareOptions, grid: Grid, sour
             finding = check.finish(check, tally)
         if finding is not None:
             findings.append(finding)
-    findings = apply_severities(findings, severities)
     panel = panel_summary(merge_tallies([t["panel"] for t in tallies]))
     story = []
     for i, (step_id, step, *_) in enumerate(tallies[0]["story"]):
@@ -659,16 +679,7 @@ def _audit_report(tallies: list[dict], options: PrepareOptions, grid: Grid, sour
         story.append(StepRecord(step_id, step, rows_before, rows_after, before, after))
     by_reason = merge_tallies([t["by_reason"] for t in tallies])
     listwise = merge_tallies([t["listwise"] for t in tallies])
-    report = AuditReport(
-        log=progress, options={}, verdict=gate(findings, options.fail_on),
-        fail_on=options.fail_on, findings=findings,
-        keys={"entity": options.entity, "time": options.time, "freq": grid.axis.name,
-              "freq_inferred": grid.axis.inferred},
-        input={"path": source.given,
-               "sha256": sha256_of([sha256_file(p) for p in source.paths]), "rows": rows_read,
-               "format": source.fmt, "files": len(source.paths)},
-        panel=panel, variables={}, context=None)
-    return judge_final_sample(report, []), story, by_reason, listwise
+    return findings, panel, story, by_reason, listwise
 
 
 def _scalings(client: Any, progress: Progress, states: list) -> dict[str, tuple]:
@@ -751,23 +762,26 @@ def _with_variation_findings(findings: list[Finding], table: dict[str, dict],
                              options: PrepareOptions) -> list[Finding]:
     """The findings read off the variation table, in check order among the others."""
     view = SimpleNamespace(variation=table, thresholds=options.thresholds)
-    made = {c.id: c.run(view) for c in CHECKS if c.id in VARIATION_CHECKS}
-    made = {i: f for i, f in made.items() if f is not None}
-    extra = apply_severities(list(made.values()), options.severities)
-    by_id = {f.id: f for f in [*findings, *extra]}
+    made = [c.run(view) for c in CHECKS if c.id in VARIATION_CHECKS]
+    severities = dict(options.severities)
+    # a preparation never drops repeated rows unless a policy says so
+    severities.setdefault("row-repeated", "error")
+    by_id = {f.id: f for f in apply_severities([*findings, *filter(None, made)], severities)}
     return [by_id[c.id] for c in CHECKS if c.id in by_id]
 
 
 def _plan(options: PrepareOptions, multi_rows: int, n_entities: int, n_rows: int,
-          singletons: int, decided: dict) -> dict[str, Any]:
-    """What each file holds (``OutputTables.info``), with the regressors it leaves out."""
+          singletons: int) -> dict[str, Any]:
+    """What each file holds (``OutputTables.info``) before its columns are decided."""
     plan = {"within": {"rows": multi_rows, "entities_absorbed": n_entities - singletons,
                        "singletons_dropped": singletons},
             "between": {"rows": n_entities}, "quasi": {"rows": n_rows}}
-    info = {name: plan[name] for name in options.transforms}
-    reasons = {"within": "no-within-variation", "quasi": "collinear", "between": "collinear"}
-    from panelprep.prepare import _LEFT_OUT
+    return {name: plan[name] for name in options.transforms}
 
+
+def _left_out(info: dict[str, Any], decided: dict, options: PrepareOptions) -> None:
+    """Each file's regressors left out, as ``OutputTables._regressors`` records them."""
+    reasons = {"within": "no-within-variation", "quasi": "collinear", "between": "collinear"}
     for name in options.transforms:
         independent, negligible = decided[name]
         if name != "within":
@@ -775,9 +789,8 @@ def _plan(options: PrepareOptions, multi_rows: int, n_entities: int, n_rows: int
         left_out = []
         for j in np.flatnonzero(~independent):
             reason = reasons[name] if negligible[j] and name != "between" else "collinear"
-            left_out.append({"name": options.x[j], "reason": reason, "why": _LEFT_OUT[reason]})
+            left_out.append({"name": options.x[j], "reason": reason, "why": LEFT_OUT[reason]})
         info[name]["regressors_left_out"] = left_out
-    return info
 
 
 def _write(client: Any, progress: Progress, states: list, tallies: list[dict], spec: Spec,

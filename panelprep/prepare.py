@@ -471,7 +471,7 @@ def _context(flow: _Flow, options: PrepareOptions, read_options: ReadOptions) ->
 PIECE_ROWS = 1 << 20
 
 # Why a regressor is left out of a transformed file.
-_LEFT_OUT = {
+LEFT_OUT = {
     "no-within-variation": "constant within every entity: the within transform leaves zeros",
     "no-twoway-variation": "explained by entity and period effects: the two-way transform "
                            "leaves zeros",
@@ -695,7 +695,7 @@ class OutputTables:
         for j in np.flatnonzero(~independent):
             reason = wiped if negligible[j] and has_raw else "collinear"
             left_out.append({"name": self.options.x[j], "reason": reason,
-                             "why": _LEFT_OUT[reason]})
+                             "why": LEFT_OUT[reason]})
         self.info[name]["regressors_left_out"] = left_out
         return np.concatenate([[True], independent])
 

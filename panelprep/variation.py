@@ -41,7 +41,7 @@ def variation_table(
     codes = index.entity_codes
     n, n_entities = values.shape[0], index.n_entities
     if n == 0:
-        return {name: _empty_row() for name in names}
+        return {name: empty_row() for name in names}
     counts = group_counts(codes, n_entities)
     inv_counts = 1.0 / np.maximum(counts, 1)
     period, n_periods = compact_codes(index.period_codes, index.n_periods)
@@ -136,7 +136,8 @@ def _in_units(scaled: float, unit: float) -> float | None:
     return value if np.isfinite(value) else None
 
 
-def _empty_row() -> dict:
+def empty_row() -> dict:
+    """The row of a variable on an empty sample: no statistic."""
     keys = ("mean", "sd_overall", "sd_between", "sd_within", "min", "max", "varying_share")
     return {"n": 0, **dict.fromkeys(keys), "time_invariant": False, "period_invariant": False}
 
