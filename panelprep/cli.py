@@ -110,6 +110,11 @@ def _check_data(path: Path | None, session: _Session | None = None) -> None:
             session.fail(str(err))
 
 
+def _dataset_like(path: Path | None) -> bool:
+    """A folder or a glob pattern: an input only the dask engine reads."""
+    return path is not None and (path.is_dir() or bool(set(str(path)) & set("*?[")))
+
+
 def _unusable(message: str) -> None:
     typer.echo(f"panelprep: error: {message}", err=True)
     raise typer.Exit(EXIT_UNUSABLE)
@@ -266,8 +271,9 @@ def prepare_command(
 ) -> None:
     """Clean, audit, then write estimation-ready files with provenance into --out."""
     session = _Session(progress, quiet, log_json, as_json)
-    if engine != "dask":
-        # the dask engine also reads folders and globs; it checks its inputs itself
+    if engine != "dask" and not _dataset_like(data):
+        # folders and globs are for the dask engine, which checks its inputs itself (the
+        # local engine refuses them with the same line as here)
         _check_data(data, session)
     from panelprep.config import RunFile, load_run_file
     from panelprep.prepare import run_from_file

@@ -495,8 +495,17 @@ def run_partitioned(
         if failed_out is not None or _name_fits(failed):
             check_output_folder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
         with dask_client(engine.cluster) as client:
-            prep, written = _run_on(client, source, options, read_options, engine, progress,
-                                    record, folder)
+            try:
+                prep, written = _run_on(client, source, options, read_options, engine,
+                                        progress, record, folder)
+            except InputError:
+                raise
+            except Exception as err:
+                if not _cluster_failure(err):
+                    raise
+                raise InputError(f"the dask cluster failed ({type(err).__name__}: "
+                                 f"{' '.join(str(err).split())[:160]}); {out} was left as it "
+                                 "was") from None
         if prep.verdict == "fail":
             folder.abandon()
             folder = _failed_output(failed, inputs, out, failed_out is None)
@@ -508,6 +517,15 @@ def run_partitioned(
         raise
     prep.written_to = folder.target
     return prep
+
+
+def _cluster_failure(err: Exception) -> bool:
+    """Whether ``err`` says the cluster, not the data or the code, failed: a task whose
+    workers kept dying (the scheduler retries a task a few times), a lost connection."""
+    from distributed.comm.core import CommClosedError
+    from distributed.scheduler import KilledWorker
+
+    return isinstance(err, (KilledWorker, CommClosedError, TimeoutError, OSError))
 
 
 def _run_pass(client: Any, progress: Progress, step: str, what: str, task: Callable,

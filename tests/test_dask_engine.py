@@ -15,6 +15,8 @@ from __future__ import annotations
 import json
 import logging
 import math
+import os
+import signal
 import subprocess
 import sys
 from pathlib import Path
@@ -29,6 +31,7 @@ from panelprep.config import RunFile
 from panelprep.errors import InputError
 from panelprep.partitioned import UNCOMBINED
 from panelprep.prepare import run_from_file
+from panelprep.runlog import RunLog
 
 FIXTURES = Path(__file__).parent.parent / "fixtures"
 MANIFEST = json.loads((FIXTURES / "expected.json").read_text())["fixtures"]
@@ -284,7 +287,7 @@ def test_the_command_without_dask_installed_says_how_to_install_it(tmp_path):
         [sys.executable, "-c", script, "prepare", str(data), "-e", "firm", "-t", "year",
          "--y", "sales", "--x", "capital,staff", "-o", str(tmp_path / "out"),
          "--no-evidence", "--engine", "dask"],
-        capture_output=True, text=True, timeout=120)
+        capture_output=True, text=True, timeout=120, check=False)
     assert done.returncode == 2, done.stderr
     lines = done.stderr.strip().splitlines()
     assert len(lines) == 1
@@ -293,14 +296,14 @@ def test_the_command_without_dask_installed_says_how_to_install_it(tmp_path):
 
 
 def test_the_base_install_imports_no_dask():
-    done = subprocess.run(
-        [sys.executable, "-c", "import sys, panelprep.cli, panelprep.prepare, panelprep.engine;"
-         "print(sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed')))"],
-        capture_output=True, text=True, timeout=120)
+    script = ("import sys, panelprep.cli, panelprep.prepare, panelprep.engine; "
+              "print(sorted(m for m in sys.modules if m.split('.')[0] in ('dask', 'distributed')))")
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True,
+                          timeout=120, check=True)
     assert done.stdout.strip() == "[]", done.stdout
 
 
-def test_pa_tables_of_every_part_share_one_schema(tmp_path, cluster):
+def test_every_part_of_a_dataset_has_one_schema(tmp_path, cluster):
     frame = _random_panel(8).dropna().drop_duplicates()
     data = _parquet(frame, tmp_path / "panel.parquet")
     dask = _run(data, tmp_path / "out", "dask", cluster, 4, **KEYS)
@@ -309,3 +312,41 @@ def test_pa_tables_of_every_part_share_one_schema(tmp_path, cluster):
                    for p in (dask.written_to / name).glob("part-*.parquet")}
         assert len(schemas) == 1, name
         assert isinstance(pq.read_table(dask.written_to / name), pa.Table)
+
+
+class _KillingLog(RunLog):
+    """A run log that kills one worker process (SIGKILL) when the run reaches ``step``."""
+
+    def __init__(self, cluster, step: str) -> None:
+        super().__init__()
+        self.cluster, self.step, self.killed = cluster, step, False
+
+    def __call__(self, step: str, what: str, rows: int | None = None) -> None:
+        super().__call__(step, what, rows)
+        if step == self.step and not self.killed:
+            from distributed import Client
+
+            with Client(self.cluster.scheduler_address) as client:
+                pids = client.run(os.getpid)
+            os.kill(sorted(pids.values())[0], signal.SIGKILL)
+            self.killed = True
+
+
+@pytest.mark.parametrize("step", ["moments", "write"])
+def test_a_worker_killed_mid_run_still_ends_in_a_complete_folder(step, tmp_path):
+    from distributed import LocalCluster
+
+    frame = _random_panel(9).dropna().drop_duplicates()
+    data = _parquet(frame, tmp_path / "panel.parquet")
+    local = _run(data, tmp_path / "local", "local", **KEYS)
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, memory_limit="1GiB",
+                      dashboard_address=None, silence_logs=logging.CRITICAL) as own:
+        log = _KillingLog(own, step)
+        given = {"input.path": data, "output.dir": tmp_path / "dask", "output.evidence": False,
+                 "engine.kind": "dask", "engine.cluster": own.scheduler_address,
+                 "engine.partitions": 6, **KEYS}
+        # the scheduler runs the dead worker's tasks again elsewhere (its results too)
+        dask = run_from_file(RunFile().merged(given), progress=log)
+    assert log.killed
+    _compare(local, dask, ["firm"])
+    assert not list(tmp_path.glob(".panelprep-partial-*"))
