@@ -328,7 +328,7 @@ class _KillingLog(RunLog):
 
             with Client(self.cluster.scheduler_address) as client:
                 pids = client.run(os.getpid)
-            os.kill(sorted(pids.values())[0], signal.SIGKILL)
+            os.kill(min(pids.values()), signal.SIGKILL)
             self.killed = True
 
 
