@@ -71,7 +71,8 @@ def merge_tallies(tallies: Sequence[dict]) -> dict:
     """One tally from the tallies of disjoint parts of the rows (whole entities each).
 
     Keys add up by kind: numbers are summed, except keys ending in ``_max``
-    (maximum) and ``_min`` (minimum) of parts that have any; dicts are merged
+    (maximum) and ``_min`` (minimum) of parts that have any; a text (the
+    same in every part, such as the grid's name) is kept; dicts are merged
     key by key the same way (per-value counts); ranked example lists
     (``(rank, example)`` pairs) are merged by rank and cut to
     ``MAX_EXAMPLES``.
@@ -86,6 +87,8 @@ def merge_tallies(tallies: Sequence[dict]) -> dict:
         elif isinstance(first, list):
             merged = sorted((pair for value in values for pair in value), key=lambda p: p[0])
             out[key] = merged[:MAX_EXAMPLES]
+        elif isinstance(first, str):
+            out[key] = first
         elif isinstance(key, str) and key.endswith(("_max", "_min")):
             present = [v for v in values if v is not None]
             pick = max if key.endswith("_max") else min

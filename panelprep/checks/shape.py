@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from panelprep.checks.base import Check, check, examples_of
+from panelprep.checks.base import Check, check, examples_of, row_ordered
 from panelprep.checks.context import AuditContext, _plain
 from panelprep.findings import MAX_EXAMPLES, Finding
 from panelprep.index import PanelIndex
@@ -63,17 +63,29 @@ def entity_ranks(index: PanelIndex, codes: np.ndarray) -> list[tuple]:
     return [tuple(_plain(v) for v in row) for row in labels.itertuples(index=False)]
 
 
-@check("period-off-grid", "warning", "time values not on the inferred period grid")
-def off_grid(ctx: AuditContext, self: Check):
+def off_grid_tally(ctx: AuditContext) -> dict:
+    """Rows whose time value is off the grid: the count and the first examples."""
     rows = np.flatnonzero(ctx.index.axis.off_grid & ctx.keyed)
-    if len(rows) == 0:
+    return {"rows": len(rows), "grid": ctx.index.axis.name,
+            "examples": row_ordered(ctx.row_key(rows[:MAX_EXAMPLES]))}
+
+
+def off_grid_finding(self: Check, tally: dict):
+    rows = tally["rows"]
+    if rows == 0:
         return None
     return self.finding(
-        len(rows),
-        f"{plural(len(rows), 'row')} {plural_word(len(rows), 'has')} time values off the "
-        f"{ctx.index.axis.name} grid; each is counted in the period that contains it",
-        ctx.row_key(rows[:MAX_EXAMPLES]),
+        rows,
+        f"{plural(rows, 'row')} {plural_word(rows, 'has')} time values off the "
+        f"{tally['grid']} grid; each is counted in the period that contains it",
+        examples_of(tally),
     )
+
+
+@check("period-off-grid", "warning", "time values not on the inferred period grid",
+       tally=off_grid_tally, finish=off_grid_finding)
+def off_grid(ctx: AuditContext, self: Check):
+    return off_grid_finding(self, off_grid_tally(ctx))
 
 
 # the coverage summary's size, whatever the grid's length

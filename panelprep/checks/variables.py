@@ -66,40 +66,68 @@ def _hints(values: list[str], decimal_comma: bool) -> list[str]:
     return hints
 
 
-@check("values-declared-missing", "info", "texts read as missing because they were declared so")
-def declared_missing(ctx: AuditContext, self: Check):
-    hits = {name: p.read_as_missing for name, p in ctx.non_numeric.items() if p.read_as_missing}
+def declared_missing_tally(ctx: AuditContext) -> dict:
+    """Values read as missing because they were declared so, per variable (all listed)."""
+    problems = ctx.non_numeric
+    # the tokens as the message writes them (a text is kept as is by merge_tallies)
+    return {"tokens": str(list(ctx.missing_tokens)),
+            "per_variable": {name: problems[name].read_as_missing if name in problems else 0
+                             for name in ctx.variables}}
+
+
+def declared_missing_finding(self: Check, tally: dict):
+    hits = {name: count for name, count in tally["per_variable"].items() if count}
     if not hits:
         return None
     total = sum(hits.values())
     return self.finding(
         total,
-        f"{plural(total, 'value')} matching declared missing tokens {list(ctx.missing_tokens)} "
+        f"{plural(total, 'value')} matching declared missing tokens {tally['tokens']} "
         f"{plural_word(total, 'was')} read as missing",
         [{"column": name, "rows": count} for name, count in hits.items()],
         {"per_variable": hits},
     )
 
 
-@check("values-nan-missing", "warning",
-       "NaN values (the text nan in CSV, NaN stored in a Parquet or Arrow float column) "
-       "read as missing")
-def nan_missing(ctx: AuditContext, self: Check):
-    hits = {name: p.nan_rows for name, p in ctx.non_numeric.items() if len(p.nan_rows)}
+@check("values-declared-missing", "info", "texts read as missing because they were declared so",
+       tally=declared_missing_tally, finish=declared_missing_finding)
+def declared_missing(ctx: AuditContext, self: Check):
+    return declared_missing_finding(self, declared_missing_tally(ctx))
+
+
+def nan_missing_tally(ctx: AuditContext) -> dict:
+    """NaN values read as missing per variable (all listed); examples by variable, then row."""
+    problems = ctx.non_numeric
+    per_variable, examples = {}, []
+    for j, name in enumerate(ctx.variables):
+        rows = problems[name].nan_rows if name in problems else np.zeros(0, dtype=np.int64)
+        per_variable[name] = len(rows)
+        examples += [((j, int(row)), {"column": name, "row": int(row)})
+                     for row in ctx.input_rows(rows[:MAX_EXAMPLES])]
+    return {"per_variable": per_variable, "examples": examples[:MAX_EXAMPLES]}
+
+
+def nan_missing_finding(self: Check, tally: dict):
+    hits = {name: count for name, count in tally["per_variable"].items() if count}
     if not hits:
         return None
-    total = sum(len(rows) for rows in hits.values())
-    examples = [{"column": name, "row": int(row) + 1}
-                for name, rows in hits.items() for row in rows[:MAX_EXAMPLES]][:MAX_EXAMPLES]
-    names = ", ".join(f"{name} ({len(rows)})" for name, rows in hits.items())
+    total = sum(hits.values())
+    names = ", ".join(f"{name} ({count})" for name, count in hits.items())
     return self.finding(
         total,
         f"{plural(total, 'NaN value')} read as missing in {names}; NaN is often the result of a failed "
         "computation (0/0) upstream rather than a value never observed: check where it comes "
         "from (--severity values-nan-missing=info when NaN is how the source writes missing)",
-        examples,
-        {"per_variable": {name: len(rows) for name, rows in hits.items()}},
+        examples_of(tally),
+        {"per_variable": hits},
     )
+
+
+@check("values-nan-missing", "warning",
+       "NaN values (the text nan in CSV, NaN stored in a Parquet or Arrow float column) "
+       "read as missing", tally=nan_missing_tally, finish=nan_missing_finding)
+def nan_missing(ctx: AuditContext, self: Check):
+    return nan_missing_finding(self, nan_missing_tally(ctx))
 
 
 @check("values-decimal-rounded", "warning",
