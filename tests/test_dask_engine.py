@@ -167,8 +167,29 @@ def _random_panel(seed: int, n_entities: int = 60, n_periods: int = 12) -> pd.Da
     frame.loc[rng.random(n) < 0.05, "staff"] = np.nan
     frame.loc[rng.random(n) < 0.03, "sales"] = np.nan
     repeats = frame.sample(n=5, random_state=seed)
-    frame = pd.concat([frame, repeats], ignore_index=True)
+    # ids that differ only by case or spaces, and rows without an entity
+    lookalike = frame[frame["firm"] == "F001"].assign(firm=" f001")
+    unkeyed = frame.sample(n=3, random_state=seed + 2).assign(firm=None)
+    singles = frame.sample(n=3, random_state=seed + 3).assign(firm=["S1", "S2", "S3"])
+    frame = pd.concat([frame, repeats, lookalike, unkeyed, singles], ignore_index=True)
     return frame.sample(frac=1.0, random_state=seed + 1).reset_index(drop=True)
+
+
+def _parquet_with_nan(frame: pd.DataFrame, path: Path, nan_rows: np.ndarray) -> Path:
+    """``frame`` as Parquet with NaN stored (not null) in ``staff`` at ``nan_rows``."""
+    staff = frame["staff"].to_numpy(copy=True)
+    mask = np.isnan(staff)
+    staff[nan_rows] = np.nan
+    mask[nan_rows] = False
+    table = pa.table({
+        "firm": pa.array(frame["firm"].tolist(), pa.string()),
+        "year": pa.array(frame["year"].to_numpy()),
+        "capital": pa.array(frame["capital"].to_numpy()),
+        "staff": pa.array(staff, mask=mask),
+        "sales": pa.array(frame["sales"].to_numpy(), from_pandas=True),
+    })
+    pq.write_table(table, path)
+    return path
 
 
 KEYS = {"panel.entity": "firm", "panel.time": "year", "model.y": "sales",
@@ -179,17 +200,23 @@ KEYS = {"panel.entity": "firm", "panel.time": "year", "model.y": "sales",
 def test_random_unbalanced_panels_in_parquet_files_give_the_same_results(seed, tmp_path,
                                                                           cluster):
     frame = _random_panel(seed)
-    single = tmp_path / "panel.parquet"
-    frame.to_parquet(single, index=False)
+    nan_rows = np.random.default_rng(seed).choice(len(frame), 4, replace=False)
+    single = _parquet_with_nan(frame, tmp_path / "panel.parquet", nan_rows)
     folder = tmp_path / "parts"
     folder.mkdir()
     # the same rows in four files, read in name order: the same row numbers
     for i, piece in enumerate(np.array_split(np.arange(len(frame)), 4)):
-        frame.iloc[piece].to_parquet(folder / f"piece-{i}.parquet", index=False)
-    # exact repeats fail the gate by default; keep them a warning so the files are written
-    keys = {**KEYS, "checks.severity": {"row-repeated": "warning"}}
+        part = frame.iloc[piece].reset_index(drop=True)
+        _parquet_with_nan(part, folder / f"piece-{i}.parquet", np.flatnonzero(
+            np.isin(piece, nan_rows)))
+    # exact repeats and rows without a key fail the gate by default; keep them warnings so
+    # the files are written
+    keys = {**KEYS, "checks.severity": {"row-repeated": "warning", "key-missing": "warning"}}
     local = _run(single, tmp_path / "local", "local", **keys)
     assert local.verdict == "pass"
+    found = {f["id"] for f in local.summary["findings"]}
+    assert {"row-repeated", "key-missing", "entity-id-lookalike", "values-nan-missing",
+            "values-missing", "period-holes", "entity-single-obs"} <= found
     dask = _run(folder, tmp_path / "dask", "dask", cluster, 5, **keys)
     _compare(local, dask, ["firm"], same_input=False)
     # one sha256 for the four files, not the single file's
@@ -350,3 +377,37 @@ def test_a_worker_killed_mid_run_still_ends_in_a_complete_folder(step, tmp_path)
     assert log.killed
     _compare(local, dask, ["firm"])
     assert not list(tmp_path.glob(".panelprep-partial-*"))
+
+
+def _command(args: list[str], env_progress: str | None = None) -> subprocess.CompletedProcess:
+    env = {k: v for k, v in os.environ.items() if k != "PANELPREP_PROGRESS"}
+    if env_progress is not None:
+        env["PANELPREP_PROGRESS"] = env_progress
+    # the installed command, as a scheduler runs it
+    command = str(Path(sys.executable).with_name("panelprep"))
+    return subprocess.run([command, *args], capture_output=True, text=True, timeout=300,
+                          check=False, env=env)
+
+
+def test_the_command_shows_stages_and_partitions_on_stderr_and_nothing_with_quiet(
+        tmp_path, cluster):
+    frame = _random_panel(10).dropna().drop_duplicates()
+    folder = tmp_path / "in"
+    folder.mkdir()
+    for i, piece in enumerate(np.array_split(np.arange(len(frame)), 2)):
+        frame.iloc[piece].to_parquet(folder / f"p{i}.parquet", index=False)
+    base = [str(folder), "-e", "firm", "-t", "year", "--y", "sales", "--x", "capital,staff",
+            "--no-evidence", "--engine", "dask", "--cluster", cluster.scheduler_address,
+            "--partitions", "4"]
+    shown = _command(["prepare", *base, "-o", str(tmp_path / "a"), "--progress", "plain"])
+    assert shown.returncode == 0, shown.stderr
+    steps = [line.split()[3].rstrip(":") for line in shown.stderr.splitlines()]
+    for step in ("read", "grid", "shuffle", "audit", "scaling", "moments", "components",
+                 "designs", "write"):
+        assert step in steps, shown.stderr
+    assert "of 4 partitions done" in shown.stderr
+    assert "written to" in shown.stdout
+    quiet = _command(["prepare", *base, "-o", str(tmp_path / "b"), "--quiet"])
+    assert quiet.returncode == 0, quiet.stderr
+    assert quiet.stderr == ""
+    assert (tmp_path / "b" / "within" / "_common_metadata").exists()

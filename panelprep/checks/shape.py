@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 from panelprep.checks.base import Check, check, examples_of, row_ordered
-from panelprep.checks.context import AuditContext, _plain
+from panelprep.checks.context import AuditContext, plain_value
 from panelprep.findings import MAX_EXAMPLES, Finding
 from panelprep.index import PanelIndex
 from panelprep.limits import grid_is_large
@@ -60,7 +60,7 @@ def entity_ranks(index: PanelIndex, codes: np.ndarray) -> list[tuple]:
     """Each entity's key values as a tuple: entity codes follow their order, so examples
     from different parts of a panel rank the way one index would rank them."""
     labels = index.entity_labels.iloc[np.asarray(codes, dtype=np.int64)]
-    return [tuple(_plain(v) for v in row) for row in labels.itertuples(index=False)]
+    return [tuple(plain_value(v) for v in row) for row in labels.itertuples(index=False)]
 
 
 def off_grid_tally(ctx: AuditContext) -> dict:
