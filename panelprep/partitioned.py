@@ -224,6 +224,8 @@ class Spec:
     read_options: ReadOptions
     wanted: list[str]
     grid: Grid | None = None
+    # each column's type as read (the shuffle hands some back as objects: Arrow decimals)
+    dtypes: dict[str, Any] | None = None
 
 
 def read_piece(piece: Piece, spec: Spec, dtypes: dict[str, Any] | None = None) -> pd.DataFrame:
@@ -302,6 +304,9 @@ def audit_part(frame: pd.DataFrame, spec: Spec) -> PartState:
     frame = frame.sort_values(ROW, kind="stable")
     origin = frame[ROW].to_numpy(dtype=np.int64)
     frame = frame.drop(columns=[ROW, HASH]).reset_index(drop=True)
+    for name, dtype in (spec.dtypes or {}).items():
+        if frame[name].dtype != dtype:
+            frame[name] = frame[name].astype(dtype)
     index = build_index(frame, options.entity, options.time, grid=spec.grid)
     ctx = AuditContext(frame, index, options.variables, options.thresholds,
                        spec.read_options.decimal_comma, tuple(spec.read_options.missing_tokens),
@@ -569,7 +574,7 @@ def _run_on(client: Any, source: Source, options: PrepareOptions, read_options: 
     progress("grid", "the period grid from the distinct time values")
     distinct = frames[options.time].drop_duplicates().compute()
     grid = time_grid(distinct, options.freq, options.time)
-    spec = Spec(options, read_options, wanted, grid)
+    spec = Spec(options, read_options, wanted, grid, dtypes)
     n_partitions = engine.partitions or max(
         2 * len(client.scheduler_info()["workers"]), math.ceil(rows_read / PARTITION_ROWS))
     progress("shuffle", f"shuffling {rows_read:,} rows by entity into {n_partitions} partitions",

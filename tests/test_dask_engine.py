@@ -411,3 +411,22 @@ def test_the_command_shows_stages_and_partitions_on_stderr_and_nothing_with_quie
     assert quiet.returncode == 0, quiet.stderr
     assert quiet.stderr == ""
     assert (tmp_path / "b" / "within" / "_common_metadata").exists()
+
+
+def test_a_finding_the_engine_cannot_add_up_yet_is_refused_with_one_line(tmp_path, cluster):
+    from decimal import Decimal
+
+    frame = _random_panel(11).dropna().drop_duplicates().reset_index(drop=True)
+    # a decimal float64 does not hold exactly (values-decimal-rounded, not combined yet)
+    capital = [Decimal(f"{v:.2f}") for v in frame["capital"]]
+    capital[0] = Decimal("99999999999999.99")
+    table = pa.Table.from_pandas(frame.drop(columns="capital"), preserve_index=False)
+    table = table.append_column("capital", pa.array(capital, pa.decimal128(16, 2)))
+    data = tmp_path / "decimals.parquet"
+    pq.write_table(table, data)
+    local = _run(data, tmp_path / "local", "local", **KEYS)
+    assert "values-decimal-rounded" in {f["id"] for f in local.summary["findings"]}
+    with pytest.raises(InputError, match="cannot yet add up the finding values-decimal-rounded"):
+        _run(data, tmp_path / "dask", "dask", cluster, 3, **KEYS)
+    assert not (tmp_path / "dask").exists()
+    assert not list(tmp_path.glob(".panelprep-partial-*"))

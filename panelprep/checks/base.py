@@ -57,6 +57,10 @@ def check(id: str, severity: str, summary: str, tally=None, finish=None):
     return wrap
 
 
+# the bad values a finding quotes are drawn from the first this many bad rows
+FIRST_VALUES = 200
+
+
 def row_ordered(examples: Sequence[dict]) -> list[tuple[tuple, dict]]:
     """Examples ranked by their input row (``row``), for :func:`merge_tallies`."""
     return [((example["row"],), example) for example in examples]
@@ -75,7 +79,7 @@ def merge_tallies(tallies: Sequence[dict]) -> dict:
     same in every part, such as the grid's name) is kept; dicts are merged
     key by key the same way (per-value counts); ranked example lists
     (``(rank, example)`` pairs) are merged by rank and cut to
-    ``MAX_EXAMPLES``.
+    ``MAX_EXAMPLES`` (``FIRST_VALUES`` for a list under ``firsts``).
     """
     out: dict[Any, Any] = {}
     keys = dict.fromkeys(key for tally in tallies for key in tally)
@@ -86,7 +90,7 @@ def merge_tallies(tallies: Sequence[dict]) -> dict:
             out[key] = merge_tallies(values)
         elif isinstance(first, list):
             merged = sorted((pair for value in values for pair in value), key=lambda p: p[0])
-            out[key] = merged[:MAX_EXAMPLES]
+            out[key] = merged[:FIRST_VALUES if key == "firsts" else MAX_EXAMPLES]
         elif isinstance(first, str):
             out[key] = first
         elif isinstance(key, str) and key.endswith(("_max", "_min")):

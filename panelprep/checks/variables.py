@@ -7,36 +7,54 @@ import re
 import numpy as np
 
 from panelprep._groups import group_counts
-from panelprep.checks.base import Check, check, examples_of
+from panelprep.checks.base import FIRST_VALUES, Check, check, examples_of
 from panelprep.checks.context import AuditContext
 from panelprep.checks.shape import entity_ranks
 from panelprep.findings import MAX_EXAMPLES
 from panelprep.words import plural, plural_word
 
 
-@check("values-not-numeric", "error",
-       "text, infinities or whole numbers beyond 2^53 in a variable "
-       "that should be numeric")
-def not_numeric(ctx: AuditContext, self: Check):
-    bad = {name: p for name, p in ctx.non_numeric.items() if len(p.rows)}
+def not_numeric_tally(ctx: AuditContext) -> dict:
+    """Values that are not numbers, per variable (all listed): the count and the first
+    ``FIRST_VALUES`` bad values with their input rows, in row order."""
+    per_variable = {}
+    for name in ctx.variables:
+        problem = ctx.non_numeric.get(name)
+        rows = problem.rows if problem is not None else np.zeros(0, dtype=np.int64)
+        first = rows[:FIRST_VALUES]
+        values = ctx.frame[name].iloc[first]
+        per_variable[name] = {"rows": len(rows), "firsts": [
+            ((int(row),), str(value)) for row, value in zip(ctx.input_rows(first), values)]}
+    return {"decimal_comma": "yes" if ctx.decimal_comma else "", "per_variable": per_variable}
+
+
+def not_numeric_finding(self: Check, tally: dict):
+    bad = {name: t for name, t in tally["per_variable"].items() if t["rows"]}
     if not bad:
         return None
-    total = sum(len(p.rows) for p in bad.values())
-    examples = []
-    for name, problem in bad.items():
-        for row in problem.rows[:MAX_EXAMPLES]:
-            examples.append({"column": name, "row": int(ctx.input_rows([row])[0]),
-                             "value": str(ctx.frame[name].iloc[int(row)])})
-    details = {name: {"rows": len(p.rows), "values": p.values} for name, p in bad.items()}
-    names = ", ".join(f"{n} ({len(p.rows)})" for n, p in bad.items())
+    # the distinct values among the first bad rows, at most 10 (NonNumeric.values)
+    shown = {name: list(dict.fromkeys(v for _, v in t["firsts"]))[:10] for name, t in bad.items()}
+    total = sum(t["rows"] for t in bad.values())
+    examples = [{"column": name, "row": rank[0], "value": value}
+                for name, t in bad.items() for rank, value in t["firsts"][:MAX_EXAMPLES]]
+    details = {name: {"rows": t["rows"], "values": shown[name]} for name, t in bad.items()}
+    names = ", ".join(f"{n} ({t['rows']})" for n, t in bad.items())
+    every = [v for values in shown.values() for v in values]
     return self.finding(
         total,
         f"{plural(total, 'value')} that {plural_word(total, 'is')} not a number in {names}; e.g. "
-        + ", ".join(repr(v) for p in bad.values() for v in p.values[:3])
-        + f" ({'; '.join(_hints([v for p in bad.values() for v in p.values], ctx.decimal_comma))})",
+        + ", ".join(repr(v) for values in shown.values() for v in values[:3])
+        + f" ({'; '.join(_hints(every, bool(tally['decimal_comma'])))})",
         examples,
         details,
     )
+
+
+@check("values-not-numeric", "error",
+       "text, infinities or whole numbers beyond 2^53 in a variable "
+       "that should be numeric", tally=not_numeric_tally, finish=not_numeric_finding)
+def not_numeric(ctx: AuditContext, self: Check):
+    return not_numeric_finding(self, not_numeric_tally(ctx))
 
 
 _LONG_INTEGER = re.compile(r"^\s*[-+]?\d{16,}\s*$")
