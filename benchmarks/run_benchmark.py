@@ -336,7 +336,8 @@ def _naive(spec: Spec) -> tuple[Any, dict]:
 def _ours_summary(spec: Spec, prep, quasi_file: Path | None = None) -> dict:
     comp = prep.summary.get("components") or {}
     out = {"verdict": prep.verdict, "sigma2_entity": comp.get("sigma2_entity"),
-           "sigma2_idiosyncratic": comp.get("sigma2_idiosyncratic")}
+           "sigma2_idiosyncratic": comp.get("sigma2_idiosyncratic"),
+           "steps_peak_kib": _steps_peak_kib(prep.summary)}
     import pandas as pd
 
     from panelprep.names import DEFAULT_NAMES
@@ -377,10 +378,23 @@ def _ours_cli(spec: Spec) -> tuple[Any, dict]:
         done = subprocess.run(command, capture_output=True, text=True, check=False)
         if done.returncode != 0:
             raise RuntimeError(f"CLI exit {done.returncode}: {done.stderr[-2000:]}")
+        summary = json.loads((spec.out / "prepared" / "diagnostics.json").read_text())
         return {"exit_code": done.returncode,
-                "files_written": len(list((spec.out / "prepared").glob("*.parquet")))}
+                "files_written": len(list((spec.out / "prepared").glob("*.parquet"))),
+                "steps_peak_kib": _steps_peak_kib(summary)}
 
     return run, {"peak_from_children": True}
+
+
+def _steps_peak_kib(summary: dict) -> int:
+    """The largest per-step peak of a run's ``run.steps``.
+
+    A preparation resets the resident high-water mark at each step (to tell
+    each step's peak), so the process's ``VmHWM`` or ``ru_maxrss`` at the
+    end holds only the last step's; the run's peak is the largest of them.
+    """
+    steps = summary.get("run", {}).get("steps", [])
+    return max((int(step["peak_rss_bytes"]) // 1024 for step in steps), default=0)
 
 
 def _load_frame(spec: Spec):
@@ -572,6 +586,8 @@ def child_main(case: str, raw_spec: str) -> None:
         baseline = 0
     else:
         peak = _status_kib("VmHWM")
+    # a run that reset the high-water mark per step reports its steps' peaks
+    peak = max(peak, int(info.pop("steps_peak_kib", 0) or 0))
     print("RESULT " + json.dumps({"seconds": seconds, "cpu_seconds": cpu, "peak_kib": peak,
                                   "baseline_kib": baseline, "load_1min": load, "code": version,
                                   "info": info}))

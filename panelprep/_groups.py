@@ -54,6 +54,30 @@ def segment_bounds(sorted_codes: np.ndarray) -> np.ndarray:
     return np.concatenate(([0], change)).astype(np.int64)
 
 
+def occurring(codes: np.ndarray, n_groups: int | None = None
+              ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The groups that occur, the codes renumbered over them, and their row counts.
+
+    ``(present, compact, counts)`` as ``np.unique(codes, return_inverse=True,
+    return_counts=True)`` gives them, for non-negative ``codes`` below
+    ``n_groups`` (taken from the codes when not given).  A count per group
+    and a renumbering by cumulative sum when the groups are not many more
+    than the rows, which is linear where the sort is not; the sort otherwise,
+    so a sparse grid of groups costs no more than the rows.
+    """
+    codes = np.asarray(codes).reshape(-1)
+    if n_groups is None:
+        n_groups = int(codes.max()) + 1 if len(codes) else 0
+    if n_groups > 4 * len(codes) + 1024:
+        present, compact, counts = np.unique(codes, return_inverse=True, return_counts=True)
+        return present, compact.reshape(-1), counts.astype(np.int64, copy=False)
+    per_group = np.bincount(codes, minlength=n_groups)
+    seen = per_group > 0
+    present = np.flatnonzero(seen)
+    renumber = np.cumsum(seen) - 1
+    return present, renumber[codes], per_group[present].astype(np.int64, copy=False)
+
+
 def compact_codes(codes: np.ndarray, n_groups: int) -> tuple[np.ndarray, int]:
     """Codes renumbered over the groups that occur, when there are more groups than rows.
 

@@ -38,7 +38,7 @@ import scipy.linalg
 
 from panelprep._groups import group_sums
 from panelprep._linalg import GRAM_MIN_ROWS, QR_BLOCK_ROWS
-from panelprep._scale import Scaling, scaling
+from panelprep._scale import Scaling, scaled_group_means
 
 
 @dataclass(frozen=True, eq=False)
@@ -117,7 +117,8 @@ class EntityMoments:
 
 def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
                    counts: np.ndarray, x_scaling: Scaling | None = None,
-                   y_scaling: Scaling | None = None) -> EntityMoments:
+                   y_scaling: Scaling | None = None,
+                   means: np.ndarray | None = None) -> EntityMoments:
     """Counts, means and the within factor of ``[X, y]`` in one pass over the rows.
 
     ``X`` (n, k) and ``y`` (n,) should be standardised (centred, scaled;
@@ -126,7 +127,8 @@ def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
     row block is scaled as it is read (no scaled copy of the sample).
     The factor is a tall-skinny QR of row blocks below ``GRAM_MIN_ROWS`` rows
     and the square root of the blocks' summed cross product from there on,
-    as in ``_linalg.ols``.
+    as in ``_linalg.ols``.  ``means`` (G, k + 1), the entity means of the
+    scaled ``[X, y]``, are taken as given when the caller has them.
     """
     n, k = X.shape
     n_groups = len(counts)
@@ -142,10 +144,11 @@ def entity_moments(X: np.ndarray, y: np.ndarray, codes: np.ndarray,
     def rows(block, scale, start, stop):
         return block[start:stop] if scale is None else scale.rows(block, start, stop)
 
-    means = np.empty((n_groups, k + 1), order="F")
-    for j in range(k):
-        means[:, j] = group_sums(codes, column(X, x_scaling, j), n_groups) * inv
-    means[:, k] = group_sums(codes, column(y2, y_scaling, 0), n_groups) * inv
+    if means is None:
+        means = np.empty((n_groups, k + 1), order="F")
+        for j in range(k):
+            means[:, j] = group_sums(codes, column(X, x_scaling, j), n_groups) * inv
+        means[:, k] = group_sums(codes, column(y2, y_scaling, 0), n_groups) * inv
     within_ss = np.zeros(k + 1)
     total_ss = np.zeros(k + 1)
     factor = RowFactor(k + 1, n)
@@ -301,23 +304,38 @@ def combined_moments(parts: list[EntityMoments]) -> EntityMoments:
 
 
 def standard_sample(y: np.ndarray, X: np.ndarray, codes: np.ndarray,
-                    counts: np.ndarray) -> StandardSample:
+                    counts: np.ndarray,
+                    shared: tuple[Scaling, np.ndarray] | None = None) -> StandardSample:
     """The sample ``y`` (n,), ``X`` (n, k) with its scaling and moments, in one pass or two.
 
     ``counts`` (G,) are the rows per entity of the dense ``codes``.  The
     moments are taken on the scaled columns (``_scale.standardise``), which
     are centred, so the entity means and the factor of the within block
     carry no digits lost to a level; no scaled copy of the rows is kept.
+    ``shared`` is :func:`~panelprep._scale.scaled_group_means` of the block
+    ``[y, X]`` when the caller has it (the audit's variation table took it
+    on the same rows): the scaling and entity means are then not taken again.
     """
     y = np.asarray(y, dtype=np.float64).reshape(-1)
     X = np.asarray(X, dtype=np.float64)
     if X.ndim == 1:
         X = X[:, None]
-    x_scaling, y_scaling = scaling(X), scaling(y.reshape(-1, 1))
+    k = X.shape[1]
     sizes = np.asarray(counts, dtype=np.int64)
+    if shared is None:
+        x_scaling, x_means = scaled_group_means(X, codes, sizes)
+        y_scaling, y_means = scaled_group_means(y.reshape(-1, 1), codes, sizes)
+    else:
+        block_scaling, block_means = shared
+        x_scaling, x_means = block_scaling.take(slice(1, k + 1)), block_means[:, 1:k + 1]
+        y_scaling, y_means = block_scaling.take([0]), block_means[:, :1]
+    means = np.empty((len(sizes), k + 1), order="F")
+    means[:, :k] = x_means
+    means[:, k:] = y_means
     return StandardSample(raw_X=X, raw_y=y, codes=codes, counts=sizes, x_scaling=x_scaling,
                           y_scaling=y_scaling,
-                          moments=entity_moments(X, y, codes, sizes, x_scaling, y_scaling))
+                          moments=entity_moments(X, y, codes, sizes, x_scaling, y_scaling,
+                                                 means))
 
 
 def triangular(rows: np.ndarray, width: int) -> np.ndarray:

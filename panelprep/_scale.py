@@ -135,6 +135,10 @@ class Scaling:
         out /= self.second[j]
         return out
 
+    def take(self, columns: list[int] | slice) -> Scaling:
+        """The scaling of some of the columns, in the order given."""
+        return Scaling(self.first[columns], self.mean[columns], self.second[columns])
+
     def rows(self, values: np.ndarray, start: int, stop: int) -> np.ndarray:
         """Rows ``start:stop`` of the scaled block, Fortran-ordered."""
         out = np.divide(values[start:stop], self.first, order="F")
@@ -143,39 +147,61 @@ class Scaling:
         return out
 
 
-def scaling(values: np.ndarray) -> Scaling:
-    """:func:`standardise`'s parameters of an (n, k) block, column by column with one buffer.
+def scaled_group_means(values: np.ndarray, codes: np.ndarray, counts: np.ndarray
+                       ) -> tuple[Scaling, np.ndarray]:
+    """:func:`standardise`'s parameters of an (n, k) block and the group means of its
+    scaled columns, column by column with one buffer (no scaled copy of the block).
 
-    The three column passes are :func:`largest`, :func:`level_sums` and
-    :func:`spread_sums`; each is a sum or a maximum over rows, so the dask
-    engine takes them partition by partition and adds them up
-    (:func:`scaling_from`) to the same parameters up to the order of additions.
+    One sweep per column: the scaling's pass leaves ``x / first - mean`` in
+    the buffer, one division by the (power of two) ``second`` makes it the
+    scaled column :meth:`Scaling.column` gives, and one ``bincount`` sums it
+    per group.  ``codes`` are dense group codes, ``counts`` (G,) the rows of
+    each; a group without rows has mean 0.  The means are the ones the
+    variation table, the variance components and the evidence all read.
     """
     block = np.asarray(values, dtype=np.float64)
     n, k = block.shape
+    n_groups = len(counts)
+    first, mean, second = np.ones(k), np.zeros(k), np.ones(k)
+    means = np.zeros((n_groups, k), order="F")
     if n == 0:
-        return Scaling(np.ones(k), np.zeros(k), np.ones(k))
+        return Scaling(first, mean, second), means
     first = first_divisor(largest(block))
-    mean = level_sums(block, first) / n
-    return scaling_from(first, mean, spread_sums(block, first, mean), n)
+    _, exponent = np.frexp(first)
+    sizes = np.asarray(counts, dtype=np.float64)
+    inverse = np.zeros(n_groups)
+    np.divide(1.0, sizes, out=inverse, where=sizes > 0)
+    buffer = np.empty(n)
+    for j in range(k):
+        np.divide(block[:, j], first[j], out=buffer)
+        mean[j] = buffer.mean()
+        buffer -= mean[j]
+        spread = np.sqrt(np.dot(buffer, buffer) / n)
+        second[j] = _capped_second(np.array([spread]), exponent[j:j + 1])[0]
+        buffer /= second[j]
+        means[:, j] = np.bincount(codes, weights=buffer, minlength=n_groups) * inverse
+    return Scaling(first, mean, second), means
 
 
 def largest(block: np.ndarray) -> np.ndarray:
-    """Largest magnitude per column (k,); 0 for a block without rows."""
+    """Largest magnitude per column (k,), from the extremes (no block-sized array of
+    magnitudes); 0 for a block without rows."""
     if block.shape[0] == 0:
         return np.zeros(block.shape[1])
-    return np.abs(block).max(axis=0)
+    return np.array([max(-float(block[:, j].min()), float(block[:, j].max()))
+                     for j in range(block.shape[1])])
 
 
 def first_divisor(largest_magnitude: np.ndarray) -> np.ndarray:
-    """A power of two within a factor 2 of each column's largest magnitude: |x / it| < 2, so
-    no sum overflows (2^exponent itself overflows for values near the largest float)."""
+    """A power of two within a factor 2 of each column's largest magnitude: ``|x / it| < 2``,
+    so no sum overflows (2^exponent itself overflows for values near the largest float).
+    ``frexp`` of it gives back the exponent :func:`scaling_from` caps the scale with."""
     _, exponent = np.frexp(np.where(largest_magnitude > 0, largest_magnitude, 1.0))
     return np.ldexp(1.0, exponent - 1)
 
 
 def level_sums(block: np.ndarray, first: np.ndarray) -> np.ndarray:
-    """``sum x / first`` per column (k,)."""
+    """``sum x / first`` per column (k,): the dask engine's second scaling pass."""
     buffer = np.empty(block.shape[0])
     out = np.zeros(block.shape[1])
     for j in range(block.shape[1]):
@@ -185,7 +211,7 @@ def level_sums(block: np.ndarray, first: np.ndarray) -> np.ndarray:
 
 
 def spread_sums(block: np.ndarray, first: np.ndarray, mean: np.ndarray) -> np.ndarray:
-    """``sum (x / first - mean)^2`` per column (k,)."""
+    """``sum (x / first - mean)^2`` per column (k,): the dask engine's third scaling pass."""
     buffer = np.empty(block.shape[0])
     out = np.zeros(block.shape[1])
     for j in range(block.shape[1]):
@@ -196,9 +222,10 @@ def spread_sums(block: np.ndarray, first: np.ndarray, mean: np.ndarray) -> np.nd
 
 
 def scaling_from(first: np.ndarray, mean: np.ndarray, spread_sum: np.ndarray, n: int) -> Scaling:
-    """The :class:`Scaling` of ``n`` rows from :func:`spread_sums` (added up over parts)."""
+    """The :class:`Scaling` of ``n`` rows from :func:`first_divisor`, the level sums / n and
+    :func:`spread_sums`, each added up over the parts of the rows (the dask engine); the
+    same numbers :func:`scaled_group_means` takes in one sweep, up to the order of additions."""
     _, exponent = np.frexp(first)
-    # first = 2^(exponent - 1): the exponent frexp gave the largest magnitude
     return Scaling(first, mean, _capped_second(np.sqrt(spread_sum / n), exponent))
 
 

@@ -14,15 +14,11 @@ import numpy as np
 import pandas as pd
 
 from panelprep._groups import compact_codes, group_counts, group_sums, segment_bounds
+from panelprep.choices import BALANCE, DUPLICATES, NORMALISE, SINGLETONS
 from panelprep.errors import InputError
 from panelprep.index import PanelIndex
 from panelprep.limits import LARGEST_BLOCK_PERIODS
 from panelprep.timeaxis import build_time_axis
-
-DUPLICATES = ("fail", "drop-exact", "keep-first", "keep-last", "mean")
-NORMALISE = ("none", "trim", "trim-fold")
-SINGLETONS = ("keep", "drop")
-BALANCE = ("keep", "complete-entities", "largest-block")
 
 
 @dataclass

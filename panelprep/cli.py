@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
+import typer.core
 
 from panelprep.errors import InputError
 
@@ -32,7 +33,33 @@ EXIT_CODES = ("Exit codes: 0 the data passed the gate; 1 the gate failed (a find
               "--fail-on); 2 bad input or usage (one line on stderr); 3 internal error (a bug: "
               "the traceback is saved to a file named on stderr); 130 interrupted.")
 
+_NO_BREAK = "\u2011"  # a non-breaking hyphen, only while the help text is wrapped
+
+
+class _WholeWordHelp(typer.Context.formatter_class):
+    """Help wrapped at spaces only: ``period-holes`` or ``drop-exact`` never split at a line end."""
+
+    def write_dl(self, rows, *args, **kwargs) -> None:
+        start = len(self.buffer)
+        super().write_dl([(term, text.replace("-", _NO_BREAK)) for term, text in rows],
+                         *args, **kwargs)
+        self.buffer[start:] = [part.replace(_NO_BREAK, "-") for part in self.buffer[start:]]
+
+
+class _Context(typer.Context):
+    formatter_class = _WholeWordHelp
+
+
+class _Command(typer.core.TyperCommand):
+    context_class = _Context
+
+
+class _Group(typer.core.TyperGroup):
+    context_class = _Context
+
+
 app = typer.Typer(
+    cls=_Group,
     add_completion=False,
     no_args_is_help=True,
     pretty_exceptions_enable=False,
@@ -45,7 +72,8 @@ app = typer.Typer(
 EntityOpt = Annotated[str, typer.Option("--entity", "-e", help="Entity key column(s), comma-separated.")]
 TimeOpt = Annotated[str, typer.Option("--time", "-t", help="Time column.")]
 FreqOpt = Annotated[str | None, typer.Option(
-    "--freq", help="Period frequency: year, quarter, month, week, day or int (inferred if omitted).")]
+    "--freq", help="Period frequency: year, quarter, month, week, day, int, or int:K for "
+    "whole-number periods K apart (waves 80 and 90: int:10); inferred if omitted.")]
 FormatOpt = Annotated[str | None, typer.Option(
     "--input-format", help="csv, parquet or arrow (default: by extension).")]
 DelimOpt = Annotated[str | None, typer.Option(
@@ -175,7 +203,7 @@ class _Session:
         raise typer.Exit(code)
 
 
-@app.command("audit", epilog=EXIT_CODES)
+@app.command("audit", cls=_Command, epilog=EXIT_CODES)
 def audit_command(
     data: Annotated[Path, typer.Argument(help="CSV, Parquet or Arrow/Feather file.")],
     entity: EntityOpt,
@@ -228,7 +256,7 @@ def audit_command(
     session.end(result.verdict, document["gate"]["failed_by"])
 
 
-@app.command("prepare", epilog=EXIT_CODES)
+@app.command("prepare", cls=_Command, epilog=EXIT_CODES)
 def prepare_command(
     data: Annotated[Path | None, typer.Argument(help="CSV, Parquet or Arrow/Feather file (or input.path of --config).")] = None,
     config: Annotated[Path | None, typer.Option("--config", "-c", help="Run file (TOML); flags given here override it.")] = None,
@@ -238,7 +266,7 @@ def prepare_command(
     x: Annotated[str | None, typer.Option("--x", help="Regressors, comma-separated (may name lags, e.g. sales_lag1).")] = None,
     out: Annotated[Path | None, typer.Option("--out", "-o", help="Output folder.")] = None,
     failed_out: Annotated[Path | None, typer.Option("--failed-out", help="Folder for the diagnostics when the gate fails (default: OUT.failed beside --out); --out is then left as it was.")] = None,
-    transform: Annotated[str | None, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway (default within,between,quasi).")] = None,
+    transform: Annotated[str | None, typer.Option("--transform", help="Comma-separated: within, between, quasi, twoway, diff (default within,between,quasi).")] = None,
     method: Annotated[str | None, typer.Option("--method", help="Variance components: swamy-arora (default), wallace-hussain, amemiya or nerlove.")] = None,
     output_format: Annotated[str | None, typer.Option("--format", help="Data files as parquet (default) or csv.")] = None,
     compression: Annotated[str | None, typer.Option("--compression", help="Parquet codec: zstd (default), lz4, snappy, gzip or none.")] = None,
@@ -253,7 +281,7 @@ def prepare_command(
     lag: Annotated[str | None, typer.Option("--lag", help="Lags as var:k,... creating var_lagk.")] = None,
     lead: Annotated[str | None, typer.Option("--lead", help="Leads as var:k,... creating var_leadk.")] = None,
     diff: Annotated[str | None, typer.Option("--diff", help="Differences as var[:k],... creating var_diffk.")] = None,
-    severity: Annotated[str | None, typer.Option("--severity", help="Severity per finding id, e.g. period-holes=error,entity-single-obs=info.")] = None,
+    severity: Annotated[str | None, typer.Option("--severity", help="Severity per finding id as ID=LEVEL,... with LEVEL info, warning or error, e.g. period-holes=error,entity-single-obs=info.")] = None,
     names: Annotated[str | None, typer.Option("--names", help="Rename the columns panelprep adds (run-file [names] keys), e.g. row=src_row,theta=re_theta.")] = None,
     freq: FreqOpt = None,
     fail_on: Annotated[str | None, typer.Option("--fail-on", help="Lowest severity that fails the gate: error (default) or warning.")] = None,
@@ -276,7 +304,6 @@ def prepare_command(
         # local engine refuses them with the same line as here)
         _check_data(data, session)
     from panelprep.config import RunFile, load_run_file
-    from panelprep.prepare import run_from_file
 
     overrides = {
         "input.path": data, "input.format": input_format, "input.delimiter": delimiter,
@@ -294,6 +321,10 @@ def prepare_command(
     try:
         overrides.update(_names_map(names))
         run = load_run_file(config, overrides) if config else RunFile().merged(overrides)
+        # the run file is checked before the numeric stack loads: a bad value is answered
+        # at once
+        from panelprep.prepare import run_from_file
+
         result = run_from_file(run, progress=session.log)
     except InputError as err:
         session.fail(str(err))
@@ -302,7 +333,7 @@ def prepare_command(
     session.end(result.verdict, result.summary["gate"]["failed_by"])
 
 
-@app.command("demo", epilog=EXIT_CODES)
+@app.command("demo", cls=_Command, epilog=EXIT_CODES)
 def demo_command(
     folder: Annotated[Path, typer.Argument(help="Folder for the demo data, run file and outputs.")] = Path("panelprep-demo"),
     force: Annotated[bool, typer.Option("--force", help="Redo the demo in a folder that is not empty.")] = False,
@@ -360,14 +391,14 @@ def _names_map(text: str | None) -> dict[str, str]:
     return out
 
 
-@app.command("draft")
+@app.command("draft", cls=_Command)
 def draft_command(
     data: Annotated[Path, typer.Argument(help="The data file to draft a run file for.")],
     out: Annotated[Path | None, typer.Option("--out", "-o", help="Write the run file here (default: print it).")] = None,
     force: Annotated[bool, typer.Option("--force", help="Overwrite an existing run file.")] = False,
 ) -> None:
     """Write a commented starter run file for DATA, with guessed keys marked."""
-    from panelprep.config import starter_run_file
+    from panelprep.draft import starter_run_file
     from panelprep.io import check_file_destination, resolved, write_file
 
     try:
@@ -408,7 +439,7 @@ def _print_preparation(result, out: Path, session: _Session, note: str = "") -> 
                      f"diagnostics are in {result.written_to}")
 
 
-@app.command("components", epilog=EXIT_CODES)
+@app.command("components", cls=_Command, epilog=EXIT_CODES)
 def components_command(
     data: Annotated[Path, typer.Argument(help="CSV, Parquet or Arrow/Feather file.")],
     entity: EntityOpt,

@@ -32,20 +32,12 @@ import numpy as np
 from panelprep._groups import group_sums
 from panelprep._linalg import OlsFit, ols, ols_from_r
 from panelprep._moments import StandardSample, standard_sample
+from panelprep.choices import COMPONENT_FINDING_IDS, METHODS
 from panelprep.transforms import theta_per_entity, within
 from panelprep.words import plural
 
-METHODS = ("swamy-arora", "wallace-hussain", "amemiya", "nerlove")
 # every finding id the estimators emit (a run file may set their severity)
-FINDING_IDS = (
-    "entity-variance-negative",
-    "idiosyncratic-variance-negative",
-    "regressor-dropped-within",
-    "regressor-dropped-between",
-    "regressor-dropped-pooled",
-    "components-underidentified",
-    "variance-beyond-float-range",
-)
+FINDING_IDS = COMPONENT_FINDING_IDS
 
 INTERCEPT = "(intercept)"
 

@@ -22,7 +22,7 @@ Keys
 | `input.missing_tokens` | list of text | `[]` | texts read as missing in numeric variables, e.g. `["n/a", "-"]` |
 | `panel.entity` | text or list of text | *required* | entity key column(s) |
 | `panel.time` | text | *required* | time column |
-| `panel.freq` | `year`, `quarter`, `month`, `week`, `day`, `int` | inferred | period frequency |
+| `panel.freq` | `year`, `quarter`, `month`, `week`, `day`, `int`, `int:K` | inferred | period frequency; `int:K`: whole-number periods K apart (waves 80, 90: `int:10`) |
 | `model.y` | text | *required* | dependent variable |
 | `model.x` | list of text | *required* | regressors (at least one) |
 | `contract.schema` | path | none | pandera YAML contract checked before the panel checks |
@@ -41,7 +41,7 @@ Keys
 | `derive.diff` | list of `var` or `var:k` | `[]` | gap-aware differences x(t) - x(t-k), k = 1 when absent |
 | `output.dir` | path | *required* | output folder; a relative path is read from the run file's folder |
 | `output.failed_dir` | path | `DIR.failed` beside `output.dir` | folder for a failed gate's diagnostics, replacing an earlier failed run's (output.dir is left as it was); a relative path is read from the run file's folder |
-| `output.transforms` | list among `within`, `between`, `quasi`, `twoway` | `["within", "between", "quasi"]` | transformed files to write |
+| `output.transforms` | list among `within`, `between`, `quasi`, `twoway`, `diff` | `["within", "between", "quasi"]` | transformed files to write |
 | `output.method` | `swamy-arora`, `wallace-hussain`, `amemiya`, `nerlove` | `swamy-arora` | variance components for theta |
 | `output.format` | `parquet`, `csv` | `parquet` | format of the data files |
 | `output.compression` | `zstd`, `lz4`, `snappy`, `gzip`, `none` | `zstd` | codec of the Parquet files (zstd: the fastest total time at the smallest size measured) |
@@ -71,56 +71,53 @@ import json
 import math
 import os
 import re
-import tempfile
 import textwrap
 import tomllib
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import pandas as pd
-import pyarrow as pa
-import pyarrow.parquet as pq
-from pyarrow import feather
-
+from panelprep._paths import refuse_link_loop, resolved
 from panelprep._version import __version__
-from panelprep.checks import CHECK_IDS, Thresholds
-from panelprep.checks.context import looks_numeric
-from panelprep.clean import BALANCE, DUPLICATES, SINGLETONS
-from panelprep.clean import NORMALISE as NORMALISE_IDS
-from panelprep.components import FINDING_IDS as COMPONENT_FINDING_IDS
-from panelprep.components import METHODS
-from panelprep.engine import ENGINES
+from panelprep.choices import (
+    BALANCE,
+    CHECK_IDS,
+    COMPONENT_FINDING_IDS,
+    DUPLICATES,
+    ENGINES,
+    FORMATS,
+    FREQ_CHOICES,
+    FREQUENCIES,
+    METHODS,
+    OUTPUT_FORMATS,
+    PARQUET_COMPRESSIONS,
+    SINGLETONS,
+    TRANSFORMS,
+    parse_freq,
+)
+from panelprep.choices import NORMALISE as NORMALISE_IDS
 from panelprep.errors import InputError
 from panelprep.findings import (
     CONTRACT_FINDING_ID,
     SEVERITIES,
     SKIPPED_COLUMNS_ID,
+    STEP_FINDING_ID,
     UNCOMPUTABLE_ID,
 )
-from panelprep.io import (
-    FORMATS,
-    OUTPUT_FORMATS,
-    PARQUET_COMPRESSIONS,
-    ReadOptions,
-    column_names,
-    detect_format,
-    integer_text_to_int,
-    read_frame,
-    refuse_checksum_failure,
-    refuse_link_loop,
-    resolved,
-    sniff_delimiter,
-)
+from panelprep.limits import Thresholds
 from panelprep.names import DEFAULT_NAMES, AddedNames
-from panelprep.timeaxis import FREQUENCIES, build_time_axis
-from panelprep.transforms import TRANSFORMS
+
+if TYPE_CHECKING:
+    from panelprep.io import ReadOptions
+
+# Checking a run file imports no pandas, pyarrow or scipy (panelprep.choices): what reads
+# data (the read options, the draft's guesses) imports them where it is used.
 
 # Finding ids that modules other than the structural checks emit; a run file
 # may set their severity too.
 EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, UNCOMPUTABLE_ID, CONTRACT_FINDING_ID,
-                     SKIPPED_COLUMNS_ID)
+                     SKIPPED_COLUMNS_ID, STEP_FINDING_ID)
 FINDING_IDS: tuple[str, ...] = (*CHECK_IDS, *EXTRA_FINDING_IDS)
 
 FAIL_ON = ("error", "warning")
@@ -307,6 +304,16 @@ def _choice(allowed: tuple[str, ...]) -> Callable[[Any, bool], str]:
     return parse
 
 
+def _freq(value: Any, cli: bool) -> str:
+    """A frequency, or ``int:K`` for whole-number periods K apart (kept as written, trimmed)."""
+    try:
+        if isinstance(value, str) and parse_freq(value.strip())[0] is not None:
+            return value.strip().replace(" ", "")
+    except InputError:
+        pass
+    raise _Bad(f"one of {FREQ_CHOICES}, K a whole number from 1")
+
+
 def _items(value: Any, cli: bool, what: str) -> list[Any]:
     """A list from the file; on the command line a comma-separated text is a list too."""
     if cli and isinstance(value, str):
@@ -460,8 +467,9 @@ _KEYS: dict[str, dict[str, _Key]] = {
     "panel": {
         "entity": _Key("text or list of text", _names, "entity key column(s)"),
         "time": _Key("text", _text, "time column"),
-        "freq": _Key(", ".join(f"`{f}`" for f in FREQUENCIES), _choice(FREQUENCIES),
-                     "period frequency"),
+        "freq": _Key(", ".join(f"`{f}`" for f in FREQUENCIES) + ", `int:K`", _freq,
+                     "period frequency; `int:K`: whole-number periods K apart (waves 80, 90: "
+                     "`int:10`)"),
     },
     "model": {
         "y": _Key("text", _text, "dependent variable"),
@@ -682,6 +690,8 @@ class RunFile:
 
     def read_options(self) -> ReadOptions:
         """How to read the input, as ``panelprep.io.ReadOptions``."""
+        from panelprep.io import ReadOptions
+
         return ReadOptions(
             input_format=self.input.format,
             delimiter=self.input.delimiter,
@@ -996,249 +1006,7 @@ def _plain(text: str) -> str:
     return text.replace("`", "")
 
 
-# --- the starter file ----------------------------------------------------------
-
-_SAMPLE_ROWS = 1000
-_ID_WORDS = {"id", "ids", "firm", "entity", "code", "name", "company", "country", "person",
-             "individual", "household", "unit", "ident", "identifier", "key", "ticker", "isin",
-             "region", "state", "plant", "store", "school", "group"}
-_TIME_WORDS = {"year", "yr", "date", "period", "quarter", "qtr", "month", "week", "day", "time",
-               "wave", "t", "fyear", "fiscal"}
-
-
-def _words(name: str) -> list[str]:
-    spaced = re.sub(r"([a-z0-9])([A-Z])", r"\1 \2", name)
-    return [w for w in re.split(r"[^A-Za-z0-9]+", spaced.lower()) if w]
-
-
-def _named_like(name: str, vocabulary: set[str]) -> bool:
-    for word in _words(name):
-        if word in vocabulary:
-            return True
-        # glued forms such as firmid, companycode
-        if any(word.endswith(v) and word[: -len(v)] in vocabulary for v in ("id", "code", "key")):
-            return True
-    return False
-
-
-def _sample(path: Path, options: ReadOptions, names: list[str]) -> pd.DataFrame:
-    """The first rows of a data file; CSV columns all as text, so ids keep their zeros."""
-    fmt = detect_format(path, options.input_format)
-    if fmt == "csv":
-        with open(path, "rb") as handle:
-            head = b"".join(line for _, line in zip(range(_SAMPLE_ROWS + 1), handle))
-        with tempfile.TemporaryDirectory() as folder:
-            part = Path(folder) / f"sample{path.suffix or '.csv'}"
-            part.write_bytes(head)
-            return read_frame(part, None, names, None, options)
-    try:
-        if fmt == "parquet":
-            batches = pq.ParquetFile(path, page_checksum_verification=True).iter_batches(
-                batch_size=_SAMPLE_ROWS)
-            first = next(batches, None)
-            if first is None:
-                return pq.read_schema(path).empty_table().to_pandas()
-            return first.to_pandas()
-        return feather.read_table(path, memory_map=True).slice(0, _SAMPLE_ROWS).to_pandas()
-    except (pa.ArrowException, OSError, ValueError) as err:
-        if fmt == "parquet":
-            refuse_checksum_failure(path, err, None)
-        raise InputError(f"{path}: cannot read as {fmt}: {err}") from None
-
-
-def _is_text(values: pd.Series) -> bool:
-    return pd.api.types.is_string_dtype(values.dtype) or values.dtype == object
-
-
-def _whole_numbers(values: pd.Series) -> bool:
-    as_int = integer_text_to_int(values) if _is_text(values) else values
-    return pd.api.types.is_integer_dtype(as_int.dtype)
-
-
-def _parses_as_time(values: pd.Series, name: str) -> str | None:
-    """The frequency the values parse at, or None when they are not periods."""
-    present = values.dropna()
-    if len(present) == 0:
-        return None
-    if _is_text(present):
-        present = integer_text_to_int(present)
-    try:
-        return build_time_axis(present.reset_index(drop=True), None, name).freq
-    except (InputError, ValueError, TypeError, OverflowError):
-        return None
-
-
-def _guess_time(frame: pd.DataFrame, decimal_comma: bool) -> tuple[str | None, str | None]:
-    """(column, frequency): a time-named column that parses, else a text column of
-    period labels or dates, else a column of whole numbers that look like years."""
-    columns = list(frame.columns)
-    for name in columns:
-        if _named_like(name, _TIME_WORDS):
-            freq = _parses_as_time(frame[name], name)
-            if freq is not None:
-                return name, freq
-    for name in columns:
-        values = frame[name]
-        if _is_text(values) and not looks_numeric(values, decimal_comma):
-            freq = _parses_as_time(values, name)
-            if freq is not None:
-                return name, freq
-    for name in columns:
-        values = frame[name]
-        if _whole_numbers(values):
-            numbers = pd.to_numeric(values.dropna(), errors="coerce")
-            if len(numbers) and numbers.between(1800, 2200).all():
-                return name, _parses_as_time(values, name)
-    named = [n for n in columns if _named_like(n, _TIME_WORDS)]
-    return (named[0] if named else None), None
-
-
-def _guess_entity(frame: pd.DataFrame, time: str | None, decimal_comma: bool) -> str | None:
-    """A text column named like an id, else an id-named column of whole numbers,
-    else the first text column."""
-    columns = [c for c in frame.columns if c != time]
-    text = [c for c in columns if _is_text(frame[c]) and not looks_numeric(frame[c], decimal_comma)]
-    id_named = [c for c in columns if _named_like(c, _ID_WORDS)]
-    for name in id_named:
-        if name in text:
-            return name
-    for name in id_named:
-        if _whole_numbers(frame[name]):
-            return name
-    return text[0] if text else None
-
-
-_DECIMAL_COMMA = re.compile(r"^\s*[-+]?\d+,\d+\s*$")
-
-
-def _guess_decimal_comma(frame: pd.DataFrame, delimiter: str) -> bool:
-    if delimiter == ",":
-        return False
-    for name in frame.columns:
-        values = frame[name]
-        if not _is_text(values):
-            continue
-        present = values.dropna().astype(str)
-        present = present[present.str.strip() != ""]
-        if len(present) and present.str.fullmatch(_DECIMAL_COMMA.pattern).mean() >= 0.5:
-            return True
-    return False
-
-
-_TOKENS = ("n/a", "N/A", "na", "NA", "-", ".", "null", "NULL", "nan", "NaN", "#N/A", "missing")
-
-
-def _seen_tokens(frame: pd.DataFrame, numeric: list[str]) -> list[str]:
-    seen: list[str] = []
-    for name in numeric:
-        values = frame[name]
-        if _is_text(values):
-            stripped = values.dropna().astype(str).str.strip()
-            seen += [t for t in _TOKENS if t not in seen and (stripped == t).any()]
-    return seen
-
-
-def starter_run_file(data_path: str | Path, frame_head: pd.DataFrame | None = None,
-                     run_dir: str | Path | None = None) -> str:
-    """A commented starter run file for a data file, with guessed keys marked.
-
-    Parameters
-    ----------
-    data_path : the data file (CSV, Parquet or Arrow).
-    frame_head : the first rows of the data, when already read; else up to
-        1,000 rows are read (CSV columns as text).
-    run_dir : the folder the run file will be saved in; paths are written
-        relative to it.  Without it ``input.path`` is written absolute.
-
-    Returns
-    -------
-    TOML text that ``load_run_file`` reads without error.  The entity,
-    time, y and x keys are guesses marked ``# guessed``: the entity is a
-    text column named like an id (``firm_id``, ``code``, ``name``...), else
-    an id-named column of whole numbers, else the first text column; the
-    time column is named like a period (``year``, ``date``, ``quarter``...)
-    and parses as one, else holds period labels or dates, else years; y is
-    the first numeric column left and x the other numeric columns.  Every
-    other key is written commented out with its default.
-
-    Raises
-    ------
-    InputError when the file cannot be read or has fewer than two columns
-    besides the entity and time columns.
-    """
-    path = Path(data_path)
-    names = column_names(path)
-    options = ReadOptions()
-    delimiter = None
-    if detect_format(path) == "csv":
-        with open(path, "rb") as handle:
-            delimiter = sniff_delimiter(handle.readline().decode("utf-8-sig", errors="replace"))
-        options = ReadOptions(delimiter=delimiter)
-    frame = frame_head if frame_head is not None else _sample(path, options, names)
-    decimal_comma = delimiter is not None and _guess_decimal_comma(frame, delimiter)
-
-    time, freq = _guess_time(frame, decimal_comma)
-    entity = _guess_entity(frame, time, decimal_comma)
-    notes = {}
-    if time is None:
-        time = next(c for c in frame.columns if c != entity)
-        notes["panel.time"] = "guessed: no column looked like a period; check it"
-    else:
-        notes["panel.time"] = "guessed: " + (f"looks like {freq} periods" if freq
-                                             else "named like a period")
-    if entity is None:
-        entity = next(c for c in frame.columns if c != time)
-        notes["panel.entity"] = "guessed: no text column; check it"
-    else:
-        notes["panel.entity"] = "guessed"
-    rest = [c for c in frame.columns if c not in (entity, time)]
-    numeric = [c for c in rest if looks_numeric(frame[c], decimal_comma)]
-    chosen = numeric if len(numeric) >= 2 else numeric + [c for c in rest if c not in numeric]
-    if len(chosen) < 2:
-        raise InputError(f"{path}: cannot write a starter run file: it needs at least two "
-                         f"columns besides {entity!r} and {time!r}; columns are {names}")
-    notes["model.y"] = "guessed: first numeric column as y"
-    notes["model.x"] = "guessed: the other numeric columns"
-
-    base = Path(run_dir) if run_dir is not None else None
-    data_written = (Path(os.path.relpath(resolved(path), resolved(base))) if base is not None
-                    else resolved(path))
-    values: dict[str, Any] = {f"{s}.{k}": _default(f"{s}.{k}")
-                              for s, keys in _KEYS.items() for k in keys}
-    values.update({
-        "input.path": data_written,
-        "input.decimal_comma": decimal_comma,
-        "panel.entity": [entity],
-        "panel.time": time,
-        "panel.freq": freq if freq in FREQUENCIES else None,
-        "model.y": chosen[0],
-        "model.x": chosen[1:],
-        "output.dir": Path(f"{path.stem}-prepared"),
-    })
-    active = set(REQUIRED)
-    if decimal_comma:
-        active.add("input.decimal_comma")
-        notes["input.decimal_comma"] = "guessed: numbers such as 3,14 in the sample"
-    if delimiter not in (None, ","):
-        values["input.delimiter"] = delimiter
-        notes["input.delimiter"] = "sniffed from the header; set it to be sure"
-    if freq in FREQUENCIES:
-        notes["panel.freq"] = "as the sample looks; inferred when absent"
-    tokens = _seen_tokens(frame, chosen)
-    if tokens:
-        values["input.missing_tokens"] = tokens
-        notes["input.missing_tokens"] = "seen in the sample: declare them if they mean missing"
-    notes["output.dir"] = "relative to this file's folder"
-    header = [
-        f"panelprep run file: a starter for {path.name}, written by panelprep {__version__}.",
-        "Lines marked 'guessed' were guessed from the data: check them before a run.",
-        "Commented-out keys show their default or an example; remove the '# ' to set one.",
-        "Values given on the command line override this file.",
-    ]
-    return _render(values, active, notes, header)
-
-
 __all__ = [
     "EXTRA_FINDING_IDS", "FINDING_IDS", "REQUIRED", "RunFile", "key_lines", "key_table",
-    "load_run_file", "starter_run_file",
+    "load_run_file",
 ]

@@ -39,7 +39,7 @@ from typing import Any
 import numpy as np
 import scipy.special
 
-from panelprep._groups import compact_codes, group_counts, group_sums
+from panelprep._groups import compact_codes, group_counts, group_sums, occurring
 from panelprep._linalg import QR_BLOCK_ROWS, default_rtol, ols_from_r, sandwich
 from panelprep._moments import RowFactor
 
@@ -81,11 +81,21 @@ class PanelSteps:
         and a period code one larger (the previous row is its first lag).
     duplicated : bool
         Some (entity, period) cell holds more than one row.
+    in_order : bool
+        The rows are already sorted (``order`` is ``arange(n)``), so sorted
+        rows are read as slices, without a gather.
     """
 
     order: np.ndarray
     follows: np.ndarray
     duplicated: bool
+    in_order: bool = False
+
+    def sorted_rows(self, column: np.ndarray, start: int, stop: int) -> np.ndarray:
+        """Sorted rows ``start:stop`` of ``column`` (a view when the rows are in order)."""
+        if self.in_order:
+            return column[start:stop]
+        return np.take(column, self.order[start:stop])
 
 
 def panel_steps(entity_codes: np.ndarray, period_codes: np.ndarray) -> PanelSteps:
@@ -95,19 +105,18 @@ def panel_steps(entity_codes: np.ndarray, period_codes: np.ndarray) -> PanelStep
     n = len(entity)
     span = int(period.max()) + 1 if n else 1
     cell = entity * np.int64(span) + period
-    if n > 1 and not np.all(cell[1:] >= cell[:-1]):
-        order = np.argsort(cell, kind="stable")
-    else:
-        order = np.arange(n)
-    sorted_cell = cell[order]
+    in_order = not (n > 1 and not np.all(cell[1:] >= cell[:-1]))
+    order = np.arange(n) if in_order else np.argsort(cell, kind="stable")
+    sorted_cell = cell if in_order else cell[order]
     follows = np.zeros(n, dtype=bool)
     duplicated = False
     if n > 1:
         step = sorted_cell[1:] - sorted_cell[:-1]
-        same = entity[order[1:]] == entity[order[:-1]]
+        sorted_entity = entity if in_order else entity[order]
+        same = sorted_entity[1:] == sorted_entity[:-1]
         follows[1:] = same & (step == 1)
         duplicated = bool(np.any(step == 0))
-    return PanelSteps(order=order, follows=follows, duplicated=duplicated)
+    return PanelSteps(order=order, follows=follows, duplicated=duplicated, in_order=in_order)
 
 
 def _missing(keys: dict[str, Any], note: str) -> dict[str, Any]:
@@ -177,28 +186,29 @@ def wooldridge_serial(X: np.ndarray, y: np.ndarray, entity_codes: np.ndarray,
                             "entities": 0, "basis": None}
     if steps.duplicated:
         return _missing(keys, _UNDEFINED_ORDER)
-    at = np.flatnonzero(steps.follows)
-    keys["differences"] = len(at)
-    current, previous = steps.order[at], steps.order[at - 1]
+    follows = steps.follows
+    n_d = int(np.count_nonzero(follows))
+    keys["differences"] = n_d
     if divisors is None:
         divisors = np.ones(X.shape[1] + 1)
-    resid = _difference_residuals(X, y, np.asarray(divisors, dtype=np.float64), current,
-                                  previous)
+    resid = _difference_residuals(X, y, np.asarray(divisors, dtype=np.float64), steps, n_d)
     if resid is None:
         return _missing(keys, "fewer differenced rows than columns, or the differenced "
                               "regression fits exactly, so the test is undefined")
-    # a residual's lag exists when the row before it in sorted order was differenced too
-    # sorted row at[j] - 1 was differenced too exactly when at[j - 1] == at[j] - 1
-    lagged = np.flatnonzero(steps.follows[at - 1])
+    # resid is laid out on the sorted rows (0 where a row has no difference); a residual's
+    # lag exists when the sorted row before it was differenced too
+    paired = np.zeros(len(follows), dtype=bool)
+    paired[1:] = follows[1:] & follows[:-1]
+    lagged = np.flatnonzero(paired)
     now, before = resid[lagged], resid[lagged - 1]
-    entity = np.asarray(entity_codes)[current[lagged]]
+    entity = steps.sorted_rows(np.asarray(entity_codes), 0, len(follows))[lagged]
     m = len(lagged)
     keys["pairs"] = m
-    present, cluster = np.unique(entity, return_inverse=True)
+    present, cluster, _ = occurring(entity)
     n_clusters = len(present)
     keys["entities"] = n_clusters
     keys["basis"] = (f"{m:,} pairs of consecutive differences in {n_clusters:,} entities "
-                     f"(from {len(at):,} differences)")
+                     f"(from {n_d:,} differences)")
     lag_ss = float(before @ before)
     if m < 2 or n_clusters < 2 or not lag_ss > 0:
         return _missing(keys, "fewer than two entities have three consecutive periods (one "
@@ -218,42 +228,60 @@ def wooldridge_serial(X: np.ndarray, y: np.ndarray, entity_codes: np.ndarray,
 
 
 def _difference_residuals(X: np.ndarray, y: np.ndarray, divisors: np.ndarray,
-                          current: np.ndarray, previous: np.ndarray) -> np.ndarray | None:
-    """Residuals of ``dy = y[current] - y[previous]`` on ``[1, dX]``, columns over ``divisors``.
+                          steps: PanelSteps, n_d: int) -> np.ndarray | None:
+    """Residuals of ``dy`` on ``[1, dX]`` (columns over ``divisors``) on the sorted rows.
 
-    Two passes over the differenced rows in blocks of ``QR_BLOCK_ROWS``: the
-    first builds the triangular factor of ``[1, dZ, dz]`` (``RowFactor``),
-    the second the residuals; no full differenced block is held.  None when
-    the fit is undefined (no residual degree of freedom) or exact.
+    A sorted row that follows its entity's previous period holds its
+    difference; any other row is a zero row, which adds nothing to a cross
+    product or a triangular factor and gets residual 0.  Two passes over
+    the sorted rows in blocks of ``QR_BLOCK_ROWS``: the first builds the
+    factor of ``[1, dZ, dz]`` (``RowFactor``), the second the residuals; no
+    full differenced block is held.  None when the fit is undefined (no
+    residual degree of freedom) or exact.
     """
-    n_d, k = len(current), X.shape[1]
+    n, k = len(steps.follows), X.shape[1]
     factor = RowFactor(k + 2, n_d)
     dz_ss = 0.0
-    for start in range(0, n_d, QR_BLOCK_ROWS):
-        block = _difference_block(X, y, divisors, current[start:start + QR_BLOCK_ROWS],
-                                  previous[start:start + QR_BLOCK_ROWS])
+    for start in range(0, n, QR_BLOCK_ROWS):
+        block = _difference_block(X, y, divisors, steps, start, min(start + QR_BLOCK_ROWS, n))
         dz_ss += float(block[:, -1] @ block[:, -1])
         factor.add(block)
     fit = ols_from_r(factor.r(), n_d)
     if fit.df_resid <= 0 or math.sqrt(fit.ssr) <= default_rtol(n_d, k + 1) * math.sqrt(dz_ss):
         return None
-    resid = np.empty(n_d)
-    for start in range(0, n_d, QR_BLOCK_ROWS):
-        block = _difference_block(X, y, divisors, current[start:start + QR_BLOCK_ROWS],
-                                  previous[start:start + QR_BLOCK_ROWS])
-        resid[start:start + len(block)] = block[:, -1] - block[:, :-1] @ fit.coef
+    resid = np.empty(n)
+    for start in range(0, n, QR_BLOCK_ROWS):
+        stop = min(start + QR_BLOCK_ROWS, n)
+        block = _difference_block(X, y, divisors, steps, start, stop)
+        resid[start:stop] = block[:, -1] - block[:, :-1] @ fit.coef
     return resid
 
 
-def _difference_block(X, y, divisors, current, previous) -> np.ndarray:
-    """``[1, dX, dy]`` for one block of rows, each column divided by its divisor first."""
+def _difference_block(X, y, divisors, steps: PanelSteps, start: int, stop: int) -> np.ndarray:
+    """``[1, dX, dy]`` on sorted rows ``start:stop``, each column divided by its divisor.
+
+    Rows that do not follow their entity's previous period are zero.  Column
+    by column, from the sorted rows ``start - 1:stop`` (slices when the rows
+    are in order); dividing before subtracting keeps a difference of two
+    huge values finite.
+    """
     k = X.shape[1]
-    block = np.empty((len(current), k + 2), order="F")
-    block[:, 0] = 1.0
-    block[:, 1:k + 1] = X[current] / divisors[:k]
-    block[:, 1:k + 1] -= X[previous] / divisors[:k]
-    block[:, k + 1] = y[current] / divisors[k]
-    block[:, k + 1] -= y[previous] / divisors[k]
+    width = stop - start
+    follows = steps.follows[start:stop]
+    block = np.empty((width, k + 2), order="F")
+    block[:, 0] = follows
+    # rows starting an entity or a run after a hole (a scaled value is bounded by the
+    # column's largest magnitude over its spread, across entities as within them)
+    breaks = np.flatnonzero(~follows)
+    scaled = np.empty(width + 1)
+    lead = 1 if start > 0 else 0
+    scaled[0] = 0.0
+    for j in range(k + 1):
+        column = steps.sorted_rows(X[:, j] if j < k else y, start - lead, stop)
+        np.divide(column, divisors[j], out=scaled[1 - lead:])
+        out = block[:, j + 1]
+        np.subtract(scaled[1:], scaled[:-1], out=out)
+        out[breaks] = 0.0
     return block
 
 

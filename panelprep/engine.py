@@ -13,25 +13,14 @@ import logging
 import os
 from collections.abc import Iterator
 from contextlib import contextmanager
-from dataclasses import dataclass
 from typing import Any
 
 from panelprep.errors import InputError
 
-ENGINES = ("local", "dask")
 DASK_INSTALL = "pip install 'panelprep[dask]'"
 # the components methods whose moments are per-entity sums (the others need the rows again)
 DASK_METHODS = ("swamy-arora", "nerlove")
 DASK_TRANSFORMS = ("within", "between", "quasi")
-
-
-@dataclass(frozen=True)
-class Engine:
-    """``engine.kind``, ``engine.cluster`` (a scheduler address) and ``engine.partitions``."""
-
-    kind: str = "local"
-    cluster: str | None = None
-    partitions: int | None = None
 
 
 def require_dask() -> None:
@@ -51,6 +40,7 @@ def refuse_unsupported(options: Any, read_options: Any) -> None:
     ``io.ReadOptions``.  Each refusal names the option and its run-file key.
     """
     policies = options.policies
+    other = ",".join(t for t in options.transforms if t not in DASK_TRANSFORMS)
     unsupported = [
         (policies.duplicates != "fail", f"--duplicates {policies.duplicates} (clean.duplicates)"),
         (policies.normalise_ids != "none",
@@ -62,8 +52,7 @@ def refuse_unsupported(options: Any, read_options: Any) -> None:
         (options.contract is not None, "--contract (contract.schema)"),
         (options.method not in DASK_METHODS,
          f"--method {options.method} (output.method; it supports {', '.join(DASK_METHODS)})"),
-        (bool(set(options.transforms) - set(DASK_TRANSFORMS)),
-         "--transform twoway (output.transforms)"),
+        (bool(other), f"--transform {other} (output.transforms)"),
         (options.evidence, "the evidence tests: add --no-evidence (output.evidence = false)"),
         (options.output_format != "parquet", "--format csv (output.format)"),
         (read_options.input_format == "arrow", "--input-format arrow (input.format)"),

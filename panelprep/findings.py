@@ -20,6 +20,8 @@ SEVERITIES = ("info", "warning", "error")
 CONTRACT_FINDING_ID = "contract-check-failed"
 # emitted by the audit itself when it picks the variables to check
 SKIPPED_COLUMNS_ID = "columns-not-checked"
+# emitted by the audit when a stated step (--freq int:K) is not the data's own
+STEP_FINDING_ID = "period-step-stated"
 # emitted by panelprep.prepare for a test of the evidence float64 could not carry out
 UNCOMPUTABLE_ID = "evidence-not-computable"
 # warnings raised by a library during a run, kept in the report instead of on stderr

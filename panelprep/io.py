@@ -35,14 +35,10 @@ import pyarrow.parquet as pq
 from pyarrow import feather
 
 from panelprep._paths import check_readable, refuse_link_loop, resolved
+from panelprep.choices import FORMATS
 from panelprep.errors import ColumnError, InputError
 from panelprep.limits import check_memory
 
-FORMATS = ("csv", "parquet", "arrow")
-OUTPUT_FORMATS = ("parquet", "csv")
-# Parquet codecs; zstd is the default: on float columns without dictionary pages it writes
-# faster than pyarrow's defaults and smaller (benchmarks/README.md, "Writes")
-PARQUET_COMPRESSIONS = ("zstd", "lz4", "snappy", "gzip", "none")
 _SUFFIXES = {
     ".csv": "csv",
     ".tsv": "csv",

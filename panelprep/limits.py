@@ -25,10 +25,12 @@ import os
 import re
 from dataclasses import dataclass
 from pathlib import Path
-
-import pyarrow.parquet as pq
+from typing import TYPE_CHECKING
 
 from panelprep.errors import InputError
+
+if TYPE_CHECKING:
+    import pyarrow.parquet as pq
 
 MEMORY_ENV = "PANELPREP_MEMORY_LIMIT"
 # peak resident memory of a preparation over the in-memory size of the columns it reads:
@@ -48,6 +50,25 @@ _COMPRESSED_SUFFIXES = (".gz", ".bz2", ".xz", ".zst", ".lz4")
 # a grid of more periods than this is reported by the audit as most likely mistyped
 # (100,000 days are 274 years)
 GRID_PERIODS = 100_000
+
+
+@dataclass(frozen=True)
+class Thresholds:
+    """Tunable limits of the checks.
+
+    low_within_ratio : a variable is reported as thin within entities when
+        its within SD ratio (within SD / overall SD) is below this (default 0.05).
+    constant_rtol : a group counts as constant in a variable when the root
+        mean square deviation from its mean is at most this times the
+        variable's largest absolute deviation from its overall mean
+        (default 1e-9).
+    max_grid_periods : a grid of more periods is reported as most likely
+        mistyped (default ``limits.GRID_PERIODS``, 100,000).
+    """
+
+    low_within_ratio: float = 0.05
+    constant_rtol: float = 1e-9
+    max_grid_periods: int = GRID_PERIODS
 # (entity, period) cells are int64 codes; keep headroom for the offsets lags add
 MAX_GRID_CELLS = 1 << 62
 # balance = largest-block scores every (first, last) pair of observed periods
@@ -86,6 +107,8 @@ def estimate_memory(
     size = path.stat().st_size
     share = 1.0 if columns is None or n_columns == 0 else min(1.0, len(columns) / n_columns)
     if fmt == "parquet":
+        import pyarrow.parquet as pq
+
         data = _parquet_bytes(pq.read_metadata(path), None if columns is None else set(columns))
         basis = "rows and column types in the Parquet metadata"
     elif fmt == "csv":

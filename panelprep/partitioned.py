@@ -86,7 +86,14 @@ from panelprep.io import (
     write_table,
 )
 from panelprep.ledger import Ledger, StepRecord, require_rows
-from panelprep.pipeline import AuditReport, Progress, judge_final_sample, panel_summary, panel_tally
+from panelprep.pipeline import (
+    AuditReport,
+    Progress,
+    judge_final_sample,
+    panel_summary,
+    panel_tally,
+    stated_step_finding,
+)
 from panelprep.prepare import (
     LEFT_OUT,
     OutputTables,
@@ -608,7 +615,7 @@ def _run_on(client: Any, source: Source, options: PrepareOptions, read_options: 
         panel=panel, variables=table, context=None), [])
     summary = report.to_dict()
     if report.verdict == "fail":
-        failed_summary(summary, report, story, progress, record, options)
+        failed_summary(summary, report, story, by_reason, progress, record, options)
         return Preparation(report, Ledger(rows_read), None, None, summary), []
     if report.panel["conflicting_duplicate_keys"]:
         raise InputError(
@@ -649,8 +656,8 @@ def _run_on(client: Any, source: Source, options: PrepareOptions, read_options: 
         decided = {name: _decision([f[name] for f in factors], sizes[name])
                    for name in options.transforms}
         _left_out(info, decided, options)
-    closed_summary(summary, info, components, int(report.panel["periods"]), progress, record,
-                   options)
+    closed_summary(summary, info, components, int(report.panel["periods"]), standard,
+                   moments.counts, progress, record, options)
     if summary["verdict"] != "fail":
         written = _write(client, progress, states, tallies, spec, scaled, scales, decided,
                          summary, record, folder)
@@ -683,7 +690,8 @@ def _audit_findings(tallies: list[dict], options: PrepareOptions, grid: Grid,
         raise InputError(
             f"the dask engine cannot yet add up the finding {found[0]} across partitions, and "
             f"the data has it; run with --engine local (or fix the input first)")
-    findings = []
+    stated = stated_step_finding(grid.axis)
+    findings = [] if stated is None else [stated]
     for check in CHECKS:
         if check.tally is None:
             continue

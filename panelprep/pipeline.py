@@ -7,7 +7,7 @@ text and HTML.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
@@ -25,6 +25,7 @@ from panelprep.findings import (
     FINDINGS_ORDER,
     SEVERITIES,
     SKIPPED_COLUMNS_ID,
+    STEP_FINDING_ID,
     Finding,
     apply_severities,
     gate,
@@ -169,6 +170,7 @@ def audit(
     progress: Progress | None = None,
     prior_findings: Sequence[Finding] = (),
     origin: np.ndarray | None = None,
+    release_columns: Callable[[list[str]], None] | None = None,
 ) -> AuditReport:
     """Run every structural check on a panel held in a DataFrame.
 
@@ -178,7 +180,8 @@ def audit(
     entity : entity key column(s).
     time : time column (integer periods, dates or period labels).
     vars : variables to check; default every numeric non-key column.
-    freq : period frequency; inferred when None.
+    freq : period frequency (``year`` ... ``int``, or ``int:K`` for whole-number periods K
+        apart); inferred when None.
     fail_on : lowest severity that fails the gate (``error`` or ``warning``).
     thresholds : limits of the checks (see ``Thresholds``).
     severities : severity per finding id, overriding the defaults.
@@ -187,6 +190,9 @@ def audit(
         gate judges together with the checks'.
     origin : 0-based input position of each row of ``frame``, when earlier
         steps removed rows; examples then name the rows of the input file.
+    release_columns : for a frame read for this run only: called with the
+        variables once their float block is taken, to drop the frame's copies
+        (``AuditContext.release_columns``).
 
     Returns
     -------
@@ -223,11 +229,15 @@ def audit(
             decimal_comma=decimal_comma,
             missing_tokens=tuple(missing_tokens),
             origin=origin,
+            release_columns=release_columns,
         )
         if chosen is None:
             skipped = _skipped_columns(frame, [*entity, time], names)
             if skipped is not None:
                 findings.append(skipped)
+        stated = stated_step_finding(index.axis)
+        if stated is not None:
+            findings.append(stated)
         for check in CHECKS:
             progress(f"check.{check.id}", f"check {check.id}")
             found = check.run(context)
@@ -361,6 +371,25 @@ def _skipped_columns(frame: pd.DataFrame, keys: list[str], chosen: list[str]) ->
     return Finding(id=SKIPPED_COLUMNS_ID, severity="warning" if comma else "info",
                    count=len(skipped), message=message,
                    examples=[{"column": c} for c in skipped])
+
+
+def stated_step_finding(axis) -> Finding | None:
+    """A stated step (``--freq int:K``) that is not the step the distinct periods show."""
+    if not axis.step_stated or axis.data_step is None or axis.data_step == axis.step:
+        return None
+    shown, stated = axis.data_step, axis.step
+    if shown % stated == 0:
+        effect = (f"neighbouring values are {shown // stated} stated periods apart, so the "
+                  "periods between them count as holes")
+    else:
+        effect = "values off the stated grid are reported as period-off-grid"
+    return Finding(
+        id=STEP_FINDING_ID, severity="warning", count=1,
+        message=(f"the stated step {stated} (--freq int:{stated}) differs from the step the "
+                 f"distinct periods show, {shown} (the greatest common divisor of their gaps); "
+                 f"{effect}"),
+        details={"stated_step": stated, "data_step": shown},
+    )
 
 
 def panel_tally(ctx: AuditContext) -> dict[str, Any]:

@@ -22,15 +22,16 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from panelprep import transforms
+from panelprep import cautions, transforms
 from panelprep._groups import group_counts
 from panelprep._linalg import column_factor, independent_columns, reference_scale
-from panelprep._moments import standard_sample
+from panelprep._moments import ScaledMoments, standard_sample
 from panelprep._paths import check_readable
 from panelprep._scale import standardise
 from panelprep._schema import SCHEMA_VERSION
 from panelprep._version import __version__
 from panelprep.checks import AuditContext, Thresholds
+from panelprep.choices import METHODS, OUTPUT_FORMATS, PARQUET_COMPRESSIONS, TRANSFORMS
 from panelprep.clean import (
     Policies,
     Removal,
@@ -41,7 +42,7 @@ from panelprep.clean import (
     singleton_removal,
     window_removal,
 )
-from panelprep.components import METHODS, VarianceComponents
+from panelprep.components import VarianceComponents
 from panelprep.config import (
     ChecksSection,
     CleanSection,
@@ -72,8 +73,6 @@ from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
     DEFAULT_READ,
     DIAGNOSTIC_FILES,
-    OUTPUT_FORMATS,
-    PARQUET_COMPRESSIONS,
     OutputFolder,
     ReadOptions,
     check_output_folder,
@@ -105,7 +104,6 @@ from panelprep.pipeline import (
     split_names,
 )
 from panelprep.runlog import RunLog
-from panelprep.transforms import TRANSFORMS
 
 DEFAULT_TRANSFORMS = ("within", "between", "quasi")
 
@@ -229,6 +227,18 @@ def prepare_frame(
     once the sample block is taken.  A caller's frame is never changed.
     Warnings a library raises on the way are recorded in a
     ``library-warnings`` finding, never printed.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> from panelprep.prepare import PrepareOptions, prepare_frame
+    >>> frame = pd.DataFrame({"firm": list("aabbcc"), "year": [1, 2] * 3,
+    ...                       "sales": [1.0, 2.0, 3.0, 5.0, 4.0, 4.5],
+    ...                       "capital": [2.0, 2.5, 1.0, 3.0, 2.0, 1.0]})
+    >>> prep = prepare_frame(frame, PrepareOptions(entity=["firm"], time="year", y="sales",
+    ...                                            x=["capital"]))
+    >>> prep.verdict, sorted(prep.tables), len(prep.tables["within"])
+    ('pass', ['between', 'clean', 'dropped', 'quasi', 'within'], 6)
     """
     with recorded_warnings() as caught:
         prep = _prepare_frame(frame, options, input_info, read_options, progress, check_names,
@@ -296,6 +306,10 @@ def _prepare_frame(
         missing_tokens=read_options.missing_tokens, input_info=input_info,
         index=flow.index, progress=progress, prior_findings=contract_findings,
         origin=flow.origin,
+        # a frame read for this run keeps its variables only in the audit's float block
+        release_columns=((lambda names: _free_variable_columns([frame, flow.frame], names,
+                                                               options))
+                         if owns_frame else None),
     )
     audited = report.context
     progress("sample", "building the estimation sample", rows=len(flow.frame))
@@ -319,7 +333,7 @@ def _prepare_frame(
     ctx = report.context
     summary = report.to_dict()
     if report.verdict == "fail":
-        failed_summary(summary, report, flow.ledger.story, progress,
+        failed_summary(summary, report, flow.ledger.story, flow.ledger.by_reason(), progress,
                        record or run_record(options, read_options), options)
         return Preparation(report, flow.ledger, None, None, summary)
 
@@ -338,16 +352,12 @@ def _prepare_frame(
     counts = group_counts(codes, sample_ix.n_entities)
     values = ctx.sample_values
     ctx.release_values()
-    if owns_frame:
-        # a frame read for this run (never a caller's): from here on the flow reads its
-        # variables only from the sample block, so their columns are freed
-        _free_variable_columns([frame, flow.frame], ctx.variables, options)
     y, X = values[:, 0], values[:, 1:]
 
     progress("components", f"variance components ({options.method})", rows=len(y))
     # standardised and summed per entity once: the components, the evidence and the
     # files' column decisions all read these
-    standard = standard_sample(y, X, codes, counts)
+    standard = standard_sample(y, X, codes, counts, shared=ctx.sample_means)
     components = VarianceComponents(method=options.method).fit(
         y, X, codes, counts, names=options.x, sample=standard)
     keys = flow.frame[[*options.entity, options.time]].iloc[np.flatnonzero(sample)]
@@ -385,8 +395,8 @@ def _prepare_frame(
             findings += apply_severities([lost], options.severities)
             summary["findings"] = [f.to_dict() for f in findings]
             summary["verdict"] = gate(findings, options.fail_on)
-    closed_summary(summary, outputs.info, components, sample_ix.n_periods, progress,
-                   record or run_record(options, read_options), options)
+    closed_summary(summary, outputs.info, components, sample_ix.n_periods, standard, counts,
+                   progress, record or run_record(options, read_options), options)
     if summary["verdict"] == "fail":
         outputs = None
     return Preparation(report, flow.ledger, components, outputs, summary, sample_ix)
@@ -405,9 +415,11 @@ def sample_steps(audited: AuditContext, variables: list[str]
 
 
 def failed_summary(summary: dict[str, Any], report: AuditReport, story: list[StepRecord],
-                   progress: Progress, record: RunFile, options: PrepareOptions) -> None:
-    """A summary whose gate failed: the steps, no file, the caution, the run."""
+                   by_reason: dict[str, int], progress: Progress, record: RunFile,
+                   options: PrepareOptions) -> None:
+    """A summary whose gate failed: the steps and drops, no file, the caution, the run."""
     summary["steps"] = [s.to_dict() for s in story]
+    summary["dropped"] = {"rows": sum(by_reason.values()), "by_reason": by_reason}
     summary["files"] = []
     summary["cautions"] = [_gate_caution(report)]
     summary["run"] = run_block(progress, record, summary, options)
@@ -427,11 +439,20 @@ def fitted_summary(summary: dict[str, Any], findings: list[Finding], options: Pr
 
 
 def closed_summary(summary: dict[str, Any], info: dict[str, Any],
-                   components: VarianceComponents, n_periods: int, progress: Progress,
-                   record: RunFile, options: PrepareOptions) -> None:
-    """What the transforms did, the cautions and the run block."""
+                   components: VarianceComponents, n_periods: int, sample: ScaledMoments,
+                   counts: np.ndarray, progress: Progress, record: RunFile,
+                   options: PrepareOptions) -> None:
+    """What the transforms did, the cautions and the run block (``sample``: the components'
+    scaled moments, ``counts``: rows per entity)."""
     summary["transforms"] = info
-    summary["cautions"] = _cautions(info, components, n_periods, options.names)
+    summary["cautions"] = [
+        *_cautions(info, components, n_periods, options.names),
+        *cautions.time_invariant_cautions(components, sample, counts, options.x),
+        *cautions.lagged_response_cautions(options.shifts, options.y, options.x,
+                                           options.transforms, counts),
+        *cautions.lag_period_cautions(options.shifts, options.x, options.y, summary["findings"]),
+        *cautions.listwise_cautions(summary["findings"]),
+    ]
     if summary.get("evidence", {}).get("standard_errors"):
         # what the error-structure tests of this run say, beside the general advice
         summary["cautions"].append(summary["evidence"]["standard_errors"])
@@ -475,6 +496,7 @@ LEFT_OUT = {
     "no-within-variation": "constant within every entity: the within transform leaves zeros",
     "no-twoway-variation": "explained by entity and period effects: the two-way transform "
                            "leaves zeros",
+    "no-diff-variation": "constant within every entity: its first differences are zeros",
     "collinear": "a linear combination of the columns before it in this file "
                  "(with the constant or intercept column where the file has one)",
 }
@@ -520,7 +542,14 @@ class OutputTables:
             "between": {"rows": int(self.index.n_entities)},
             "quasi": {"rows": len(self.keys)},
             "twoway": {"rows": multi_rows, "singletons_dropped": singletons},
+            "diff": {},
         }
+        if "diff" in self.options.transforms:
+            # the counts are known before the file is built (a sort, no values)
+            found = transforms.first_difference(np.empty((len(self.keys), 0)),
+                                                self.index.entity_codes, self.index.period_codes)
+            plan["diff"] = {"rows": len(found.rows), "first_rows": found.first_rows,
+                            "across_holes": found.across_holes}
         self.info = {name: plan[name] for name in self.options.transforms}
         self.columns = {}
 
@@ -611,6 +640,14 @@ class OutputTables:
             kept = self._regressors(name, *design)
             table = _with_columns(labels, names, block, kept)
             return table.append_column(added.entity_rows, pa.array(self.counts))
+        if name == "diff":
+            found = transforms.first_difference(values, codes, self.index.period_codes)
+            differenced = np.zeros(len(codes), dtype=bool)
+            differenced[found.rows] = True
+            kept = self._regressors(name, found.values, values, differenced,
+                                    "no-diff-variation", first=np.ones(len(found.rows)))
+            return _with_columns(self._key_table.take(pa.array(found.rows)), names,
+                                 found.values, kept)
         sub = self.index.subset(multi)
         block, result = transforms.twoway(
             values[multi], sub.entity_codes, sub.period_codes, sub.n_entities, sub.n_periods,
@@ -731,6 +768,8 @@ class _Flow:
     index: PanelIndex | None = None
     origin: np.ndarray = field(init=False)
     alive: np.ndarray | None = None
+    # the mask the last recorded step left (its entity count is the next step's before)
+    _last_after: np.ndarray | None = field(default=None, init=False, repr=False)
 
     def __post_init__(self) -> None:
         self.origin = np.arange(len(self.frame))
@@ -739,6 +778,7 @@ class _Flow:
              note: str) -> None:
         """A step that changes values but removes no row."""
         rows = len(self.frame)
+        self._last_after = None
         self.ledger.story.append(StepRecord(step_id, step, rows, rows, entities_before,
                                             entities_after, note))
 
@@ -775,13 +815,23 @@ class _Flow:
         return int((group_counts(codes[codes >= 0], self.index.n_entities) > 0).sum())
 
     def _story(self, step_id: str, step: str, before: np.ndarray, after: np.ndarray) -> None:
+        rows_before, rows_after = int(before.sum()), int(after.sum())
+        # a step's entities before are the previous step's after; a step that removes no
+        # row keeps them
+        last = self.ledger.story[-1] if self.ledger.story else None
+        entities_before = (last.entities_after if last is not None
+                           and last.rows_after == rows_before and self._last_after is before
+                           else self._entities(before))
+        entities_after = (entities_before if rows_after == rows_before
+                          else self._entities(after))
+        self._last_after = after
         self.ledger.story.append(StepRecord(
             id=step_id,
             step=step,
-            rows_before=int(before.sum()),
-            rows_after=int(after.sum()),
-            entities_before=self._entities(before),
-            entities_after=self._entities(after),
+            rows_before=rows_before,
+            rows_after=rows_after,
+            entities_before=entities_before,
+            entities_after=entities_after,
         ))
 
 
@@ -819,6 +869,15 @@ def _cautions(info: dict, components: VarianceComponents, n_periods: int,
             f"OLS on the twoway file has also absorbed up to {n_periods} period effects: "
             "reduce the degrees of freedom by entities + periods - 1 (per connected block)."
         )
+    if "diff" in info:
+        diff = info["diff"]
+        out.append(
+            f"The diff file holds {diff['rows']:,} first differences: each entity's first row "
+            f"({diff['first_rows']:,}) has none, and {diff['across_holes']:,} row(s) after a hole "
+            "were left out rather than differenced across it. Fit it with a constant (a common "
+            "trend); differenced errors are serially correlated even when the errors in levels "
+            "are not."
+        )
     if "quasi" in info:
         out.append(
             "OLS on the quasi file gives random-effects (feasible GLS) slopes when "
@@ -845,7 +904,7 @@ def _cautions(info: dict, components: VarianceComponents, n_periods: int,
 
 
 def prepare(
-    data: str | Path,
+    data: str | Path | pd.DataFrame,
     out: str | Path,
     entity: str | Sequence[str],
     time: str,
@@ -860,20 +919,27 @@ def prepare(
     failed_out: str | Path | None = None,
     **options: Any,
 ) -> Preparation:
-    """Read ``data``, prepare it, and write every output into ``out``.
+    """Prepare ``data`` (a file, or a DataFrame as ``audit`` takes) and write every output into ``out``.
 
     Keyword ``options`` are the remaining fields of ``PrepareOptions``
     (``freq``, ``fail_on``, ``policies``, ``shifts``, ``severities``, ...).
     Returns the ``Preparation``; ``verdict == "fail"`` means the gate failed:
     ``out`` was left as it was and only the diagnostics were written, into
-    ``failed_out`` (default ``OUT.failed`` beside ``out``).
+    ``failed_out`` (default ``OUT.failed`` beside ``out``).  A DataFrame is
+    used as it is (no file is read, ``input.path`` is null); ``prepare_frame``
+    does the same without writing anything.
 
     Examples
     --------
+    >>> import pandas as pd, tempfile
     >>> from panelprep.prepare import prepare
-    >>> prep = prepare("firms.csv", "out", entity="firm_id", time="year",
-    ...                y="sales", x="capital,staff")            # doctest: +SKIP
-    >>> prep.summary["components"]["theta"]                     # doctest: +SKIP
+    >>> frame = pd.DataFrame({"firm": list("aabbcc"), "year": [1, 2] * 3,
+    ...                       "sales": [1.0, 2.0, 3.0, 5.0, 4.0, 4.5],
+    ...                       "capital": [2.0, 2.5, 1.0, 3.0, 2.0, 1.0]})
+    >>> out = tempfile.mkdtemp() + "/prepared"
+    >>> prep = prepare(frame, out, entity="firm", time="year", y="sales", x="capital")
+    >>> prep.verdict, sorted(p.name for p in prep.written_to.iterdir())[:3]
+    ('pass', ['between.parquet', 'clean.parquet', 'diagnostics.json'])
     """
     settings = PrepareOptions(
         entity=split_names(entity) or [], time=time, y=y, x=split_names(x) or [],
@@ -891,12 +957,13 @@ def failed_folder(out: str | Path) -> Path:
 
 
 def run_preparation(
-    data: str | Path, out: str | Path, options: PrepareOptions,
+    data: str | Path | pd.DataFrame, out: str | Path, options: PrepareOptions,
     read_options: ReadOptions = DEFAULT_READ, force: bool = False, progress: Progress | None = None,
     keep: Sequence[str | Path] = (), failed_out: str | Path | None = None,
     contract_path: str | Path | None = None,
 ) -> Preparation:
-    """Read, prepare and write into a folder that appears complete or not at all.
+    """Read (or take a DataFrame), prepare and write into a folder that appears complete or
+    not at all.
 
     ``keep`` names other files the run reads (the run file, the contract):
     like ``data``, an output folder that is or holds one is refused, so
@@ -908,11 +975,17 @@ def run_preparation(
     the record of the run (``run.options`` and ``run.toml``).
     """
     options.validate()
+    given = isinstance(data, pd.DataFrame)
+    if not given and not isinstance(data, (str, os.PathLike)):
+        raise InputError(f"data must be a file path or a pandas DataFrame, not "
+                         f"{type(data).__name__}")
     progress = progress if progress is not None else RunLog()
-    record = run_record(options, read_options, data, out, force, failed_out, contract_path)
+    record = run_record(options, read_options, None if given else data, out, force, failed_out,
+                        contract_path)
     # before the folder and before any data is read: the header names suffice
-    options.check_names(column_names(Path(data), read_options), str(data))
-    inputs = [Path(data), *map(Path, keep)]
+    options.check_names(list(data.columns) if given else column_names(Path(data), read_options),
+                        "the data" if given else str(data))
+    inputs = [*([] if given else [Path(data)]), *map(Path, keep)]
     out = Path(out)
     folder = OutputFolder(out, inputs, force=force)
     failed = failed_folder(out) if failed_out is None else Path(failed_out)
@@ -920,11 +993,14 @@ def run_preparation(
         if failed_out is not None or _name_fits(failed):
             # a default name too long for the file system is reported only if the gate fails
             check_output_folder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
-        progress("read", f"reading {data}")
-        frame, info = load(data, options.entity, options.time, options.columns_to_read,
-                           read_options)
-        prep = prepare_frame(frame, options, info, read_options, progress, record=record,
-                             owns_frame=True)
+        if given:
+            frame, info = data, {"path": None, "sha256": None, "rows": len(data)}
+        else:
+            progress("read", f"reading {data}")
+            frame, info = load(data, options.entity, options.time, options.columns_to_read,
+                               read_options)
+        prep = prepare_frame(frame, options, info, read_options, progress, check_names=not given,
+                             record=record, owns_frame=not given)
         del frame
         if prep.verdict == "fail":
             # a failed gate never replaces or empties the output folder
@@ -1032,11 +1108,16 @@ def write_diagnostics(prep: Preparation, folder: OutputFolder, options: PrepareO
 
 def _free_variable_columns(frames: list[pd.DataFrame], variables: list[str],
                            options: PrepareOptions) -> None:
-    """Drop the variable columns from frames the run owns, in place (about n x k x 8 bytes)."""
+    """Drop the variable columns from frames the run owns, in place (about n x k x 8 bytes).
+
+    A frame converted from Arrow holds its columns in Arrow's memory pool,
+    which keeps freed memory until asked to return it.
+    """
     keys = {*options.entity, options.time}
     for frame in {id(f): f for f in frames}.values():
         for name in [v for v in variables if v in frame.columns and v not in keys]:
             del frame[name]
+    release_arrow_memory()
 
 
 RUN_FILE = "run.toml"

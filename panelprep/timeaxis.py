@@ -7,7 +7,10 @@ an integer *ordinal* on the grid of its frequency, and broadcast back to rows
 through the factorised codes.
 
 Frequencies: ``year``, ``quarter``, ``month``, ``week``, ``day`` and ``int``
-(integer periods with a fixed step, e.g. survey waves every two years).
+(integer periods with a fixed step, e.g. survey waves every two years).  The
+step of integer periods is inferred from the distinct values (``_integer_step``)
+or stated as ``int:K`` (``parse_freq``): waves coded 80 and 90 are one step of
+10 apart, not eleven periods with nine missing.
 A value is *off the grid* when it does not sit where the grid's other values
 sit: a mid-month date in a panel of month-end dates, or an odd year in a
 panel observed every other year.  Off-grid values are kept and placed in the
@@ -17,14 +20,13 @@ period that contains them; the audit reports them.
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
 
+from panelprep.choices import parse_freq
 from panelprep.errors import TimeParseError
-
-FREQUENCIES = ("year", "quarter", "month", "week", "day", "int")
 
 _PATTERNS: dict[str, re.Pattern[str]] = {
     # whole numbers, also as written by tools that store years as floats ("1935.0")
@@ -71,6 +73,16 @@ class TimeAxis:
         Rows whose value is not on the grid (placed in the containing period).
     inferred : bool
         Whether ``freq`` was inferred rather than given.
+    data_step : int or None
+        For ``int`` periods, the greatest common divisor of the gaps between
+        the distinct values (None for a single value or another frequency):
+        what the data show, to compare with a stated ``int:K``.
+    step_stated : bool
+        Whether the step was stated (``int:K``) rather than inferred.
+    written_as : str
+        How the values were written: ``int``, ``date``, or the label kind
+        (``quarter``, ``month``, ``week``); week labels are shown as week
+        labels (``2021-W07``), weekly dates as dates.
     instant : ndarray of int64, shape (n,), or None
         One code per distinct moment the time values denote, so rows that
         spell the same moment differently (``2021-01-31`` and
@@ -87,6 +99,9 @@ class TimeAxis:
     off_grid: np.ndarray
     inferred: bool
     instant: np.ndarray | None = None
+    data_step: int | None = None
+    step_stated: bool = False
+    written_as: str = "date"
 
     @property
     def name(self) -> str:
@@ -105,19 +120,22 @@ class TimeAxis:
         if self.freq == "month":
             return [f"{int(v) // 12}-{int(v) % 12 + 1:02d}" for v in ords]
         days = ords * 7 - _EPOCH_WEEKDAY if self.freq == "week" else ords
-        return [str(d) for d in (np.datetime64("1970-01-01") + days.astype("timedelta64[D]"))]
+        dates = np.datetime64("1970-01-01") + days.astype("timedelta64[D]")
+        if self.freq == "week" and self.written_as == "week":
+            iso = pd.DatetimeIndex(dates).isocalendar()
+            return [f"{y}-W{w:02d}" for y, w in zip(iso["year"], iso["week"])]
+        return [str(d) for d in dates]
 
 
 def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "time") -> TimeAxis:
     """Parse a time column onto a period grid; see the module docstring.
 
-    Raises ``TimeParseError`` naming the column, the first bad row (counting
-    data rows from 1) and its value when a value cannot be placed.
+    ``freq`` is one of ``FREQUENCIES``, ``int:K`` (integer periods K apart) or
+    None (inferred).  Raises ``TimeParseError`` naming the column, the first
+    bad row (counting data rows from 1) and its value when a value cannot be
+    placed.
     """
-    if freq is not None and freq not in FREQUENCIES:
-        raise TimeParseError(
-            f"--freq {freq!r} is not one of {', '.join(FREQUENCIES)}"
-        )
+    freq, stated_step = parse_freq(freq)
     codes, uniques = pd.factorize(values, use_na_sentinel=True)
     codes = codes.astype(np.int64, copy=False)
     missing = codes < 0
@@ -133,8 +151,8 @@ def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "t
     else:
         blank = np.zeros(len(uniques), dtype=bool)
 
-    _, uniq_ord, uniq_off, step, base, found_freq, uniq_instant = _parse_uniques(
-        uniques, blank, freq, codes, column
+    kind, uniq_ord, uniq_off, step, base, found_freq, uniq_instant = _parse_uniques(
+        uniques, blank, freq, codes, column, stated_step
     )
     safe = np.where(codes < 0, 0, codes)
     if len(uniq_ord) == 0:
@@ -154,7 +172,16 @@ def build_time_axis(values: pd.Series, freq: str | None = None, column: str = "t
         off_grid=off,
         inferred=freq is None,
         instant=instant,
+        data_step=_data_step(uniq_instant[~blank]) if found_freq == "int" else None,
+        step_stated=stated_step is not None,
+        written_as=kind,
     )
+
+
+def _data_step(values: np.ndarray) -> int | None:
+    """Greatest common divisor of the gaps between distinct whole numbers (None for one)."""
+    spacing = np.diff(np.unique(values))
+    return int(np.gcd.reduce(spacing)) if len(spacing) else None
 
 
 @dataclass(frozen=True)
@@ -185,10 +212,9 @@ class Grid:
         missing = (position < 0) | values.isna().to_numpy(dtype=bool)
         safe = np.where(position < 0, 0, position)
         axis = self.axis
-        return TimeAxis(freq=axis.freq, step=axis.step, base=axis.base,
-                        ordinal=axis.ordinal[safe], missing=missing | axis.missing[safe],
-                        off_grid=axis.off_grid[safe] & ~missing, inferred=axis.inferred,
-                        instant=None if axis.instant is None else axis.instant[safe])
+        return replace(axis, ordinal=axis.ordinal[safe], missing=missing | axis.missing[safe],
+                       off_grid=axis.off_grid[safe] & ~missing,
+                       instant=None if axis.instant is None else axis.instant[safe])
 
 
 def time_grid(distinct: pd.Series, freq: str | None = None, column: str = "time") -> Grid:
@@ -211,7 +237,7 @@ def _nanoseconds(stamps: pd.DatetimeIndex) -> np.ndarray:
     return stamps.values.astype("datetime64[ns]").astype(np.int64)
 
 
-def _parse_uniques(uniques, blank, freq, codes, column):
+def _parse_uniques(uniques, blank, freq, codes, column, stated_step=None):
     """Return (kind, ordinals, off_grid, step, base, freq, instants) for distinct values.
 
     ``instants`` are int64 keys equal for values that denote the same moment.
@@ -244,7 +270,7 @@ def _parse_uniques(uniques, blank, freq, codes, column):
         whole = (np.asarray(uniques, dtype=np.int64)
                  if pd.api.types.is_integer_dtype(uniques.dtype) else nums.astype(np.int64))
         rows = np.bincount(codes[codes >= 0], minlength=n)
-        return ("int", *_integer_grid(whole, freq, column, rows), whole)
+        return ("int", *_integer_grid(whole, freq, column, rows, stated_step), whole)
     if pd.api.types.is_datetime64_any_dtype(uniques.dtype):
         stamps = pd.DatetimeIndex(uniques)
         if stamps.tz is not None:
@@ -252,11 +278,16 @@ def _parse_uniques(uniques, blank, freq, codes, column):
             # put midnight, New Year's Day in Berlin into the previous day and year
             stamps = stamps.tz_localize(None)
         return ("date", *_date_grid(stamps, freq, column), _nanoseconds(stamps))
-    return _parse_strings(uniques, blank, freq, codes, column)
+    return _parse_strings(uniques, blank, freq, codes, column, stated_step)
 
 
-def _integer_grid(values: np.ndarray, freq: str | None, column: str, rows: np.ndarray):
-    """Grid of distinct whole numbers ``values`` seen on ``rows`` rows each."""
+def _integer_grid(values: np.ndarray, freq: str | None, column: str, rows: np.ndarray,
+                  stated_step: int | None = None):
+    """Grid of distinct whole numbers ``values`` seen on ``rows`` rows each.
+
+    ``stated_step`` (from ``int:K``) replaces the inferred step; values off
+    that grid are marked off-grid as any others.
+    """
     if freq not in (None, "int", "year"):
         raise TimeParseError(
             f"time column {column!r} holds whole numbers, which cannot be read as --freq {freq}"
@@ -267,7 +298,7 @@ def _integer_grid(values: np.ndarray, freq: str | None, column: str, rows: np.nd
             f"time column {column!r} spans {low} to {high}, too wide a range of periods "
             "to place on one grid (look for mistyped values)"
         )
-    step = 1 if freq == "year" else _integer_step(values, rows)
+    step = 1 if freq == "year" else stated_step or _integer_step(values, rows)
     residue = values % step
     on_grid = residue == _mode(residue, rows)
     base = int(values[on_grid].min())
@@ -287,12 +318,16 @@ def _integer_step(values: np.ndarray, rows: np.ndarray) -> int:
     observed every other year is off a grid of step 2 rather than making
     the step 1; the greatest common divisor of the spacings when no larger
     step qualifies (every value sits on that grid).  Two distinct values are
-    too little evidence of a step: 2003 and 2005 alone are years with a hole,
-    not a two-year grid, so fewer than three distinct values give step 1.
+    one step apart: waves coded 80 and 90 (or 1 and 3) are two consecutive
+    periods, not a span with holes in it; state ``int:1`` (``--freq int:1``
+    for 2003 and 2005 as years with one missing) when the data do not show
+    the step.  A single distinct value gives step 1.
     """
     spacing = np.diff(np.unique(values))
-    if len(spacing) < 2:
+    if len(spacing) == 0:
         return 1
+    if len(spacing) == 1:
+        return max(int(spacing[0]), 1)
     gcd = max(int(np.gcd.reduce(spacing)), 1)
     sizes, counts = np.unique(spacing[spacing > gcd], return_counts=True)
     # a few most common spacings are candidates enough; keeps this cheap on odd data
@@ -303,7 +338,7 @@ def _integer_step(values: np.ndarray, rows: np.ndarray) -> int:
     return gcd
 
 
-def _parse_strings(uniques, blank, freq, codes, column):
+def _parse_strings(uniques, blank, freq, codes, column, stated_step=None):
     text = pd.Series(np.asarray(uniques, dtype=object)).astype(str)
     fraction = text.str.fullmatch(_FRACTION.pattern).to_numpy() & ~blank
     if fraction.any():
@@ -316,7 +351,7 @@ def _parse_strings(uniques, blank, freq, codes, column):
     for kind in ("int", "quarter", "month", "week"):
         matched = text.str.fullmatch(_PATTERNS[kind].pattern).to_numpy() | blank
         if matched.all():
-            return _string_grid(kind, text, blank, freq, codes, column)
+            return _string_grid(kind, text, blank, freq, codes, column, stated_step)
         if kind == "int" and 2 * matched[~blank].sum() > (~blank).sum():
             # mostly whole numbers: name the value that is not one, not a number that
             # happens to fail as a date
@@ -334,14 +369,15 @@ def _parse_strings(uniques, blank, freq, codes, column):
     return _date_strings(text, blank, freq, codes, column)
 
 
-def _string_grid(kind, text, blank, freq, codes, column):
+def _string_grid(kind, text, blank, freq, codes, column, stated_step=None):
     n = len(text)
     if kind == "int":
         nums = np.zeros(n, dtype=np.int64)
         nums[~blank] = (text[~blank].str.strip().str.replace(r"\.0*$", "", regex=True)
                         .astype(np.int64).to_numpy())
         rows = np.bincount(codes[codes >= 0], minlength=n)[~blank]
-        ordinal, off, step, base, found = _integer_grid(nums[~blank], freq, column, rows)
+        ordinal, off, step, base, found = _integer_grid(nums[~blank], freq, column, rows,
+                                                        stated_step)
         full_ord = np.zeros(n, np.int64)
         full_off = np.zeros(n, bool)
         full_ord[~blank], full_off[~blank] = ordinal, off

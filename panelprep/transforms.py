@@ -13,6 +13,8 @@ columns.
 * :func:`theta_per_entity` - ``theta_i`` from the two variance components.
 * :func:`twoway` - deviations from entity and period effects together, exact
   on unbalanced panels with gaps.
+* :func:`first_difference` - ``x_it - x_i,t-1`` where the entity's previous
+  period is observed (gap-aware: never across a hole or another entity).
 """
 
 from __future__ import annotations
@@ -24,8 +26,6 @@ import scipy.linalg
 
 from panelprep._groups import compact_codes, group_counts, group_sums
 from panelprep._scale import standardise
-
-TRANSFORMS = ("within", "between", "quasi", "twoway")
 
 # Above this many levels in the smaller of the two groupings the (levels x
 # levels) normal equations are solved by preconditioned conjugate gradients
@@ -87,6 +87,53 @@ def within(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndar
         ``sum / T_i`` (no ddof; this is a projection, not a variance).
     """
     return _subtract_group_sums(values, codes, counts, _safe_inverse_counts(counts))
+
+
+@dataclass(frozen=True)
+class Differences:
+    """What :func:`first_difference` built and left out.
+
+    ``rows`` are the positions (into the input rows, ascending) whose
+    difference is in ``values``; ``first_rows`` counts rows that are their
+    entity's first, ``across_holes`` rows whose previous observed period is
+    more than one period back (their difference would span a hole, so it is
+    missing: left out and counted).
+    """
+
+    values: np.ndarray
+    rows: np.ndarray
+    first_rows: int
+    across_holes: int
+
+
+def first_difference(values: np.ndarray, codes: np.ndarray,
+                     periods: np.ndarray) -> Differences:
+    """First differences ``x_it - x_i,t-1`` on the period grid.
+
+    One sort by (entity, period); a row is differenced against the row
+    before it in that order when both belong to one entity and their periods
+    are one grid step apart.  (entity, period) cells must be unique.
+    """
+    block, flat = _as_block(values)
+    n = block.shape[0]
+    codes = np.asarray(codes, dtype=np.int64)
+    periods = np.asarray(periods, dtype=np.int64)
+    order = np.lexsort((periods, codes))
+    entity, period = codes[order], periods[order]
+    same = entity[1:] == entity[:-1]
+    gap = period[1:] - period[:-1]
+    if (same & (gap == 0)).any():
+        raise ValueError("first_difference needs unique (entity, period) cells")
+    usable = same & (gap == 1)
+    later, earlier = order[1:][usable], order[:-1][usable]
+    ascending = np.argsort(later, kind="stable")
+    later, earlier = later[ascending], earlier[ascending]
+    out = np.empty((len(later), block.shape[1]), dtype=np.float64, order="F")
+    for j in range(block.shape[1]):
+        out[:, j] = block[later, j] - block[earlier, j]
+    first_rows = int(n - same.sum()) if n else 0
+    return Differences(values=out[:, 0] if flat else out, rows=later, first_rows=first_rows,
+                       across_holes=int((same & (gap > 1)).sum()))
 
 
 def between(values: np.ndarray, codes: np.ndarray, counts: np.ndarray) -> np.ndarray:

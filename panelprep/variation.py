@@ -5,12 +5,13 @@ from __future__ import annotations
 import numpy as np
 
 from panelprep._groups import compact_codes, group_counts, group_sums
-from panelprep._scale import standardise
+from panelprep._scale import Scaling, scaled_group_means
 from panelprep.index import PanelIndex
 
 
 def variation_table(
-    index: PanelIndex, values: np.ndarray, names: list[str], constant_rtol: float = 1e-9
+    index: PanelIndex, values: np.ndarray, names: list[str], constant_rtol: float = 1e-9,
+    shared: tuple[Scaling, np.ndarray] | None = None,
 ) -> dict[str, dict]:
     """Spread of each variable on a sample whose ``index`` has dense codes.
 
@@ -28,7 +29,8 @@ def variation_table(
       ``period_invariant``: no period with two or more rows varies.
 
     Every sum of squares is taken on the columns centred on their mean and
-    scaled by a power of two (:func:`panelprep._scale.standardise`), so
+    scaled by a power of two (:func:`panelprep._scale.scaled_group_means`,
+    whose result may be passed as ``shared`` when the caller has it), so
     shifting a variable by a constant changes only its mean, min and max,
     and scaling it scales the SDs, at any magnitude float64 holds.
 
@@ -43,7 +45,8 @@ def variation_table(
     if n == 0:
         return {name: empty_row() for name in names}
     counts = group_counts(codes, n_entities)
-    inv_counts = 1.0 / np.maximum(counts, 1)
+    scaled, entity_means = shared if shared is not None else scaled_group_means(
+        values, codes, counts)
     period, n_periods = compact_codes(index.period_codes, index.n_periods)
     period_counts = group_counts(period, n_periods)
     inv_period = 1.0 / np.maximum(period_counts, 1)
@@ -55,25 +58,27 @@ def variation_table(
     out: dict[str, dict] = {}
     for j, name in enumerate(names):
         raw = values[:, j]
-        standard = standardise(raw)
-        col[:] = standard.z[:, 0]
-        unit, centre = float(standard.scale[0]), float(standard.centre[0])
-        means = group_sums(codes, col, n_entities) * inv_counts
-        np.subtract(col, means.take(codes), out=squares)
+        scaled.column(values, j, out=col)
+        unit, centre = float(scaled.scale[j]), float(scaled.centre[j])
+        means = entity_means[:, j]
+        np.subtract(col, np.take(means, codes, out=squares), out=squares)
         np.square(squares, out=squares)
         entity_ss = group_sums(codes, squares, n_entities)
         period_means = group_sums(period, col, n_periods) * inv_period
-        np.subtract(col, period_means.take(period), out=squares)
+        np.subtract(col, np.take(period_means, period, out=squares), out=squares)
         np.square(squares, out=squares)
         period_ss = group_sums(period, squares, n_periods)
-        scale = max(float(np.abs(col).max()), np.finfo(float).tiny)
+        scale = max(float(np.abs(col, out=squares).max()), np.finfo(float).tiny)
+        # the overall SD as ndarray.std(ddof=1) takes it, in the buffer
+        np.subtract(col, col.mean(), out=squares)
+        np.square(squares, out=squares)
+        overall = float(np.sqrt(squares.sum() / (n - 1))) if n > 1 else None
         tol = (constant_rtol * scale) ** 2
         varying = entity_ss > tol * counts
         period_varying = period_ss > tol * period_counts
         out[name] = variation_row(
             n=n, n_entities=n_entities, centre=centre, unit=unit, level=float(col.mean()),
-            sd=float(col.std(ddof=1)) if n > 1 else None,
-            sd_means=float(means.std(ddof=1)) if n_entities > 1 else None,
+            sd=overall, sd_means=float(means.std(ddof=1)) if n_entities > 1 else None,
             within_ss=float(entity_ss.sum()), low=float(raw.min()), high=float(raw.max()),
             multi=int(multi.sum()), varying=int(varying[multi].sum()),
             period_varies=bool(period_varying[multi_period].any()),

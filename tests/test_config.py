@@ -15,7 +15,8 @@ from hypothesis import strategies as st
 
 from panelprep import config
 from panelprep.checks import CHECK_IDS, Thresholds
-from panelprep.config import RunFile, key_lines, load_run_file, starter_run_file
+from panelprep.config import RunFile, key_lines, load_run_file
+from panelprep.draft import starter_run_file
 from panelprep.errors import InputError
 from panelprep.io import ReadOptions
 
@@ -298,18 +299,6 @@ def test_key_table_is_the_module_docstring_table_and_sections_match():
         names = [f.name for f in dataclasses.fields(config._SECTIONS[section])]
         assert list(keys) == names
     assert set(config.FINDING_IDS) == {*CHECK_IDS, *config.EXTRA_FINDING_IDS}
-
-
-def test_allowed_values_match_the_modules_that_use_them():
-    clean = pytest.importorskip("panelprep.clean")
-    assert config.DUPLICATES == clean.DUPLICATES
-    assert config.NORMALISE_IDS == clean.NORMALISE
-    assert config.SINGLETONS == clean.SINGLETONS
-    assert config.BALANCE == clean.BALANCE
-    prepare = pytest.importorskip("panelprep.prepare")
-    assert config.TRANSFORMS == prepare.TRANSFORMS
-    assert config.OUTPUT_FORMATS == prepare.OUTPUT_FORMATS
-    assert tuple(config.METHODS) == tuple(prepare.METHODS)
 
 
 def test_to_toml_round_trip_with_every_key(tmp_path):

@@ -23,15 +23,14 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from typer.testing import CliRunner
 
+from panelprep.choices import METHODS, TRANSFORMS
 from panelprep.clean import Policies
 from panelprep.cli import app
-from panelprep.components import METHODS
 from panelprep.errors import InputError
 from panelprep.io import TEMP_PREFIX
 from panelprep.lags import parse_shifts
 from panelprep.pipeline import audit
 from panelprep.prepare import PrepareOptions, prepare_frame
-from panelprep.transforms import TRANSFORMS
 
 _QUIET = [HealthCheck.too_slow, HealthCheck.function_scoped_fixture]
 

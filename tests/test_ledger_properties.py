@@ -15,10 +15,11 @@ from conftest import examples
 from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
-from panelprep.clean import BALANCE, DUPLICATES, NORMALISE, SINGLETONS, Policies
+from panelprep.choices import BALANCE, DUPLICATES, NORMALISE, SINGLETONS, TRANSFORMS
+from panelprep.clean import Policies
 from panelprep.errors import InputError
 from panelprep.names import DEFAULT_NAMES as N
-from panelprep.prepare import TRANSFORMS, PrepareOptions, prepare_frame
+from panelprep.prepare import PrepareOptions, prepare_frame
 
 
 def _panel(seed: int, defects: set[str], two_part: bool) -> pd.DataFrame:

@@ -107,9 +107,14 @@ def test_week_strings_follow_iso_weeks():
     assert axis.name == "week"
     # ISO 2020 has 53 weeks, so W53 is followed directly by 2021-W01 (Python's calendar)
     assert steps(axis) == [1, 1, 1]
+    # week labels are shown as week labels (written one way), not as their Mondays
+    assert axis.label(axis.ordinal) == ["2020-W52", "2020-W53", "2021-W01", "2021-W02"]
+    # the same weeks written as their Mondays (Python's calendar) are shown as dates
     mondays = [dt.date.fromisocalendar(y, w, 1).isoformat()
                for y, w in ((2020, 52), (2020, 53), (2021, 1), (2021, 2))]
-    assert axis.label(axis.ordinal) == mondays
+    as_dates = axis_of(mondays)
+    assert as_dates.name == "week" and as_dates.ordinal.tolist() == axis.ordinal.tolist()
+    assert as_dates.label(as_dates.ordinal) == mondays
 
 
 def test_mixed_kinds_of_label_are_an_error():

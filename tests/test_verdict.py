@@ -14,6 +14,7 @@ import sys
 from datetime import UTC, datetime
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
@@ -268,6 +269,38 @@ def test_run_toml_reproduces_the_data_files_byte_for_byte(tmp_path):
     assert options["checks.severity"] == {"period-holes": "info"}
     assert "input.path" not in options and "output.dir" not in options
     assert meta["input_sha256"] == sha256(data)
+
+
+def test_run_toml_reproduces_a_stated_step_and_the_diff_file(tmp_path):
+    # invented waves 80, 90, 100, one row missing (a hole): the stated step int:10, a derived
+    # difference among the regressors and the diff file must come back from run.toml alike
+    rng = np.random.default_rng(1)
+    frame = pd.DataFrame({"person": np.repeat([f"p{i:02d}" for i in range(12)], 3),
+                          "wave": np.tile([80, 90, 100], 12)})
+    frame["hours"] = rng.normal(40, 5, len(frame)).round(2)
+    frame["wage"] = (10 + 0.1 * frame["hours"] + rng.normal(0, 1, len(frame))).round(2)
+    data = tmp_path / "data" / "waves.csv"
+    data.parent.mkdir()
+    frame.drop(index=[4]).to_csv(data, index=False)
+    first = tmp_path / "first"
+    done = run("prepare", data, "-e", "person", "-t", "wave", "--y", "wage", "--x",
+               "hours,hours_diff1", "--diff", "hours", "--freq", "int:10", "--transform",
+               "within,quasi,diff", "--out", first)
+    assert done.returncode == 0, done.stderr
+    record = (first / "run.toml").read_text()
+    assert 'freq = "int:10"' in record and 'diff = ["hours:1"]' in record
+    assert 'transforms = ["within", "quasi", "diff"]' in record
+    again = tmp_path / "again"
+    done = run("prepare", "--config", first / "run.toml", "--out", again)
+    assert done.returncode == 0, done.stderr
+    data_files = sorted(p.name for p in first.glob("*.parquet"))
+    assert data_files == ["clean.parquet", "diff.parquet", "dropped.parquet", "quasi.parquet",
+                          "within.parquet"]
+    for name in data_files:
+        assert (first / name).read_bytes() == (again / name).read_bytes(), name
+    assert (first / "run.toml").read_text() == (again / "run.toml").read_text()
+    options = json.loads((again / "diagnostics.json").read_text())["run"]["options"]
+    assert options["panel.freq"] == "int:10" and options["derive.diff"] == ["hours:1"]
 
 
 def test_run_toml_names_no_output_folder(tmp_path):

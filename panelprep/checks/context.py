@@ -18,15 +18,17 @@ Counts after the key checks are taken on ``sample``.
 from __future__ import annotations
 
 import re
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from functools import cached_property
 
 import numpy as np
 import pandas as pd
 
-from panelprep._groups import group_counts, segment_bounds, select_rows
+from panelprep._groups import group_counts, occurring, segment_bounds, select_rows
+from panelprep._scale import Scaling, scaled_group_means
 from panelprep.index import PanelIndex
-from panelprep.limits import GRID_PERIODS
+from panelprep.limits import Thresholds
 from panelprep.variation import variation_table, with_within_measures
 
 # every whole number below 2^53 in magnitude is exact in float64; from there on some are not
@@ -34,25 +36,6 @@ _EXACT_INTEGER = 2.0**53
 _NUMBER = re.compile(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$")
 # NaN as text, as Python, numpy and pandas write it (nan, NaN, -nan)
 _NAN_TEXT = re.compile(r"^\s*[-+]?[nN][aA][nN]\s*$")
-
-
-@dataclass(frozen=True)
-class Thresholds:
-    """Tunable limits of the checks.
-
-    low_within_ratio : a variable is reported as thin within entities when
-        its within SD ratio (within SD / overall SD) is below this (default 0.05).
-    constant_rtol : a group counts as constant in a variable when the root
-        mean square deviation from its mean is at most this times the
-        variable's largest absolute deviation from its overall mean
-        (default 1e-9).
-    max_grid_periods : a grid of more periods is reported as most likely
-        mistyped (default ``limits.GRID_PERIODS``, 100,000).
-    """
-
-    low_within_ratio: float = 0.05
-    constant_rtol: float = 1e-9
-    max_grid_periods: int = GRID_PERIODS
 
 
 @dataclass(frozen=True)
@@ -87,6 +70,9 @@ class AuditContext:
     missing_tokens: tuple[str, ...] = ()
     # 0-based input position of each frame row, when earlier steps removed rows
     origin: np.ndarray | None = None
+    # when the frame was read for this run: called with the variables once their float
+    # block is taken, to drop the frame's copies of them (about n x k x 8 bytes)
+    release_columns: Callable[[list[str]], None] | None = None
 
     def input_rows(self, rows: np.ndarray) -> np.ndarray:
         """Row numbers in the input (data rows from 1) of frame positions ``rows``."""
@@ -95,6 +81,9 @@ class AuditContext:
 
     @cached_property
     def _numeric(self) -> tuple[np.ndarray, dict[str, NonNumeric]]:
+        if self.release_columns is None and "_released" in self.__dict__:
+            raise RuntimeError("the numeric block was released with the frame's variable "
+                               "columns and cannot be rebuilt")
         n, k = len(self.frame), len(self.variables)
         values = np.empty((n, k), dtype=np.float64, order="F")
         bad: dict[str, NonNumeric] = {}
@@ -104,6 +93,15 @@ class AuditContext:
             )
             if problem is not None:
                 bad[name] = problem
+        # a column with text that is not a number, or decimals rounded, keeps it: the
+        # findings quote the values as written (the repeated-row examples, which compare
+        # rows on the columns too, come from checks that run before this block is taken)
+        if self.release_columns is not None and not any(
+                p.rows.size or p.rounded_rows.size for p in bad.values()):
+            _ = self._duplicates  # compares rows sharing a key on the columns: before they go
+            release, self.release_columns = self.release_columns, None
+            self.__dict__["_released"] = True
+            release(list(self.variables))
         return values, bad
 
     @property
@@ -112,12 +110,18 @@ class AuditContext:
         return self._numeric[0]
 
     def release_values(self) -> None:
-        """Free the full numeric block once the sample has been taken from it.
+        """Free the full numeric block, and the checks' sorted cells, once the audit is done.
 
-        It is a cache: ``values`` rebuilds it from the frame if asked again.
-        The sample's own block and every mask stay.
+        It is a cache: ``values`` rebuilds it from the frame if asked again
+        (unless ``release_columns`` dropped the frame's columns).  The
+        sample's own block and every mask stay.
         """
         self.__dict__.pop("_numeric", None)
+        # the checks' row-sized arrays of the sample; cached, so rebuilt if asked again
+        self.__dict__.pop("sample_cells", None)
+        if "sample_index" in self.__dict__:
+            for name in ("cell", "order", "sorted_cells"):
+                self.sample_index.__dict__.pop(name, None)
 
     def narrowed(self, keep: np.ndarray) -> AuditContext:
         """The same audit on a smaller estimation sample: ``sample & keep``.
@@ -256,9 +260,7 @@ class AuditContext:
         describes the rows read).
         """
         period = self.index.period_codes[self.base]
-        present, compact = np.unique(period, return_inverse=True)
-        compact = compact.reshape(-1)
-        rows = np.bincount(compact, minlength=len(present))
+        present, compact, rows = occurring(period, self.index.n_periods)
         missing = np.zeros((len(present), len(self.variables)), dtype=np.int64)
         block = self.values
         for j in range(len(self.variables)):
@@ -273,10 +275,21 @@ class AuditContext:
         return group_counts(entity, self.sample_index.n_entities)
 
     @cached_property
+    def sample_means(self) -> tuple[Scaling, np.ndarray]:
+        """Scaling and entity means of the sample block (``_scale.scaled_group_means``).
+
+        Read by the variation table here and, for the final sample, by the
+        variance components and the evidence (``_moments.standard_sample``).
+        """
+        return scaled_group_means(self.sample_values, self.sample_index.entity_codes,
+                                  self.sample_counts)
+
+    @cached_property
     def variation(self) -> dict[str, dict]:
         """The variation table of the estimation sample (``variation_table``, ``within_measures``)."""
         return with_within_measures(variation_table(
-            self.sample_index, self.sample_values, self.variables, self.thresholds.constant_rtol
+            self.sample_index, self.sample_values, self.variables, self.thresholds.constant_rtol,
+            shared=self.sample_means,
         ))
 
     def row_key(self, rows: np.ndarray) -> list[dict[str, object]]:

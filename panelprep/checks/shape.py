@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from panelprep._groups import occurring
 from panelprep.checks.base import Check, check, examples_of, row_ordered
 from panelprep.checks.context import AuditContext, plain_value
 from panelprep.findings import MAX_EXAMPLES, Finding
@@ -126,16 +127,26 @@ def shape_tally(ctx: AuditContext) -> dict:
              "entering": {}, "leaving": {}, "runs": {}}
     if ix.n_entities == 0 or ix.n_periods <= 0 or len(entity) == 0:
         return tally
-    ordinal = period + ix.first_period
-    entry = ordinal[starts]
+    first = ix.first_period
+    entry = period[starts]
     stops = np.append(starts[1:], len(period)) - 1
-    leave = ordinal[stops]
+    leave = period[stops]
     holes = ctx.gaps[0][entity[starts]]
-    spell, sizes = np.unique(np.column_stack([entry, leave, holes]), axis=0, return_counts=True)
+    # groups of equal (entry, exit, holes) from one lexsort: no code mixing the three can
+    # overflow, whatever the grid's length
+    order = np.lexsort((holes, leave, entry))
+    spell = np.column_stack([entry[order] + first, leave[order] + first, holes[order]])
+    new = np.ones(len(spell), dtype=bool)
+    new[1:] = (spell[1:] != spell[:-1]).any(axis=1)
+    starts_of = np.flatnonzero(new)
+    sizes = np.diff(np.append(starts_of, len(spell)))
+    occurs, _, present = occurring(period, ix.n_periods)
     tally.update({
-        "first_min": int(ix.first_period), "last_max": int(ix.first_period + ix.n_periods - 1),
-        "spells": {tuple(row): int(c) for row, c in zip(spell.tolist(), sizes.tolist())},
-        "present": counted(ordinal), "entering": counted(entry), "leaving": counted(leave),
+        "first_min": int(first), "last_max": int(first + ix.n_periods - 1),
+        "spells": {tuple(row): int(c) for row, c in zip(spell[starts_of].tolist(),
+                                                        sizes.tolist())},
+        "present": dict(zip((occurs + first).tolist(), present.tolist())),
+        "entering": counted(entry + first), "leaving": counted(leave + first),
         "runs": counted(holes + 1),
     })
     return tally

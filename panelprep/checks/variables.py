@@ -5,6 +5,7 @@ from __future__ import annotations
 import re
 
 import numpy as np
+import pandas as pd
 
 from panelprep._groups import group_counts
 from panelprep.checks.base import FIRST_VALUES, Check, check, examples_of
@@ -21,10 +22,23 @@ def not_numeric_tally(ctx: AuditContext) -> dict:
     for name in ctx.variables:
         problem = ctx.non_numeric.get(name)
         rows = problem.rows if problem is not None else np.zeros(0, dtype=np.int64)
+        if len(rows) == 0:
+            # (a column without bad values may have left the frame: its float block is taken)
+            per_variable[name] = {"rows": 0, "firsts": [], "texts": {}}
+            continue
         first = rows[:FIRST_VALUES]
         values = ctx.frame[name].iloc[first]
-        per_variable[name] = {"rows": len(rows), "firsts": [
-            ((int(row),), str(value)) for row, value in zip(ctx.input_rows(first), values)]}
+        texts = ctx.frame[name].iloc[rows].astype(str).to_numpy()
+        codes, uniques = pd.factorize(texts)
+        counts = np.bincount(codes, minlength=len(uniques))
+        first_rows = ctx.input_rows(rows[np.unique(codes, return_index=True)[1]])
+        per_variable[name] = {
+            "rows": len(rows),
+            "firsts": [((int(row),), str(value))
+                       for row, value in zip(ctx.input_rows(first), values)],
+            # every distinct text: rows holding it and its first row (merged by text)
+            "texts": {str(text): {"count": int(c), "row_min": int(r)}
+                      for text, c, r in zip(uniques, counts, first_rows)}}
     return {"decimal_comma": "yes" if ctx.decimal_comma else "", "per_variable": per_variable}
 
 
@@ -35,8 +49,12 @@ def not_numeric_finding(self: Check, tally: dict):
     # the distinct values among the first bad rows, at most 10 (NonNumeric.values)
     shown = {name: list(dict.fromkeys(v for _, v in t["firsts"]))[:10] for name, t in bad.items()}
     total = sum(t["rows"] for t in bad.values())
-    examples = [{"column": name, "row": rank[0], "value": value}
-                for name, t in bad.items() for rank, value in t["firsts"][:MAX_EXAMPLES]]
+    examples = []
+    for name, t in bad.items():
+        # one example per distinct text: how many rows hold it (count) and the first (row)
+        texts = sorted(t["texts"].items(), key=lambda item: item[1]["row_min"])[:MAX_EXAMPLES]
+        examples += [{"column": name, "value": text, "count": seen["count"],
+                      "row": seen["row_min"]} for text, seen in texts]
     details = {name: {"rows": t["rows"], "values": shown[name]} for name, t in bad.items()}
     names = ", ".join(f"{n} ({t['rows']})" for n, t in bad.items())
     every = [v for values in shown.values() for v in values]
@@ -182,8 +200,19 @@ def listwise_tally(ctx: AuditContext) -> dict:
         return {"variables": 0}
     # kept for the report's picture of missing cells, before the block may be released
     ctx.missing_by_period  # noqa: B018
-    base = ctx.base
-    absent = np.isnan(ctx.values[base])
+    base, values = ctx.base, ctx.values
+    # column by column: no copy of the block, one count of missing cells per row
+    per_row = np.zeros(len(base), dtype=np.int32)
+    per_variable = {}
+    for j, name in enumerate(ctx.variables):
+        absent = np.isnan(values[:, j])
+        absent &= base
+        per_variable[name] = int(np.count_nonzero(absent))
+        per_row += absent
+    # rows where a column is the only one missing: what dropping that column alone would keep
+    alone = per_row == 1
+    only_missing = {name: int(np.count_nonzero(np.isnan(values[:, j]) & alone))
+                    for j, name in enumerate(ctx.variables)}
     codes = ctx.index.entity_codes
     n = ctx.index.n_entities
     before = group_counts(codes[base], n)
@@ -192,8 +221,9 @@ def listwise_tally(ctx: AuditContext) -> dict:
     shown = new_single[:MAX_EXAMPLES]
     return {
         "variables": 1,
-        "per_variable": {name: int(absent[:, j].sum()) for j, name in enumerate(ctx.variables)},
-        "rows_lost": int(absent.any(axis=1).sum()),
+        "per_variable": per_variable,
+        "only_missing": only_missing,
+        "rows_lost": int(np.count_nonzero(per_row)),
         "rows_removed": int(base.sum() - ctx.sample.sum()),
         "entities_lost": int(((before > 0) & (after == 0)).sum()),
         "new_singletons": len(new_single),
@@ -213,15 +243,18 @@ def missing_values_finding(self: Check, tally: dict):
     if not tally["variables"] or tally["rows_lost"] == 0:
         return None
     rows_lost, per_variable = tally["rows_lost"], tally["per_variable"]
+    only_missing = tally["only_missing"]
     lost = _listwise(tally)
+    worst = sorted((n for n in per_variable if per_variable[n]), key=lambda n: -per_variable[n])
     return self.finding(
         rows_lost,
         f"{plural(rows_lost, 'row')} {'misses' if rows_lost == 1 else 'miss'} at least one "
         f"selected variable; listwise deletion removes {'it' if rows_lost == 1 else 'them'}, "
         f"{plural(lost['entities_lost'], 'entity')} entirely and makes "
-        f"{plural(lost['new_singletons'], 'new singleton')}",
+        f"{plural(lost['new_singletons'], 'new singleton')}; most often missing: "
+        + ", ".join(f"{n} ({per_variable[n]}, {only_missing[n]} alone)" for n in worst[:3]),
         [{"column": name, "missing": count} for name, count in per_variable.items() if count],
-        {"per_variable": per_variable, **lost},
+        {"per_variable": per_variable, "only_missing": only_missing, **lost},
     )
 
 

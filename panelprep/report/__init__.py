@@ -19,6 +19,22 @@ def sample_words(report: dict[str, Any], block: str) -> tuple[str, str]:
     return samples.get(block, "estimation"), samples.get("definition", _ESTIMATION)
 
 
+def rows_words(report: dict[str, Any]) -> str:
+    """The sample's rows against the rows read, one wording for the text log and the HTML page.
+
+    "Rows read" is always ``input.rows`` (what the header of each report
+    says); the audited frame (``panel.rows_read``) is named apart when steps
+    before the audit (id normalisation, window, duplicates) removed rows.
+    """
+    panel, read = report.get("panel") or {}, (report.get("input") or {}).get("rows")
+    audited = panel.get("rows_read")
+    shown = [("-" if n is None else f"{n:,}") for n in (panel.get("rows"), read)]
+    words = f"{shown[0]} of {shown[1]} read"
+    if audited is not None and read is not None and audited != read:
+        words += f" ({audited:,} audited after the steps before the audit)"
+    return words
+
+
 def resolved_note(finding: dict[str, Any]) -> str:
     """The words a resolved finding carries in every rendering ('' when it is not resolved)."""
     policy = finding.get("resolved_by")

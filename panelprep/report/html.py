@@ -36,6 +36,7 @@ from panelprep.report import (
     failing_ids,
     hint_for,
     resolved_note,
+    rows_words,
     runs_words,
     sample_words,
     spell_words,
@@ -332,8 +333,7 @@ def _header(summary: dict[str, Any]) -> str:
 def _story(summary: dict[str, Any]) -> str:
     steps = summary.get("steps") or []
     source, sample = summary.get("input", {}), summary.get("sample")
-    first = steps[0] if steps else None
-    read_rows = first["rows_before"] if first else source.get("rows")
+    read_rows = source.get("rows")
     flow = (f'<div class="flow"><div class="stat before"><span class="big">{_num(read_rows)}</span>'
             '<span class="small">rows read</span></div>')
     if sample:
@@ -362,8 +362,15 @@ def _story(summary: dict[str, Any]) -> str:
     reasons = dropped.get("by_reason") or {}
     if dropped:
         text = ", ".join(f"<code>{_e(k)}</code> {_num(v)}" for k, v in reasons.items()) or "none"
-        table += (f'<p class="note">Rows dropped in all: <b>{_num(dropped.get("rows", 0))}</b> '
-                  f"({text}); each is listed with its reason in <code>dropped.parquet</code>.</p>")
+        ledger = next((f["name"] for f in summary.get("files") or []
+                       if f["name"].startswith("dropped.")), "the dropped table")
+        if summary.get("verdict") != "fail":
+            table += (f'<p class="note">Rows dropped in all: <b>{_num(dropped.get("rows", 0))}</b> '
+                      f"({text}); each is listed with its reason in <code>{_e(ledger)}</code>.</p>")
+        else:
+            table += (f'<p class="note">Rows the steps removed: <b>{_num(dropped.get("rows", 0))}'
+                      f"</b> ({text}); the gate failed, so no data file and no ledger of dropped "
+                      "rows was written.</p>")
     return _section("story", "What the run did", flow + table,
                     "Each step in order, with the rows and entities it kept.")
 
@@ -426,7 +433,7 @@ def _panel(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
     rows = [
         ("sample described", _e(definition)),
         (f"rows in the {_e(name)} sample",
-         f"{_num(panel.get('rows'))} of {_num(panel.get('rows_read'))} read"),
+         _e(rows_words(summary))),
         ("entities", _num(panel.get("entities"))),
         ("periods", _num(panel.get("periods")) + span),
         ("shape", "balanced" if panel.get("balanced") else "unbalanced"),

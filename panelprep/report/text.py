@@ -24,6 +24,7 @@ from panelprep.report import (
     failing_ids,
     hint_for,
     resolved_note,
+    rows_words,
     runs_words,
     sample_words,
     spell_words,
@@ -169,7 +170,7 @@ def audit_lines(report: dict[str, Any]) -> list[str]:
             if details.get("first_period") else "-")
     obs = panel["obs_per_entity"]
     lines += _table([
-        ["rows", f"{panel['rows']:,} of {panel['rows_read']:,} audited"],
+        ["rows", rows_words(report)],
         ["entities", f"{panel['entities']:,}"],
         ["periods", f"{panel['periods']:,} ({span})"],
         ["shape", ("balanced" if panel["balanced"] else "unbalanced")
@@ -247,6 +248,20 @@ def components_lines(components: dict[str, Any]) -> list[str]:
     return lines
 
 
+def _dropped_line(summary: dict[str, Any]) -> str:
+    """Rows removed by the steps, and whether the ledger file holding them was written."""
+    dropped = summary.get("dropped", {})
+    reasons = ", ".join(f"{k}: {v:,}" for k, v in dropped.get("by_reason", {}).items()) or "none"
+    ledger = next((f["name"] for f in summary.get("files", []) if f["name"].startswith("dropped.")),
+                  None)
+    if ledger is not None:
+        return f"  rows dropped in all: {dropped.get('rows', 0):,} ({reasons}); each is listed in {ledger}"
+    if summary.get("verdict") == "fail":
+        return (f"  rows the steps removed: {dropped.get('rows', 0):,} ({reasons}); the gate "
+                "failed, so no data file and no ledger of dropped rows was written")
+    return f"  rows dropped in all: {dropped.get('rows', 0):,} ({reasons}); each is in the dropped table"
+
+
 def preparation_lines(summary: dict[str, Any]) -> list[str]:
     """diagnostics.txt: the whole preparation, top to bottom, the verdict line last."""
     lines = ["panelprep preparation log", "=" * 25, ""]
@@ -257,10 +272,7 @@ def preparation_lines(summary: dict[str, Any]) -> list[str]:
                         + [[s["step"], f"{s['rows_before']:,}", f"{s['rows_after']:,}",
                             f"{s['entities_before']:,}", f"{s['entities_after']:,}"]
                            for s in summary["steps"]], right={1, 2, 3, 4})
-        dropped = summary.get("dropped", {})
-        lines.append(f"  rows dropped in all: {dropped.get('rows', 0):,} "
-                     f"({', '.join(f'{k}: {v:,}' for k, v in dropped.get('by_reason', {}).items()) or 'none'});"
-                     " each is listed in dropped.parquet")
+        lines.append(_dropped_line(summary))
     if summary.get("components"):
         lines += [""] + components_lines(summary["components"])
     if summary.get("transforms"):
