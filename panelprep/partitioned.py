@@ -40,6 +40,7 @@ from __future__ import annotations
 import glob
 import hashlib
 import math
+import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from functools import partial
@@ -70,7 +71,7 @@ from panelprep.checks.shape import shape_finding
 from panelprep.components import VarianceComponents
 from panelprep.config import EngineSection
 from panelprep.engine import dask_client, refuse_unsupported, require_dask
-from panelprep.errors import ColumnError, InputError
+from panelprep.errors import ColumnError, InputError, TimeParseError
 from panelprep.findings import Finding, apply_severities, gate
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
@@ -580,7 +581,11 @@ def _run_on(client: Any, source: Source, options: PrepareOptions, read_options: 
         raise InputError(f"{source.given}: no data rows, only a header")
     progress("grid", "the period grid from the distinct time values")
     distinct = frames[options.time].drop_duplicates().compute()
-    grid = time_grid(distinct, options.freq, options.time)
+    try:
+        grid = time_grid(distinct, options.freq, options.time)
+    except TimeParseError as err:
+        # the grid is read from the distinct values, whose positions are no input rows
+        raise TimeParseError(re.sub(r" at row \d+", "", str(err))) from None
     spec = Spec(options, read_options, wanted, grid, dtypes)
     n_partitions = engine.partitions or max(
         2 * len(client.scheduler_info()["workers"]), math.ceil(rows_read / PARTITION_ROWS))

@@ -644,8 +644,9 @@ class OutputTables:
             found = transforms.first_difference(values, codes, self.index.period_codes)
             differenced = np.zeros(len(codes), dtype=bool)
             differenced[found.rows] = True
-            kept = self._regressors(name, found.values, values, differenced,
-                                    "no-diff-variation", first=np.ones(len(found.rows)))
+            kept = self._regressors(name, *self._design(name, found.values, values, differenced,
+                                                        np.ones(len(found.rows))),
+                                    "no-diff-variation")
             return _with_columns(self._key_table.take(pa.array(found.rows)), names,
                                  found.values, kept)
         sub = self.index.subset(multi)

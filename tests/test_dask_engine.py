@@ -430,3 +430,14 @@ def test_a_finding_the_engine_cannot_add_up_yet_is_refused_with_one_line(tmp_pat
         _run(data, tmp_path / "dask", "dask", cluster, 3, **KEYS)
     assert not (tmp_path / "dask").exists()
     assert not list(tmp_path.glob(".panelprep-partial-*"))
+
+
+def test_a_time_value_off_every_grid_is_one_line_without_a_misleading_row(tmp_path, cluster):
+    frame = _random_panel(12).dropna().drop_duplicates().reset_index(drop=True)
+    frame["year"] = frame["year"].astype(str) + "Q1"
+    frame.loc[7, "year"] = "2003Q5"
+    data = _parquet(frame, tmp_path / "quarters.parquet")
+    with pytest.raises(InputError, match="2003Q5") as raised:
+        _run(data, tmp_path / "dask", "dask", cluster, 2, **KEYS)
+    assert " at row " not in str(raised.value)
+    assert not (tmp_path / "dask").exists()
