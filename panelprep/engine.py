@@ -69,7 +69,7 @@ def dask_client(address: str | None) -> Iterator[Any]:
 
     Without an address a ``LocalCluster`` is started with one single-threaded
     worker process per core (numpy releases the GIL, but pandas work on a
-    partition does not) and closed at the end.  Its logs go nowhere below
+    partition does not) and closed at the end; its dashboard takes a free port.  Its logs go nowhere below
     errors, so stderr holds the run's own progress.
     """
     from distributed import Client, LocalCluster
@@ -84,6 +84,6 @@ def dask_client(address: str | None) -> Iterator[Any]:
             yield client
         return
     with LocalCluster(n_workers=os.cpu_count() or 1, threads_per_worker=1, processes=True,
-                      dashboard_address=None, silence_logs=logging.ERROR) as cluster, \
+                      dashboard_address=":0", silence_logs=logging.ERROR) as cluster, \
             Client(cluster) as client:
         yield client

@@ -45,7 +45,7 @@ def cluster():
     from distributed import LocalCluster
 
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, memory_limit="1GiB",
-                      dashboard_address=None, silence_logs=logging.ERROR) as running:
+                      dashboard_address=":0", silence_logs=logging.ERROR) as running:
         yield running
 
 
@@ -367,7 +367,7 @@ def test_a_worker_killed_mid_run_still_ends_in_a_complete_folder(step, tmp_path)
     data = _parquet(frame, tmp_path / "panel.parquet")
     local = _run(data, tmp_path / "local", "local", **KEYS)
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, memory_limit="1GiB",
-                      dashboard_address=None, silence_logs=logging.CRITICAL) as own:
+                      dashboard_address=":0", silence_logs=logging.CRITICAL) as own:
         log = _KillingLog(own, step)
         given = {"input.path": data, "output.dir": tmp_path / "dask", "output.evidence": False,
                  "engine.kind": "dask", "engine.cluster": own.scheduler_address,
