@@ -31,8 +31,9 @@ results, never rows, come back to this process):
    then the diagnostics are written and the folder renamed into place.
 
 What this engine cannot do yet is refused before any data is read
-(``engine.refuse_unsupported``), and a finding it cannot yet add up across
-partitions is refused when a partition finds it (``UNCOMBINED``).
+(``engine.refuse_unsupported``).  Every check has a tally, but those read
+off the variation table (``VARIATION_CHECKS``), which run here on the
+added-up table.
 """
 
 from __future__ import annotations
@@ -128,8 +129,6 @@ ROW = "__panelprep_row__"
 HASH = "__panelprep_entity_hash__"
 # checks whose finding is read off the variation table, made once from the added sums
 VARIATION_CHECKS = ("var-fixed-within", "var-thin-within", "var-fixed-per-period")
-# checks without a tally yet: a run whose partitions find one of these is refused
-UNCOMBINED = tuple(c.id for c in CHECKS if c.tally is None and c.id not in VARIATION_CHECKS)
 # rows per partition the automatic count aims at
 PARTITION_ROWS = 1_000_000
 _GLOB = set("*?[")
@@ -320,7 +319,6 @@ def audit_part(frame: pd.DataFrame, spec: Spec) -> PartState:
                        spec.read_options.decimal_comma, tuple(spec.read_options.missing_tokens),
                        origin=origin)
     checks = {c.id: c.tally(ctx) for c in CHECKS if c.tally is not None}
-    uncombined = [c.id for c in CHECKS if c.id in UNCOMBINED and c.run(ctx) is not None]
     ledger = Ledger(rows_read=len(frame))
     alive = np.ones(len(frame), dtype=bool)
     story = []
@@ -337,7 +335,7 @@ def audit_part(frame: pd.DataFrame, spec: Spec) -> PartState:
     sample_ix = ctx.sample_index
     counts = ctx.sample_counts
     multi = counts[sample_ix.entity_codes] > 1
-    tally = {"checks": checks, "panel": panel_tally(ctx), "uncombined": uncombined,
+    tally = {"checks": checks, "panel": panel_tally(ctx),
              "story": story, "by_reason": ledger.by_reason(), "listwise": _listwise_summary(ctx),
              "rows": int(sample.sum()), "entities": int(sample_ix.n_entities),
              "multi_rows": int(multi.sum()), "singletons": int((counts == 1).sum()),
@@ -690,11 +688,6 @@ def _audit_findings(tallies: list[dict], options: PrepareOptions, grid: Grid,
     """The checks' findings (but those of the variation table), the panel block, the steps
     and the drops from the partitions' tallies."""
     progress("findings", "adding up the partitions' tallies")
-    found = sorted({i for t in tallies for i in t["uncombined"]})
-    if found:
-        raise InputError(
-            f"the dask engine cannot yet add up the finding {found[0]} across partitions, and "
-            f"the data has it; run with --engine local (or fix the input first)")
     stated = stated_step_finding(grid.axis)
     findings = [] if stated is None else [stated]
     for check in CHECKS:

@@ -76,7 +76,8 @@ def merge_tallies(tallies: Sequence[dict]) -> dict:
 
     Keys add up by kind: numbers are summed, except keys ending in ``_max``
     (maximum) and ``_min`` (minimum) of parts that have any; a text (the
-    same in every part, such as the grid's name) is kept; dicts are merged
+    same in every part that gives one, such as the grid's name) is kept;
+    dicts are merged
     key by key the same way (per-value counts); ranked example lists
     (``(rank, example)`` pairs) are merged by rank and cut to
     ``MAX_EXAMPLES`` (``FIRST_VALUES`` for a list under ``firsts``).
@@ -92,7 +93,7 @@ def merge_tallies(tallies: Sequence[dict]) -> dict:
             merged = sorted((pair for value in values for pair in value), key=lambda p: p[0])
             out[key] = merged[:FIRST_VALUES if key == "firsts" else MAX_EXAMPLES]
         elif isinstance(first, str):
-            out[key] = first
+            out[key] = next((v for v in values if v), first)
         elif isinstance(key, str) and key.endswith(("_max", "_min")):
             present = [v for v in values if v is not None]
             pick = max if key.endswith("_max") else min

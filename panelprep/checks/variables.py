@@ -166,22 +166,34 @@ def nan_missing(ctx: AuditContext, self: Check):
     return nan_missing_finding(self, nan_missing_tally(ctx))
 
 
-@check("values-decimal-rounded", "warning",
-       "decimals (Parquet or Arrow decimal columns) that float64 does not hold exactly")
-def decimal_rounded(ctx: AuditContext, self: Check):
-    hits = {name: p.rounded_rows for name, p in ctx.non_numeric.items() if len(p.rounded_rows)}
+def decimal_rounded_tally(ctx: AuditContext) -> dict:
+    """Decimals float64 does not hold exactly, per variable (all listed, with the column's
+    type); examples by variable, then row."""
+    per_variable, examples = {}, []
+    for j, name in enumerate(ctx.variables):
+        problem = ctx.non_numeric.get(name)
+        rows = problem.rounded_rows if problem is not None else np.zeros(0, dtype=np.int64)
+        per_variable[name] = {"rows": len(rows), "type": ""}
+        if len(rows) == 0:
+            continue
+        # (a column holding rounded decimals keeps its values in the frame)
+        per_variable[name]["type"] = str(ctx.frame[name].dtype.pyarrow_dtype)
+        shown = rows[:MAX_EXAMPLES]
+        for row, number in zip(shown, ctx.input_rows(shown)):
+            examples.append(((j, int(number)), {
+                "column": name, "row": int(number),
+                "value": str(ctx.frame[name].iloc[int(row)]),
+                "read_as": repr(float(ctx.values[int(row), j]))}))
+    return {"per_variable": per_variable, "examples": examples[:MAX_EXAMPLES]}
+
+
+def decimal_rounded_finding(self: Check, tally: dict):
+    hits = {name: t for name, t in tally["per_variable"].items() if t["rows"]}
     if not hits:
         return None
-    total = sum(len(rows) for rows in hits.values())
-    examples = []
-    for name, rows in hits.items():
-        for row in rows[:MAX_EXAMPLES]:
-            examples.append({"column": name, "row": int(ctx.input_rows([row])[0]),
-                             "value": str(ctx.frame[name].iloc[int(row)]),
-                             "read_as": repr(float(ctx.values[int(row), ctx.variables.index(name)]))})
-    examples = examples[:MAX_EXAMPLES]
-    names = ", ".join(f"{name} ({len(rows)}, {ctx.frame[name].dtype.pyarrow_dtype})"
-                      for name, rows in hits.items())
+    total = sum(t["rows"] for t in hits.values())
+    examples = examples_of(tally)
+    names = ", ".join(f"{name} ({t['rows']}, {t['type']})" for name, t in hits.items())
     first = examples[0]
     return self.finding(
         total,
@@ -190,8 +202,15 @@ def decimal_rounded(ctx: AuditContext, self: Check):
         f"read as {first['read_as']}); round or rescale the column upstream if those digits "
         "matter",
         examples,
-        {"per_variable": {name: len(rows) for name, rows in hits.items()}},
+        {"per_variable": {name: t["rows"] for name, t in hits.items()}},
     )
+
+
+@check("values-decimal-rounded", "warning",
+       "decimals (Parquet or Arrow decimal columns) that float64 does not hold exactly",
+       tally=decimal_rounded_tally, finish=decimal_rounded_finding)
+def decimal_rounded(ctx: AuditContext, self: Check):
+    return decimal_rounded_finding(self, decimal_rounded_tally(ctx))
 
 
 def listwise_tally(ctx: AuditContext) -> dict:
