@@ -340,12 +340,16 @@ def audit_part(frame: pd.DataFrame, spec: Spec) -> PartState:
              "rows": int(sample.sum()), "entities": int(sample_ix.n_entities),
              "multi_rows": int(multi.sum()), "singletons": int((counts == 1).sum()),
              "dropped": len(dropped), "rows_read": len(frame)}
+    # the sample sorted by (entity, period), rows of one cell in input order: each part of
+    # the files is then sorted so (the findings above were taken in input order)
+    order = sample_ix.order
+    sorted_ix = sample_ix.subset(order)
     return PartState(
-        tally=tally, index=sample_ix, values=ctx.sample_values, counts=counts,
-        keys=frame[[*options.entity, options.time]].iloc[np.flatnonzero(sample)].reset_index(
-            drop=True),
-        rows=origin[sample] + 1,
-        ordinal=sample_ix.period_codes + sample_ix.first_period,
+        tally=tally, index=sorted_ix, values=ctx.sample_values[order], counts=counts,
+        keys=frame[[*options.entity, options.time]].iloc[np.flatnonzero(sample)[order]]
+        .reset_index(drop=True),
+        rows=(origin[sample] + 1)[order],
+        ordinal=sorted_ix.period_codes + sorted_ix.first_period,
         dropped=dropped,
     )
 

@@ -276,6 +276,14 @@ def test_every_part_and_the_common_metadata_carry_the_provenance(tmp_path, clust
             assert pq.read_schema(part).metadata[b"panelprep"] == common
         provenance = json.loads(common)
         assert provenance["file"] == name
+        if name in ("clean", "within", "quasi"):
+            # each part holds whole entities, sorted by entity and period
+            for part in parts:
+                rows = pq.read_table(part, columns=["firm", "year"]).to_pandas()
+                assert rows.equals(rows.sort_values(["firm", "year"], kind="stable")), part
+            firms = [set(pq.read_table(p, columns=["firm"]).column(0).to_pylist())
+                     for p in parts]
+            assert sum(len(f) for f in firms) == len(set().union(*firms))
         assert provenance["options"]["engine.kind"] == "dask"
         assert "engine.cluster" not in provenance["options"]
     assert not list(tmp_path.glob(".panelprep-partial-*"))
