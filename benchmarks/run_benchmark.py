@@ -66,6 +66,8 @@ CASES = {
     "twoway_naive": f"alternating pandas groupby demeaning until max change < {TWOWAY_TOL:g}",
     "within_ours": "transforms.within on the same block",
     "errors_ours": "evidence.error_structure (Wooldridge, Born-Breitung, Pesaran CD) on the block",
+    "compare_floor": "pyarrow read of both vintages (the data and a revised copy) to pandas",
+    "compare": "panelprep.compare.compare_files: the data against a revised copy",
 }
 SCALING_CASES = ("floor", "ours_api", "ours_compute", "audit", "twoway_ours", "within_ours")
 SCALING_ROWS = (1_000_000, 3_000_000, 10_000_000)
@@ -536,11 +538,53 @@ def _errors_ours(spec: Spec) -> tuple[Any, dict]:
     return run, {}
 
 
+def _revised_copy(spec: Spec) -> Path:
+    """A later vintage of the data, written before the clock starts: 1 % of y restated, 1 % of rows gone."""
+    import pyarrow.parquet as pq
+
+    frame = pq.read_table(spec.data, columns=spec.columns).to_pandas()
+    rng = np.random.default_rng(spec.probe_seed)
+    restated = rng.random(len(frame)) < 0.01
+    frame.loc[restated, spec.y] = frame.loc[restated, spec.y] + 1.0
+    frame = frame[rng.random(len(frame)) >= 0.01]
+    path = spec.out / "revised.parquet"
+    frame.to_parquet(path, index=False, compression=PARQUET_COMPRESSION)
+    return path
+
+
+def _compare_floor(spec: Spec) -> tuple[Any, dict]:
+    import pyarrow.parquet as pq
+
+    revised = _revised_copy(spec)
+
+    def run():
+        rows = [pq.read_table(p, columns=spec.columns).to_pandas().shape[0]
+                for p in (spec.data, revised)]
+        return {"rows": rows}
+
+    return run, {}
+
+
+def _compare(spec: Spec) -> tuple[Any, dict]:
+    from panelprep.compare import compare_files
+
+    revised = _revised_copy(spec)
+
+    def run():
+        result = compare_files(spec.data, revised, ENTITY, TIME, spec.variables)
+        rows = result.to_dict()["rows"]
+        return {"removed": rows["removed"], "changed_cells": result.n_changed,
+                "verdict": result.verdict}
+
+    return run, {}
+
+
 SETUP = {
     "floor": _floor, "naive": _naive, "ours_api": _ours_api, "ours_cli": _ours_cli,
     "naive_compute": _naive_compute, "ours_compute": _ours_compute, "audit": _audit,
     "twoway_ours": _twoway_ours, "twoway_naive": _twoway_naive, "within_ours": _within_ours,
     "errors_ours": _errors_ours,
+    "compare_floor": _compare_floor, "compare": _compare,
 }
 
 
@@ -687,6 +731,7 @@ def ratios(results: dict) -> dict[str, float | None]:
         "twoway_ours/within_ours": _ratio(results, "twoway_ours", "within_ours"),
         "peak ours_api/floor": _ratio(results, "ours_api", "floor", "peak_rss_mib"),
         "peak ours_cli/floor": _ratio(results, "ours_cli", "floor", "peak_rss_mib"),
+        "compare/compare_floor": _ratio(results, "compare", "compare_floor"),
     }
 
 
@@ -721,6 +766,7 @@ def targets(size: dict[str, Any], scaling: dict[str, Any] | None) -> list[dict[s
         ("two-way within 3x our within time", r["twoway_ours/within_ours"], "<=", 3.0),
         ("peak RSS of prepare (API) <= 2x the floor's peak", r["peak ours_api/floor"], "<=", 2.0),
         ("peak RSS of prepare (CLI) <= 2x the floor's peak", r["peak ours_cli/floor"], "<=", 2.0),
+        ("compare within 3x reading both vintages", r["compare/compare_floor"], "<=", 3.0),
     ]
     if scaling is not None:
         growth = scaling["growth"].get("ours_api")

@@ -14,7 +14,7 @@ import json
 from importlib import resources
 from typing import Any
 
-SCHEMA_VERSION = "1.0"
+SCHEMA_VERSION = "1.1"
 
 # document -> schema file
 SCHEMAS = {
@@ -23,6 +23,7 @@ SCHEMAS = {
     "provenance": "provenance.schema.json",
     "log-line": "log-line.schema.json",
     "components": "components.schema.json",
+    "comparison": "comparison.schema.json",
     "common": "common.schema.json",
 }
 

@@ -273,6 +273,7 @@ def prepare_command(
     force: Annotated[bool | None, typer.Option("--force/--no-force", help="Replace a non-empty output folder.")] = None,
     evidence: Annotated[bool | None, typer.Option("--evidence/--no-evidence", help="Compute the tests that inform the choice of estimator (default on).")] = None,
     contract: Annotated[Path | None, typer.Option("--contract", help="pandera YAML schema the input must satisfy.")] = None,
+    previous: Annotated[Path | None, typer.Option("--previous", help="Previous vintage of the data: compare the input with it before writing (run-file compare.previous).")] = None,
     duplicates: Annotated[str | None, typer.Option("--duplicates", help="fail (default), drop-exact, keep-first, keep-last or mean.")] = None,
     normalise_ids: Annotated[str | None, typer.Option("--normalise-ids", help="none (default), trim or trim-fold.")] = None,
     singletons: Annotated[str | None, typer.Option("--singletons", help="keep (default) or drop.")] = None,
@@ -309,7 +310,7 @@ def prepare_command(
         "input.path": data, "input.format": input_format, "input.delimiter": delimiter,
         "input.decimal_comma": decimal_comma, "input.missing_tokens": missing_token,
         "panel.entity": entity, "panel.time": time, "panel.freq": freq,
-        "model.y": y, "model.x": x, "contract.schema": contract,
+        "model.y": y, "model.x": x, "contract.schema": contract, "compare.previous": previous,
         "checks.fail_on": fail_on, "checks.severity": _severity_map(severity),
         "clean.duplicates": duplicates, "clean.normalise_ids": normalise_ids,
         "clean.singletons": singletons, "clean.balance": balance, "clean.window": window,
@@ -331,6 +332,69 @@ def prepare_command(
     session.document(result.summary)
     _print_preparation(result, run.output.dir, session)
     session.end(result.verdict, result.summary["gate"]["failed_by"])
+
+
+@app.command("compare", cls=_Command, epilog=EXIT_CODES)
+def compare_command(
+    old: Annotated[Path, typer.Argument(help="The earlier vintage: CSV, Parquet or Arrow/Feather file.")],
+    new: Annotated[Path, typer.Argument(help="The later vintage of the same panel.")],
+    entity: EntityOpt,
+    time: TimeOpt,
+    vars: Annotated[str | None, typer.Option("--vars", help="Variables to compare, comma-separated (default: every numeric non-key column both hold).")] = None,
+    freq: FreqOpt = None,
+    rtol: Annotated[float, typer.Option("--rtol", help="Relative tolerance: a cell is restated when |new - old| > atol + rtol * |old|.")] = 1e-9,
+    atol: Annotated[float, typer.Option("--atol", help="Absolute tolerance (e.g. half the last digit the vendor rounds to).")] = 0.0,
+    max_restated_share: Annotated[float | None, typer.Option("--max-restated-share", help="A variable restated in more than this share of its cells is an error (default: no limit).")] = None,
+    out: Annotated[Path | None, typer.Option("--out", "-o", help="Write restated.parquet, comparison.json, comparison.txt and comparison.html into this folder.")] = None,
+    force: Annotated[bool, typer.Option("--force", help="Replace a non-empty --out folder.")] = False,
+    severity: Annotated[str | None, typer.Option("--severity", help="Severity per finding id, e.g. vintage-rows-added=warning.")] = None,
+    fail_on: FailOpt = "error",
+    input_format: FormatOpt = None,
+    delimiter: DelimOpt = None,
+    decimal_comma: DecimalOpt = False,
+    missing_token: TokenOpt = None,
+    quiet: QuietOpt = False,
+    as_json: JsonOpt = False,
+    progress: ProgressOpt = "auto",
+    log_json: LogJsonOpt = False,
+) -> None:
+    """Compare two vintages of a panel: what entered, what left, what was restated."""
+    session = _Session(progress, quiet, log_json, as_json)
+    _check_data(old, session)
+    _check_data(new, session)
+    from panelprep import pipeline
+    from panelprep.compare import CompareOptions, compare_files, write_comparison
+    from panelprep.io import OutputFolder
+    from panelprep.report.comparison import comparison_lines
+    from panelprep.report.text import closing_lines
+
+    try:
+        options = CompareOptions(rtol=rtol, atol=atol, max_restated_share=max_restated_share,
+                                 fail_on=fail_on, severities=_severity_map(severity) or {})
+        options.validate()
+        folder = OutputFolder(out, [old, new], force=force) if out is not None else None
+        try:
+            result = compare_files(
+                old, new, pipeline.split_names(entity) or [], time, pipeline.split_names(vars),
+                read_options=_read_options(input_format, delimiter, decimal_comma, missing_token),
+                progress=session.log, freq=freq, options=options,
+            )
+            if folder is not None:
+                write_comparison(result, folder, session.log)
+                folder.commit()
+        except BaseException:
+            if folder is not None:
+                folder.abandon()
+            raise
+    except InputError as err:
+        session.fail(str(err))
+    written = [] if out is None else [
+        ("the changed cells", f"{out / 'restated.parquet'} ({result.n_changed:,} cells)"),
+        ("the comparison", f"{out} (comparison.json, comparison.txt, comparison.html)")]
+    document = result.to_dict()
+    session.document(document)
+    session.summary(comparison_lines(document) + closing_lines(document, written))
+    session.end(result.verdict, document["gate"]["failed_by"])
 
 
 @app.command("demo", cls=_Command, epilog=EXIT_CODES)
@@ -358,9 +422,13 @@ def demo_command(
                f"{sum(planted['missing_cells'].values())} missing cells")
     typer.echo(f"run file: {folder / 'run.toml'}")
     typer.echo("")
+    vintages = folder / "vintages"
     _print_preparation(result, folder / "out", session,
                        f"read {result.written_to / 'diagnostics.txt'} top to bottom; rerun with: "
-                       f"panelprep prepare --config {folder / 'run.toml'} --force")
+                       f"panelprep prepare --config {folder / 'run.toml'} --force\n"
+                       "two deliveries of the panel, the later one revised: panelprep compare "
+                       f"{vintages / 'firms_2023.csv'} {vintages / 'firms_2024.csv'} "
+                       "--entity firm_id --time year")
     raise typer.Exit(EXIT_PASS if result.verdict == "pass" else EXIT_FAIL)
 
 

@@ -59,6 +59,11 @@ Keys
 | `names.lag` | template | `{var}_lag{k}` | name of a derived lag, from {var} and {k} |
 | `names.lead` | template | `{var}_lead{k}` | name of a derived lead, from {var} and {k} |
 | `names.diff` | template | `{var}_diff{k}` | name of a derived difference, from {var} and {k} |
+| `compare.previous` | path | none | previous vintage of the data; the input is compared with it before anything is written (findings `vintage-*`, `restated.parquet`); a relative path is read from the run file's folder |
+| `compare.vars` | list of text | `model.y` and `model.x` | variables to compare |
+| `compare.rtol` | number in [0, 1] | `1e-09` | a cell is restated when abs(new - old) > atol + rtol * abs(old) |
+| `compare.atol` | number in [0, inf] | `0.0` | absolute tolerance of the comparison |
+| `compare.max_restated_share` | number in [0, 1] | no limit | a variable restated in more than this share of its cells fails the gate (`vintage-restated-over-limit`) |
 
 Errors are ``InputError`` with one line naming the file, the line, the key
 and what is allowed.
@@ -99,6 +104,7 @@ from panelprep.choices import (
 from panelprep.choices import NORMALISE as NORMALISE_IDS
 from panelprep.errors import InputError
 from panelprep.findings import (
+    COMPARE_FINDING_IDS,
     CONTRACT_FINDING_ID,
     SEVERITIES,
     SKIPPED_COLUMNS_ID,
@@ -117,7 +123,7 @@ if TYPE_CHECKING:
 # Finding ids that modules other than the structural checks emit; a run file
 # may set their severity too.
 EXTRA_FINDING_IDS = (*COMPONENT_FINDING_IDS, UNCOMPUTABLE_ID, CONTRACT_FINDING_ID,
-                     SKIPPED_COLUMNS_ID, STEP_FINDING_ID)
+                     SKIPPED_COLUMNS_ID, STEP_FINDING_ID, *COMPARE_FINDING_IDS)
 FINDING_IDS: tuple[str, ...] = (*CHECK_IDS, *EXTRA_FINDING_IDS)
 
 FAIL_ON = ("error", "warning")
@@ -229,6 +235,17 @@ class NamesSection:
     diff: str = DEFAULT_NAMES.diff
 
 
+@dataclass
+class CompareSection:
+    """``[compare]``: the previous vintage to compare the input with before writing."""
+
+    previous: Path | None = None
+    vars: list[str] | None = None
+    rtol: float = 1e-9
+    atol: float = 0.0
+    max_restated_share: float | None = None
+
+
 _SECTIONS: dict[str, type] = {
     "input": InputSection,
     "panel": PanelSection,
@@ -240,9 +257,11 @@ _SECTIONS: dict[str, type] = {
     "output": OutputSection,
     "engine": EngineSection,
     "names": NamesSection,
+    "compare": CompareSection,
 }
 REQUIRED = ("input.path", "panel.entity", "panel.time", "model.y", "model.x", "output.dir")
-_PATH_KEYS = ("input.path", "contract.schema", "output.dir", "output.failed_dir")
+_PATH_KEYS = ("input.path", "contract.schema", "output.dir", "output.failed_dir",
+              "compare.previous")
 
 
 class _Bad(Exception):
@@ -554,6 +573,20 @@ _KEYS: dict[str, dict[str, _Key]] = {
         "lead": _Key("template", _template, "name of a derived lead, from {var} and {k}"),
         "diff": _Key("template", _template, "name of a derived difference, from {var} and {k}"),
     },
+    "compare": {
+        "previous": _Key("path", _path,
+                         "previous vintage of the data; the input is compared with it before "
+                         "anything is written (findings `vintage-*`, `restated.parquet`); a "
+                         "relative path is read from this file's folder"),
+        "vars": _Key("list of text", _names, "variables to compare"),
+        "rtol": _Key("number in [0, 1]", _number(0.0, 1.0, False),
+                     "a cell is restated when abs(new - old) > atol + rtol * abs(old)"),
+        "atol": _Key("number in [0, inf]", _number(0.0, math.inf, False),
+                     "absolute tolerance of the comparison"),
+        "max_restated_share": _Key("number in [0, 1]", _number(0.0, 1.0, False),
+                                   "a variable restated in more than this share of its cells "
+                                   "fails the gate (`vintage-restated-over-limit`)"),
+    },
 }
 
 # Defaults shown in the key table where the value itself says little.
@@ -565,6 +598,9 @@ _TABLE_DEFAULTS = {
     "output.failed_dir": "`DIR.failed` beside `output.dir`",
     "engine.cluster": "a local cluster",
     "engine.partitions": "automatic",
+    "compare.previous": "none",
+    "compare.vars": "`model.y` and `model.x`",
+    "compare.max_restated_share": "no limit",
 }
 
 
@@ -597,7 +633,7 @@ class RunFile:
 
     Attributes
     ----------
-    input, panel, model, contract, checks, clean, derive, output, engine, names :
+    input, panel, model, contract, checks, clean, derive, output, engine, names, compare :
         the sections (see the module docstring for every key and default).
     source : the run file read, or None when built in code.
     lines : line of each ``section.key`` in the file, for messages about
@@ -614,6 +650,7 @@ class RunFile:
     output: OutputSection = field(default_factory=OutputSection)
     engine: EngineSection = field(default_factory=EngineSection)
     names: NamesSection = field(default_factory=NamesSection)
+    compare: CompareSection = field(default_factory=CompareSection)
     source: Path | None = None
     lines: dict[str, int] = field(default_factory=dict, compare=False, repr=False)
 
@@ -965,6 +1002,9 @@ _EXAMPLES = {
     "checks.severity": {"period-holes": "error"},
     "engine.cluster": "tcp://scheduler:8786",
     "engine.partitions": 16,
+    "compare.previous": "previous.parquet",
+    "compare.vars": ["sales", "capital"],
+    "compare.max_restated_share": 0.01,
 }
 
 

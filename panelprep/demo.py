@@ -265,6 +265,125 @@ def write_demo_csv(
     return planted
 
 
+# Share of firms carrying each planted change between the two demo vintages.
+_VINTAGE_SHARES = {"restated": 0.06, "rekeyed": 0.01, "unit": 0.01, "gone": 0.01}
+_VINTAGE_RESTATED_YEAR = 2021
+
+
+def make_demo_vintages(seed: int = DEFAULT_SEED, n_firms: int = 300) -> tuple[pd.DataFrame,
+                                                                                pd.DataFrame, dict]:
+    """Two deliveries of the invented firm panel, the later one revised: a pair to compare.
+
+    Demo data: invented, no real firms.  The previous vintage covers
+    2005-2023: the demo panel of ``make_demo_panel`` with its ids trimmed and
+    case-folded and one row per firm-year (the first), so that every
+    difference below is one of the planted ones.  The current vintage, built
+    from it, plants on separate firms:
+
+    * ``restated``: sales of the restated year (2021) revised by 2-8 %;
+    * ``rekeyed``: firms delivered under a new id (``F9`` + the old number);
+    * ``unit``: firms whose capital is now in thousands (the old value x 1000);
+    * ``gone``: firms left out entirely (firms observed in 2005 alone are
+      gone too);
+    * 2005 (the first year) left out, 2024 added for the firms observed in
+      2023 (and not gone), values grown 3 %;
+    * ``now_missing``: one sales value withheld on five further firms;
+      ``filled_in``: every missing value of the previous vintage delivered.
+
+    Returns
+    -------
+    old, new : pandas.DataFrame
+        Columns ``firm_id``, ``year``, ``industry``, ``founded``, ``sales``,
+        ``capital``, ``staff``.
+    planted : dict
+        Exact counts of each planted change, with the firms of each kind, as
+        the comparison should find them: ``rows_removed``, ``rows_added``,
+        ``entities_gone``, ``entities_new``, ``restated`` ({variable: cells},
+        unit changes included), ``unit_change_cells``, ``rekeyed`` (pairs of
+        ids), ``unit_firms``, ``became_missing``, ``filled_in``,
+        ``periods_gone``, ``periods_new``.
+    """
+    panel, _ = make_demo_panel(seed=seed, n_firms=n_firms, years=(2005, 2023))
+    old = panel.assign(firm_id=panel["firm_id"].str.strip().str.upper())
+    old = old.drop_duplicates(["firm_id", "year"], keep="first").reset_index(drop=True)
+    variables = list(_VARIABLES)
+    rng = np.random.default_rng(seed + 1)
+    per_firm = old.groupby("firm_id").agg(first=("year", "min"), last=("year", "max"),
+                                          rows=("year", "size"))
+    holes = old[variables].isna().any(axis=1).groupby(old["firm_id"]).any()
+    # the changes go to firms observed through 2023 from 2019 or before, with no missing value
+    eligible = per_firm[(per_firm["first"] <= 2019) & (per_firm["last"] == 2023)
+                        & (per_firm["rows"] >= 4) & ~holes].index.to_numpy()
+    eligible = rng.permutation(np.sort(eligible))
+    n = old["firm_id"].nunique()
+    roles, start = {}, 0
+    for kind in (*_VINTAGE_SHARES, "now_missing"):
+        size = max(1, round(_VINTAGE_SHARES[kind] * n)) if kind in _VINTAGE_SHARES else 5
+        roles[kind] = np.sort(eligible[start:start + size])
+        start += size
+
+    new = old.copy()
+    missing_before = old[variables].isna()
+    for name in variables:
+        new.loc[missing_before[name].to_numpy(), name] = np.round(old[name].mean(), 3)
+    revise = new["firm_id"].isin(roles["restated"]) & (new["year"] == _VINTAGE_RESTATED_YEAR)
+    factor = 1 + rng.choice([-1.0, 1.0], int(revise.sum())) * rng.uniform(
+        0.02, 0.08, int(revise.sum()))
+    new.loc[revise, "sales"] = np.round(new.loc[revise, "sales"] * factor, 3)
+    unit = new["firm_id"].isin(roles["unit"])
+    new.loc[unit, "capital"] = new.loc[unit, "capital"] * 1000
+    withheld = new["firm_id"].isin(roles["now_missing"]) & (new["year"] == 2022)
+    new.loc[withheld, "sales"] = np.nan
+    rekey = new["firm_id"].isin(roles["rekeyed"])
+    new.loc[rekey, "firm_id"] = "F9" + new.loc[rekey, "firm_id"].str[1:]
+    new = new[~new["firm_id"].isin(roles["gone"]) & (new["year"] != 2005)]
+    later = new[new["year"] == 2023].assign(year=2024)
+    for name in ("sales", "capital"):
+        later[name] = np.round(later[name] * 1.03, 3)
+    new = pd.concat([new, later], ignore_index=True)
+    new = new.sort_values(["firm_id", "year"], kind="stable").reset_index(drop=True)
+
+    after_first = old["year"] != 2005
+    moved = old["firm_id"].isin([*roles["gone"], *roles["rekeyed"]])
+    # rows of re-keyed firms are removed under the old id and added under the new one
+    rekeyed_rows = int((old["firm_id"].isin(roles["rekeyed"]) & after_first).sum())
+    unit_cells = int((old["firm_id"].isin(roles["unit"]) & after_first).sum())
+    planted = {
+        "periods_gone": ["2005"],
+        "periods_new": ["2024"],
+        "rows_removed": int((~after_first).sum() + (moved & after_first).sum()),
+        "rows_added": len(later) + rekeyed_rows,
+        # gone: the left-out and re-keyed firms, and those observed in 2005 alone
+        "entities_gone": (len(roles["gone"]) + len(roles["rekeyed"])
+                          + int((per_firm["last"] == 2005).sum())),
+        "entities_new": len(roles["rekeyed"]),
+        "restated": {"sales": int(revise.sum()), "capital": unit_cells, "staff": 0},
+        "unit_change_cells": unit_cells,
+        "unit_firms": roles["unit"].tolist(),
+        "rekeyed": [[f, "F9" + f[1:]] for f in roles["rekeyed"].tolist()],
+        "gone_firms": roles["gone"].tolist(),
+        "became_missing": {"sales": int(withheld.sum()), "capital": 0, "staff": 0},
+        # the role firms have no missing value, so every earlier gap after 2005 is filled
+        "filled_in": {name: int((missing_before[name] & after_first).sum())
+                      for name in variables},
+    }
+    return old, new, planted
+
+
+def write_demo_vintages(folder: str | Path, seed: int = DEFAULT_SEED,
+                        n_firms: int = 300) -> dict:
+    """Write the two demo vintages as ``firms_2023.csv`` (previous) and ``firms_2024.csv``.
+
+    Demo data: invented, no real firms.  Returns ``planted`` of ``make_demo_vintages``.
+    """
+    old, new, planted = make_demo_vintages(seed=seed, n_firms=n_firms)
+    folder = Path(folder)
+    for name, frame in (("firms_2023.csv", old), ("firms_2024.csv", new)):
+        frame.to_csv(folder / name, index=False, lineterminator="\n",
+                     float_format=lambda x: repr(float(x)))
+    return planted
+
+
 def _assign_roles(rng: np.random.Generator, life: np.ndarray, n: int) -> dict[str, np.ndarray]:
     """Disjoint sets of firms for each defect kind.
 
@@ -323,7 +442,9 @@ def run_demo(folder: str | Path, force: bool = False, progress=None):
     """Write the demo data and run file into ``folder`` and run the preparation.
 
     Returns ``(preparation, planted)`` where ``planted`` counts the defects
-    planted in the invented data.  Outputs go to ``folder/out``.
+    planted in the invented data.  Outputs go to ``folder/out``; two
+    deliveries of the panel to compare (``write_demo_vintages``) go to
+    ``folder/vintages``.
     """
     from importlib import resources
 
@@ -338,6 +459,8 @@ def run_demo(folder: str | Path, force: bool = False, progress=None):
         raise InputError(f"{folder}: folder exists and is not empty (use --force to redo the demo)")
     folder.mkdir(parents=True, exist_ok=True)
     planted = write_demo_csv(folder / "firms.csv")
+    (folder / "vintages").mkdir(exist_ok=True)
+    write_demo_vintages(folder / "vintages")
     run_text = resources.files("panelprep").joinpath("data/demo_run.toml").read_text("utf-8")
     (folder / "run.toml").write_text(run_text, encoding="utf-8")
     run = load_run_file(folder / "run.toml", {"output.force": True if force else None})

@@ -50,6 +50,7 @@ def refuse_unsupported(options: Any, read_options: Any) -> None:
         (any(policies.window), "--window (clean.window)"),
         (bool(options.shifts), "--lag, --lead and --diff (derive.*)"),
         (options.contract is not None, "--contract (contract.schema)"),
+        (options.previous is not None, "--previous (compare.previous)"),
         (options.method not in DASK_METHODS,
          f"--method {options.method} (output.method; it supports {', '.join(DASK_METHODS)})"),
         (bool(other), f"--transform {other} (output.transforms)"),

@@ -27,6 +27,16 @@ UNCOMPUTABLE_ID = "evidence-not-computable"
 # warnings raised by a library during a run, kept in the report instead of on stderr
 LIBRARY_WARNINGS_ID = "library-warnings"
 MAX_EXAMPLES = 10
+# emitted by panelprep.compare (two vintages side by side); named here so the run
+# file can set their severities without importing the comparison
+COMPARE_FINDING_IDS = (
+    "vintage-key-repeated", "vintage-key-missing", "vintage-columns-changed",
+    "vintage-type-changed", "vintage-periods-gone", "vintage-periods-new",
+    "vintage-entities-gone", "vintage-entities-new", "vintage-rows-removed",
+    "vintage-rows-added", "vintage-entity-rekeyed", "vintage-values-restated",
+    "vintage-restated-over-limit", "vintage-unit-changed", "vintage-values-now-missing",
+    "vintage-values-filled", "vintage-shape-changed",
+)
 
 
 def severity_rank(severity: str) -> int:

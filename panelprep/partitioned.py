@@ -112,6 +112,7 @@ from panelprep.prepare import (
     run_record,
     sample_steps,
     write_diagnostics,
+    write_run_file,
 )
 from panelprep.runlog import RunLog
 from panelprep.timeaxis import Grid, time_grid
@@ -525,7 +526,9 @@ def run_partitioned(
             folder.abandon()
             folder = _failed_output(failed, inputs, out, failed_out is None)
             written = []
-        write_diagnostics(prep, folder, options, written, progress, record, pictures={})
+        if written:
+            write_run_file(folder, record, progress)
+        write_diagnostics(prep, folder, options, progress, record, written, pictures={})
         folder.commit()
     except BaseException:
         folder.abandon()
@@ -664,7 +667,7 @@ def _run_on(client: Any, source: Source, options: PrepareOptions, read_options: 
                    for name in options.transforms}
         _left_out(info, decided, options)
     closed_summary(summary, info, components, int(report.panel["periods"]), standard,
-                   moments.counts, progress, record, options)
+                   moments.counts, options)
     if summary["verdict"] != "fail":
         written = _write(client, progress, states, tallies, spec, scaled, scales, decided,
                          summary, record, folder)

@@ -43,7 +43,7 @@ from panelprep.io import (
     detect_format,
     read_frame,
     release_arrow_memory,
-    sha256_file,
+    sha256_in_background,
 )
 from panelprep.runlog import RunLog
 from panelprep.words import plural
@@ -449,10 +449,11 @@ def load(
         if column not in names:
             raise ColumnError(f"{path}: key column {column!r} not found; columns are {names}")
     columns = None if vars is None else list(dict.fromkeys([*entity, time, *vars, *extra]))
+    digest = sha256_in_background(path)  # hashed while the columns are read
     frame = read_frame(path, columns, list(entity), time, options)
     if frame.empty:
         raise InputError(f"{path}: no data rows, only a header")
-    info = {"path": str(path), "sha256": sha256_file(path), "rows": len(frame),
+    info = {"path": str(path), "sha256": digest.result(), "rows": len(frame),
             "format": detect_format(path, options.input_format)}
     return frame, info
 

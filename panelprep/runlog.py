@@ -124,6 +124,26 @@ class RunLog:
         for sink in self.sinks:
             sink.ended(step)
 
+    def concurrent(self, step: str, what: str, rows: int | None, started_at: str,
+                   began: float, seconds: float) -> None:
+        """Record a step that ran in a thread of its own, beside the steps since it began.
+
+        ``began`` is its start on ``time.perf_counter``.  Its peak is the
+        process's over that time (the largest peak of the steps that ran
+        beside it, and of the open step so far): the memory of two threads
+        is not told apart.
+        """
+        elapsed = began - self._t0
+        beside = [s["peak_rss_bytes"] for s in self.steps
+                  if s["elapsed_seconds"] + s["wall_seconds"] >= elapsed]
+        record = {"id": step, "what": what, "rows": None if rows is None else int(rows),
+                  "started_at": started_at, "elapsed_seconds": round(elapsed, 6),
+                  "wall_seconds": round(seconds, 6),
+                  "peak_rss_bytes": max([*beside, _peak_bytes(self.per_step_memory)])}
+        self.steps.append(record)
+        for sink in self.sinks:
+            sink.ended(record)
+
     def settle(self) -> None:
         """End the open step and take any live display (the bar) off the screen, before
         other lines are printed."""

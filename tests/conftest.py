@@ -124,6 +124,8 @@ def document_kind(document) -> str | None:
     """Which schema a JSON document written by panelprep answers to (None: not ours)."""
     if not isinstance(document, dict) or document.get("tool", {}).get("name") != "panelprep":
         return None
+    if "tolerance" in document and "old" in document:
+        return "comparison"
     return "diagnostics" if "files" in document or "steps" in document else "audit"
 
 

@@ -15,7 +15,7 @@ SCRIPT = Path(__file__).resolve().parents[1] / "benchmarks" / "run_benchmark.py"
 
 EXPECTED_CASES = {
     "floor", "naive", "ours_api", "ours_cli", "naive_compute", "ours_compute", "audit",
-    "twoway_ours", "twoway_naive", "within_ours", "errors_ours",
+    "twoway_ours", "twoway_naive", "within_ours", "errors_ours", "compare_floor", "compare",
 }
 
 

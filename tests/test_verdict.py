@@ -303,6 +303,42 @@ def test_run_toml_reproduces_a_stated_step_and_the_diff_file(tmp_path):
     assert options["panel.freq"] == "int:10" and options["derive.diff"] == ["hours:1"]
 
 
+def test_run_toml_with_compare_reproduces_the_data_files_and_restated_parquet(tmp_path):
+    """A run with [compare]: run.toml keeps the previous vintage (relative to the folder) and
+    its tolerances, and the rerun writes every Parquet file, restated.parquet too, byte for
+    byte; the Parquet metadata leaves the previous vintage's path out, as every location."""
+    data = tmp_path / "data" / "firms.csv"
+    data.parent.mkdir()
+    frame = pd.read_csv(FIXTURES / "singletons.csv")
+    frame.to_csv(data, index=False)
+    previous = frame.copy()
+    previous.loc[previous.index[:3], "sales"] += 1.0  # three cells restated
+    previous.to_csv(tmp_path / "data" / "firms_before.csv", index=False)
+    first = tmp_path / "first"
+    done = run("prepare", data, *KEYS, *MODEL, "--out", first, "--previous",
+               tmp_path / "data" / "firms_before.csv")
+    assert done.returncode == 0, done.stderr
+    record = (first / "run.toml").read_text()
+    assert 'previous = "../data/firms_before.csv"' in record
+    again = tmp_path / "again"
+    done = run("prepare", "--config", first / "run.toml", "--out", again)
+    assert done.returncode == 0, done.stderr
+    data_files = sorted(p.name for p in first.glob("*.parquet"))
+    assert "restated.parquet" in data_files
+    assert data_files == sorted(p.name for p in again.glob("*.parquet"))
+    for name in data_files:
+        assert (first / name).read_bytes() == (again / name).read_bytes(), name
+    assert len(pq.read_table(first / "restated.parquet")) == 3
+    diagnostics = json.loads((first / "diagnostics.json").read_text(encoding="utf-8"))
+    options = diagnostics["run"]["options"]
+    assert options["compare.previous"] == str(tmp_path / "data" / "firms_before.csv")
+    assert options["compare.rtol"] == 1e-9 and options["compare.max_restated_share"] is None
+    meta = json.loads(pq.read_schema(first / "restated.parquet").metadata[b"panelprep"])
+    assert "compare.previous" not in meta["options"] and "compare.rtol" in meta["options"]
+    assert meta["old_sha256"] == sha256(tmp_path / "data" / "firms_before.csv")
+    assert meta["new_sha256"] == meta["input_sha256"] == sha256(data)
+
+
 def test_run_toml_names_no_output_folder(tmp_path):
     out = tmp_path / "out"
     assert run("prepare", CLEAN, *KEYS, *MODEL, "--out", out).returncode == 0

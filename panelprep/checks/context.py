@@ -404,8 +404,11 @@ def _rounded_decimals(values: pd.Series, as_float: np.ndarray) -> np.ndarray:
 
 def _inexact_integers(values: pd.Series, as_float: np.ndarray) -> np.ndarray:
     """Rows of an integer column whose value float64 cannot hold exactly (beyond 2^53)."""
+    if not pd.api.types.is_integer_dtype(values.dtype):
+        # a float column holds what it holds: no pass over it
+        return np.zeros(len(values), dtype=bool)
     big = np.abs(as_float) >= _EXACT_INTEGER
-    if not pd.api.types.is_integer_dtype(values.dtype) or not big.any():
+    if not big.any():
         return np.zeros(len(values), dtype=bool)
     kind = np.uint64 if pd.api.types.is_unsigned_integer_dtype(values.dtype) else np.int64
     exact = values.to_numpy(dtype=kind, na_value=0)[big]

@@ -82,6 +82,33 @@ HINTS = {
     "regressor-dropped-between": "leave the regressor out of --x [model.x]",
     "regressor-dropped-pooled": "leave the regressor out of --x [model.x]",
     "variance-beyond-float-range": "rescale the response (divide by a power of ten)",
+    # comparisons of two vintages (panelprep compare, or [compare] in a run file)
+    "vintage-key-repeated": "--duplicates [clean.duplicates] settles repeats in the input; "
+                            "the comparison takes the first row of each key",
+    "vintage-key-missing": "fix the keys at the source; rows without a full key are not compared "
+                           "(--severity [checks.severity])",
+    "vintage-columns-changed": "--vars [compare.vars] names the variables to compare",
+    "vintage-type-changed": "--vars [compare.vars] to leave the column out; or deliver it in "
+                            "one form",
+    "vintage-periods-gone": "--window FIRST,LAST [clean.window] when a shorter history is "
+                            "expected; --severity vintage-periods-gone=info [checks.severity]",
+    "vintage-periods-new": "--severity [checks.severity] to gate on new periods",
+    "vintage-entities-gone": "see vintage-entity-rekeyed; --severity [checks.severity]",
+    "vintage-entities-new": "--severity [checks.severity] to gate on new entities",
+    "vintage-rows-removed": "--severity vintage-rows-removed=info [checks.severity] when a "
+                            "vendor trims history",
+    "vintage-rows-added": "--severity [checks.severity] to gate on added rows",
+    "vintage-entity-rekeyed": "map the old ids to the new before comparing; "
+                              "--severity [checks.severity]",
+    "vintage-values-restated": "--atol / --rtol [compare.atol, compare.rtol] so that rounding "
+                               "is not a restatement; restated.parquet lists every cell",
+    "vintage-restated-over-limit": "--max-restated-share [compare.max_restated_share] sets the "
+                                   "limit",
+    "vintage-unit-changed": "rescale the variable to one unit before comparing; "
+                            "--severity vintage-unit-changed=error [checks.severity] to stop on it",
+    "vintage-values-now-missing": "--severity [checks.severity] to gate on withheld values",
+    "vintage-values-filled": "--severity [checks.severity] to gate on values filled in",
+    "vintage-shape-changed": "--balance [clean.balance] to make the panel balanced again",
 }
 
 

@@ -676,6 +676,10 @@ def render_html(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
     parts.append(("findings", "Findings", _findings(summary)))
     parts.append(("panel", "Panel", _panel(summary, pictures)))
     parts.append(("variation", "Variation", _variation(summary, pictures)))
+    if summary.get("comparison"):
+        from panelprep.report.comparison import comparison_section
+
+        parts.append(("comparison", "Vintages", comparison_section(summary["comparison"])))
     if summary.get("components"):
         parts.append(("components", "Components", _components(summary, pictures)))
     if summary.get("evidence"):

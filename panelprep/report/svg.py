@@ -205,8 +205,16 @@ def flow(data: dict[str, Any], palette: Palette, name: str, title: str) -> str:
     return canvas.render(name, title)
 
 
-def missing_map(data: dict[str, Any], palette: Palette, name: str, title: str) -> str:
-    """Variables (rows) by periods (columns): darker where more of the rows miss the value."""
+def missing_map(data: dict[str, Any], palette: Palette, name: str, title: str,
+                none_label: str = "no cell missing",
+                most_label: str = "{share} of the period's rows missing (the most)") -> str:
+    """Variables (rows) by periods (columns): darker where a larger share of the cells counts.
+
+    ``data["share"]`` holds one share per variable and period (None where
+    there was nothing to count); the legend names a zero share
+    ``none_label`` and the largest ``most_label`` (``{share}`` is replaced by
+    it, as a percentage).  Also draws the restated share of a comparison.
+    """
     variables, periods = list(data["variables"]), list(data["periods"])
     rows, columns = len(variables), len(periods)
     left = 16 + min(max((len(v) for v in variables), default=4), 22) * 6.6
@@ -223,10 +231,10 @@ def missing_map(data: dict[str, Any], palette: Palette, name: str, title: str) -
     plot_w = canvas.width - left - 16
     cell_w = plot_w / columns
     canvas.rect(left, 8, 12, 12, "white", f' stroke="{palette.rule}"')
-    canvas.text(left + 17, 18, "no cell missing", palette.ink, size=10)
+    canvas.text(left + 17, 18, none_label, palette.ink, size=10)
     canvas.rect(left + 120, 8, 12, 12, palette.accent)
-    canvas.text(left + 137, 18, f"{100 * worst:.1f}% of the period's rows missing (the most)",
-                palette.ink, size=10)
+    canvas.text(left + 137, 18, most_label.format(share=f"{100 * worst:.1f}%"), palette.ink,
+                size=10)
     for r, label in enumerate(variables):
         y = top + r * cell_h
         canvas.text(left - 8, y + 12, _short(label, 22), palette.ink, size=10, anchor="end")

@@ -273,6 +273,11 @@ def preparation_lines(summary: dict[str, Any]) -> list[str]:
                             f"{s['entities_before']:,}", f"{s['entities_after']:,}"]
                            for s in summary["steps"]], right={1, 2, 3, 4})
         lines.append(_dropped_line(summary))
+    if summary.get("comparison"):
+        from panelprep.report.comparison import comparison_body
+
+        lines += ["", "Against the previous vintage (findings vintage-* above)"]
+        lines += [f"  {line}" if line else "" for line in comparison_body(summary["comparison"])]
     if summary.get("components"):
         lines += [""] + components_lines(summary["components"])
     if summary.get("transforms"):
