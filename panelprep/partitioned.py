@@ -76,10 +76,8 @@ from panelprep.errors import ColumnError, InputError, TimeParseError
 from panelprep.findings import Finding, apply_severities, gate
 from panelprep.index import PanelIndex, build_index
 from panelprep.io import (
-    DIAGNOSTIC_FILES,
     OutputFolder,
     ReadOptions,
-    check_output_folder,
     column_names,
     detect_format,
     frame_from_table,
@@ -103,12 +101,11 @@ from panelprep.prepare import (
     PrepareOptions,
     _failed_output,
     _listwise_summary,
-    _name_fits,
     closed_summary,
-    failed_folder,
     failed_summary,
     file_metadata,
     fitted_summary,
+    output_folders,
     run_record,
     sample_steps,
     write_diagnostics,
@@ -505,11 +502,8 @@ def run_partitioned(
     record = run_record(options, read_options, data, out, force, failed_out, engine=engine)
     inputs = [*source.paths, *map(Path, keep)]
     out = Path(out)
-    folder = OutputFolder(out, inputs, force=force)
-    failed = failed_folder(out) if failed_out is None else Path(failed_out)
+    folder, failed = output_folders(out, inputs, force, failed_out)
     try:
-        if failed_out is not None or _name_fits(failed):
-            check_output_folder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
         with dask_client(engine.cluster) as client:
             try:
                 prep, written = _run_on(client, source, options, read_options, engine,

@@ -1076,12 +1076,8 @@ def run_preparation(
     inputs = [*([] if given else [Path(data)]), *map(Path, keep),
               *([Path(previous.path)] if previous else [])]
     out = Path(out)
-    folder = OutputFolder(out, inputs, force=force)
-    failed = failed_folder(out) if failed_out is None else Path(failed_out)
+    folder, failed = output_folders(out, inputs, force, failed_out)
     try:
-        if failed_out is not None or _name_fits(failed):
-            # a default name too long for the file system is reported only if the gate fails
-            check_output_folder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
         if given:
             frame, info = data, {"path": None, "sha256": None, "rows": len(data)}
         else:
@@ -1141,6 +1137,22 @@ def _compare_previous(frame: pd.DataFrame, info: dict[str, Any], options: Prepar
                           options=compare_options, old_info=old_info, new_info=info,
                           decimal_comma=read_options.decimal_comma,
                           missing_tokens=read_options.missing_tokens, progress=progress)
+
+
+def output_folders(out: Path, inputs: list[Path], force: bool,
+                   failed_out: str | Path | None) -> tuple[OutputFolder, Path]:
+    """The output folder (its temporary folder made) and where a failed gate's diagnostics
+    go, both checked against the inputs before anything is read."""
+    folder = OutputFolder(out, inputs, force=force)
+    failed = failed_folder(out) if failed_out is None else Path(failed_out)
+    try:
+        if failed_out is not None or _name_fits(failed):
+            # a default name too long for the file system is reported only if the gate fails
+            check_output_folder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
+    except BaseException:
+        folder.abandon()
+        raise
+    return folder, failed
 
 
 def _name_fits(path: Path) -> bool:
