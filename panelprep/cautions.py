@@ -9,13 +9,15 @@ could mislead.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
 from panelprep._moments import ScaledMoments
 from panelprep.components import VarianceComponents
+from panelprep.index import PanelIndex
 from panelprep.lags import Shift
+from panelprep.words import plural
 
 # methods whose s2_u comes from the entity means of within residuals (or the
 # estimated entity effects), which also hold the effect of regressors the
@@ -94,16 +96,44 @@ def listwise_cautions(findings: Sequence[dict[str, Any]]) -> list[str]:
             "Dropping or imputing those columns would keep more rows.")]
 
 
+class PeriodsLost(NamedTuple):
+    """Periods that had rows before listwise deletion and have none after it."""
+
+    count: int
+    labels: list[str]      # the first few of them
+    data_first: str | None
+    sample_first: str | None
+
+
+_LOST_SHOWN = 5
+
+
+def periods_lost(index: PanelIndex, before: np.ndarray, after: np.ndarray) -> PeriodsLost:
+    """Which periods listwise deletion emptied (``before``, ``after``: row masks of ``index``)."""
+    codes = index.period_codes
+    had = np.unique(codes[before & (codes >= 0)])
+    kept = np.unique(codes[after & (codes >= 0)])
+    lost = np.setdiff1d(had, kept, assume_unique=True)
+    firsts = index.period_labels([had[0], kept[0]]) if len(had) and len(kept) else [None, None]
+    return PeriodsLost(len(lost), index.period_labels(lost[:_LOST_SHOWN]), *firsts)
+
+
 def lag_period_cautions(shifts: Sequence[Shift], x: Sequence[str], y: str,
-                        findings: Sequence[dict[str, Any]]) -> list[str]:
+                        findings: Sequence[dict[str, Any]], lost: PeriodsLost) -> list[str]:
     """Periods lost because a lag or difference has no value in an entity's first periods."""
     found = next((f for f in findings if f["id"] == "values-missing"), None)
     per_variable = found["details"].get("per_variable", {}) if found else {}
-    used = [s for s in shifts if s.kind in ("lag", "diff") and s.name in (*x, y)]
+    used = [s for s in shifts if s.kind in ("lag", "diff") and s.name in (*x, y)
+            and per_variable.get(s.name)]
     if not used:
         return []
-    parts = ", ".join(f"{s.name} ({per_variable.get(s.name, 0):,} rows without a value)"
-                      for s in used)
-    return [(f"Lags and differences have no value in each entity's first k period(s) or after a "
-            f"hole: {parts}; listwise deletion removed those rows, so the sample starts "
-            "k periods later than the data.")]
+    parts = ", ".join(f"{s.name} (k = {s.k}: {plural(per_variable[s.name], 'row')} without a "
+                      "value)" for s in used)
+    said = (f"Lags and differences have no value in an entity's first k periods or after a "
+            f"hole: {parts}; listwise deletion removed those rows")
+    if not lost.count:
+        return [f"{said}; no period lost all its rows."]
+    shown = ", ".join(lost.labels) + (", ..." if lost.count > len(lost.labels) else "")
+    return [(f"{said}, so {plural(lost.count, 'period')} ({shown}) "
+             f"{'has' if lost.count == 1 else 'have'} no row left: the sample starts at "
+             f"{lost.sample_first}, the data at {lost.data_first}.")]

@@ -487,13 +487,15 @@ def draft_command(
 
 
 def _print_preparation(result, out: Path, session: _Session, note: str = "") -> None:
-    """The audit, the components, where the files went, ``note``, and the verdict line last."""
-    from panelprep.report.text import audit_lines, components_lines, verdict_line
+    """The audit, the components, the cautions, where the files went, ``note``, and the verdict
+    line last."""
+    from panelprep.report.text import audit_lines, cautions_lines, components_lines, verdict_line
 
     summary = result.summary
     lines = audit_lines(summary)
     if summary.get("components"):
         lines += ["", *components_lines(summary["components"])]
+    lines += cautions_lines(summary)
     names = ", ".join(f["name"] for f in summary.get("files", [])) or "diagnostics only"
     extra = ", run.toml" if result.verdict == "pass" else ""
     lines += ["", (f"written to {result.written_to}: {names}{extra}, diagnostics.json, "
@@ -611,6 +613,30 @@ def main() -> None:
         # typer turns Ctrl-C into exit 130 (no command exits so itself)
         typer.echo(f"panelprep: {_interrupted()}", err=True)
     sys.exit(code or 0)
+
+
+def script() -> None:
+    """The ``panelprep`` command: ``main``, then an exit without the interpreter's teardown.
+
+    When ``main`` returns, every output is complete and renamed into place
+    and no thread is left working, so what remains of Python's exit is
+    freeing the run's arrays and modules one by one: about 0.3 s after a run
+    of 2.5 M rows, for nothing.  The standard streams are flushed first.
+    (``main`` itself exits normally, for callers in the same process.)
+    """
+    try:
+        main()
+        code = 0
+    except SystemExit as done:
+        code = done.code if isinstance(done.code, int) else (0 if done.code is None else 1)
+        if done.code is not None and not isinstance(done.code, int):
+            print(done.code, file=sys.stderr)
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):  # a closed pipe (| head) or stream: nothing to keep
+            pass
+    os._exit(code)
 
 
 def _internal_error(err: Exception) -> int:

@@ -99,6 +99,8 @@ from panelprep.prepare import (
     OutputTables,
     Preparation,
     PrepareOptions,
+    _components_findings,
+    _failed_after_gate,
     _failed_output,
     _listwise_summary,
     closed_summary,
@@ -643,12 +645,13 @@ def _run_on(client: Any, source: Source, options: PrepareOptions, read_options: 
     scales = {"within": norms if multi_rows == n_rows else scalings["multi"][2][1:],
               "quasi": np.concatenate([[np.sqrt(n_rows)], norms]),
               "between": np.concatenate([[np.sqrt(n_entities)], scalings["between"][2][1:]])}
-    findings = findings + apply_severities(
-        [Finding(**f) for f in components.findings_], options.severities)
+    # a severity given for a components finding counts like one given for a check
+    judged = apply_severities(_components_findings(components, options), options.severities)
+    findings = findings + judged
     singletons = sum(t["singletons"] for t in tallies)
     fitted_summary(summary, findings, options,
                    {"rows": n_rows, "entities": n_entities, **listwise}, story, by_reason,
-                   components)
+                   components, judged)
     info = _plan(options, multi_rows, n_entities, n_rows, singletons)
     prep = Preparation(report, Ledger(rows_read), components, None, summary)
     written: list[dict[str, Any]] = []
@@ -662,6 +665,8 @@ def _run_on(client: Any, source: Source, options: PrepareOptions, read_options: 
         _left_out(info, decided, options)
     closed_summary(summary, info, components, int(report.panel["periods"]), standard,
                    moments.counts, options)
+    if summary["verdict"] == "fail":
+        _failed_after_gate(summary)
     if summary["verdict"] != "fail":
         written = _write(client, progress, states, tallies, spec, scaled, scales, decided,
                          summary, record, folder)

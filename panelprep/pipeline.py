@@ -58,13 +58,16 @@ FINAL_SAMPLE = "final"
 _ESTIMATION_DEFINITION = "keyed rows, exact repeats collapsed, every selected variable present"
 
 
-def sample_definition(sample: str, policies: Sequence[str] = ()) -> str:
-    """One line saying what rows a sample name stands for."""
+def sample_definition(sample: str, policies: Sequence[str] = (), written: bool = True) -> str:
+    """One line saying what rows a sample name stands for (``written``: the gate passed, so
+    the data files hold those rows)."""
     if sample == ESTIMATION_SAMPLE:
         return f"the estimation sample: {_ESTIMATION_DEFINITION}"
     after = (f"after the post-audit policies {', '.join(policies)}" if policies
              else "(no post-audit policy removed rows)")
-    return f"the final sample: the estimation sample {after}; the rows the data files hold"
+    files = ("the rows the data files hold" if written
+             else "the rows the data files would hold; the gate failed, so none was written")
+    return f"the final sample: the estimation sample {after}; {files}"
 
 
 @dataclass(eq=False)
@@ -115,7 +118,8 @@ class AuditReport:
                 "panel": self.sample,
                 "findings": self.sample,
                 "variables": self.sample,
-                "definition": sample_definition(self.sample, self.policies),
+                "definition": sample_definition(self.sample, self.policies,
+                                                written=self.verdict == "pass"),
                 "policies": list(self.policies),
             },
             **({} if self.log is None else {"run": self.run_block()}),

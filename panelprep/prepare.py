@@ -105,6 +105,7 @@ from panelprep.pipeline import (
     audit,
     judge_final_sample,
     load,
+    sample_definition,
     split_names,
 )
 from panelprep.runlog import RunLog, utc_stamp
@@ -332,8 +333,13 @@ def _prepare_frame(
     )
     audited = report.context
     progress("sample", "building the estimation sample", rows=len(flow.frame))
-    for removed, reason, step, step_id in sample_steps(audited, options.variables):
-        flow.drop(removed, reason, step, step_id)
+    keys, repeats, listwise_step = sample_steps(audited, options.variables)
+    flow.drop(*keys)
+    flow.drop(*repeats)
+    before_listwise = flow.alive.copy() if options.shifts else None
+    flow.drop(*listwise_step)
+    emptied = (None if before_listwise is None
+               else cautions.periods_lost(flow.index, before_listwise, flow.alive))
     # the post-audit policies, each with the sample it leaves, so that the
     # audit is judged on the rows the files will hold
     stages: list[tuple[str, np.ndarray]] = []
@@ -390,8 +396,8 @@ def _prepare_frame(
     )
 
     # a severity given for a components finding counts like one given for a check
-    findings = report.findings + apply_severities(
-        [Finding(**f) for f in components.findings_], options.severities)
+    judged = apply_severities(_components_findings(components, options), options.severities)
+    findings = report.findings + judged
     if options.validate_outputs and options.contract is not None:
         from panelprep.contracts import check_contract
 
@@ -404,9 +410,9 @@ def _prepare_frame(
     fitted_summary(summary, findings, options, {"rows": len(codes),
                                                 "entities": int(sample_ix.n_entities),
                                                 **listwise},
-                   flow.ledger.story, flow.ledger.by_reason(), components)
+                   flow.ledger.story, flow.ledger.by_reason(), components, judged)
     closed_summary(summary, outputs.info, components, sample_ix.n_periods, standard, counts,
-                   options)
+                   options, emptied)
     prep = Preparation(report, flow.ledger, components, outputs, summary, sample_ix,
                        comparison=comparison)
     if options.evidence:
@@ -424,8 +430,19 @@ def _prepare_frame(
     summary["run"] = run_block(progress, record or run_record(options, read_options), summary,
                                options)
     if summary["verdict"] == "fail":
+        _failed_after_gate(summary)
         prep.outputs = None
     return prep
+
+
+def _failed_after_gate(summary: dict[str, Any]) -> None:
+    """A run that failed after the gate (components, evidence, the contract on the outputs):
+    its cautions about the files would be about files never written, and its sample's
+    files are not written."""
+    summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
+    samples = summary["samples"]
+    samples["definition"] = sample_definition(samples["panel"], samples["policies"],
+                                              written=False)
 
 
 class _EvidenceJob:
@@ -484,6 +501,7 @@ class _EvidenceJob:
             for finding in apply_severities([lost], options.severities):
                 self.findings.append(finding)
                 summary["findings"].append(finding.to_dict())
+            summary["findings"] = ordered(summary["findings"])  # worst first, as everywhere
             summary["verdict"] = gate(self.findings, options.fail_on)
             summary["gate"] = gate_block(summary["findings"], options.fail_on)
         if evidence.get("standard_errors"):
@@ -512,35 +530,40 @@ def failed_summary(summary: dict[str, Any], report: AuditReport, story: list[Ste
     summary["steps"] = [s.to_dict() for s in story]
     summary["dropped"] = {"rows": sum(by_reason.values()), "by_reason": by_reason}
     summary["files"] = []
-    summary["cautions"] = [_gate_caution(report)]
+    summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
     summary["run"] = run_block(progress, record, summary, options)
 
 
 def fitted_summary(summary: dict[str, Any], findings: list[Finding], options: PrepareOptions,
                    sample: dict[str, int], story: list[StepRecord], by_reason: dict[str, int],
-                   components: VarianceComponents) -> None:
-    """The findings (with the components'), gate, sample, steps, drops and components."""
+                   components: VarianceComponents, judged: list[Finding]) -> None:
+    """The findings (with the components', ``judged``), gate, sample, steps, drops and
+    components."""
     summary["findings"] = ordered([f.to_dict() for f in findings])
     summary["verdict"] = gate(findings, options.fail_on)
     summary["gate"] = gate_block(summary["findings"], options.fail_on)
     summary["sample"] = {**sample, "y": options.y, "x": options.x}
     summary["steps"] = [s.to_dict() for s in story]
     summary["dropped"] = {"rows": sum(by_reason.values()), "by_reason": by_reason}
-    summary["components"] = components.to_dict()
+    # the components' findings as judged here, the same as in summary.findings
+    summary["components"] = {**components.to_dict(), "findings": [f.to_dict() for f in judged]}
 
 
 def closed_summary(summary: dict[str, Any], info: dict[str, Any],
                    components: VarianceComponents, n_periods: int, sample: ScaledMoments,
-                   counts: np.ndarray, options: PrepareOptions) -> None:
+                   counts: np.ndarray, options: PrepareOptions,
+                   emptied: Any = None) -> None:
     """What the transforms did and the cautions (``sample``: the components' scaled moments,
-    ``counts``: rows per entity); the evidence adds its own when it is settled."""
+    ``counts``: rows per entity; ``emptied``: the periods listwise deletion emptied of a
+    lagged variable, ``cautions.periods_lost``); the evidence adds its own when settled."""
     summary["transforms"] = info
     summary["cautions"] = [
         *_cautions(info, components, n_periods, options.names),
         *cautions.time_invariant_cautions(components, sample, counts, options.x),
         *cautions.lagged_response_cautions(options.shifts, options.y, options.x,
                                            options.transforms, counts),
-        *cautions.lag_period_cautions(options.shifts, options.x, options.y, summary["findings"]),
+        *([] if emptied is None else cautions.lag_period_cautions(
+            options.shifts, options.x, options.y, summary["findings"], emptied)),
         *cautions.listwise_cautions(summary["findings"]),
     ]
 
@@ -934,10 +957,22 @@ def _with_columns(keys: pa.Table, names: list[str], block: np.ndarray,
     return pa.Table.from_arrays(arrays, names=[*keys.column_names, *(names[j] for j in chosen)])
 
 
-def _gate_caution(report: AuditReport) -> str:
-    worst = [f.id for f in report.findings if f.resolved_by is None and (
-             f.severity == "error" or (report.fail_on == "warning" and f.severity == "warning"))]
-    return (f"the gate failed ({', '.join(dict.fromkeys(worst))}); no data files were written. "
+def _components_findings(components: VarianceComponents,
+                         options: PrepareOptions) -> list[Finding]:
+    """The components' findings; an unidentified component fails the gate when the components
+    are used: by the quasi file (theta), or as the whole output (no file asked for, as the
+    ``components`` command runs)."""
+    found = [Finding(**f) for f in components.findings_]
+    if options.transforms and "quasi" not in options.transforms:
+        for finding in found:
+            if finding.id == "components-underidentified":
+                finding.severity = "warning"
+                finding.message += "; no quasi file is asked for, so no file uses the components"
+    return found
+
+
+def _gate_caution(failed_by: list[str]) -> str:
+    return (f"the gate failed ({', '.join(failed_by)}); no data files were written. "
             "Fix the input, or state a cleaning policy, and run again.")
 
 
@@ -1104,6 +1139,7 @@ def run_preparation(
                 prep.summary["findings"].append(said.to_dict())
         if prep.verdict == "fail":
             # a failed gate never replaces or empties the output folder
+            _failed_after_gate(prep.summary)  # again, for evidence computed beside the writes
             folder.abandon()
             folder = _failed_output(failed, inputs, out, failed_out is None)
             files = []
@@ -1381,6 +1417,9 @@ def _run_file_text(record: RunFile, target: Path) -> str:
               f"{__version__})."),
               ("The same input gives the same data files: panelprep prepare --config "
               "run.toml --out NEW_FOLDER")]
+    if record.input.path is None:
+        header.append("The data came from a DataFrame in Python, not a file: set input.path "
+                      "to a file that holds it.")
     return again.to_toml(base=target, header=header)
 
 

@@ -40,6 +40,9 @@ def test_prepare_takes_a_dataframe_like_audit(tmp_path):
                                   y="sales", x="capital,staff")
     assert from_frame.verdict == from_file.verdict == "pass"
     assert from_frame.summary["input"]["path"] is None
+    # its run file says where the data came from, and names no file
+    record = (tmp_path / "a" / "run.toml").read_text()
+    assert "came from a DataFrame in Python" in record and '\npath = ' not in record
     assert from_frame.summary["components"] == from_file.summary["components"]
     for name in ("within.parquet", "quasi.parquet", "between.parquet"):
         pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "a" / name),

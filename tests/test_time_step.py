@@ -6,6 +6,9 @@ cut to waves ten years apart, with the within transform recomputed by pandas gro
 
 from __future__ import annotations
 
+import json
+import re
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -14,10 +17,9 @@ from typer.testing import CliRunner
 
 from panelprep.cli import app
 from panelprep.config import load_run_file
-from panelprep.index import build_index
-from panelprep.lags import add_shifts
 from panelprep.pipeline import audit
 from panelprep.prepare import PrepareOptions, prepare_frame
+from panelprep.report.text import audit_lines
 from panelprep.timeaxis import build_time_axis
 
 RUNNER = CliRunner()
@@ -75,6 +77,9 @@ def test_stated_step_finer_than_the_data_is_a_finding_and_makes_holes():
     assert "holes" in stated.message
     assert report.panel["periods"] == 3
     assert report.finding("period-holes").count == 6
+    # the summary says what addresses it
+    lines = "\n".join(audit_lines(report.to_dict()))
+    assert re.search(r"period-step-stated +does not fail +--freq int:K \[panel.freq\]", lines)
 
 
 def test_stated_step_coarser_than_the_data_puts_values_off_grid():
@@ -115,30 +120,41 @@ def test_two_waves_end_to_end_with_a_difference(tmp_path):
     frame = waves([80, 90], entities=40)
     frame.to_csv(path, index=False)
     out = tmp_path / "out"
-    result = RUNNER.invoke(app, ["prepare", str(path), "-e", "person", "-t", "wave", "--y", "wage",
-                                 "--x", "hours", "--diff", "hours", "--out", str(out), "-q"])
+    # the classic two-period first-difference regression: the differences of the second wave,
+    # one row per entity, in the between file
+    result = RUNNER.invoke(app, ["prepare", str(path), "-e", "person", "-t", "wave",
+                                 "--y", "wage_diff1", "--x", "hours_diff1", "--diff", "wage,hours",
+                                 "--transform", "between", "--out", str(out), "-q"])
     assert result.exit_code == 0, result.output
     assert "int:10" in result.output
     # the difference across the two waves is the later value less the earlier (pandas by hand)
-    index = build_index(frame, "person", "wave")
-    derived = add_shifts(frame, index, _diff("hours"))
-    by_hand = frame.groupby("person")["hours"].diff()
-    np.testing.assert_allclose(derived["hours_diff1"].to_numpy(), by_hand.to_numpy())
-    assert derived["hours_diff1"].notna().sum() == 40
-    # with the difference as a regressor one period is left: the estimation sample
-    # holds every entity once, and no within variation is left (stated, not hidden)
-    prep = prepare_frame(frame, PrepareOptions(entity=["person"], time="wave", y="wage",
-                                               x=["hours_diff1"], transforms=["between"],
-                                               shifts=_diff("hours"), evidence=False))
-    assert prep.summary["sample"]["rows"] == 40
-    assert prep.summary["panel"]["periods"] == 1
-
-
-def _diff(variable: str):
-    from panelprep.lags import parse_shifts
-    from panelprep.names import DEFAULT_NAMES
-
-    return parse_shifts("diff", [variable], DEFAULT_NAMES)
+    by_hand = frame.assign(wage_diff1=frame.groupby("person")["wage"].diff(),
+                           hours_diff1=frame.groupby("person")["hours"].diff()).dropna()
+    between = pd.read_parquet(out / "between.parquet").sort_values("person")
+    assert len(between) == 40 and between["pp_rows"].eq(1).all()
+    np.testing.assert_allclose(between[["wage_diff1", "hours_diff1"]].to_numpy(),
+                               by_hand.sort_values("person")[["wage_diff1", "hours_diff1"]]
+                               .to_numpy(), rtol=0, atol=1e-12)
+    summary = json.loads((out / "diagnostics.json").read_text())
+    assert summary["sample"]["rows"] == 40 and summary["panel"]["periods"] == 1
+    # no file uses the components, so their lack of within variation is said, not judged
+    unidentified = next(f for f in summary["findings"] if f["id"] == "components-underidentified")
+    assert unidentified["severity"] == "warning" and "no quasi file" in unidentified["message"]
+    assert unidentified in summary["components"]["findings"]
+    assert "these numbers are not estimates to use" in result.output
+    # the quasi file needs theta from those components: asked for, the gate fails
+    result = RUNNER.invoke(app, ["prepare", str(path), "-e", "person", "-t", "wave",
+                                 "--y", "wage_diff1", "--x", "hours_diff1", "--diff", "wage,hours",
+                                 "--out", str(tmp_path / "quasi"), "-q"])
+    assert result.exit_code == 1 and "components-underidentified" in result.output
+    failed = json.loads((tmp_path / "quasi.failed" / "diagnostics.json").read_text())
+    assert failed["gate"]["failed_by"] == ["components-underidentified"]
+    assert failed["samples"]["definition"].endswith("the gate failed, so none was written")
+    log = (tmp_path / "quasi.failed" / "diagnostics.txt").read_text()
+    assert "Files built (none written: the gate failed)" in log
+    assert failed["cautions"] == [("the gate failed (components-underidentified); no data "
+                                   "files were written. Fix the input, or state a cleaning "
+                                   "policy, and run again.")]
 
 
 def test_grunfeld_every_tenth_year_is_a_ten_year_grid():

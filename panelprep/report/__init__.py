@@ -57,6 +57,8 @@ HINTS = {
     "period-holes": "--balance complete-entities or largest-block [clean.balance], or "
                     "--severity period-holes=info [checks.severity] when holes are expected",
     "period-off-grid": "--freq [panel.freq] names the grid; or correct the time values",
+    "period-step-stated": ("--freq int:K [panel.freq] with the data's step (in the message), or "
+                           "no --freq to infer it; keep it when the waves are meant to have holes"),
     "panel-shape": "--window FIRST,LAST [clean.window] for a mistyped date far out; "
                    "--balance [clean.balance] for an unbalanced panel",
     "entity-single-obs": "--singletons drop [clean.singletons]",
@@ -240,3 +242,13 @@ def runs_words(runs: dict[str, int], most: int = 3) -> str:
         total = sum(v for _, v in rest)
         parts.append(f"{rest[0][0]:,} or more runs: {total:,} entit{'y' if total == 1 else 'ies'}")
     return ", ".join(parts)
+
+
+def unidentified_note(components: dict[str, Any]) -> str:
+    """The words that say the components are not estimates ('' when they are identified)."""
+    found = next((f for f in components.get("findings") or []
+                  if f.get("id") == "components-underidentified"), None)
+    if found is None:
+        return ""
+    return (f"Not identified on this sample (components-underidentified: {found['message']}): "
+            "these numbers are not estimates to use.")

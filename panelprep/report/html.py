@@ -41,6 +41,7 @@ from panelprep.report import (
     sample_words,
     spell_words,
     transform_details,
+    unidentified_note,
 )
 from panelprep.report.text import verdict_line
 from panelprep.words import p_text, plural
@@ -570,6 +571,8 @@ def _components(summary: dict[str, Any], pictures: dict[str, Any]) -> str:
                if shown else "")
     body = _kv(rows) + weights
     notes = []
+    if unidentified_note(c):
+        notes.append(unidentified_note(c))
     if c.get("truncated_negative"):
         notes.append(f"The estimate of s2_u was negative ({_num(c.get('raw_sigma2_entity'), 6)}) "
                      "and was set to 0.")

@@ -29,6 +29,7 @@ from panelprep.report import (
     sample_words,
     spell_words,
     transform_details,
+    unidentified_note,
     unresolved_counts,
 )
 from panelprep.words import plural
@@ -229,6 +230,8 @@ def components_lines(components: dict[str, Any]) -> list[str]:
     lines += _table(level, right={1, 2})
     lines.append(f"  {_pct(components['entity_share'])} of the error variance sits at entity "
                  "level, s2_u / (s2_u + s2_e)")
+    if unidentified_note(components):
+        lines.append(f"  {unidentified_note(components)}")
     if components.get("truncated_negative"):
         lines.append(f"  the estimate of s2_u was negative ({_num(components.get('raw_sigma2_entity'), 6)})"
                      " and was set to 0")
@@ -281,7 +284,8 @@ def preparation_lines(summary: dict[str, Any]) -> list[str]:
     if summary.get("components"):
         lines += [""] + components_lines(summary["components"])
     if summary.get("transforms"):
-        lines += ["", "Files built"]
+        lines += ["", "Files built" + (" (none written: the gate failed)"
+                                       if summary.get("verdict") == "fail" else "")]
         for name, info in summary["transforms"].items():
             extra = ", ".join(transform_details(info))
             lines.append(f"  {name}: {plural(info['rows'], 'row')}" + (f" ({extra})" if extra else ""))
@@ -294,9 +298,14 @@ def preparation_lines(summary: dict[str, Any]) -> list[str]:
         lines += ["", "Files written"]
         lines += _table([[f["name"], plural(f["rows"], "row"), f["sha256"][:16] + "..."]
                          for f in summary["files"]], right={1})
-    if summary.get("cautions"):
-        lines += ["", "Before you fit a model"]
-        lines += [f"  - {c}" for c in summary["cautions"]]
+    lines += cautions_lines(summary)
     lines += ["", verdict_line(summary)]
     return lines
+
+
+def cautions_lines(summary: dict[str, Any]) -> list[str]:
+    """The cautions of a preparation (with its numbers), for the log and the summary."""
+    if not summary.get("cautions"):
+        return []
+    return ["", "Before you fit a model", *(f"  - {c}" for c in summary["cautions"])]
 
