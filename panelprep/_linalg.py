@@ -444,18 +444,36 @@ def independent_columns(
     """
     k = len(columns)
     n = len(columns[0]) if k else 0
-    kept = np.zeros(k, dtype=bool)
-    negligible = np.zeros(k, dtype=bool)
     if n == 0 or k == 0:
-        return kept, negligible
+        return np.zeros(k, dtype=bool), np.zeros(k, dtype=bool)
+    inner = column_factor(columns, reference_scale(scale, k), gram_route=n >= GRAM_MIN_ROWS)
+    return independent_from_inner(inner, decision_rtol(n, k, rtol))
+
+
+def reference_scale(scale: np.ndarray, k: int) -> np.ndarray:
+    """``scale`` (k,) with 0 or non-finite entries read as 1."""
     s = np.asarray(scale, dtype=np.float64).reshape(k).copy()
     s[~(np.isfinite(s) & (s > 0))] = 1.0
+    return s
+
+
+def decision_rtol(n: int, k: int, rtol: float | None = None) -> float:
+    """The tolerance of :func:`independent_columns` for ``n`` rows and ``k`` columns."""
     rtol = default_rtol(n, k) if rtol is None else float(rtol)
-    gram_route = n >= GRAM_MIN_ROWS
-    if gram_route:
-        rtol = max(rtol, GRAM_RTOL_FLOOR)
+    return max(rtol, GRAM_RTOL_FLOOR) if n >= GRAM_MIN_ROWS else rtol
+
+
+def column_factor(columns: Sequence[np.ndarray], s: np.ndarray, gram_route: bool) -> np.ndarray:
+    """A (m, k) matrix whose columns have the inner products of ``columns[j] / s[j]``.
+
+    The R of a tall-skinny QR of row blocks, or (``gram_route``) a root of
+    the blocks' summed cross products.  Parts of the rows give factors whose
+    stack, reduced by a QR (``_moments.triangular``), is a factor of the whole.
+    """
+    k = len(columns)
+    n = len(columns[0]) if k else 0
     gram = np.zeros((k, k))
-    factors = []
+    factors = [np.zeros((0, k))]
     for start in range(0, n, QR_BLOCK_ROWS):
         stop = min(start + QR_BLOCK_ROWS, n)
         block = np.empty((stop - start, k), order="F")
@@ -468,16 +486,21 @@ def independent_columns(
             factors.append(r[: min(stop - start, k)])
     if gram_route:
         values, vectors = np.linalg.eigh(gram)
-        inner = np.sqrt(np.clip(values, 0.0, None))[:, None] * vectors.T
-    else:
-        stacked = np.vstack(factors)
-        inner = (scipy.linalg.qr(stacked, mode="r", check_finite=False)[0]
-                 if len(factors) > 1 else stacked)
+        return np.sqrt(np.clip(values, 0.0, None))[:, None] * vectors.T
+    stacked = np.vstack(factors)
+    return (scipy.linalg.qr(stacked, mode="r", check_finite=False)[0]
+            if len(factors) > 2 else stacked)
+
+
+def independent_from_inner(inner: np.ndarray, rtol: float) -> tuple[np.ndarray, np.ndarray]:
+    """``(kept, negligible)`` of :func:`independent_columns` from a :func:`column_factor`."""
+    k = inner.shape[1]
+    kept = np.zeros(k, dtype=bool)
     # the columns of ``inner`` have the inner products of the scaled columns;
     # Gram-Schmidt over them, skipping a column that adds nothing, so a
     # dependent column's rounding noise never becomes a direction
-    norms = np.linalg.norm(inner, axis=0)
-    bound = rtol * max(float(norms.max()), 1.0)
+    norms = np.linalg.norm(inner, axis=0) if inner.shape[0] else np.zeros(k)
+    bound = rtol * max(float(norms.max()) if k else 0.0, 1.0)
     basis = np.zeros((inner.shape[0], 0))
     for j in range(k):
         v = inner[:, j].copy()

@@ -197,55 +197,31 @@ class RowFactor:
 
 
 @dataclass(eq=False)
-class StandardSample:
-    """The estimation sample with its scaling and shared per-entity statistics.
+class ScaledMoments:
+    """A sample known by its columns' ``_scale.Scaling`` and its :class:`EntityMoments`.
 
-    Built once per sample (:func:`standard_sample`) and read by the variance
-    components, every evidence test and the transformed files' column
-    decisions.  The sample is kept raw with each column's
-    ``_scale.Scaling``: a test that needs scaled rows reads them a column at
-    a time (:meth:`x_column`, :meth:`y_column`); ``X`` and ``y``, the whole
-    scaled block, are made only when a method asks for them.
+    Everything the components (``swamy-arora``, ``nerlove``) and the
+    files' regressor decisions read; the dask engine builds one from
+    moments added up over partitions (:func:`combined_moments`), the local
+    engine's :class:`StandardSample` adds the rows.
     """
 
-    raw_X: np.ndarray
-    raw_y: np.ndarray
-    codes: np.ndarray
-    counts: np.ndarray
     x_scaling: Scaling
     y_scaling: Scaling
     moments: EntityMoments
 
     @property
     def n(self) -> int:
-        return len(self.raw_y)
+        return self.moments.n
 
     @property
     def k(self) -> int:
-        return self.raw_X.shape[1]
+        return self.moments.k
 
     @property
     def unit(self) -> float:
         """The response's scale: a second moment of ``y`` times ``unit**2`` is in its units."""
         return float(self.y_scaling.scale[0])
-
-    @cached_property
-    def X(self) -> np.ndarray:
-        """The scaled regressors (n, k), Fortran-ordered."""
-        return self.x_scaling.rows(self.raw_X, 0, self.n)
-
-    @cached_property
-    def y(self) -> np.ndarray:
-        """The scaled response (n,)."""
-        return self.y_column()
-
-    def x_column(self, j: int, out: np.ndarray | None = None) -> np.ndarray:
-        """Scaled regressor ``j`` (into ``out`` when given)."""
-        return self.x_scaling.column(self.raw_X, j, out=out)
-
-    def y_column(self, out: np.ndarray | None = None) -> np.ndarray:
-        """The scaled response (into ``out`` when given)."""
-        return self.y_scaling.column(self.raw_y.reshape(-1, 1), 0, out=out)
 
     def centred_norms(self) -> np.ndarray:
         """``||x_j - mean(x_j)||`` of each raw regressor, from the scaled sums of squares."""
@@ -266,6 +242,65 @@ class StandardSample:
         columns = [np.ones(len(weight)), *means[:, :self.k].T,
                    *(means[:, j] for j in (extra or [])), means[:, self.k]]
         return np.column_stack(columns) * weight[:, None]
+
+
+@dataclass(eq=False)
+class StandardSample(ScaledMoments):
+    """The estimation sample with its scaling and shared per-entity statistics.
+
+    Built once per sample (:func:`standard_sample`) and read by the variance
+    components, every evidence test and the transformed files' column
+    decisions.  The sample is kept raw with each column's
+    ``_scale.Scaling``: a test that needs scaled rows reads them a column at
+    a time (:meth:`x_column`, :meth:`y_column`); ``X`` and ``y``, the whole
+    scaled block, are made only when a method asks for them.
+    """
+
+    raw_X: np.ndarray = None
+    raw_y: np.ndarray = None
+    codes: np.ndarray = None
+    counts: np.ndarray = None
+
+    @cached_property
+    def X(self) -> np.ndarray:
+        """The scaled regressors (n, k), Fortran-ordered."""
+        return self.x_scaling.rows(self.raw_X, 0, self.n)
+
+    @cached_property
+    def y(self) -> np.ndarray:
+        """The scaled response (n,)."""
+        return self.y_column()
+
+    def x_column(self, j: int, out: np.ndarray | None = None) -> np.ndarray:
+        """Scaled regressor ``j`` (into ``out`` when given)."""
+        return self.x_scaling.column(self.raw_X, j, out=out)
+
+    def y_column(self, out: np.ndarray | None = None) -> np.ndarray:
+        """The scaled response (into ``out`` when given)."""
+        return self.y_scaling.column(self.raw_y.reshape(-1, 1), 0, out=out)
+
+
+def combined_moments(parts: list[EntityMoments]) -> EntityMoments:
+    """The moments of the union of disjoint sets of whole entities, one part each.
+
+    Taken with one ``_scale.Scaling`` for every part (the whole sample's),
+    so entity means and within cross products are those of the union:
+    counts and means are stacked (entities in the order of the parts), sums
+    of squares added, and the within factors stacked and reduced by a QR
+    (``R'R`` = the sum of the parts' cross products).  No row codes are
+    kept: what reads them (``within_scores``, the methods that need the
+    rows) is not run on such moments.
+    """
+    width = parts[0].r_within.shape[0]
+    return EntityMoments(
+        codes=np.zeros(0, dtype=np.int64),
+        counts=np.concatenate([p.counts for p in parts]),
+        means=np.vstack([p.means for p in parts]),
+        r_within=triangular(np.vstack([p.r_within for p in parts]), width),
+        within_ss=np.sum([p.within_ss for p in parts], axis=0),
+        total_ss=np.sum([p.total_ss for p in parts], axis=0),
+        n=int(sum(p.n for p in parts)),
+    )
 
 
 def standard_sample(y: np.ndarray, X: np.ndarray, codes: np.ndarray,

@@ -166,11 +166,8 @@ def scaled_group_means(values: np.ndarray, codes: np.ndarray, counts: np.ndarray
     means = np.zeros((n_groups, k), order="F")
     if n == 0:
         return Scaling(first, mean, second), means
-    # |x| at its largest from the extremes: no block-sized array of magnitudes
-    largest = np.array([max(-float(block[:, j].min()), float(block[:, j].max()))
-                        for j in range(k)])
-    _, exponent = np.frexp(np.where(largest > 0, largest, 1.0))
-    first = np.ldexp(1.0, exponent - 1)
+    first = first_divisor(largest(block))
+    _, exponent = np.frexp(first)
     sizes = np.asarray(counts, dtype=np.float64)
     inverse = np.zeros(n_groups)
     np.divide(1.0, sizes, out=inverse, where=sizes > 0)
@@ -184,6 +181,52 @@ def scaled_group_means(values: np.ndarray, codes: np.ndarray, counts: np.ndarray
         buffer /= second[j]
         means[:, j] = np.bincount(codes, weights=buffer, minlength=n_groups) * inverse
     return Scaling(first, mean, second), means
+
+
+def largest(block: np.ndarray) -> np.ndarray:
+    """Largest magnitude per column (k,), from the extremes (no block-sized array of
+    magnitudes); 0 for a block without rows."""
+    if block.shape[0] == 0:
+        return np.zeros(block.shape[1])
+    return np.array([max(-float(block[:, j].min()), float(block[:, j].max()))
+                     for j in range(block.shape[1])])
+
+
+def first_divisor(largest_magnitude: np.ndarray) -> np.ndarray:
+    """A power of two within a factor 2 of each column's largest magnitude: ``|x / it| < 2``,
+    so no sum overflows (2^exponent itself overflows for values near the largest float).
+    ``frexp`` of it gives back the exponent :func:`scaling_from` caps the scale with."""
+    _, exponent = np.frexp(np.where(largest_magnitude > 0, largest_magnitude, 1.0))
+    return np.ldexp(1.0, exponent - 1)
+
+
+def level_sums(block: np.ndarray, first: np.ndarray) -> np.ndarray:
+    """``sum x / first`` per column (k,): the dask engine's second scaling pass."""
+    buffer = np.empty(block.shape[0])
+    out = np.zeros(block.shape[1])
+    for j in range(block.shape[1]):
+        np.divide(block[:, j], first[j], out=buffer)
+        out[j] = buffer.sum()
+    return out
+
+
+def spread_sums(block: np.ndarray, first: np.ndarray, mean: np.ndarray) -> np.ndarray:
+    """``sum (x / first - mean)^2`` per column (k,): the dask engine's third scaling pass."""
+    buffer = np.empty(block.shape[0])
+    out = np.zeros(block.shape[1])
+    for j in range(block.shape[1]):
+        np.divide(block[:, j], first[j], out=buffer)
+        buffer -= mean[j]
+        out[j] = np.dot(buffer, buffer)
+    return out
+
+
+def scaling_from(first: np.ndarray, mean: np.ndarray, spread_sum: np.ndarray, n: int) -> Scaling:
+    """The :class:`Scaling` of ``n`` rows from :func:`first_divisor`, the level sums / n and
+    :func:`spread_sums`, each added up over the parts of the rows (the dask engine); the
+    same numbers :func:`scaled_group_means` takes in one sweep, up to the order of additions."""
+    _, exponent = np.frexp(first)
+    return Scaling(first, mean, _capped_second(np.sqrt(spread_sum / n), exponent))
 
 
 def _capped_second(spread: np.ndarray, exponent: np.ndarray) -> np.ndarray:

@@ -13,6 +13,7 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
+from panelprep._moments import ScaledMoments
 from panelprep.components import VarianceComponents
 from panelprep.index import PanelIndex
 from panelprep.lags import Shift
@@ -29,8 +30,8 @@ def _theta_median(components: VarianceComponents) -> float:
 
 
 def time_invariant_cautions(
-    components: VarianceComponents, y: np.ndarray, X: np.ndarray, codes: np.ndarray,
-    counts: np.ndarray, names: Sequence[str],
+    components: VarianceComponents, sample: ScaledMoments, counts: np.ndarray,
+    names: Sequence[str],
 ) -> list[str]:
     """Amemiya and Nerlove with regressors the within regression left out.
 
@@ -42,8 +43,10 @@ def time_invariant_cautions(
     method, left_out = components.method, list(components.dropped_within_)
     if method not in _WITHIN_BASED or not left_out:
         return []
-    reference = VarianceComponents(method="swamy-arora").fit(y, X, codes, counts,
-                                                             names=list(names))
+    # from the same scaled moments (``sample``, ``counts`` rows per entity): the dask
+    # engine's added-up moments serve as well as the rows
+    reference = VarianceComponents(method="swamy-arora").fit_sample(sample, counts,
+                                                                    names=list(names))
     out = [
         (f"{method} with regressors left out of the within regression ({', '.join(left_out)}): "
         f"their effect on the response goes into s2_u. Here s2_u = "

@@ -32,6 +32,9 @@ NORMALISE = ("none", "trim", "trim-fold")
 SINGLETONS = ("keep", "drop")
 BALANCE = ("keep", "complete-entities", "largest-block")
 
+# where a preparation runs (panelprep.engine)
+ENGINES = ("local", "dask")
+
 # transformed files (panelprep.transforms)
 TRANSFORMS = ("within", "between", "quasi", "twoway", "diff")
 

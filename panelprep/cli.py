@@ -138,6 +138,11 @@ def _check_data(path: Path | None, session: _Session | None = None) -> None:
             session.fail(str(err))
 
 
+def _dataset_like(path: Path | None) -> bool:
+    """A folder or a glob pattern: an input only the dask engine reads."""
+    return path is not None and (path.is_dir() or bool(set(str(path)) & set("*?[")))
+
+
 def _unusable(message: str) -> None:
     typer.echo(f"panelprep: error: {message}", err=True)
     raise typer.Exit(EXIT_UNUSABLE)
@@ -289,10 +294,16 @@ def prepare_command(
     as_json: JsonOpt = False,
     progress: ProgressOpt = "auto",
     log_json: LogJsonOpt = False,
+    engine: Annotated[str | None, typer.Option("--engine", help="local (default) or dask: partition by partition on a Dask cluster (pip install 'panelprep[dask]').")] = None,
+    cluster: Annotated[str | None, typer.Option("--cluster", help="Address of a running Dask scheduler (default: a local cluster is started).")] = None,
+    partitions: Annotated[int | None, typer.Option("--partitions", help="Partitions of the dask engine's shuffle by entity (default automatic).")] = None,
 ) -> None:
     """Clean, audit, then write estimation-ready files with provenance into --out."""
     session = _Session(progress, quiet, log_json, as_json)
-    _check_data(data, session)
+    if engine != "dask" and not _dataset_like(data):
+        # folders and globs are for the dask engine, which checks its inputs itself (the
+        # local engine refuses them with the same line as here)
+        _check_data(data, session)
     from panelprep.config import RunFile, load_run_file
 
     overrides = {
@@ -306,6 +317,7 @@ def prepare_command(
         "derive.lag": lag, "derive.lead": lead, "derive.diff": diff,
         "output.dir": out, "output.failed_dir": failed_out, "output.transforms": transform, "output.method": method,
         "output.format": output_format, "output.compression": compression, "output.force": force, "output.evidence": evidence,
+        "engine.kind": engine, "engine.cluster": cluster, "engine.partitions": partitions,
     }
     try:
         overrides.update(_names_map(names))

@@ -203,6 +203,10 @@ class VarianceComponents:
         The raw ``s2_u`` was negative and was set to 0.
     theta_ : ndarray (G,)
         Quasi-demeaning weights from :func:`panelprep.transforms.theta_per_entity`.
+    scaled_components_ : tuple of float
+        ``(s2_u, s2_e)`` in the scaled response's units, truncated as used for
+        ``theta_``: the dask engine gives them to each partition, whose theta
+        per entity is then the same numbers.
     dropped_within_, dropped_between_, dropped_pooled_ : list of str
         Regressors left out of the within, between and pooled (intercept
         included) auxiliary regressions for rank deficiency.  Only the
@@ -304,15 +308,29 @@ class VarianceComponents:
             raise ValueError("y and X must be finite (estimation sample only)")
         codes = np.asarray(entity_codes)
         counts = np.asarray(counts)
-        labels = list(names) if names is not None else [f"x{j}" for j in range(X.shape[1])]
-        if len(labels) != X.shape[1]:
-            raise ValueError(f"{len(labels)} names for {X.shape[1]} regressors")
-
         # every moment on centred, power-of-two scaled columns: a regressor
         # around 1e9 (or 1e-300) gives the same components as the same one
         # around 0 (see _scale); s2 come back in the response's squared units
         if sample is None:
             sample = standard_sample(y, X, codes, counts)
+        return self.fit_sample(sample, counts, names)
+
+    def fit_sample(self, sample: StandardSample, counts: np.ndarray,
+                   names: Sequence[str] | None = None) -> VarianceComponents:
+        """Estimate the components from a sample's scaling and per-entity moments.
+
+        ``sample`` needs only ``n``, ``k``, ``unit`` and ``moments`` for
+        ``swamy-arora`` and ``nerlove``: the dask engine passes one whose
+        moments are added up over partitions (``_moments.combined_moments``).
+        The other methods read the scaled rows (``sample.X``).
+        """
+        n = sample.n
+        if n == 0:
+            raise ValueError("no rows: variance components need an estimation sample")
+        counts = np.asarray(counts)
+        labels = list(names) if names is not None else [f"x{j}" for j in range(sample.k)]
+        if len(labels) != sample.k:
+            raise ValueError(f"{len(labels)} names for {sample.k} regressors")
         unit = sample.unit
         mom = _Moments(sample)
         self.findings_: list[dict] = []
@@ -321,7 +339,7 @@ class VarianceComponents:
         self.dropped_pooled_: list[str] = []
         self.n_obs_ = n
         self.n_entities_ = mom.n_entities
-        self.n_regressors_ = X.shape[1]
+        self.n_regressors_ = sample.k
 
         estimator = {
             "swamy-arora": self._swamy_arora,
@@ -367,6 +385,7 @@ class VarianceComponents:
         self.dof_ = dof
         self._present = mom.present
         # theta is a ratio of the components: taken in the scaled units
+        self.scaled_components_ = (s2u, s2e)
         self.theta_ = theta_per_entity(s2u, s2e, counts)
         return self
 

@@ -47,6 +47,9 @@ Keys
 | `output.compression` | `zstd`, `lz4`, `snappy`, `gzip`, `none` | `zstd` | codec of the Parquet files (zstd: the fastest total time at the smallest size measured) |
 | `output.force` | bool | `false` | replace a non-empty output folder |
 | `output.evidence` | bool | `true` | compute the entity-effect, correlated-effects, serial-correlation and cross-sectional dependence tests |
+| `engine.kind` | `local`, `dask` | `local` | where the preparation runs: in this process, or partition by partition on a Dask cluster (`pip install 'panelprep[dask]'`) |
+| `engine.cluster` | text | a local cluster | address of a running Dask scheduler (`tcp://host:8786`); without it the dask engine starts a local cluster sized to the machine and closes it |
+| `engine.partitions` | whole number >= 1 | automatic | partitions of the shuffle by entity (dask engine) |
 | `names.row` | text | `pp_row` | column of every row-level file holding each row's input row (from 1) |
 | `names.intercept` | text | `pp_intercept` | quasi file: the 1 - theta column that stands in for the constant |
 | `names.theta` | text | `pp_theta` | quasi file: theta of the row's entity |
@@ -87,6 +90,7 @@ from panelprep.choices import (
     CHECK_IDS,
     COMPONENT_FINDING_IDS,
     DUPLICATES,
+    ENGINES,
     FORMATS,
     FREQ_CHOICES,
     FREQUENCIES,
@@ -208,6 +212,15 @@ class OutputSection:
 
 
 @dataclass
+class EngineSection:
+    """``[engine]``: where the preparation runs (``panelprep.engine``)."""
+
+    kind: str = "local"
+    cluster: str | None = None
+    partitions: int | None = None
+
+
+@dataclass
 class NamesSection:
     """``[names]``: names of the columns panelprep adds (see ``panelprep.names``)."""
 
@@ -242,6 +255,7 @@ _SECTIONS: dict[str, type] = {
     "clean": CleanSection,
     "derive": DeriveSection,
     "output": OutputSection,
+    "engine": EngineSection,
     "names": NamesSection,
     "compare": CompareSection,
 }
@@ -292,6 +306,12 @@ def _number(low: float, high: float, low_open: bool) -> Callable[[Any, bool], fl
         return number
 
     return parse
+
+
+def _count(value: Any, cli: bool) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+        raise _Bad("a whole number >= 1")
+    return value
 
 
 def _choice(allowed: tuple[str, ...]) -> Callable[[Any, bool], str]:
@@ -528,6 +548,17 @@ _KEYS: dict[str, dict[str, _Key]] = {
                          "compute the entity-effect, correlated-effects, serial-correlation "
                          "and cross-sectional dependence tests"),
     },
+    "engine": {
+        "kind": _Key("`local`, `dask`", _choice(ENGINES),
+                     "where the preparation runs: in this process, or partition by partition "
+                     "on a Dask cluster (`pip install 'panelprep[dask]'`)"),
+        "cluster": _Key("text", _text,
+                        "address of a running Dask scheduler (`tcp://host:8786`); without it "
+                        "the dask engine starts a local cluster sized to the machine and "
+                        "closes it"),
+        "partitions": _Key("whole number >= 1", _count,
+                           "partitions of the shuffle by entity (dask engine)"),
+    },
     "names": {
         "row": _Key("text", _column_name,
                     "column of every row-level file holding each row's input row (from 1)"),
@@ -565,6 +596,8 @@ _TABLE_DEFAULTS = {
     "panel.freq": "inferred",
     "contract.schema": "none",
     "output.failed_dir": "`DIR.failed` beside `output.dir`",
+    "engine.cluster": "a local cluster",
+    "engine.partitions": "automatic",
     "compare.previous": "none",
     "compare.vars": "`model.y` and `model.x`",
     "compare.max_restated_share": "no limit",
@@ -600,7 +633,7 @@ class RunFile:
 
     Attributes
     ----------
-    input, panel, model, contract, checks, clean, derive, output, names, compare :
+    input, panel, model, contract, checks, clean, derive, output, engine, names, compare :
         the sections (see the module docstring for every key and default).
     source : the run file read, or None when built in code.
     lines : line of each ``section.key`` in the file, for messages about
@@ -615,6 +648,7 @@ class RunFile:
     clean: CleanSection = field(default_factory=CleanSection)
     derive: DeriveSection = field(default_factory=DeriveSection)
     output: OutputSection = field(default_factory=OutputSection)
+    engine: EngineSection = field(default_factory=EngineSection)
     names: NamesSection = field(default_factory=NamesSection)
     compare: CompareSection = field(default_factory=CompareSection)
     source: Path | None = None
@@ -966,6 +1000,8 @@ _EXAMPLES = {
     "output.failed_dir": "prepared.failed",
     "contract.schema": "schemas/firm_year.yaml",
     "checks.severity": {"period-holes": "error"},
+    "engine.cluster": "tcp://scheduler:8786",
+    "engine.partitions": 16,
     "compare.previous": "previous.parquet",
     "compare.vars": ["sales", "capital"],
     "compare.max_restated_share": 0.01,

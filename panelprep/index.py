@@ -20,7 +20,7 @@ import pandas as pd
 from panelprep._groups import group_counts, segment_bounds
 from panelprep.errors import ColumnError
 from panelprep.limits import check_grid
-from panelprep.timeaxis import TimeAxis, build_time_axis
+from panelprep.timeaxis import Grid, TimeAxis, build_time_axis
 
 
 @dataclass(eq=False)
@@ -171,11 +171,16 @@ def entity_runs(index: PanelIndex, rows: np.ndarray | None = None) -> EntityRuns
 
 
 def build_index(
-    frame: pd.DataFrame, entity: list[str] | str, time: str, freq: str | None = None
+    frame: pd.DataFrame, entity: list[str] | str, time: str, freq: str | None = None,
+    grid: Grid | None = None,
 ) -> PanelIndex:
     """Factorise the key columns of ``frame`` once.
 
     Blank strings (empty or only whitespace) in key columns count as missing.
+    With ``grid`` (the time axis of a whole input read in partitions,
+    ``timeaxis.time_grid``) the rows are placed on it and period codes count
+    from its first period, so every partition shares one grid; its size is
+    then checked once on the whole input, not here.
     Raises ``ColumnError`` for an absent column and ``TimeParseError`` for
     time values that cannot be placed on a grid.
     """
@@ -214,26 +219,30 @@ def build_index(
     keyed_entity = entity_codes >= 0
     np.minimum.at(first_rows, entity_codes[keyed_entity], np.flatnonzero(keyed_entity))
     labels = frame[entity].iloc[first_rows].reset_index(drop=True)
-    return index_on_entity_codes(entity, entity_codes, labels, frame[time], time, freq)
+    return index_on_entity_codes(entity, entity_codes, labels, frame[time], time, freq, grid)
 
 
 def index_on_entity_codes(
     entity: list[str], entity_codes: np.ndarray, entity_labels: pd.DataFrame,
-    time_values: pd.Series, time: str, freq: str | None = None,
+    time_values: pd.Series, time: str, freq: str | None = None, grid: Grid | None = None,
 ) -> PanelIndex:
     """The time half of ``build_index``: a ``PanelIndex`` from entity codes already made
     (sorted dense, -1 for a missing key; ``entity_labels`` one row per code) and the
-    time column, parsed onto its grid as ``build_index`` parses it."""
-    axis = build_time_axis(time_values, freq=freq, column=time)
-    has_time = ~axis.missing
-    if has_time.any():
-        # no copy of the ordinals when every row has a time
-        placed = axis.ordinal if has_time.all() else axis.ordinal[has_time]
-        first, last = int(placed.min()), int(placed.max())
-        del placed
-        check_grid(len(entity_labels), last - first + 1, time, *axis.label([first, last]))
+    time column, parsed onto its grid (or placed on ``grid``) as ``build_index`` does."""
+    if grid is not None:
+        axis = grid.axis_for(time_values)
+        first, last = grid.span
     else:
-        first, last = 0, -1
+        axis = build_time_axis(time_values, freq=freq, column=time)
+        has_time = ~axis.missing
+        if has_time.any():
+            # no copy of the ordinals when every row has a time
+            placed = axis.ordinal if has_time.all() else axis.ordinal[has_time]
+            first, last = int(placed.min()), int(placed.max())
+            del placed
+            check_grid(len(entity_labels), last - first + 1, time, *axis.label([first, last]))
+        else:
+            first, last = 0, -1
     period_codes = (axis.ordinal - first).astype(np.int64, copy=False)
     period_codes[axis.missing] = -1
     return PanelIndex(

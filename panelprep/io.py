@@ -299,6 +299,17 @@ def read_frame(
         if fmt == "parquet":
             refuse_checksum_failure(path, err, wanted)
         raise InputError(f"{path}: cannot read as {fmt}: {_short(err)}") from None
+    return frame_from_table(path, table, wanted, entity, time, fmt)
+
+
+def frame_from_table(path: Path, table: pa.Table, wanted: list[str], entity: list[str],
+                     time: str | None, fmt: str) -> pd.DataFrame:
+    """The DataFrame of a table read from ``path``, typed as ``read_frame`` types it.
+
+    Shared by ``read_frame`` and the dask engine's reader of one file or
+    Parquet fragment (``panelprep.partitioned``), so every partition holds
+    what the local engine would have read.
+    """
     keys = {*entity, time}
     _refuse_nested_keys(path, table.schema, [k for k in (*entity, time) if k])
     table = _decimal_columns(table, time)

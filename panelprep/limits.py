@@ -193,8 +193,9 @@ def check_memory(
         raise InputError(
             f"{path}: a run on it would need about {format_size(estimate.peak)} of memory "
             f"({format_size(estimate.data)} of data by {estimate.basis}, x{factor:g} working set) "
-            f"but {format_size(available)} is available; read fewer columns, "
-            f"split the file, or use a larger machine ({MEMORY_ENV}=off skips this check)"
+            f"but {format_size(available)} is available; read fewer columns, split the file "
+            "and prepare it with --engine dask, or use a larger machine "
+            f"({MEMORY_ENV}=off skips this check)"
         )
     return estimate
 

@@ -19,6 +19,7 @@ from panelprep._schema import SCHEMA_VERSION
 from panelprep._version import __version__
 from panelprep.checks import CHECKS, SAMPLE_CHECKS, AuditContext, Thresholds
 from panelprep.checks.context import looks_numeric
+from panelprep.checks.shape import counted, obs_summary
 from panelprep.errors import ColumnError, InputError
 from panelprep.findings import (
     FINDINGS_ORDER,
@@ -238,7 +239,7 @@ def audit(
             skipped = _skipped_columns(frame, [*entity, time], names)
             if skipped is not None:
                 findings.append(skipped)
-        stated = _stated_step_finding(index.axis)
+        stated = stated_step_finding(index.axis)
         if stated is not None:
             findings.append(stated)
         for check in CHECKS:
@@ -376,7 +377,7 @@ def _skipped_columns(frame: pd.DataFrame, keys: list[str], chosen: list[str]) ->
                    examples=[{"column": c} for c in skipped])
 
 
-def _stated_step_finding(axis) -> Finding | None:
+def stated_step_finding(axis) -> Finding | None:
     """A stated step (``--freq int:K``) that is not the step the distinct periods show."""
     if not axis.step_stated or axis.data_step is None or axis.data_step == axis.step:
         return None
@@ -395,28 +396,46 @@ def _stated_step_finding(axis) -> Finding | None:
     )
 
 
-def _panel_summary(ctx: AuditContext) -> dict[str, Any]:
+def panel_tally(ctx: AuditContext) -> dict[str, Any]:
+    """What ``panel_summary`` is built from: counts and per-value counts over entities."""
     ix = ctx.sample_index
-    per_entity = ctx.periods_per_entity
     holes, _, _ = ctx.gaps
-    has_rows = ix.n_entities > 0
     return {
         "rows": int(ctx.sample.sum()),
         "rows_read": len(ctx.frame),
         "entities": int(ix.n_entities),
-        "periods": int(max(ix.n_periods, 0)),
-        "balanced": bool(has_rows and (per_entity == ix.n_periods).all()),
-        "obs_per_entity": {
-            "min": int(per_entity.min()) if has_rows else 0,
-            "median": float(np.median(per_entity)) if has_rows else 0.0,
-            "max": int(per_entity.max()) if has_rows else 0,
-        },
-        "singleton_entities": int((per_entity == 1).sum()),
+        "first_min": int(ix.first_period) if ix.n_entities else None,
+        "last_max": int(ix.first_period + ix.n_periods - 1) if ix.n_entities else None,
+        "obs": counted(ctx.periods_per_entity),
         "entities_with_gaps": int((holes > 0).sum()),
         "exact_duplicate_rows": int(ctx.repeat.sum()),
         "conflicting_duplicate_keys": len(ctx.conflicting_cells),
         "rows_without_key": int((~ctx.keyed).sum()),
     }
+
+
+def panel_summary(tally: dict[str, Any]) -> dict[str, Any]:
+    """The report's ``panel`` block from a :func:`panel_tally` (of one part or added up)."""
+    has_rows = tally["entities"] > 0
+    periods = tally["last_max"] - tally["first_min"] + 1 if has_rows else 0
+    spread = obs_summary(tally["obs"]) if has_rows else {"min": 0, "median": 0.0, "max": 0}
+    return {
+        "rows": tally["rows"],
+        "rows_read": tally["rows_read"],
+        "entities": tally["entities"],
+        "periods": periods,
+        "balanced": bool(has_rows and set(tally["obs"]) == {periods}),
+        "obs_per_entity": spread,
+        "singleton_entities": int(tally["obs"].get(1, 0)),
+        "entities_with_gaps": tally["entities_with_gaps"],
+        "exact_duplicate_rows": tally["exact_duplicate_rows"],
+        "conflicting_duplicate_keys": tally["conflicting_duplicate_keys"],
+        "rows_without_key": tally["rows_without_key"],
+    }
+
+
+def _panel_summary(ctx: AuditContext) -> dict[str, Any]:
+    return panel_summary(panel_tally(ctx))
 
 
 def load(

@@ -26,8 +26,9 @@ import pyarrow as pa
 
 from panelprep import cautions, transforms
 from panelprep._groups import group_counts
-from panelprep._linalg import independent_columns
-from panelprep._moments import standard_sample
+from panelprep._linalg import column_factor, independent_columns, reference_scale
+from panelprep._moments import ScaledMoments, standard_sample
+from panelprep._paths import check_readable
 from panelprep._scale import standardise
 from panelprep._schema import SCHEMA_VERSION
 from panelprep._version import __version__
@@ -50,6 +51,7 @@ from panelprep.config import (
     CompareSection,
     ContractSection,
     DeriveSection,
+    EngineSection,
     InputSection,
     ModelSection,
     NamesSection,
@@ -331,11 +333,11 @@ def _prepare_frame(
     )
     audited = report.context
     progress("sample", "building the estimation sample", rows=len(flow.frame))
-    flow.drop(~audited.keyed, "key-missing", "drop rows without a full key", "sample-keys")
-    flow.drop(audited.repeat, "exact-repeat", "collapse exact repeated rows", "sample-repeats")
+    keys, repeats, listwise_step = sample_steps(audited, options.variables)
+    flow.drop(*keys)
+    flow.drop(*repeats)
     before_listwise = flow.alive.copy() if options.shifts else None
-    flow.drop(~audited.complete, "listwise-missing",
-              f"listwise deletion over {', '.join(options.variables)}", "sample-listwise")
+    flow.drop(*listwise_step)
     emptied = (None if before_listwise is None
                else cautions.periods_lost(flow.index, before_listwise, flow.alive))
     # the post-audit policies, each with the sample it leaves, so that the
@@ -358,12 +360,8 @@ def _prepare_frame(
     if comparison is not None:
         summary["comparison"] = comparison.report()
     if report.verdict == "fail":
-        summary["steps"] = [s.to_dict() for s in flow.ledger.story]
-        summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
-        summary["files"] = []
-        summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
-        summary["run"] = run_block(progress, record or run_record(options, read_options),
-                                   summary, options)
+        failed_summary(summary, report, flow.ledger.story, flow.ledger.by_reason(), progress,
+                       record or run_record(options, read_options), options)
         return Preparation(report, flow.ledger, None, None, summary, comparison=comparison)
 
     if len(ctx.conflicting_cells):
@@ -409,25 +407,12 @@ def _prepare_frame(
         clean = clean.drop(columns=[options.names.row]).set_index(
             pd.Index(clean[options.names.row], name=None))
         findings += check_contract(clean, options.contract, where="output clean")
-    summary["findings"] = ordered([f.to_dict() for f in findings])
-    summary["verdict"] = gate(findings, options.fail_on)
-    summary["gate"] = gate_block(summary["findings"], options.fail_on)
-    summary["sample"] = {"rows": len(codes), "entities": int(sample_ix.n_entities), **listwise,
-                         "y": options.y, "x": options.x}
-    summary["steps"] = [s.to_dict() for s in flow.ledger.story]
-    summary["dropped"] = {"rows": flow.ledger.n_dropped, "by_reason": flow.ledger.by_reason()}
-    # the components' findings as judged here, the same as in summary.findings
-    summary["components"] = {**components.to_dict(), "findings": [f.to_dict() for f in judged]}
-    summary["transforms"] = outputs.info
-    summary["cautions"] = [
-        *_cautions(outputs.info, components, sample_ix, options.names),
-        *cautions.time_invariant_cautions(components, y, X, codes, counts, options.x),
-        *cautions.lagged_response_cautions(options.shifts, options.y, options.x,
-                                           options.transforms, counts),
-        *([] if emptied is None else cautions.lag_period_cautions(
-            options.shifts, options.x, options.y, summary["findings"], emptied)),
-        *cautions.listwise_cautions(summary["findings"]),
-    ]
+    fitted_summary(summary, findings, options, {"rows": len(codes),
+                                                "entities": int(sample_ix.n_entities),
+                                                **listwise},
+                   flow.ledger.story, flow.ledger.by_reason(), components, judged)
+    closed_summary(summary, outputs.info, components, sample_ix.n_periods, standard, counts,
+                   options, emptied)
     prep = Preparation(report, flow.ledger, components, outputs, summary, sample_ix,
                        comparison=comparison)
     if options.evidence:
@@ -526,6 +511,63 @@ class _EvidenceJob:
             prep.outputs = None
 
 
+def sample_steps(audited: AuditContext, variables: list[str]
+                 ) -> list[tuple[np.ndarray, str, str, str]]:
+    """The steps from the rows read to the estimation sample: (rows removed, reason id,
+    step, step id), in order."""
+    return [
+        (~audited.keyed, "key-missing", "drop rows without a full key", "sample-keys"),
+        (audited.repeat, "exact-repeat", "collapse exact repeated rows", "sample-repeats"),
+        (~audited.complete, "listwise-missing", f"listwise deletion over {', '.join(variables)}",
+         "sample-listwise"),
+    ]
+
+
+def failed_summary(summary: dict[str, Any], report: AuditReport, story: list[StepRecord],
+                   by_reason: dict[str, int], progress: Progress, record: RunFile,
+                   options: PrepareOptions) -> None:
+    """A summary whose gate failed: the steps and drops, no file, the caution, the run."""
+    summary["steps"] = [s.to_dict() for s in story]
+    summary["dropped"] = {"rows": sum(by_reason.values()), "by_reason": by_reason}
+    summary["files"] = []
+    summary["cautions"] = [_gate_caution(summary["gate"]["failed_by"])]
+    summary["run"] = run_block(progress, record, summary, options)
+
+
+def fitted_summary(summary: dict[str, Any], findings: list[Finding], options: PrepareOptions,
+                   sample: dict[str, int], story: list[StepRecord], by_reason: dict[str, int],
+                   components: VarianceComponents, judged: list[Finding]) -> None:
+    """The findings (with the components', ``judged``), gate, sample, steps, drops and
+    components."""
+    summary["findings"] = ordered([f.to_dict() for f in findings])
+    summary["verdict"] = gate(findings, options.fail_on)
+    summary["gate"] = gate_block(summary["findings"], options.fail_on)
+    summary["sample"] = {**sample, "y": options.y, "x": options.x}
+    summary["steps"] = [s.to_dict() for s in story]
+    summary["dropped"] = {"rows": sum(by_reason.values()), "by_reason": by_reason}
+    # the components' findings as judged here, the same as in summary.findings
+    summary["components"] = {**components.to_dict(), "findings": [f.to_dict() for f in judged]}
+
+
+def closed_summary(summary: dict[str, Any], info: dict[str, Any],
+                   components: VarianceComponents, n_periods: int, sample: ScaledMoments,
+                   counts: np.ndarray, options: PrepareOptions,
+                   emptied: Any = None) -> None:
+    """What the transforms did and the cautions (``sample``: the components' scaled moments,
+    ``counts``: rows per entity; ``emptied``: the periods listwise deletion emptied of a
+    lagged variable, ``cautions.periods_lost``); the evidence adds its own when settled."""
+    summary["transforms"] = info
+    summary["cautions"] = [
+        *_cautions(info, components, n_periods, options.names),
+        *cautions.time_invariant_cautions(components, sample, counts, options.x),
+        *cautions.lagged_response_cautions(options.shifts, options.y, options.x,
+                                           options.transforms, counts),
+        *([] if emptied is None else cautions.lag_period_cautions(
+            options.shifts, options.x, options.y, summary["findings"], emptied)),
+        *cautions.listwise_cautions(summary["findings"]),
+    ]
+
+
 def _uncomputable_finding(evidence: dict[str, Any], options: PrepareOptions) -> Finding | None:
     """A warning naming each test float64 arithmetic could not carry out, and its variables."""
     lost = uncomputable_tests(evidence)
@@ -559,7 +601,7 @@ def _context(flow: _Flow, options: PrepareOptions, read_options: ReadOptions) ->
 PIECE_ROWS = 1 << 20
 
 # Why a regressor is left out of a transformed file.
-_LEFT_OUT = {
+LEFT_OUT = {
     "no-within-variation": "constant within every entity: the within transform leaves zeros",
     "no-twoway-variation": "explained by entity and period effects: the two-way transform "
                            "leaves zeros",
@@ -592,6 +634,10 @@ class OutputTables:
     progress: Progress
     # ||x - mean(x)|| of each regressor on the whole sample (StandardSample.centred_norms)
     norms: np.ndarray | None = None
+    # the dask engine: each file's reference sizes and column decisions, taken on the whole
+    # sample (see _design and _regressors)
+    scales: dict[str, np.ndarray] | None = None
+    decided: dict[str, tuple[np.ndarray, np.ndarray]] | None = None
     info: dict[str, Any] = field(init=False)
     columns: dict[str, list[dict[str, str]]] = field(init=False)
 
@@ -655,19 +701,11 @@ class OutputTables:
         yield table
 
     def _demeaned_pieces(self, name: str) -> Iterator[pa.Table]:
-        codes, names, values = self.index.entity_codes, self.options.variables, self.values
+        codes, names = self.index.entity_codes, self.options.variables
         added = self.options.names
         self.progress(f"transform.{name}", f"transform {name}", rows=len(self.keys))
-        if name == "within":
-            multi = self.counts[codes] > 1
-            rows = None if multi.all() else np.flatnonzero(multi)
-            block = transforms.within_block(values, codes, self.counts, rows)
-            kept = self._regressors(name, block, values, multi, "no-within-variation")
-        else:
-            rows = None
-            block = transforms.quasi_block(values, codes, self.counts, self.theta)
-            kept = self._regressors(name, block, values, None, "collinear",
-                                    first=1.0 - self.theta[codes])
+        block, multi, rows, design = self._transformed(name)
+        kept = self._regressors(name, *design)
         n = block.shape[0]
         for start in range(0, max(n, 1), PIECE_ROWS):
             stop = min(start + PIECE_ROWS, n)
@@ -707,17 +745,17 @@ class OutputTables:
         multi = self.counts[codes] > 1
         if name == "between":
             labels = pa.Table.from_pandas(self.index.entity_labels, preserve_index=False)
-            block = transforms.between(values, codes, self.counts)
-            ones = np.ones(len(block))
-            kept = self._regressors(name, block, None, None, "collinear", first=ones)
+            block, _, _, design = self._transformed(name)
+            kept = self._regressors(name, *design)
             table = _with_columns(labels, names, block, kept)
             return table.append_column(added.entity_rows, pa.array(self.counts))
         if name == "diff":
             found = transforms.first_difference(values, codes, self.index.period_codes)
             differenced = np.zeros(len(codes), dtype=bool)
             differenced[found.rows] = True
-            kept = self._regressors(name, found.values, values, differenced,
-                                    "no-diff-variation", first=np.ones(len(found.rows)))
+            kept = self._regressors(name, *self._design(name, found.values, values, differenced,
+                                                        np.ones(len(found.rows))),
+                                    "no-diff-variation")
             return _with_columns(self._key_table.take(pa.array(found.rows)), names,
                                  found.values, kept)
         sub = self.index.subset(multi)
@@ -726,24 +764,46 @@ class OutputTables:
             tol=self.options.twoway_tol,
         )
         self.info["twoway"].update(asdict(result))
-        kept = self._regressors(name, block, values, multi, "no-twoway-variation")
+        kept = self._regressors(name, *self._design(name, block, values, multi, None),
+                                "no-twoway-variation")
         return _with_columns(self._key_table.filter(pa.array(multi)), names, block, kept)
 
-    def _regressors(self, name: str, block: np.ndarray, raw: np.ndarray | None,
-                    rows: np.ndarray | None, wiped: str,
-                    first: np.ndarray | None = None) -> np.ndarray:
-        """Which columns of ``block`` (y, then x) the file keeps; the rest are recorded.
+    def _transformed(self, name: str) -> tuple[Any, np.ndarray | None, np.ndarray | None,
+                                               tuple]:
+        """The block of the within, quasi or between file, its rows (within: the mask of
+        rows of entities with two rows or more, and their positions unless that is all of
+        them) and the arguments of ``_regressors`` that judge its columns."""
+        codes, values = self.index.entity_codes, self.values
+        if name == "within":
+            multi = self.counts[codes] > 1
+            rows = None if multi.all() else np.flatnonzero(multi)
+            block = transforms.within_block(values, codes, self.counts, rows)
+            return block, multi, rows, (*self._design(name, block, values, multi, None),
+                                        "no-within-variation")
+        if name == "quasi":
+            block = transforms.quasi_block(values, codes, self.counts, self.theta)
+            first = 1.0 - self.theta[codes]
+            return block, None, None, (*self._design(name, block, values, None, first),
+                                       "collinear")
+        block = transforms.between(values, codes, self.counts)
+        first = np.ones(len(block))
+        return block, None, None, (*self._design(name, block, None, None, first), "collinear")
 
-        A regressor is left out when the transform left nothing of it
-        (``wiped``, judged against the norm of the untransformed column on
-        the same rows) or when it is a combination of the columns before it
-        (``first``, the constant or intercept column, then the earlier
-        regressors), so OLS on every regressor column is well defined.
+    def _design(self, name: str, block: Any, raw: np.ndarray | None, rows: np.ndarray | None,
+                first: np.ndarray | None) -> tuple[list[np.ndarray], np.ndarray, bool, bool]:
+        """The columns of a file's design (the constant or intercept column first, when it
+        has one, then its regressors) and their reference sizes.
+
+        A size is the norm of the untransformed column about its mean on the same rows,
+        taken on scaled values: a level (x + 1e9) or a magnitude (1e200) must not change
+        a decision.  ``scales`` (the dask engine) gives them for the whole sample.
         """
         k = block.shape[1] - 1
         columns = [block[:, j] for j in range(1, k + 1)]
-        # reference sizes about the column's mean, taken on scaled values: a
-        # level (x + 1e9) or a magnitude (1e200) must not change the decision
+        if first is not None:
+            columns.insert(0, first)
+        if self.scales is not None and name in self.scales:
+            return columns, self.scales[name], first is not None, raw is not None
         source = block if raw is None else raw
         if raw is not None and self.norms is not None and (rows is None or rows.all()):
             scale = self.norms
@@ -751,16 +811,38 @@ class OutputTables:
             scale = np.array([_centred_norm(source[:, j] if raw is None or rows is None
                                             else source[rows, j]) for j in range(1, k + 1)])
         if first is not None:
-            columns.insert(0, first)
             scale = np.concatenate([[np.sqrt(len(first))], scale])
-        independent, negligible = independent_columns(columns, scale)
-        if first is not None:
+        return columns, scale, first is not None, raw is not None
+
+    def factor(self, name: str) -> np.ndarray:
+        """A factor of the within, quasi or between file's design on these rows
+        (``_linalg.column_factor``): the dask engine stacks the partitions' factors and
+        decides the columns once (``decided``)."""
+        _, _, _, (columns, scale, _, _, _) = self._transformed(name)
+        return column_factor(columns, reference_scale(scale, len(columns)), gram_route=False)
+
+    def _regressors(self, name: str, columns: list[np.ndarray], scale: np.ndarray,
+                    has_first: bool, has_raw: bool, wiped: str) -> np.ndarray:
+        """Which columns of the file (y, then x) it keeps; the rest are recorded.
+
+        A regressor is left out when the transform left nothing of it
+        (``wiped``, judged against the norm of the untransformed column on
+        the same rows) or when it is a combination of the columns before it
+        (the constant or intercept column, then the earlier regressors), so
+        OLS on every regressor column is well defined.  ``decided`` (the dask
+        engine) holds the decision taken on the whole sample.
+        """
+        if self.decided is not None and name in self.decided:
+            independent, negligible = self.decided[name]
+        else:
+            independent, negligible = independent_columns(columns, scale)
+        if has_first:
             independent, negligible = independent[1:], negligible[1:]
         left_out = []
         for j in np.flatnonzero(~independent):
-            reason = wiped if negligible[j] and raw is not None else "collinear"
+            reason = wiped if negligible[j] and has_raw else "collinear"
             left_out.append({"name": self.options.x[j], "reason": reason,
-                             "why": _LEFT_OUT[reason]})
+                             "why": LEFT_OUT[reason]})
         self.info[name]["regressors_left_out"] = left_out
         return np.concatenate([[True], independent])
 
@@ -894,7 +976,7 @@ def _gate_caution(failed_by: list[str]) -> str:
             "Fix the input, or state a cleaning policy, and run again.")
 
 
-def _cautions(info: dict, components: VarianceComponents, index: PanelIndex,
+def _cautions(info: dict, components: VarianceComponents, n_periods: int,
               names: AddedNames) -> list[str]:
     out = []
     if "within" in info:
@@ -906,7 +988,7 @@ def _cautions(info: dict, components: VarianceComponents, index: PanelIndex,
         )
     if "twoway" in info:
         out.append(
-            f"OLS on the twoway file has also absorbed up to {index.n_periods} period effects: "
+            f"OLS on the twoway file has also absorbed up to {n_periods} period effects: "
             "reduce the degrees of freedom by entities + periods - 1 (per connected block)."
         )
     if "diff" in info:
@@ -1029,12 +1111,8 @@ def run_preparation(
     inputs = [*([] if given else [Path(data)]), *map(Path, keep),
               *([Path(previous.path)] if previous else [])]
     out = Path(out)
-    folder = OutputFolder(out, inputs, force=force)
-    failed = failed_folder(out) if failed_out is None else Path(failed_out)
+    folder, failed = output_folders(out, inputs, force, failed_out)
     try:
-        if failed_out is not None or _name_fits(failed):
-            # a default name too long for the file system is reported only if the gate fails
-            check_output_folder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
         if given:
             frame, info = data, {"path": None, "sha256": None, "rows": len(data)}
         else:
@@ -1098,6 +1176,22 @@ def _compare_previous(frame: pd.DataFrame, info: dict[str, Any], options: Prepar
                           missing_tokens=read_options.missing_tokens, progress=progress)
 
 
+def output_folders(out: Path, inputs: list[Path], force: bool,
+                   failed_out: str | Path | None) -> tuple[OutputFolder, Path]:
+    """The output folder (its temporary folder made) and where a failed gate's diagnostics
+    go, both checked against the inputs before anything is read."""
+    folder = OutputFolder(out, inputs, force=force)
+    failed = failed_folder(out) if failed_out is None else Path(failed_out)
+    try:
+        if failed_out is not None or _name_fits(failed):
+            # a default name too long for the file system is reported only if the gate fails
+            check_output_folder(failed, inputs, replaceable=DIAGNOSTIC_FILES, protect=[out])
+    except BaseException:
+        folder.abandon()
+        raise
+    return folder, failed
+
+
 def _name_fits(path: Path) -> bool:
     try:
         limit = os.pathconf(path.parent, "PC_NAME_MAX")
@@ -1126,17 +1220,6 @@ def write_data_files(prep: Preparation, folder: OutputFolder, options: PrepareOp
     record = record if record is not None else run_record(options)
     suffix = "parquet" if options.output_format == "parquet" else "csv"
     files: list[dict[str, Any]] = []
-    base_meta = {
-        "schema_version": SCHEMA_VERSION,
-        "version": __version__,
-        "input_sha256": prep.summary["input"].get("sha256"),
-        "method": options.method,
-        "components": prep.summary.get("components"),
-        # what defines the content, without where files were: inputs go by sha256
-        "options": {k: v for k, v in record.values().items() if k not in _LOCATION_KEYS},
-        "fixed_settings": fixed_settings(options),
-        "contract_sha256": _contract_sha256(record),
-    }
     for name in prep.outputs.names if prep.outputs is not None else []:
         # built, written and freed one at a time: peak memory holds one table
         # the first piece is built here, so the file's columns are known for its metadata
@@ -1146,35 +1229,64 @@ def write_data_files(prep: Preparation, folder: OutputFolder, options: PrepareOp
         fmt = "parquet" if name == "dropped" else options.output_format
         path = folder.path(f"{name}.{'parquet' if name == 'dropped' else suffix}")
         progress(f"write.{name}", f"writing {path.name}")
-        meta = {"panelprep": json.dumps({**base_meta, "file": name,
-                                         "transform": name if name in TRANSFORMS else None,
-                                         "transform_info": prep.summary.get("transforms", {}).get(name),
-                                         "theta": (prep.summary.get("components") or {}).get("theta"),
-                                         "columns": columns, "rows_counted": ROW_CONVENTION},
-                                        sort_keys=True, allow_nan=False)}
+        meta = file_metadata(prep.summary, options, record, name, columns)
         rows = write_table(table, path, fmt, meta, compression=options.compression,
                            dictionary=[*options.entity, options.time])
         files.append({"name": path.name, "rows": rows,
                       "sha256": sha256_in_background(path), "columns": columns})
         del table
     if prep.comparison is not None and prep.outputs is not None:
-        files.append(_write_restated(prep, folder, base_meta, options, progress))
+        files.append(_write_restated(prep, folder, _base_metadata(prep.summary, options, record),
+                                     options, progress))
     for entry in files:
         entry["sha256"] = entry["sha256"].result()
     if prep.outputs is not None:
-        # the run again: this file on the same input gives the same data files
-        progress("write.run-file", "writing run.toml")
-        _write_text(folder.path(RUN_FILE), _run_file_text(record, folder.target))
+        write_run_file(folder, record, progress)
     return files
+
+
+def write_run_file(folder: OutputFolder, record: RunFile, progress: Progress) -> None:
+    """run.toml: the run again; this file on the same input gives the same data files."""
+    progress("write.run-file", "writing run.toml")
+    _write_text(folder.path(RUN_FILE), _run_file_text(record, folder.target))
+
+
+def _base_metadata(summary: dict[str, Any], options: PrepareOptions,
+                   record: RunFile) -> dict[str, Any]:
+    """The provenance every data file of a run shares."""
+    return {
+        "schema_version": SCHEMA_VERSION,
+        "version": __version__,
+        "input_sha256": summary["input"].get("sha256"),
+        "method": options.method,
+        "components": summary.get("components"),
+        # what defines the content, without where files were: inputs go by sha256
+        "options": {k: v for k, v in record.values().items() if k not in _LOCATION_KEYS},
+        "fixed_settings": fixed_settings(options),
+        "contract_sha256": _contract_sha256(record),
+    }
+
+
+def file_metadata(summary: dict[str, Any], options: PrepareOptions, record: RunFile,
+                  name: str, columns: list[dict[str, str]]) -> dict[str, str]:
+    """The key-value metadata of a data file (``panelprep``: the provenance JSON)."""
+    return {"panelprep": json.dumps({
+        **_base_metadata(summary, options, record), "file": name,
+        "transform": name if name in TRANSFORMS else None,
+        "transform_info": summary.get("transforms", {}).get(name),
+        "theta": (summary.get("components") or {}).get("theta"),
+        "columns": columns, "rows_counted": ROW_CONVENTION}, sort_keys=True, allow_nan=False)}
 
 
 def write_diagnostics(prep: Preparation, folder: OutputFolder, options: PrepareOptions,
                       progress: Progress | None = None, record: RunFile | None = None,
-                      files: list[dict[str, Any]] | None = None) -> None:
+                      files: list[dict[str, Any]] | None = None,
+                      pictures: dict[str, Any] | None = None) -> None:
     """diagnostics.json, diagnostics.txt and report.html into the temporary folder.
 
     ``files`` are the entries of the data files written (none when the gate
-    failed).
+    failed); ``pictures`` (default ``pictures_of(prep)``) the data behind the
+    report's pictures.
     """
     from panelprep.report.html import render_html
     from panelprep.report.text import preparation_lines
@@ -1187,7 +1299,8 @@ def write_diagnostics(prep: Preparation, folder: OutputFolder, options: PrepareO
     _write_text(folder.path("diagnostics.json"), text + "\n")
     _write_text(folder.path("diagnostics.txt"), "\n".join(preparation_lines(prep.summary)) + "\n")
     progress("write.report", "writing report.html")
-    _write_text(folder.path("report.html"), render_html(prep.summary, pictures_of(prep)))
+    _write_text(folder.path("report.html"), render_html(
+        prep.summary, pictures_of(prep) if pictures is None else pictures))
 
 
 def _write_restated(prep: Preparation, folder: OutputFolder, base_meta: dict[str, Any],
@@ -1222,13 +1335,14 @@ def _free_variable_columns(frames: list[pd.DataFrame], variables: list[str],
 RUN_FILE = "run.toml"
 # run-file keys that say where things are, not what the data files hold
 _LOCATION_KEYS = ("input.path", "contract.schema", "output.dir", "output.failed_dir",
-                  "output.force", "compare.previous")
+                  "output.force", "engine.cluster", "compare.previous")
 
 
 def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ,
                data: str | Path | None = None, out: str | Path | None = None,
                force: bool = False, failed_out: str | Path | None = None,
-               contract_path: str | Path | None = None) -> RunFile:
+               contract_path: str | Path | None = None,
+               engine: EngineSection | None = None) -> RunFile:
     """The run as a run file: every option of the preparation, paths made absolute.
 
     Its ``values()`` are the resolved options recorded in ``diagnostics.json``
@@ -1262,6 +1376,7 @@ def run_record(options: PrepareOptions, read_options: ReadOptions = DEFAULT_READ
                              transforms=list(options.transforms), method=options.method,
                              format=options.output_format, compression=options.compression,
                              force=force, evidence=options.evidence),
+        engine=engine or EngineSection(),
         names=NamesSection(**asdict(names)),
         compare=CompareSection() if previous is None else CompareSection(
             previous=absolute(previous.path), vars=previous.vars, rtol=previous.options.rtol,
@@ -1362,10 +1477,18 @@ def run_from_file(run: RunFile, progress: Progress | None = None) -> Preparation
         contract=contract, validate_outputs=run.contract.validate_outputs,
         evidence=run.output.evidence, names=names, previous=_previous_vintage(run),
     )
+    keep = [p for p in (run.source, run.contract.schema) if p is not None]
+    if run.engine.kind == "dask":
+        from panelprep.partitioned import run_partitioned
+
+        return run_partitioned(run.input.path, run.output.dir, options, run.read_options(),
+                               run.engine, force=run.output.force, progress=progress, keep=keep,
+                               failed_out=run.output.failed_dir)
+    check_readable(Path(run.input.path))
     return run_preparation(run.input.path, run.output.dir, options, run.read_options(),
                            force=run.output.force, progress=progress,
-                           keep=[p for p in (run.source, run.contract.schema) if p is not None],
-                           failed_out=run.output.failed_dir, contract_path=run.contract.schema)
+                           keep=keep, failed_out=run.output.failed_dir,
+                           contract_path=run.contract.schema)
 
 
 def _previous_vintage(run: RunFile):

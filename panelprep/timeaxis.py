@@ -20,7 +20,7 @@ period that contains them; the audit reports them.
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -182,6 +182,46 @@ def _data_step(values: np.ndarray) -> int | None:
     """Greatest common divisor of the gaps between distinct whole numbers (None for one)."""
     spacing = np.diff(np.unique(values))
     return int(np.gcd.reduce(spacing)) if len(spacing) else None
+
+
+@dataclass(frozen=True)
+class Grid:
+    """The time axis of every distinct time value of an input read in partitions.
+
+    ``uniques`` holds the distinct values (``axis`` has one entry per
+    value), so the frequency, the integer step and base, and the first and
+    last period are those the whole column gives; :meth:`axis_for` places the
+    rows of one partition on it, the same numbers ``build_time_axis`` gives
+    on the whole column.
+    """
+
+    uniques: pd.Index
+    axis: TimeAxis
+
+    @property
+    def span(self) -> tuple[int, int]:
+        """First and last grid ordinal of a present value; (0, -1) when none is."""
+        present = ~self.axis.missing
+        if not present.any():
+            return 0, -1
+        return int(self.axis.ordinal[present].min()), int(self.axis.ordinal[present].max())
+
+    def axis_for(self, values: pd.Series) -> TimeAxis:
+        """The rows ``values`` (each one of ``uniques``, or missing) on this grid."""
+        position = self.uniques.get_indexer(values)
+        missing = (position < 0) | values.isna().to_numpy(dtype=bool)
+        safe = np.where(position < 0, 0, position)
+        axis = self.axis
+        return replace(axis, ordinal=axis.ordinal[safe], missing=missing | axis.missing[safe],
+                       off_grid=axis.off_grid[safe] & ~missing,
+                       instant=None if axis.instant is None else axis.instant[safe])
+
+
+def time_grid(distinct: pd.Series, freq: str | None = None, column: str = "time") -> Grid:
+    """The grid of a time column from its distinct values (the frequency is inferred from
+    distinct moments only, so they suffice)."""
+    values = distinct.reset_index(drop=True)
+    return Grid(uniques=pd.Index(values), axis=build_time_axis(values, freq=freq, column=column))
 
 
 def _shown(value: object) -> str:

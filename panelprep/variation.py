@@ -43,7 +43,7 @@ def variation_table(
     codes = index.entity_codes
     n, n_entities = values.shape[0], index.n_entities
     if n == 0:
-        return {name: _empty_row() for name in names}
+        return {name: empty_row() for name in names}
     counts = group_counts(codes, n_entities)
     scaled, entity_means = shared if shared is not None else scaled_group_means(
         values, codes, counts)
@@ -76,20 +76,62 @@ def variation_table(
         tol = (constant_rtol * scale) ** 2
         varying = entity_ss > tol * counts
         period_varying = period_ss > tol * period_counts
-        out[name] = {
-            "n": int(n),
-            "mean": float(centre + unit * col.mean()),
-            "sd_overall": _in_units(overall, unit) if n > 1 else None,
-            "sd_between": _in_units(means.std(ddof=1), unit) if n_entities > 1 else None,
-            "sd_within": (_in_units(np.sqrt(entity_ss.sum() / (n - n_entities)), unit)
-                          if n > n_entities else None),
-            "min": float(raw.min()),
-            "max": float(raw.max()),
-            "varying_share": float(varying[multi].mean()) if multi.any() else None,
-            "time_invariant": bool(multi.any() and not varying[multi].any()),
-            "period_invariant": bool(multi_period.any() and not period_varying[multi_period].any()),
-        }
+        out[name] = variation_row(
+            n=n, n_entities=n_entities, centre=centre, unit=unit, level=float(col.mean()),
+            sd=overall, sd_means=float(means.std(ddof=1)) if n_entities > 1 else None,
+            within_ss=float(entity_ss.sum()), low=float(raw.min()), high=float(raw.max()),
+            multi=int(multi.sum()), varying=int(varying[multi].sum()),
+            period_varies=bool(period_varying[multi_period].any()),
+            multi_period=bool(multi_period.any()))
     return out
+
+
+def variation_row(n: int, n_entities: int, centre: float, unit: float, level: float,
+                  sd: float | None, sd_means: float | None, within_ss: float, low: float,
+                  high: float, multi: int, varying: int, period_varies: bool,
+                  multi_period: bool) -> dict:
+    """One row of the variation table from its sums, on the scaled column ``z``
+    (``x = centre + unit * z``): ``level`` = mean of z, ``sd`` its SD (ddof 1),
+    ``sd_means`` the SD of the entity means of z (ddof 1), ``within_ss`` the
+    within sum of squares; ``multi`` entities with two rows or more, of which
+    ``varying`` are not constant; ``period_varies`` when a period with two
+    rows or more is not constant.  Shared by both engines."""
+    return {
+        "n": int(n),
+        "mean": float(centre + unit * level),
+        "sd_overall": _in_units(sd, unit) if sd is not None else None,
+        "sd_between": _in_units(sd_means, unit) if sd_means is not None else None,
+        "sd_within": (_in_units(np.sqrt(within_ss / (n - n_entities)), unit)
+                      if n > n_entities else None),
+        "min": low,
+        "max": high,
+        "varying_share": float(varying / multi) if multi else None,
+        "time_invariant": bool(multi and not varying),
+        "period_invariant": bool(multi_period and not period_varies),
+    }
+
+
+def pooled(parts: list[tuple[int, float, float]]) -> tuple[int, float, float]:
+    """``(count, mean, sum of squared deviations)`` of the union of parts given the same way
+    (the parallel update of Chan, Golub and LeVeque), without a pass over the rows again."""
+    count, mean, m2 = 0, 0.0, 0.0
+    for n_b, mean_b, m2_b in parts:
+        if n_b == 0:
+            continue
+        total = count + n_b
+        delta = mean_b - mean
+        mean += delta * n_b / total
+        m2 += m2_b + delta * delta * count * n_b / total
+        count = total
+    return count, mean, m2
+
+
+def spread_part(values: np.ndarray) -> tuple[int, float, float]:
+    """``(count, mean, sum of squared deviations)`` of a 1-D array, for :func:`pooled`."""
+    if len(values) == 0:
+        return 0, 0.0, 0.0
+    mean = float(values.mean())
+    return len(values), mean, float(np.sum((values - mean) ** 2))
 
 
 def _in_units(scaled: float, unit: float) -> float | None:
@@ -99,7 +141,8 @@ def _in_units(scaled: float, unit: float) -> float | None:
     return value if np.isfinite(value) else None
 
 
-def _empty_row() -> dict:
+def empty_row() -> dict:
+    """The row of a variable on an empty sample: no statistic."""
     keys = ("mean", "sd_overall", "sd_between", "sd_within", "min", "max", "varying_share")
     return {"n": 0, **dict.fromkeys(keys), "time_invariant": False, "period_invariant": False}
 

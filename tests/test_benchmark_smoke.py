@@ -47,3 +47,17 @@ def test_benchmark_runs_at_tiny_size(tmp_path: Path) -> None:
     for key in ("cpu_model", "cores", "ram_gib", "python", "numpy", "pandas", "pyarrow"):
         assert key in document["machine"], key
     assert {t["target"] for t in document["targets"]}
+
+
+def test_the_dask_engine_benchmark_runs_at_tiny_size(tmp_path: Path) -> None:
+    script = SCRIPT.with_name("dask_engine.py")
+    out = tmp_path / "dask.json"
+    done = subprocess.run(
+        [sys.executable, str(script), "--rows", "6000", "--entities", "300", "--vars", "3",
+         "--files", "3", "--partitions", "2", "--worker-memory", "1GiB",
+         "--workdir", str(tmp_path / "work"), "--json", str(out)],
+        capture_output=True, text=True, timeout=600, check=False,
+    )
+    assert done.returncode == 0, done.stderr[-3000:]
+    cases = [r["case"] for r in json.loads(out.read_text())["results"]]
+    assert cases == ["local", "dask, 1 worker", "dask, 2 workers"]

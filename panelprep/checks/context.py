@@ -300,12 +300,13 @@ class AuditContext:
             example: dict[str, object] = {"row": int(number)}
             for column in [*self.index.entity, self.index.time]:
                 value = self.frame[column].iloc[int(row)]
-                example[column] = None if pd.isna(value) else _plain(value)
+                example[column] = None if pd.isna(value) else plain_value(value)
             out.append(example)
         return out
 
 
-def _plain(value: object) -> object:
+def plain_value(value: object) -> object:
+    """A numpy scalar as the Python number it holds; other kinds of value as text."""
     if isinstance(value, (np.integer,)):
         return int(value)
     if isinstance(value, (np.floating,)):

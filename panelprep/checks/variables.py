@@ -8,40 +8,71 @@ import numpy as np
 import pandas as pd
 
 from panelprep._groups import group_counts
-from panelprep.checks.base import Check, check
+from panelprep.checks.base import FIRST_VALUES, Check, check, examples_of
 from panelprep.checks.context import AuditContext
+from panelprep.checks.shape import entity_ranks
 from panelprep.findings import MAX_EXAMPLES
 from panelprep.words import plural, plural_word
 
 
-@check("values-not-numeric", "error",
-       "text, infinities or whole numbers beyond 2^53 in a variable "
-       "that should be numeric")
-def not_numeric(ctx: AuditContext, self: Check):
-    bad = {name: p for name, p in ctx.non_numeric.items() if len(p.rows)}
-    if not bad:
-        return None
-    total = sum(len(p.rows) for p in bad.values())
-    examples = []
-    for name, problem in bad.items():
-        # one example per distinct text: how many rows hold it (count) and the first (row)
-        texts = ctx.frame[name].iloc[problem.rows].astype(str).to_numpy()
+def not_numeric_tally(ctx: AuditContext) -> dict:
+    """Values that are not numbers, per variable (all listed): the count and the first
+    ``FIRST_VALUES`` bad values with their input rows, in row order."""
+    per_variable = {}
+    for name in ctx.variables:
+        problem = ctx.non_numeric.get(name)
+        rows = problem.rows if problem is not None else np.zeros(0, dtype=np.int64)
+        if len(rows) == 0:
+            # (a column without bad values may have left the frame: its float block is taken)
+            per_variable[name] = {"rows": 0, "firsts": [], "texts": {}}
+            continue
+        first = rows[:FIRST_VALUES]
+        values = ctx.frame[name].iloc[first]
+        texts = ctx.frame[name].iloc[rows].astype(str).to_numpy()
         codes, uniques = pd.factorize(texts)
         counts = np.bincount(codes, minlength=len(uniques))
-        first = np.unique(codes, return_index=True)[1]
-        rows = ctx.input_rows(problem.rows[first[:MAX_EXAMPLES]])
-        examples += [{"column": name, "value": str(value), "count": int(count), "row": int(row)}
-                     for value, count, row in zip(uniques[:MAX_EXAMPLES], counts, rows)]
-    details = {name: {"rows": len(p.rows), "values": p.values} for name, p in bad.items()}
-    names = ", ".join(f"{n} ({len(p.rows)})" for n, p in bad.items())
+        first_rows = ctx.input_rows(rows[np.unique(codes, return_index=True)[1]])
+        per_variable[name] = {
+            "rows": len(rows),
+            "firsts": [((int(row),), str(value))
+                       for row, value in zip(ctx.input_rows(first), values)],
+            # every distinct text: rows holding it and its first row (merged by text)
+            "texts": {str(text): {"count": int(c), "row_min": int(r)}
+                      for text, c, r in zip(uniques, counts, first_rows)}}
+    return {"decimal_comma": "yes" if ctx.decimal_comma else "", "per_variable": per_variable}
+
+
+def not_numeric_finding(self: Check, tally: dict):
+    bad = {name: t for name, t in tally["per_variable"].items() if t["rows"]}
+    if not bad:
+        return None
+    # the distinct values among the first bad rows, at most 10 (NonNumeric.values)
+    shown = {name: list(dict.fromkeys(v for _, v in t["firsts"]))[:10] for name, t in bad.items()}
+    total = sum(t["rows"] for t in bad.values())
+    examples = []
+    for name, t in bad.items():
+        # one example per distinct text: how many rows hold it (count) and the first (row)
+        texts = sorted(t["texts"].items(), key=lambda item: item[1]["row_min"])[:MAX_EXAMPLES]
+        examples += [{"column": name, "value": text, "count": seen["count"],
+                      "row": seen["row_min"]} for text, seen in texts]
+    details = {name: {"rows": t["rows"], "values": shown[name]} for name, t in bad.items()}
+    names = ", ".join(f"{n} ({t['rows']})" for n, t in bad.items())
+    every = [v for values in shown.values() for v in values]
     return self.finding(
         total,
         f"{plural(total, 'value')} that {plural_word(total, 'is')} not a number in {names}; e.g. "
-        + ", ".join(repr(v) for p in bad.values() for v in p.values[:3])
-        + f" ({'; '.join(_hints([v for p in bad.values() for v in p.values], ctx.decimal_comma))})",
+        + ", ".join(repr(v) for values in shown.values() for v in values[:3])
+        + f" ({'; '.join(_hints(every, bool(tally['decimal_comma'])))})",
         examples,
         details,
     )
+
+
+@check("values-not-numeric", "error",
+       "text, infinities or whole numbers beyond 2^53 in a variable "
+       "that should be numeric", tally=not_numeric_tally, finish=not_numeric_finding)
+def not_numeric(ctx: AuditContext, self: Check):
+    return not_numeric_finding(self, not_numeric_tally(ctx))
 
 
 _LONG_INTEGER = re.compile(r"^\s*[-+]?\d{16,}\s*$")
@@ -71,58 +102,98 @@ def _hints(values: list[str], decimal_comma: bool) -> list[str]:
     return hints
 
 
-@check("values-declared-missing", "info", "texts read as missing because they were declared so")
-def declared_missing(ctx: AuditContext, self: Check):
-    hits = {name: p.read_as_missing for name, p in ctx.non_numeric.items() if p.read_as_missing}
+def declared_missing_tally(ctx: AuditContext) -> dict:
+    """Values read as missing because they were declared so, per variable (all listed)."""
+    problems = ctx.non_numeric
+    # the tokens as the message writes them (a text is kept as is by merge_tallies)
+    return {"tokens": str(list(ctx.missing_tokens)),
+            "per_variable": {name: problems[name].read_as_missing if name in problems else 0
+                             for name in ctx.variables}}
+
+
+def declared_missing_finding(self: Check, tally: dict):
+    hits = {name: count for name, count in tally["per_variable"].items() if count}
     if not hits:
         return None
     total = sum(hits.values())
     return self.finding(
         total,
-        f"{plural(total, 'value')} matching declared missing tokens {list(ctx.missing_tokens)} "
+        f"{plural(total, 'value')} matching declared missing tokens {tally['tokens']} "
         f"{plural_word(total, 'was')} read as missing",
         [{"column": name, "rows": count} for name, count in hits.items()],
         {"per_variable": hits},
     )
 
 
-@check("values-nan-missing", "warning",
-       "NaN values (the text nan in CSV, NaN stored in a Parquet or Arrow float column) "
-       "read as missing")
-def nan_missing(ctx: AuditContext, self: Check):
-    hits = {name: p.nan_rows for name, p in ctx.non_numeric.items() if len(p.nan_rows)}
+@check("values-declared-missing", "info", "texts read as missing because they were declared so",
+       tally=declared_missing_tally, finish=declared_missing_finding)
+def declared_missing(ctx: AuditContext, self: Check):
+    return declared_missing_finding(self, declared_missing_tally(ctx))
+
+
+def nan_missing_tally(ctx: AuditContext) -> dict:
+    """NaN values read as missing per variable (all listed); examples by variable, then row."""
+    problems = ctx.non_numeric
+    per_variable, examples = {}, []
+    for j, name in enumerate(ctx.variables):
+        rows = problems[name].nan_rows if name in problems else np.zeros(0, dtype=np.int64)
+        per_variable[name] = len(rows)
+        examples += [((j, int(row)), {"column": name, "row": int(row)})
+                     for row in ctx.input_rows(rows[:MAX_EXAMPLES])]
+    return {"per_variable": per_variable, "examples": examples[:MAX_EXAMPLES]}
+
+
+def nan_missing_finding(self: Check, tally: dict):
+    hits = {name: count for name, count in tally["per_variable"].items() if count}
     if not hits:
         return None
-    total = sum(len(rows) for rows in hits.values())
-    examples = [{"column": name, "row": int(row) + 1}
-                for name, rows in hits.items() for row in rows[:MAX_EXAMPLES]][:MAX_EXAMPLES]
-    names = ", ".join(f"{name} ({len(rows)})" for name, rows in hits.items())
+    total = sum(hits.values())
+    names = ", ".join(f"{name} ({count})" for name, count in hits.items())
     return self.finding(
         total,
         f"{plural(total, 'NaN value')} read as missing in {names}; NaN is often the result of a failed "
         "computation (0/0) upstream rather than a value never observed: check where it comes "
         "from (--severity values-nan-missing=info when NaN is how the source writes missing)",
-        examples,
-        {"per_variable": {name: len(rows) for name, rows in hits.items()}},
+        examples_of(tally),
+        {"per_variable": hits},
     )
 
 
-@check("values-decimal-rounded", "warning",
-       "decimals (Parquet or Arrow decimal columns) that float64 does not hold exactly")
-def decimal_rounded(ctx: AuditContext, self: Check):
-    hits = {name: p.rounded_rows for name, p in ctx.non_numeric.items() if len(p.rounded_rows)}
+@check("values-nan-missing", "warning",
+       "NaN values (the text nan in CSV, NaN stored in a Parquet or Arrow float column) "
+       "read as missing", tally=nan_missing_tally, finish=nan_missing_finding)
+def nan_missing(ctx: AuditContext, self: Check):
+    return nan_missing_finding(self, nan_missing_tally(ctx))
+
+
+def decimal_rounded_tally(ctx: AuditContext) -> dict:
+    """Decimals float64 does not hold exactly, per variable (all listed, with the column's
+    type); examples by variable, then row."""
+    per_variable, examples = {}, []
+    for j, name in enumerate(ctx.variables):
+        problem = ctx.non_numeric.get(name)
+        rows = problem.rounded_rows if problem is not None else np.zeros(0, dtype=np.int64)
+        per_variable[name] = {"rows": len(rows), "type": ""}
+        if len(rows) == 0:
+            continue
+        # (a column holding rounded decimals keeps its values in the frame)
+        per_variable[name]["type"] = str(ctx.frame[name].dtype.pyarrow_dtype)
+        shown = rows[:MAX_EXAMPLES]
+        for row, number in zip(shown, ctx.input_rows(shown)):
+            examples.append(((j, int(number)), {
+                "column": name, "row": int(number),
+                "value": str(ctx.frame[name].iloc[int(row)]),
+                "read_as": repr(float(ctx.values[int(row), j]))}))
+    return {"per_variable": per_variable, "examples": examples[:MAX_EXAMPLES]}
+
+
+def decimal_rounded_finding(self: Check, tally: dict):
+    hits = {name: t for name, t in tally["per_variable"].items() if t["rows"]}
     if not hits:
         return None
-    total = sum(len(rows) for rows in hits.values())
-    examples = []
-    for name, rows in hits.items():
-        for row in rows[:MAX_EXAMPLES]:
-            examples.append({"column": name, "row": int(ctx.input_rows([row])[0]),
-                             "value": str(ctx.frame[name].iloc[int(row)]),
-                             "read_as": repr(float(ctx.values[int(row), ctx.variables.index(name)]))})
-    examples = examples[:MAX_EXAMPLES]
-    names = ", ".join(f"{name} ({len(rows)}, {ctx.frame[name].dtype.pyarrow_dtype})"
-                      for name, rows in hits.items())
+    total = sum(t["rows"] for t in hits.values())
+    examples = examples_of(tally)
+    names = ", ".join(f"{name} ({t['rows']}, {t['type']})" for name, t in hits.items())
     first = examples[0]
     return self.finding(
         total,
@@ -131,14 +202,21 @@ def decimal_rounded(ctx: AuditContext, self: Check):
         f"read as {first['read_as']}); round or rescale the column upstream if those digits "
         "matter",
         examples,
-        {"per_variable": {name: len(rows) for name, rows in hits.items()}},
+        {"per_variable": {name: t["rows"] for name, t in hits.items()}},
     )
 
 
-@check("values-missing", "info", "missing values per variable and what listwise deletion removes")
-def missing_values(ctx: AuditContext, self: Check):
+@check("values-decimal-rounded", "warning",
+       "decimals (Parquet or Arrow decimal columns) that float64 does not hold exactly",
+       tally=decimal_rounded_tally, finish=decimal_rounded_finding)
+def decimal_rounded(ctx: AuditContext, self: Check):
+    return decimal_rounded_finding(self, decimal_rounded_tally(ctx))
+
+
+def listwise_tally(ctx: AuditContext) -> dict:
+    """Missing cells per variable and what listwise deletion removes, with ranked examples."""
     if not ctx.variables:
-        return None
+        return {"variables": 0}
     # kept for the report's picture of missing cells, before the block may be released
     ctx.missing_by_period  # noqa: B018
     base, values = ctx.base, ctx.values
@@ -150,14 +228,42 @@ def missing_values(ctx: AuditContext, self: Check):
         absent &= base
         per_variable[name] = int(np.count_nonzero(absent))
         per_row += absent
-    rows_lost = int(np.count_nonzero(per_row))
-    if rows_lost == 0:
-        return None
-    lost = _listwise(ctx)
     # rows where a column is the only one missing: what dropping that column alone would keep
     alone = per_row == 1
     only_missing = {name: int(np.count_nonzero(np.isnan(values[:, j]) & alone))
                     for j, name in enumerate(ctx.variables)}
+    codes = ctx.index.entity_codes
+    n = ctx.index.n_entities
+    before = group_counts(codes[base], n)
+    after = group_counts(codes[ctx.sample], n)
+    new_single = np.flatnonzero((before >= 2) & (after == 1))
+    shown = new_single[:MAX_EXAMPLES]
+    return {
+        "variables": 1,
+        "per_variable": per_variable,
+        "only_missing": only_missing,
+        "rows_lost": int(np.count_nonzero(per_row)),
+        "rows_removed": int(base.sum() - ctx.sample.sum()),
+        "entities_lost": int(((before > 0) & (after == 0)).sum()),
+        "new_singletons": len(new_single),
+        "new_singleton_keys": [(rank, {"entity": key}) for rank, key in
+                               zip(entity_ranks(ctx.index, shown), ctx.index.entity_key(shown))],
+    }
+
+
+def _listwise(tally: dict) -> dict:
+    return {"rows_removed": tally["rows_removed"], "entities_lost": tally["entities_lost"],
+            "new_singletons": tally["new_singletons"],
+            "new_singleton_keys": [e["entity"] for e in
+                                   examples_of(tally, "new_singleton_keys")]}
+
+
+def missing_values_finding(self: Check, tally: dict):
+    if not tally["variables"] or tally["rows_lost"] == 0:
+        return None
+    rows_lost, per_variable = tally["rows_lost"], tally["per_variable"]
+    only_missing = tally["only_missing"]
+    lost = _listwise(tally)
     worst = sorted((n for n in per_variable if per_variable[n]), key=lambda n: -per_variable[n])
     return self.finding(
         rows_lost,
@@ -171,11 +277,16 @@ def missing_values(ctx: AuditContext, self: Check):
     )
 
 
-@check("sample-new-singletons", "warning", "entities that listwise deletion leaves with one row")
-def new_singletons(ctx: AuditContext, self: Check):
-    lost = _listwise(ctx)
-    if lost["new_singletons"] == 0:
+@check("values-missing", "info", "missing values per variable and what listwise deletion removes",
+       tally=listwise_tally, finish=missing_values_finding)
+def missing_values(ctx: AuditContext, self: Check):
+    return missing_values_finding(self, listwise_tally(ctx))
+
+
+def new_singletons_finding(self: Check, tally: dict):
+    if not tally["variables"] or tally["new_singletons"] == 0:
         return None
+    lost = _listwise(tally)
     return self.finding(
         lost["new_singletons"],
         f"listwise deletion leaves {plural(lost['new_singletons'], 'entity')} with a single "
@@ -184,18 +295,10 @@ def new_singletons(ctx: AuditContext, self: Check):
     )
 
 
-def _listwise(ctx: AuditContext) -> dict:
-    codes = ctx.index.entity_codes
-    n = ctx.index.n_entities
-    before = group_counts(codes[ctx.base], n)
-    after = group_counts(codes[ctx.sample], n)
-    new_single = np.flatnonzero((before >= 2) & (after == 1))
-    return {
-        "rows_removed": int(ctx.base.sum() - ctx.sample.sum()),
-        "entities_lost": int(((before > 0) & (after == 0)).sum()),
-        "new_singletons": len(new_single),
-        "new_singleton_keys": ctx.index.entity_key(new_single[:MAX_EXAMPLES]),
-    }
+@check("sample-new-singletons", "warning", "entities that listwise deletion leaves with one row",
+       tally=listwise_tally, finish=new_singletons_finding)
+def new_singletons(ctx: AuditContext, self: Check):
+    return new_singletons_finding(self, listwise_tally(ctx))
 
 
 @check("var-fixed-within", "warning", "variables with no variation within any entity")
