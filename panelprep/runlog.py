@@ -26,7 +26,6 @@ import sys
 import time
 from collections.abc import Sequence
 from datetime import UTC, datetime
-from importlib import metadata
 from typing import Any, TextIO
 
 from panelprep._version import __version__
@@ -71,6 +70,8 @@ def _peak_bytes(per_step: bool) -> int:
 
 def library_versions() -> dict[str, str | None]:
     """panelprep, Python and the main libraries, read from the installed metadata."""
+    from importlib import metadata  # here: about 30 ms at import, and only a run block needs it
+
     out: dict[str, str | None] = {"panelprep": __version__, "python": platform.python_version()}
     for name in LIBRARIES:
         try:
