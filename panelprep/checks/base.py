@@ -57,6 +57,14 @@ def check(id: str, severity: str, summary: str, tally=None, finish=None):
     return wrap
 
 
+def tallied(id: str, severity: str, summary: str, tally: Callable[[AuditContext], dict],
+            finish: Callable[..., Finding | None]) -> Check:
+    """A ``Check`` whose rule is ``finish(check, tally(context))`` (see :class:`Check`)."""
+    return Check(id=id, severity=severity, summary=summary,
+                 rule=lambda context, self: finish(self, tally(context)), tally=tally,
+                 finish=finish)
+
+
 # the bad values a finding quotes are drawn from the first this many bad rows
 FIRST_VALUES = 200
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from panelprep.checks.base import Check, check, examples_of, row_ordered
+from panelprep.checks.base import Check, examples_of, row_ordered, tallied
 from panelprep.checks.context import AuditContext
 from panelprep.findings import MAX_EXAMPLES
 from panelprep.words import plural, plural_word
@@ -31,10 +31,8 @@ def missing_key_finding(self: Check, tally: dict):
     )
 
 
-@check("key-missing", "error", "rows whose entity or time key is missing",
-       tally=missing_key_tally, finish=missing_key_finding)
-def missing_key(ctx: AuditContext, self: Check):
-    return missing_key_finding(self, missing_key_tally(ctx))
+missing_key = tallied("key-missing", "error", "rows whose entity or time key is missing",
+                      missing_key_tally, missing_key_finding)
 
 
 def conflicting_keys_tally(ctx: AuditContext) -> dict:
@@ -67,10 +65,8 @@ def conflicting_keys_finding(self: Check, tally: dict):
     )
 
 
-@check("key-conflict", "error", "the same (entity, time) key on rows whose values differ",
-       tally=conflicting_keys_tally, finish=conflicting_keys_finding)
-def conflicting_keys(ctx: AuditContext, self: Check):
-    return conflicting_keys_finding(self, conflicting_keys_tally(ctx))
+conflicting_keys = tallied("key-conflict", "error", "the same (entity, time) key on rows whose values differ",
+                           conflicting_keys_tally, conflicting_keys_finding)
 
 
 def exact_repeats_tally(ctx: AuditContext) -> dict:
@@ -97,10 +93,8 @@ def exact_repeats_finding(self: Check, tally: dict):
     )
 
 
-@check("row-repeated", "warning", "rows that repeat an earlier row exactly",
-       tally=exact_repeats_tally, finish=exact_repeats_finding)
-def exact_repeats(ctx: AuditContext, self: Check):
-    return exact_repeats_finding(self, exact_repeats_tally(ctx))
+exact_repeats = tallied("row-repeated", "warning", "rows that repeat an earlier row exactly",
+                        exact_repeats_tally, exact_repeats_finding)
 
 
 _MISSING_MARK = "\x00missing"
@@ -163,10 +157,8 @@ def lookalike_ids_finding(self: Check, tally: dict):
     )
 
 
-@check("entity-id-lookalike", "warning", "entity ids that differ only by case or outer spaces",
-       tally=lookalike_ids_tally, finish=lookalike_ids_finding)
-def lookalike_ids(ctx: AuditContext, self: Check):
-    return lookalike_ids_finding(self, lookalike_ids_tally(ctx))
+lookalike_ids = tallied("entity-id-lookalike", "warning", "entity ids that differ only by case or outer spaces",
+                        lookalike_ids_tally, lookalike_ids_finding)
 
 
 CHECKS = [missing_key, conflicting_keys, exact_repeats, lookalike_ids]

@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 from panelprep._groups import occurring
-from panelprep.checks.base import Check, check, examples_of, row_ordered
+from panelprep.checks.base import Check, check, examples_of, row_ordered, tallied
 from panelprep.checks.context import AuditContext, plain_value
 from panelprep.findings import MAX_EXAMPLES, Finding
 from panelprep.index import PanelIndex
@@ -50,11 +50,9 @@ def time_gaps_finding(self: Check, tally: dict):
     )
 
 
-@check("period-holes", "warning",
-       "periods missing between an entity's first and last observation",
-       tally=time_gaps_tally, finish=time_gaps_finding)
-def time_gaps(ctx: AuditContext, self: Check):
-    return time_gaps_finding(self, time_gaps_tally(ctx))
+time_gaps = tallied("period-holes", "warning",
+                    "periods missing between an entity's first and last observation",
+                    time_gaps_tally, time_gaps_finding)
 
 
 def entity_ranks(index: PanelIndex, codes: np.ndarray) -> list[tuple]:
@@ -83,10 +81,8 @@ def off_grid_finding(self: Check, tally: dict):
     )
 
 
-@check("period-off-grid", "warning", "time values not on the inferred period grid",
-       tally=off_grid_tally, finish=off_grid_finding)
-def off_grid(ctx: AuditContext, self: Check):
-    return off_grid_finding(self, off_grid_tally(ctx))
+off_grid = tallied("period-off-grid", "warning", "time values not on the inferred period grid",
+                   off_grid_tally, off_grid_finding)
 
 
 # the coverage summary's size, whatever the grid's length
@@ -326,10 +322,8 @@ def singletons_finding(self: Check, tally: dict):
     )
 
 
-@check("entity-single-obs", "warning", "entities observed once",
-       tally=singletons_tally, finish=singletons_finding)
-def singletons(ctx: AuditContext, self: Check):
-    return singletons_finding(self, singletons_tally(ctx))
+singletons = tallied("entity-single-obs", "warning", "entities observed once",
+                     singletons_tally, singletons_finding)
 
 
 CHECKS = [time_gaps, off_grid, balance, singletons]

@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 
 from panelprep._groups import group_counts
-from panelprep.checks.base import FIRST_VALUES, Check, check, examples_of
+from panelprep.checks.base import FIRST_VALUES, Check, check, examples_of, tallied
 from panelprep.checks.context import AuditContext
 from panelprep.checks.shape import entity_ranks
 from panelprep.findings import MAX_EXAMPLES
@@ -68,11 +68,10 @@ def not_numeric_finding(self: Check, tally: dict):
     )
 
 
-@check("values-not-numeric", "error",
-       "text, infinities or whole numbers beyond 2^53 in a variable "
-       "that should be numeric", tally=not_numeric_tally, finish=not_numeric_finding)
-def not_numeric(ctx: AuditContext, self: Check):
-    return not_numeric_finding(self, not_numeric_tally(ctx))
+not_numeric = tallied("values-not-numeric", "error",
+                      "text, infinities or whole numbers beyond 2^53 in a variable "
+                      "that should be numeric",
+                      not_numeric_tally, not_numeric_finding)
 
 
 _LONG_INTEGER = re.compile(r"^\s*[-+]?\d{16,}\s*$")
@@ -125,10 +124,8 @@ def declared_missing_finding(self: Check, tally: dict):
     )
 
 
-@check("values-declared-missing", "info", "texts read as missing because they were declared so",
-       tally=declared_missing_tally, finish=declared_missing_finding)
-def declared_missing(ctx: AuditContext, self: Check):
-    return declared_missing_finding(self, declared_missing_tally(ctx))
+declared_missing = tallied("values-declared-missing", "info", "texts read as missing because they were declared so",
+                           declared_missing_tally, declared_missing_finding)
 
 
 def nan_missing_tally(ctx: AuditContext) -> dict:
@@ -159,11 +156,10 @@ def nan_missing_finding(self: Check, tally: dict):
     )
 
 
-@check("values-nan-missing", "warning",
-       "NaN values (the text nan in CSV, NaN stored in a Parquet or Arrow float column) "
-       "read as missing", tally=nan_missing_tally, finish=nan_missing_finding)
-def nan_missing(ctx: AuditContext, self: Check):
-    return nan_missing_finding(self, nan_missing_tally(ctx))
+nan_missing = tallied("values-nan-missing", "warning",
+                      "NaN values (the text nan in CSV, NaN stored in a Parquet or Arrow float column) "
+                      "read as missing",
+                      nan_missing_tally, nan_missing_finding)
 
 
 def decimal_rounded_tally(ctx: AuditContext) -> dict:
@@ -206,11 +202,9 @@ def decimal_rounded_finding(self: Check, tally: dict):
     )
 
 
-@check("values-decimal-rounded", "warning",
-       "decimals (Parquet or Arrow decimal columns) that float64 does not hold exactly",
-       tally=decimal_rounded_tally, finish=decimal_rounded_finding)
-def decimal_rounded(ctx: AuditContext, self: Check):
-    return decimal_rounded_finding(self, decimal_rounded_tally(ctx))
+decimal_rounded = tallied("values-decimal-rounded", "warning",
+                          "decimals (Parquet or Arrow decimal columns) that float64 does not hold exactly",
+                          decimal_rounded_tally, decimal_rounded_finding)
 
 
 def listwise_tally(ctx: AuditContext) -> dict:
@@ -277,10 +271,8 @@ def missing_values_finding(self: Check, tally: dict):
     )
 
 
-@check("values-missing", "info", "missing values per variable and what listwise deletion removes",
-       tally=listwise_tally, finish=missing_values_finding)
-def missing_values(ctx: AuditContext, self: Check):
-    return missing_values_finding(self, listwise_tally(ctx))
+missing_values = tallied("values-missing", "info", "missing values per variable and what listwise deletion removes",
+                         listwise_tally, missing_values_finding)
 
 
 def new_singletons_finding(self: Check, tally: dict):
@@ -295,10 +287,8 @@ def new_singletons_finding(self: Check, tally: dict):
     )
 
 
-@check("sample-new-singletons", "warning", "entities that listwise deletion leaves with one row",
-       tally=listwise_tally, finish=new_singletons_finding)
-def new_singletons(ctx: AuditContext, self: Check):
-    return new_singletons_finding(self, listwise_tally(ctx))
+new_singletons = tallied("sample-new-singletons", "warning", "entities that listwise deletion leaves with one row",
+                         listwise_tally, new_singletons_finding)
 
 
 @check("var-fixed-within", "warning", "variables with no variation within any entity")
