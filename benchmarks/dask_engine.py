@@ -1,14 +1,27 @@
 """The dask engine against the local engine: seconds, rows per second and peak memory.
 
 Generates the synthetic panel of ``run_benchmark.py`` (without repeated rows,
-so the gate passes), writes it as Parquet files, then prepares it (within,
-between, quasi; ``--no-evidence``, which the dask engine needs) with the
-local engine and with the dask engine on a fresh ``distributed.LocalCluster``
-of 1 and of 2 worker processes.  Prints one table; ``--json`` keeps it.
-Peak memory is a resident high-water mark: the run's steps in this process
-(the local engine; the dask engine's driver) and the largest worker's.
+so the gate passes), writes it as one Parquet file and as a folder of Parquet
+files, then prepares it (within, between, quasi; ``--no-evidence``, which the
+dask engine needs) with the installed ``panelprep prepare`` command, each case
+in a process of its own:
+
+- ``local``: the local engine on the single file.  On a panel larger than the
+  machine's memory the memory guard refuses it (exit 2); the table then says
+  so and shows the guard's line.
+- ``dask1``, ``dask2``: the dask engine on the folder, against a fresh
+  ``distributed.LocalCluster`` of 1 or 2 worker processes with
+  ``--worker-memory`` each (dask spills to disk above 60 % of it).
+
+Peaks are resident high-water marks: the command's own (the largest of its
+steps' peaks, from its diagnostics.json; for the dask engine, the driver) and
+the largest worker's (``ru_maxrss`` of each worker process, read after the
+run).  While a dask case runs, every worker's bytes held on disk by spilling
+are sampled each second; the table shows the largest sum seen.
 
     python benchmarks/dask_engine.py --rows 1000000 --entities 20000 --workdir /tmp/dbench
+    python benchmarks/dask_engine.py --rows 60000000 --entities 1200000 --vars 8 \\
+        --cases local,dask2 --worker-memory 6GiB --workdir /var/tmp/dbench-60m
 """
 
 from __future__ import annotations
@@ -16,9 +29,13 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import os
+import platform
 import resource
 import shutil
+import subprocess
 import sys
+import threading
 import time
 from pathlib import Path
 
@@ -26,57 +43,110 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from run_benchmark import generate_panel, variable_names
 
+CASES = ("local", "dask1", "dask2")
+
 
 def _peak_mib() -> float:
     """This process's resident high-water mark (a fresh worker's is its run's)."""
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
-def _run_peak_mib(prep) -> float:
-    """The run's own peak in this process: the largest of its steps' high-water marks
-    (reset at each step), so the panel generated before it does not count."""
-    return max(s.get("peak_rss_bytes") or 0 for s in prep.summary["run"]["steps"]) / 2**20
+def _spilled_bytes(dask_worker) -> int:
+    """Bytes this worker holds on disk, spilled from memory."""
+    spilled = getattr(dask_worker.data, "spilled_total", None)
+    return 0 if spilled is None else int(spilled.disk)
 
 
-def _keys(args: argparse.Namespace, data: Path, out: Path) -> dict:
+def _command(args: argparse.Namespace, data: Path, out: Path, extra: list[str]) -> list[str]:
     y, x = variable_names(args.vars)
-    return {"input.path": data, "output.dir": out, "panel.entity": "firm_id",
-            "panel.time": "year", "model.y": y, "model.x": x, "output.evidence": False,
-            "output.force": True}
+    panelprep = Path(sys.executable).with_name("panelprep")
+    return [str(panelprep), "prepare", str(data), "--entity", "firm_id", "--time", "year",
+            "--y", y, "--x", ",".join(x), "--out", str(out), "--force", "--no-evidence",
+            "--quiet", *extra]
 
 
-def _local(args: argparse.Namespace, data: Path, work: Path) -> dict:
-    from panelprep.config import RunFile
-    from panelprep.prepare import run_from_file
+def _finish(case: str, done: subprocess.CompletedProcess, seconds: float, out: Path,
+            rows: int) -> dict:
+    result = {"case": case, "exit_code": done.returncode, "seconds": seconds, "rows": rows,
+              "driver_peak_mib": None, "worker_peak_mib": None, "spilled_peak_mib": None}
+    if done.returncode != 0:
+        result["stderr"] = done.stderr.strip().splitlines()[-1:] if done.stderr else []
+        return result
+    summary = json.loads((out / "diagnostics.json").read_text())
+    result["rows"] = summary["input"]["rows"]
+    result["driver_peak_mib"] = max(
+        s.get("peak_rss_bytes") or 0 for s in summary["run"]["steps"]) / 2**20
+    return result
 
-    single = work / "whole.parquet"
+
+def _local(args: argparse.Namespace, work: Path, rows: int) -> dict:
+    out = work / "out-local"
     started = time.perf_counter()
-    prep = run_from_file(RunFile().merged(_keys(args, single, work / "out-local")))
-    seconds = time.perf_counter() - started
-    return {"case": "local", "seconds": seconds, "rows": prep.summary["input"]["rows"],
-            "driver_peak_mib": _run_peak_mib(prep), "worker_peak_mib": None}
+    done = subprocess.run(_command(args, work / "whole.parquet", out, []), capture_output=True,
+                          text=True, check=False)
+    return _finish("local", done, time.perf_counter() - started, out, rows)
 
 
-def _dask(args: argparse.Namespace, data: Path, work: Path, workers: int) -> dict:
+def _dask(args: argparse.Namespace, work: Path, rows: int, workers: int) -> dict:
     from distributed import Client, LocalCluster
 
-    from panelprep.config import RunFile
-    from panelprep.prepare import run_from_file
-
+    out = work / f"out-dask{workers}"
+    spill = work / "spill"
     with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                       memory_limit=args.worker_memory, dashboard_address=":0",
-                      silence_logs=logging.ERROR) as cluster:
-        keys = {**_keys(args, data, work / f"out-dask{workers}"), "engine.kind": "dask",
-                "engine.cluster": cluster.scheduler_address,
-                "engine.partitions": args.partitions}
+                      local_directory=str(spill), silence_logs=logging.ERROR) as cluster, \
+            Client(cluster.scheduler_address) as client:
+        extra = ["--engine", "dask", "--cluster", cluster.scheduler_address]
+        if args.partitions:
+            extra += ["--partitions", str(args.partitions)]
+        seen = [0]
+        running = threading.Event()
+        running.set()
+
+        def sample() -> None:
+            while running.is_set():
+                try:
+                    seen[0] = max(seen[0], sum(client.run(_spilled_bytes).values()))
+                except Exception:  # a worker restarting; the next sample will do
+                    pass
+                time.sleep(1.0)
+
+        sampler = threading.Thread(target=sample, daemon=True)
+        sampler.start()
         started = time.perf_counter()
-        prep = run_from_file(RunFile().merged(keys))
+        done = subprocess.run(_command(args, work / "files", out, extra), capture_output=True,
+                              text=True, check=False)
         seconds = time.perf_counter() - started
-        with Client(cluster.scheduler_address) as client:
-            peaks = client.run(_peak_mib)
-    return {"case": f"dask, {workers} worker{'s' if workers > 1 else ''}", "seconds": seconds,
-            "rows": prep.summary["input"]["rows"], "driver_peak_mib": _run_peak_mib(prep),
-            "worker_peak_mib": max(peaks.values())}
+        running.clear()
+        sampler.join()
+        peaks = client.run(_peak_mib)
+    result = _finish(f"dask, {workers} worker{'s' if workers > 1 else ''}", done, seconds, out,
+                     rows)
+    result["worker_peak_mib"] = max(peaks.values())
+    result["spilled_peak_mib"] = seen[0] / 2**20
+    return result
+
+
+def _generate(args: argparse.Namespace, work: Path) -> int:
+    import numpy as np
+    import pyarrow.parquet as pq
+
+    if work.exists():
+        shutil.rmtree(work)
+    folder = work / "files"
+    folder.mkdir(parents=True)
+    table = generate_panel(args.rows, args.entities, args.vars, gap_share=0.05, dup_share=0.0,
+                           missing_share=0.01, seed=1)
+    pq.write_table(table, work / "whole.parquet")
+    for i, rows in enumerate(np.array_split(np.arange(table.num_rows), args.files)):
+        pq.write_table(table.take(rows), folder / f"part-{i:03d}.parquet")
+    return table.num_rows
+
+
+def _machine() -> dict:
+    memory = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    return {"cores": os.cpu_count(), "ram_gib": round(memory / 2**30, 1),
+            "python": platform.python_version(), "platform": platform.platform()}
 
 
 def main() -> None:
@@ -87,35 +157,49 @@ def main() -> None:
     parser.add_argument("--files", type=int, default=8, help="Parquet files of the input")
     parser.add_argument("--partitions", type=int, default=None)
     parser.add_argument("--worker-memory", default="4GiB")
+    parser.add_argument("--cases", default=",".join(CASES),
+                        help=f"comma-separated, of {', '.join(CASES)}")
+    parser.add_argument("--reuse", action="store_true",
+                        help="keep the input already in --workdir (same arguments)")
     parser.add_argument("--workdir", type=Path, required=True)
     parser.add_argument("--json", type=Path, default=None)
     args = parser.parse_args()
-
-    import numpy as np
-    import pyarrow.parquet as pq
+    cases = [c.strip() for c in args.cases.split(",") if c.strip()]
+    if unknown := sorted(set(cases) - set(CASES)):
+        parser.error(f"--cases: unknown {', '.join(unknown)}")
 
     work = args.workdir
-    if work.exists():
-        shutil.rmtree(work)
-    folder = work / "files"
-    folder.mkdir(parents=True)
-    table = generate_panel(args.rows, args.entities, args.vars, gap_share=0.05, dup_share=0.0,
-                           missing_share=0.01, seed=1)
-    pq.write_table(table, work / "whole.parquet")
-    for i, rows in enumerate(np.array_split(np.arange(table.num_rows), args.files)):
-        pq.write_table(table.take(rows), folder / f"part-{i:03d}.parquet")
-    del table
-    results = [_local(args, folder, work), _dask(args, folder, work, 1),
-               _dask(args, folder, work, 2)]
-    print(f"{'case':<18} {'seconds':>9} {'rows / s':>12} {'driver peak MiB':>16} "
-          f"{'worker peak MiB':>16}")
+    if args.reuse and (work / "whole.parquet").exists():
+        import pyarrow.parquet as pq
+        rows = pq.ParquetFile(work / "whole.parquet").metadata.num_rows
+    else:
+        rows = _generate(args, work)
+    results = []
+    for case in cases:
+        result = _local(args, work, rows) if case == "local" else \
+            _dask(args, work, rows, int(case[-1]))
+        results.append(result)
+        print(f"# {case}: exit {result['exit_code']} in {result['seconds']:.1f} s",
+              file=sys.stderr, flush=True)
+        shutil.rmtree(work / "spill", ignore_errors=True)
+        for out in work.glob("out-*"):
+            shutil.rmtree(out, ignore_errors=True)
+
+    def mib(value: float | None) -> str:
+        return "" if value is None else f"{value:,.0f}"
+
+    print(f"{'case':<18} {'exit':>4} {'seconds':>9} {'rows / s':>12} {'driver peak MiB':>16} "
+          f"{'worker peak MiB':>16} {'spilled MiB':>12}")
     for r in results:
-        worker = "" if r["worker_peak_mib"] is None else f"{r['worker_peak_mib']:,.0f}"
-        print(f"{r['case']:<18} {r['seconds']:>9.2f} {r['rows'] / r['seconds']:>12,.0f} "
-              f"{r['driver_peak_mib']:>16,.0f} {worker:>16}")
+        rate = f"{r['rows'] / r['seconds']:,.0f}" if r["exit_code"] == 0 else ""
+        print(f"{r['case']:<18} {r['exit_code']:>4} {r['seconds']:>9.2f} {rate:>12} "
+              f"{mib(r['driver_peak_mib']):>16} {mib(r['worker_peak_mib']):>16} "
+              f"{mib(r['spilled_peak_mib']):>12}")
+        for line in r.get("stderr", []):
+            print(f"    {line}")
     if args.json is not None:
         args.json.write_text(json.dumps({"args": {k: str(v) for k, v in vars(args).items()},
-                                         "results": results}, indent=2))
+                                         "machine": _machine(), "results": results}, indent=2))
 
 
 if __name__ == "__main__":

@@ -59,5 +59,8 @@ def test_the_dask_engine_benchmark_runs_at_tiny_size(tmp_path: Path) -> None:
         capture_output=True, text=True, timeout=600, check=False,
     )
     assert done.returncode == 0, done.stderr[-3000:]
-    cases = [r["case"] for r in json.loads(out.read_text())["results"]]
-    assert cases == ["local", "dask, 1 worker", "dask, 2 workers"]
+    results = json.loads(out.read_text())["results"]
+    assert [r["case"] for r in results] == ["local", "dask, 1 worker", "dask, 2 workers"]
+    assert [r["exit_code"] for r in results] == [0, 0, 0], results
+    assert all(r["rows"] == 6000 and r["driver_peak_mib"] > 0 for r in results)
+    assert all(r["worker_peak_mib"] > 0 for r in results[1:])
