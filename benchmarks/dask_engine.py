@@ -15,9 +15,10 @@ in a process of its own:
 
 Peaks are resident high-water marks: the command's own (the largest of its
 steps' peaks, from its diagnostics.json; for the dask engine, the driver) and
-the largest worker's (``ru_maxrss`` of each worker process, read after the
-run).  While a dask case runs, every worker's bytes held on disk by spilling
-are sampled each second; the table shows the largest sum seen.
+the largest worker's (``VmHWM`` of each worker process read after the run,
+or the largest resident size sampled each second while it ran, if larger).
+The workers' bytes held on disk by spilling are sampled each second too; the
+table shows the largest sum seen.
 
     python benchmarks/dask_engine.py --rows 1000000 --entities 20000 --workdir /tmp/dbench
     python benchmarks/dask_engine.py --rows 60000000 --entities 1200000 --vars 8 \\
@@ -31,7 +32,6 @@ import json
 import logging
 import os
 import platform
-import resource
 import shutil
 import subprocess
 import sys
@@ -46,15 +46,28 @@ from run_benchmark import generate_panel, variable_names
 CASES = ("local", "dask1", "dask2")
 
 
+def _status_mib(field: str) -> float:
+    """``VmHWM`` (resident high-water mark) or ``VmRSS`` of this process, in MiB.
+
+    Not ``getrusage``: its ``ru_maxrss`` keeps the high-water mark of the
+    process image before ``exec``, so a worker started from this script's
+    process would show the peak of the panel's generation.
+    """
+    with open("/proc/self/status") as handle:
+        for line in handle:
+            if line.startswith(field + ":"):
+                return int(line.split()[1]) / 1024
+    return 0.0
+
+
 def _peak_mib() -> float:
-    """This process's resident high-water mark (a fresh worker's is its run's)."""
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    return _status_mib("VmHWM")
 
 
-def _spilled_bytes(dask_worker) -> int:
-    """Bytes this worker holds on disk, spilled from memory."""
+def _worker_now(dask_worker) -> tuple[float, int]:
+    """This worker's resident MiB now and the bytes it holds on disk, spilled."""
     spilled = getattr(dask_worker.data, "spilled_total", None)
-    return 0 if spilled is None else int(spilled.disk)
+    return _status_mib("VmRSS"), 0 if spilled is None else int(spilled.disk)
 
 
 def _command(args: argparse.Namespace, data: Path, out: Path, extra: list[str]) -> list[str]:
@@ -99,16 +112,20 @@ def _dask(args: argparse.Namespace, work: Path, rows: int, workers: int) -> dict
         extra = ["--engine", "dask", "--cluster", cluster.scheduler_address]
         if args.partitions:
             extra += ["--partitions", str(args.partitions)]
-        seen = [0]
+        seen = {"spilled": 0, "resident": 0.0}
         running = threading.Event()
         running.set()
 
         def sample() -> None:
+            # each second: the workers' spilled bytes and resident memory (a worker the
+            # nanny restarts takes its own high-water mark with it; these samples do not)
             while running.is_set():
                 try:
-                    seen[0] = max(seen[0], sum(client.run(_spilled_bytes).values()))
-                except Exception:  # a worker restarting; the next sample will do
-                    pass
+                    now = client.run(_worker_now).values()
+                except (OSError, TimeoutError):  # a worker restarting: the next sample will do
+                    now = []
+                seen["spilled"] = max(seen["spilled"], sum(disk for _, disk in now))
+                seen["resident"] = max([seen["resident"], *(rss for rss, _ in now)])
                 time.sleep(1.0)
 
         sampler = threading.Thread(target=sample, daemon=True)
@@ -122,8 +139,8 @@ def _dask(args: argparse.Namespace, work: Path, rows: int, workers: int) -> dict
         peaks = client.run(_peak_mib)
     result = _finish(f"dask, {workers} worker{'s' if workers > 1 else ''}", done, seconds, out,
                      rows)
-    result["worker_peak_mib"] = max(peaks.values())
-    result["spilled_peak_mib"] = seen[0] / 2**20
+    result["worker_peak_mib"] = max([*peaks.values(), seen["resident"]])
+    result["spilled_peak_mib"] = seen["spilled"] / 2**20
     return result
 
 
@@ -183,6 +200,9 @@ def main() -> None:
               file=sys.stderr, flush=True)
         shutil.rmtree(work / "spill", ignore_errors=True)
         for out in work.glob("out-*"):
+            # the run's diagnostics (its steps' times and peaks) outlive its data files
+            if (out / "diagnostics.json").exists():
+                shutil.copy(out / "diagnostics.json", work / f"diagnostics-{case}.json")
             shutil.rmtree(out, ignore_errors=True)
 
     def mib(value: float | None) -> str:

@@ -450,3 +450,47 @@ def test_a_time_value_off_every_grid_is_one_line_without_a_misleading_row(tmp_pa
         _run(data, tmp_path / "dask", "dask", cluster, 2, **KEYS)
     assert " at row " not in str(raised.value)
     assert not (tmp_path / "dask").exists()
+
+
+def _files_of(folder: Path) -> dict[str, bytes]:
+    return {str(p.relative_to(folder)): p.read_bytes() for p in folder.rglob("*") if p.is_file()}
+
+
+def test_a_task_the_scheduler_gives_up_is_one_line_and_the_previous_folder_stays(tmp_path):
+    """A task whose worker dies while running it more often than the scheduler allows
+    (here: at once, ``allowed-failures`` 0) ends the run in one line naming the cluster;
+    the folder of the previous run is left byte for byte as it was."""
+    import dask
+    from distributed import Client, LocalCluster
+    from distributed.diagnostics.plugin import WorkerPlugin
+
+    class DieOnMoments(WorkerPlugin):
+        """Ends the worker's process as soon as it starts a partition's moments task."""
+
+        def transition(self, key, start, finish, **kwargs):
+            if finish == "executing" and "moments_part" in str(key):
+                os._exit(1)
+
+    frame = _random_panel(4).dropna().drop_duplicates()
+    data = _parquet(frame, tmp_path / "panel.parquet")
+    out = tmp_path / "out"
+    _run(data, out, "local", **KEYS)
+    before = _files_of(out)
+    with dask.config.set({"distributed.scheduler.allowed-failures": 0}), \
+            LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                         memory_limit="1GiB", dashboard_address=":0",
+                         silence_logs=logging.CRITICAL) as own:
+        with Client(own.scheduler_address) as client:
+            client.register_plugin(DieOnMoments(), name="die-on-moments")
+        given = {"input.path": data, "output.dir": out, "output.evidence": False,
+                 "output.force": True, "engine.kind": "dask",
+                 "engine.cluster": own.scheduler_address, "engine.partitions": 4, **KEYS}
+        with pytest.raises(InputError) as failed:
+            run_from_file(RunFile().merged(given))
+    message = str(failed.value)
+    assert "\n" not in message
+    assert message.startswith("the dask cluster failed (KilledWorker")
+    assert message.endswith(f"{out} was left as it was")
+    assert _files_of(out) == before
+    assert not list(tmp_path.glob(".panelprep-partial-*"))
+    assert not (tmp_path / "out.failed").exists()
