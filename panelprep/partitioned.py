@@ -43,7 +43,7 @@ import hashlib
 import math
 import re
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import partial
 from pathlib import Path
 from types import SimpleNamespace
@@ -419,7 +419,9 @@ def moments_part(state: PartState, scale: Scaling, tol: np.ndarray) -> dict[str,
             "varying": int(varying[multi].sum()),
             "period_sums": np.bincount(period, weights=z, minlength=len(periods)),
         })
-    return {"moments": moments, "columns": columns, "periods": periods,
+    # the row codes stay here: the driver adds up per-entity moments, never row-long arrays
+    return {"moments": replace(moments, codes=np.zeros(0, dtype=np.int64)),
+            "columns": columns, "periods": periods,
             "period_counts": np.bincount(period, minlength=len(periods))}
 
 

@@ -494,3 +494,52 @@ def test_a_task_the_scheduler_gives_up_is_one_line_and_the_previous_folder_stays
     assert _files_of(out) == before
     assert not list(tmp_path.glob(".panelprep-partial-*"))
     assert not (tmp_path / "out.failed").exists()
+
+
+def _longest_array(value, seen: set[int] | None = None) -> int:
+    """The length of the longest array anywhere in ``value`` (dicts, lists, tuples,
+    dataclass-like objects' attributes, pandas objects)."""
+    seen = set() if seen is None else seen
+    if id(value) in seen:
+        return 0
+    seen.add(id(value))
+    if isinstance(value, np.ndarray):
+        return len(value) if value.ndim else 0
+    if isinstance(value, (pd.DataFrame, pd.Series, pd.Index)):
+        return len(value)
+    if isinstance(value, dict):
+        return max((_longest_array(v, seen) for v in value.values()), default=0)
+    if isinstance(value, (list, tuple, set)):
+        return max((_longest_array(v, seen) for v in value), default=0)
+    if hasattr(value, "__dict__"):
+        return _longest_array(vars(value), seen)
+    return 0
+
+
+def test_no_pass_hands_the_driver_an_array_as_long_as_the_rows(tmp_path, cluster,
+                                                                monkeypatch):
+    """What the driver gathers from the partitions is per entity or smaller (counts,
+    means, factors, tallies), never row-long: 40 entities, 50 periods, 2 partitions
+    of about 1,000 rows each, and nothing the driver receives longer than 100."""
+    import panelprep.partitioned as partitioned
+
+    rng = np.random.default_rng(5)
+    entity = np.repeat(np.arange(40), 50)
+    frame = pd.DataFrame({"firm": [f"F{e:02d}" for e in entity],
+                          "year": 1950 + np.tile(np.arange(50), 40)})
+    frame["capital"] = rng.normal(size=len(frame)) + entity
+    frame["staff"] = rng.normal(size=len(frame))
+    frame["sales"] = frame["capital"] - frame["staff"] + rng.normal(size=len(frame))
+    data = _parquet(frame, tmp_path / "panel.parquet")
+    received: dict[str, int] = {}
+    run_pass = partitioned._run_pass
+
+    def measured(client, progress, step, what, task, states, *constants):
+        results = run_pass(client, progress, step, what, task, states, *constants)
+        received[step] = _longest_array(results)
+        return results
+
+    monkeypatch.setattr(partitioned, "_run_pass", measured)
+    _run(data, tmp_path / "dask", "dask", cluster, partitions=2, **KEYS)
+    assert {"audit", "moments", "designs", "write"} <= set(received)
+    assert max(received.values()) <= 100, received
