@@ -521,7 +521,7 @@ def test_no_pass_hands_the_driver_an_array_as_long_as_the_rows(tmp_path, cluster
     """What the driver gathers from the partitions is per entity or smaller (counts,
     means, factors, tallies), never row-long: 40 entities, 50 periods, 2 partitions
     of about 1,000 rows each, and nothing the driver receives longer than 100."""
-    import panelprep.partitioned as partitioned
+    from panelprep import partitioned
 
     rng = np.random.default_rng(5)
     entity = np.repeat(np.arange(40), 50)
